@@ -1,0 +1,85 @@
+// The prediction engine: posterior predictive answers for one model, shared
+// by the offline commands (predict, recommend, evaluate) and the HTTP server.
+//
+// The predictive distribution of a rating is the equal-weight mixture over
+// kept samples s of Normal(m_s, 1/tau_s), where m_s is sample s's
+// prediction. Its mean and sd are exact mixture moments; interval bounds are
+// exact mixture quantiles (found by bracketing and bisection on the mixture
+// CDF), then clipped to the rating scale. Thread-safe: all methods are const.
+#pragma once
+#include <cstdint>
+#include <memory>
+#include <optional>
+#include <span>
+#include <vector>
+
+#include "model/posterior.hpp"
+
+namespace credence {
+
+struct Prediction {
+    double mean = 0.0;   // mixture mean, clipped to the scale
+    double sd = 0.0;     // mixture sd (unclipped predictive spread)
+    double lower = 0.0;  // (1-level)/2 quantile, clipped to the scale
+    double upper = 0.0;  // (1+level)/2 quantile, clipped to the scale
+};
+
+enum class RankBy {
+    mean,   // posterior predictive mean
+    lower,  // lower interval bound: cautious
+    upper,  // upper interval bound: optimistic
+    draw,   // one posterior sample's prediction: exploration by posterior sampling
+};
+
+struct RecommendOptions {
+    uint32_t n = 10;
+    RankBy rank_by = RankBy::mean;
+    double level = 0.9;
+    bool exclude_rated = true;
+    std::optional<std::vector<uint32_t>> candidates;  // restrict to these items (deduplicated by the engine)
+    uint64_t draw_seed = 0;                           // for RankBy::draw: which sample and noise
+};
+
+struct Recommendation {
+    uint32_t item = 0;
+    double score = 0.0;  // the value ranked by
+    Prediction prediction;
+};
+
+// Mixture helpers over per-sample means m[s] and noise precisions tau[s].
+// All need m.size() == tau.size() > 0.
+double mixture_mean(std::span<const double> m);
+double mixture_sd(std::span<const double> m, std::span<const float> tau);
+double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x);
+double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p);
+double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x);
+
+class PredictionEngine {
+public:
+    explicit PredictionEngine(std::shared_ptr<const Posterior> posterior);
+
+    const Posterior& posterior() const { return *posterior_; }
+
+    // Per-sample means m_s for a known (user, item) pair; size S.
+    void sample_means(uint32_t user, uint32_t item, std::vector<double>& out) const;
+
+    // level in (0, 1). Indices must be valid (callers map ids first).
+    Prediction predict(uint32_t user, uint32_t item, double level) const;
+
+    // Top-n items for a known user. Ties break by item index. Throws
+    // std::invalid_argument for level outside (0,1) or n == 0.
+    std::vector<Recommendation> recommend(uint32_t user, const RecommendOptions& options) const;
+
+    // Top-n for a visitor described by per-sample factors and biases (fold-in):
+    // visitor_factors is [S][K], visitor_bias is [S] (zeros without biases),
+    // `exclude` lists item indices the visitor has rated (sorted).
+    std::vector<Recommendation> recommend_for_factors(std::span<const float> visitor_factors,
+                                                      std::span<const float> visitor_bias,
+                                                      std::span<const uint32_t> exclude,
+                                                      const RecommendOptions& options) const;
+
+private:
+    std::shared_ptr<const Posterior> posterior_;
+};
+
+}  // namespace credence

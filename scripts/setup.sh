@@ -1,0 +1,36 @@
+#!/usr/bin/env bash
+# Installs what Credence needs to build, test and demo, from Debian 12
+# packages. Idempotent: installs only what is missing. Needs root or sudo.
+set -euo pipefail
+
+packages=(
+  build-essential cmake pkg-config git ca-certificates curl
+  libeigen3-dev          # dense linear algebra for the sampler
+  libcpp-httplib-dev     # HTTP server
+  nlohmann-json3-dev     # JSON in and out
+  libspdlog-dev libfmt-dev  # logging and formatting
+  catch2                 # tests (v2)
+  libcli11-dev           # command-line parsing
+  libtomlplusplus-dev    # config file
+  libxxhash-dev          # checksums and data fingerprints
+  libomp-dev             # OpenMP (GCC's libgomp comes with g++)
+)
+# Only the tests and benchmarks need these.
+if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
+  packages+=(wrk chromium python3)
+fi
+
+missing=()
+for p in "${packages[@]}"; do
+  dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")
+done
+if ((${#missing[@]} == 0)); then
+  echo "setup: all ${#packages[@]} packages present"
+  exit 0
+fi
+echo "setup: installing ${missing[*]}"
+sudo_cmd=()
+if [[ $(id -u) != 0 ]]; then sudo_cmd=(sudo); fi
+export DEBIAN_FRONTEND=noninteractive
+"${sudo_cmd[@]}" apt-get update -qq
+"${sudo_cmd[@]}" apt-get install -y -qq --no-install-recommends "${missing[@]}"
