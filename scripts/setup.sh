@@ -15,9 +15,10 @@ packages=(
   libxxhash-dev          # checksums and data fingerprints
   libomp-dev             # OpenMP (GCC's libgomp comes with g++)
 )
-# Only the tests and benchmarks need these.
+# Only the tests and benchmarks need these (scipy is the outside reference for
+# distribution checks; chromium renders the report; wrk drives the serve bench).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium python3)
+  packages+=(wrk chromium python3 python3-scipy python3-numpy)
 fi
 
 missing=()
