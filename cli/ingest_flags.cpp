@@ -21,7 +21,7 @@ void add_ingest_flags(CLI::App& cmd, IngestFlags& f, const std::string& ratings_
     cmd.add_option("--max-reject-fraction", f.max_reject_fraction, "Stop if more than this share of rows is rejected")
         ->check(CLI::Range(0.0, 1.0))
         ->capture_default_str();
-    cmd.add_option("--rejects", f.rejects_path, "Where rejected rows go (default: <ratings>.rejects.tsv)");
+    cmd.add_option("--rejects-path", f.rejects_path, "Where rejected rows go (default: <ratings>.rejects.tsv)");
 }
 
 namespace {
