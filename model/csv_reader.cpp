@@ -202,6 +202,8 @@ void CsvReader::take_first_line(CsvRecord& record) {
         begin_ = end_;
         while (fill()) {
             stop = find_line_end(buffer_.data(), begin_, end_);
+            const size_t room = kLongLineKeepBytes - long_line_.size();
+            long_line_.append(buffer_.data() + begin_, std::min(stop - begin_, room));
             if (stop < end_) {
                 const char* nb = buffer_.data();
                 begin_ = stop + ((nb[stop] == '\r' && stop + 1 < end_ && nb[stop + 1] == '\n') ? 2 : 1);
