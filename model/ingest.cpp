@@ -549,7 +549,10 @@ IngestResult Ingest::run() {
         if (options_.delimiter) {
             reader.set_delimiter(*options_.delimiter);
         } else {
-            const auto detected = detect_delimiter(reader.peek());
+            const auto sample = reader.peek();
+            const auto detected = detect_delimiter(sample);
+            if (!detected && sample.find_first_not_of(" \t\r\n") == std::string_view::npos)
+                throw DataError(fmt::format("{} has no rows; check the path", display_path()));
             if (!detected)
                 throw DataError(fmt::format("{}: cannot tell the delimiter: the first line has no ',', tab, ';' or '|'; "
                                             "pass --delimiter",
