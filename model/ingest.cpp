@@ -12,7 +12,10 @@
 #include <memory>
 #include <optional>
 #include <string_view>
+#include <type_traits>
 #include <vector>
+
+#include <sys/mman.h>
 
 #include <fmt/format.h>
 #include <xxhash.h>
@@ -24,7 +27,6 @@ namespace credence {
 
 namespace {
 
-constexpr uint32_t kDead = UINT32_MAX;  // marks a row folded into another; never a valid index
 // Past this many rejects, with more than half of all rows rejected, the file
 // is read wrongly (delimiter, columns) and reading on would only fill the rejects file.
 constexpr uint64_t kEarlyAbortRejects = 1000;
@@ -139,11 +141,20 @@ std::optional<double> parse_timestamp(std::string_view s) {
 
 // Grows in fixed blocks, so appending never copies what is already stored
 // and drain() needs only one block of slack on top of the exact result.
+// Blocks are mapped straight from the kernel so that freeing one during
+// drain() really returns its memory (heap-allocated blocks of this size
+// would stay in the allocator's free lists and double the peak).
 template <class T>
 class BlockVector {
 public:
+    BlockVector() = default;
+    BlockVector(const BlockVector&) = delete;
+    BlockVector& operator=(const BlockVector&) = delete;
+    ~BlockVector() {
+        for (T* block : blocks_) release(block);
+    }
     void push_back(const T& value) {
-        if ((size_ & (kBlock - 1)) == 0) blocks_.push_back(std::make_unique_for_overwrite<T[]>(kBlock));
+        if ((size_ & (kBlock - 1)) == 0) blocks_.push_back(acquire());
         blocks_.back()[size_ & (kBlock - 1)] = value;
         ++size_;
     }
@@ -153,10 +164,11 @@ public:
         std::vector<T> out;
         out.reserve(size_);
         size_t left = size_;
-        for (auto& block : blocks_) {
+        for (T*& block : blocks_) {
             const size_t n = std::min(left, kBlock);
-            out.insert(out.end(), block.get(), block.get() + n);
-            block.reset();
+            out.insert(out.end(), block, block + n);
+            release(block);
+            block = nullptr;
             left -= n;
         }
         blocks_.clear();
@@ -165,9 +177,84 @@ public:
     }
 
 private:
-    static constexpr size_t kBlock = size_t{1} << 16;
-    std::vector<std::unique_ptr<T[]>> blocks_;
+    static_assert(std::is_trivially_copyable_v<T>);
+    static constexpr size_t kBlock = size_t{1} << 18;  // 3 MiB of ratings, 2 MiB of timestamps
+    static T* acquire() {
+        void* p = ::mmap(nullptr, kBlock * sizeof(T), PROT_READ | PROT_WRITE, MAP_PRIVATE | MAP_ANONYMOUS | MAP_POPULATE, -1, 0);
+        if (p == MAP_FAILED) throw std::bad_alloc();
+        return static_cast<T*>(p);
+    }
+    static void release(T* block) {
+        if (block) ::munmap(block, kBlock * sizeof(T));
+    }
+    std::vector<T*> blocks_;
     size_t size_ = 0;
+};
+
+// A fast front for IdMap::intern: open addressing with short ids (up to 27
+// bytes, the usual case) stored in the slot itself, so a lookup costs one
+// cache miss rather than two; longer ids keep part of their hash in the slot
+// and are confirmed against the map's copy. A one-entry cache serves files
+// grouped by user. The map itself sees each distinct id once.
+class Interner {
+public:
+    explicit Interner(IdMap& map) : map_(map), slots_(1024) {}
+    uint32_t intern(std::string_view id) {
+        if (last_ != kEmpty && map_.name(last_) == id) return last_;
+        const uint64_t hash = XXH3_64bits(id.data(), id.size());
+        const size_t mask = slots_.size() - 1;
+        for (size_t i = hash & mask;; i = (i + 1) & mask) {
+            Slot& slot = slots_[i];
+            if (slot.index == kEmpty) {
+                fill_slot(slot, id, hash, map_.intern(id));
+                last_ = slot.index;
+                if (++used_ * 2 > slots_.size()) grow();
+                return last_;
+            }
+            if (matches(slot, id, hash)) return last_ = slot.index;
+        }
+    }
+
+private:
+    static constexpr uint32_t kEmpty = UINT32_MAX;
+    static constexpr size_t kInline = 27;
+    static constexpr uint8_t kLong = 255;  // length mark: text holds the hash, the name is in the map
+    struct Slot {
+        uint32_t index = kEmpty;
+        uint8_t length = 0;
+        char text[kInline] = {};
+    };
+    static_assert(sizeof(Slot) == 32);
+    static void fill_slot(Slot& slot, std::string_view id, uint64_t hash, uint32_t index) {
+        slot.index = index;
+        if (id.size() <= kInline) {
+            slot.length = static_cast<uint8_t>(id.size());
+            std::memcpy(slot.text, id.data(), id.size());
+        } else {
+            slot.length = kLong;
+            std::memcpy(slot.text, &hash, sizeof hash);
+        }
+    }
+    bool matches(const Slot& slot, std::string_view id, uint64_t hash) const {
+        if (id.size() <= kInline) return slot.length == id.size() && std::memcmp(slot.text, id.data(), id.size()) == 0;
+        return slot.length == kLong && std::memcmp(slot.text, &hash, sizeof hash) == 0 && map_.name(slot.index) == id;
+    }
+    void grow() {
+        std::vector<Slot> bigger(slots_.size() * 2);
+        const size_t mask = bigger.size() - 1;
+        for (const Slot& slot : slots_) {
+            if (slot.index == kEmpty) continue;
+            const auto& name = map_.name(slot.index);
+            size_t i = XXH3_64bits(name.data(), name.size()) & mask;
+            while (bigger[i].index != kEmpty) i = (i + 1) & mask;
+            bigger[i] = slot;
+        }
+        slots_.swap(bigger);
+    }
+    IdMap& map_;
+    std::vector<Slot> slots_;
+    size_t used_ = 0;
+    uint32_t last_ = kEmpty;
 };
 
 // Rejected rows as TSV: line, reason, record. Tabs, line breaks and
@@ -308,7 +395,7 @@ private:
                                   uint64_t line) const;
     void take_row(const std::vector<std::string_view>& fields, std::string_view raw, uint64_t line, CsvProblem problem);
     void reject(uint64_t line, const std::string& reason, std::string_view raw);
-    void merge_and_sort(std::vector<Rating>& ratings, const std::vector<double>& timestamps);
+    void merge_and_sort(std::vector<Rating>& ratings, std::vector<double> timestamps);
 
     const IngestOptions& options_;
     RejectsFile rejects_;
@@ -319,6 +406,8 @@ private:
     bool keep_timestamps_ = false;
     BlockVector<Rating> ratings_;
     BlockVector<double> timestamps_;
+    Interner users_{set_.users};
+    Interner items_{set_.items};
     std::string first_reject_;  // "line 12: rating 'x' is not a number", for error messages
 };
 
@@ -463,60 +552,78 @@ void Ingest::take_row(const std::vector<std::string_view>& fields, std::string_v
         timestamp = *parsed;
     }
     // Ids are interned only for kept rows, so rejects never create users or items.
-    ratings_.push_back(Rating{set_.users.intern(user), set_.items.intern(item), value});
+    ratings_.push_back(Rating{users_.intern(user), items_.intern(item), value});
     if (keep_timestamps_) timestamps_.push_back(timestamp);
 }
 
-// Sorts by (user, item) and folds duplicate pairs by the policy. Indices are
-// grouped by user with a counting sort, then ordered by (item, timestamp,
-// file position) within each user: small groups keep the sort cache-friendly
-// and only 4 bytes per row are needed on top of the rows themselves.
-void Ingest::merge_and_sort(std::vector<Rating>& ratings, const std::vector<double>& timestamps) {
+// Sorts by (user, item) and folds duplicate pairs by the policy, in place.
+// Row indices are grouped by user with a counting sort, then ordered by
+// (item, timestamp, file position) within each user: small groups keep the
+// sort cache-friendly. Each run of equal pairs leaves one row holding the
+// run's result; the rows are then permuted into that order in place and the
+// folded rows squeezed out. Peak memory: the rows (12 bytes each), the order
+// (4) and the timestamps (8, latest policy with a timestamp column only).
+void Ingest::merge_and_sort(std::vector<Rating>& ratings, std::vector<double> timestamps) {
+    constexpr uint32_t kFolded = UINT32_MAX;  // never a valid user index
     const size_t n = ratings.size();
+    std::vector<uint32_t> order(n);
     {
-        std::vector<uint32_t> start(set_.users.size() + 1, 0);
-        for (const auto& r : ratings) ++start[r.user + 1];
-        for (size_t u = 1; u < start.size(); ++u) start[u] += start[u - 1];
-        std::vector<uint32_t> order(n);
-        {
-            std::vector<uint32_t> next(start.begin(), start.end() - 1);
-            for (uint32_t i = 0; i < n; ++i) order[next[ratings[i].user]++] = i;
-        }
+        std::vector<uint32_t> next(set_.users.size() + 1, 0);
+        for (const auto& r : ratings) ++next[r.user + 1];
+        for (size_t u = 1; u < next.size(); ++u) next[u] += next[u - 1];
         const bool by_time = !timestamps.empty();
         auto before = [&](uint32_t a, uint32_t b) {
             if (ratings[a].item != ratings[b].item) return ratings[a].item < ratings[b].item;
             if (by_time && timestamps[a] != timestamps[b]) return timestamps[a] < timestamps[b];
             return a < b;
         };
-        for (size_t u = 0; u + 1 < start.size(); ++u) {
-            const auto first = order.begin() + start[u], last = order.begin() + start[u + 1];
-            std::sort(first, last, before);
-            for (auto run = first; run != last;) {
-                auto run_end = run + 1;
-                while (run_end != last && ratings[*run_end].item == ratings[*run].item) ++run_end;
-                const auto count = static_cast<size_t>(run_end - run);
-                if (count > 1) {
-                    summary_.merged_duplicates += count - 1;
-                    if (options_.duplicates == DuplicatePolicy::latest) {
-                        for (auto it = run; it + 1 != run_end; ++it) ratings[*it].user = kDead;
-                    } else {
-                        double sum = 0.0;
-                        for (auto it = run; it != run_end; ++it) sum += ratings[*it].value;
-                        ratings[*run].value = static_cast<float>(sum / static_cast<double>(count));
-                        for (auto it = run + 1; it != run_end; ++it) ratings[*it].user = kDead;
-                    }
-                }
-                run = run_end;
+        std::vector<uint32_t> group_start(next.begin(), next.end());
+        for (uint32_t i = 0; i < n; ++i) order[next[ratings[i].user]++] = i;
+        for (size_t u = 0; u + 1 < group_start.size(); ++u)
+            std::sort(order.begin() + group_start[u], order.begin() + group_start[u + 1], before);
+    }
+    std::vector<double>().swap(timestamps);
+
+    for (size_t run = 0; run < n;) {
+        const Rating head = ratings[order[run]];
+        size_t run_end = run + 1;
+        while (run_end < n && ratings[order[run_end]].user == head.user && ratings[order[run_end]].item == head.item)
+            ++run_end;
+        if (run_end - run > 1) {
+            summary_.merged_duplicates += run_end - run - 1;
+            if (options_.duplicates == DuplicatePolicy::mean) {
+                double sum = 0.0;
+                for (size_t k = run; k < run_end; ++k) sum += ratings[order[k]].value;
+                ratings[order[run_end - 1]].value = static_cast<float>(sum / static_cast<double>(run_end - run));
             }
+            for (size_t k = run; k + 1 < run_end; ++k) ratings[order[k]].user = kFolded;  // the last one stays
+        }
+        run = run_end;
+    }
+
+    // ratings[j] must become ratings[order[j]]: follow each cycle once,
+    // marking finished positions by pointing them at themselves.
+    for (size_t i = 0; i < n; ++i) {
+        if (order[i] == i) continue;
+        const Rating first = ratings[i];
+        size_t j = i;
+        for (;;) {
+            const size_t k = order[j];
+            order[j] = static_cast<uint32_t>(j);
+            if (k == i) {
+                ratings[j] = first;
+                break;
+            }
+            ratings[j] = ratings[k];
+            j = k;
         }
     }
-    if (summary_.merged_duplicates > 0)
-        ratings.erase(std::remove_if(ratings.begin(), ratings.end(), [](const Rating& r) { return r.user == kDead; }),
+    std::vector<uint32_t>().swap(order);
+    if (summary_.merged_duplicates > 0) {
+        ratings.erase(std::remove_if(ratings.begin(), ratings.end(), [](const Rating& r) { return r.user == kFolded; }),
                       ratings.end());
-    std::sort(ratings.begin(), ratings.end(), [](const Rating& a, const Rating& b) {
-        return a.user != b.user ? a.user < b.user : a.item < b.item;
-    });
-    if (ratings.capacity() > ratings.size() + ratings.size() / 8) ratings.shrink_to_fit();
+        if (ratings.capacity() > ratings.size() + ratings.size() / 8) ratings.shrink_to_fit();
+    }
 }
 
 IngestResult Ingest::run() {
@@ -626,10 +733,7 @@ IngestResult Ingest::run() {
         throw DataError(fmt::format("{}: more than 4 billion ratings; split the file", display_path()));
 
     auto ratings = ratings_.drain();
-    {
-        const auto timestamps = timestamps_.drain();
-        merge_and_sort(ratings, timestamps);
-    }
+    merge_and_sort(ratings, timestamps_.drain());
     summary_.kept = ratings.size();
 
     if (options_.scale) {

@@ -106,6 +106,26 @@ TEST_CASE("a headed CSV: columns found by name, ids interned, result sorted") {
     CHECK(describe(s) == "read 3 rows: kept 3, rejected 0, merged 0 duplicates");
 }
 
+TEST_CASE("long and short ids with shared prefixes stay distinct") {
+    // Ids past 27 bytes take another path in the interning table; check both.
+    const auto dir = testing::scratch_dir("ingest_long_ids");
+    const std::string a = "customer-with-a-rather-long-identifier-0001";
+    const std::string b = "customer-with-a-rather-long-identifier-0002";
+    std::string text = "user,item,rating\n";
+    for (int i = 0; i < 3000; ++i)  // enough distinct ids to make the table grow several times
+        text += (i % 2 ? a : b) + "-" + std::to_string(i % 1500) + ",sku-" + std::to_string(i) + ",3\n";
+    text += a + ",sku-0,1\n" + b + ",sku-0,2\n" + a.substr(0, 27) + ",sku-0,4\n" + a.substr(0, 26) + ",sku-0,5\n";
+    const auto result = ingest_ratings(options_for(write_file(dir, "long.csv", text)));
+    CHECK(result.summary.kept == 3004);
+    // Rows alternate a-/b- prefixes over 1500 suffixes: 750 odd suffixes with a,
+    // 750 even with b, each seen twice; plus the 4 ids of the last rows.
+    CHECK(result.ratings.users.size() == 1504);
+    CHECK(value_of(result.ratings, a, "sku-0") == 1.0f);
+    CHECK(value_of(result.ratings, b, "sku-0") == 2.0f);
+    CHECK(value_of(result.ratings, a.substr(0, 27), "sku-0") == 4.0f);
+    CHECK(value_of(result.ratings, a.substr(0, 26), "sku-0") == 5.0f);
+}
+
 TEST_CASE("delimiters are detected: tab, semicolon, pipe; or given") {
     const auto dir = testing::scratch_dir("ingest_delimiters");
     for (char d : {'\t', ';', '|', ','}) {
