@@ -6,8 +6,11 @@
 //
 // A malformed record is reported, not repaired: the record comes back with a
 // `problem` set, its first physical line as `raw`, and no fields, and reading
-// resumes at the next physical line, so one stray quote costs one line rather
-// than the rest of the file.
+// resumes at the next physical line, so a stray quote that never closes (or
+// not within max_record_bytes) costs one line rather than the rest of the
+// file. A stray quote that a later quote does close cannot be told from a
+// quoted line break: the lines between become one record, usually with the
+// wrong field count.
 #pragma once
 #include <cstddef>
 #include <cstdint>
