@@ -32,8 +32,10 @@ namespace credence {
 struct ConvergenceOptions {
     uint32_t max_probe_pairs = 20;
     uint64_t probe_seed = 0x5eed'd1a6ULL;
-    double max_rhat = 1.01;             // warn above (Vehtari et al. 2021, Sec. 4.2)
-    double min_ess_per_chain = 100.0;   // warn below, bulk and tail (same source)
+    // Warn above / below: the thresholds Vehtari et al. (2021) recommend
+    // (R-hat below 1.01; bulk- and tail-ESS of at least 100 per chain).
+    double max_rhat = 1.01;
+    double min_ess_per_chain = 100.0;
 };
 
 struct QuantityConvergence {

@@ -154,7 +154,7 @@ TEST_CASE("chains with shifted means or different scales give a large R-hat") {
     CHECK(convergence(d).rhat > 1.05);
 
     // Same means, one chain three times wider: invisible to the bulk R-hat,
-    // caught by the folded one (the motivation for folding in the paper, Sec. 4).
+    // caught by the folded one (the motivation for folding given in the paper).
     ChainDraws w = iid_normal(4, 1000, 8);
     for (double& x : w[3]) x *= 3.0;
     const double bulk_only = rhat_basic(rank_normalize(split_chains(w)));
