@@ -300,7 +300,11 @@ for path in sys.argv[1:]:
     print('%.17g %.17g %.17g' % (r, eb, et))
 )PY";
     std::string args;
-    for (const auto& c : cases) args += "'" + (dir / (c.first + ".txt")).string() + "' ";
+    for (const auto& c : cases) {
+        args += '\'';
+        args += (dir / (c.first + ".txt")).string();
+        args += "' ";
+    }
     const std::string out = testing::run_python(dir, "reference.py", script, args);
     REQUIRE(!out.empty());
     std::istringstream in(out);
