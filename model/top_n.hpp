@@ -7,8 +7,11 @@
 // for candidates whose upper bound can still reach the top n:
 //   1. T = the n-th largest lower bound: at least n candidates score >= T, so
 //      a candidate with hi < T scores below n others and is dropped.
-//   2. The rest are visited by decreasing hi; once n exact scores are held and
-//      the next hi is below the worst of them, no later candidate can enter.
+//   2. The rest are visited best guess first (by `estimate`, any heuristic),
+//      so the n held exact scores soon approach the final ones. Once n are
+//      held, a candidate whose hi is below the worst held score is skipped,
+//      and so is one that a cheaper test (`below`) shows to be certainly below
+//      it. A skipped candidate scores below n held ones, so below the final n.
 #pragma once
 #include <algorithm>
 #include <cmath>
@@ -22,6 +25,7 @@ struct ScoreBound {
     uint32_t item = 0;
     double lo = 0.0;  // lo <= exact score <= hi
     double hi = 0.0;
+    double estimate = 0.0;  // visiting order only; need not lie in [lo, hi]
 };
 
 struct ScoredItem {
@@ -35,11 +39,12 @@ inline bool ranks_before(const ScoredItem& a, const ScoredItem& b) {
 }
 
 // Needs: n > 0; exact(item) returns the exact score, within [lo, hi] of that
-// item's bound. Returns min(n, bounds.size()) items in ranking order.
-// `evaluated`, when given, receives how many exact scores were computed.
-template <class ExactScore>
+// item's bound; below(item, t) returns true only if exact(item) < t. Returns
+// min(n, bounds.size()) items in ranking order. `evaluated`, when given,
+// receives how many exact scores were computed.
+template <class ExactScore, class CertainlyBelow>
 std::vector<ScoredItem> select_top_n(std::vector<ScoreBound> bounds, size_t n, ExactScore&& exact,
-                                     size_t* evaluated = nullptr) {
+                                     CertainlyBelow&& below, size_t* evaluated = nullptr) {
     if (bounds.size() > n) {
         std::vector<double> lows(bounds.size());
         for (size_t j = 0; j < bounds.size(); ++j) lows[j] = bounds[j].lo;
@@ -49,14 +54,14 @@ std::vector<ScoredItem> select_top_n(std::vector<ScoreBound> bounds, size_t n, E
         std::erase_if(bounds, [threshold](const ScoreBound& b) { return b.hi < threshold; });
     }
     std::sort(bounds.begin(), bounds.end(), [](const ScoreBound& a, const ScoreBound& b) {
-        return a.hi > b.hi || (a.hi == b.hi && a.item < b.item);
+        return a.estimate > b.estimate || (a.estimate == b.estimate && a.item < b.item);
     });
     // Max-heap under ranks_before: the front is the worst item held.
     std::vector<ScoredItem> held;
     held.reserve(n + 1);
     size_t count = 0;
     for (const auto& b : bounds) {
-        if (held.size() == n && b.hi < held.front().score) break;
+        if (held.size() == n && (b.hi < held.front().score || below(b.item, held.front().score))) continue;
         const ScoredItem candidate{b.item, exact(b.item)};
         ++count;
         if (held.size() < n) {
@@ -71,6 +76,12 @@ std::vector<ScoredItem> select_top_n(std::vector<ScoreBound> bounds, size_t n, E
     if (evaluated) *evaluated = count;
     std::sort(held.begin(), held.end(), ranks_before);
     return held;
+}
+
+template <class ExactScore>
+std::vector<ScoredItem> select_top_n(std::vector<ScoreBound> bounds, size_t n, ExactScore&& exact,
+                                     size_t* evaluated = nullptr) {
+    return select_top_n(std::move(bounds), n, exact, [](uint32_t, double) { return false; }, evaluated);
 }
 
 }  // namespace credence
