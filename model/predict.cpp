@@ -24,7 +24,7 @@
 #include <stdexcept>
 #include <string>
 
-#include "model/normal.hpp"
+#include "model/inverse_normal.hpp"
 #include "model/random.hpp"
 #include "model/screening.hpp"
 #include "model/top_n.hpp"
@@ -116,7 +116,7 @@ std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const 
         const double slack = screened.slack;
         std::vector<double> shift(S);  // component quantile offset z / sqrt(tau_s)
         double noise_variance = 0.0;
-        const double z = by_quantile ? standard_normal_quantile(prob) : 0.0;
+        const double z = by_quantile ? normal_quantile(prob) : 0.0;
         for (uint32_t s = 0; s < S; ++s) {
             shift[s] = z / std::sqrt(static_cast<double>(tau[s]));
             noise_variance += 1.0 / static_cast<double>(tau[s]) / S;
@@ -163,7 +163,7 @@ std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const 
         const double x = t - pad(t) - screened.slack, target = (prob + 1e-12) * S;
         double partial = 0.0;
         for (uint32_t s = 0; s < S; ++s) {
-            partial += standard_normal_cdf(std::sqrt(static_cast<double>(tau[s])) * (x - row[s]));
+            partial += normal_cdf(std::sqrt(static_cast<double>(tau[s])) * (x - row[s]));
             if (partial > target) return true;
         }
         return false;

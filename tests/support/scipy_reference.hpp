@@ -1,5 +1,6 @@
 // Runs a short Python program under /usr/bin/python3 with scipy, the outside
-// reference for distribution checks. Returns the numbers it prints (one or
+// reference for distribution checks, feeding it input on stdin (see
+// python_reference.hpp for the availability check). Returns the numbers it prints (one or
 // more per line), or nothing, with a visible NOTICE, when scipy is missing.
 #pragma once
 #include <cstdio>
@@ -12,14 +13,9 @@
 #include <vector>
 
 #include "tests/support/paths.hpp"
+#include "tests/support/python_reference.hpp"
 
 namespace credence::testing {
-
-inline bool scipy_available() {
-    static const bool ok = std::system("/usr/bin/python3 -c 'import scipy, numpy' >/dev/null 2>&1") == 0;
-    if (!ok) std::cerr << "NOTICE: /usr/bin/python3 with scipy not found; skipping the scipy reference checks\n";
-    return ok;
-}
 
 // `program` reads its input from stdin; `input` is written there verbatim.
 inline std::optional<std::vector<double>> run_scipy(const std::string& name, const std::string& program,
