@@ -207,7 +207,7 @@ public:
 
     void rename_to(const std::filesystem::path& target) {
         if (::rename(path_.c_str(), target.c_str()) != 0)
-            throw Error("cannot replace " + target.string() + ": " + errno_text(errno));
+            throw Error("cannot rename the temporary file over it: " + errno_text(errno));
         committed_ = true;
     }
 
