@@ -536,7 +536,7 @@ Posterior read_posterior_file(const std::string& path) {
                     get_u64(p + 24), get_u64(p + 32)};
         const std::string name = e.id >= 1 && e.id <= kLastKnownSection ? section_name(e.id) : std::to_string(e.id);
         if (e.offset != align_up(end)) r.corrupt("section " + name + " is not where the layout puts it");
-        if (e.length_bytes > file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
+        if (e.offset > file_bytes || e.length_bytes > file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
         end = e.offset + e.length_bytes;
         if (e.id >= 1 && e.id <= kLastKnownSection) {
             if (known[e.id]) r.corrupt("section " + name + " appears twice");

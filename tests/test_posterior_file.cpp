@@ -11,6 +11,7 @@
 #include <unistd.h>
 #include <xxhash.h>
 
+#include <algorithm>
 #include <cmath>
 #include <cstdio>
 #include <cstring>
@@ -148,6 +149,14 @@ Bytes assemble(const std::vector<Section>& sections) {
     covered.insert(covered.end(), file.begin() + 40, file.begin() + static_cast<long>(table_end));
     set_u64(file, 32, XXH3_64bits(covered.data(), covered.size()));
     return file;
+}
+
+// Recomputes the header checksum after a test edited the header or table.
+void reseal(Bytes& file) {
+    const size_t table_end = 40 + 40 * size_t{u32_at(file, 12)};
+    Bytes covered(file.begin(), file.begin() + 32);
+    covered.insert(covered.end(), file.begin() + 40, file.begin() + static_cast<long>(table_end));
+    set_u64(file, 32, XXH3_64bits(covered.data(), covered.size()));
 }
 
 const PosteriorSpec kTiny{.users = 2, .items = 3, .rank = 1, .samples = 1, .chains = 1, .biases = true, .seed = 3};
@@ -379,6 +388,27 @@ TEST_CASE("consistent checksums do not make an impossible file readable") {
     set_u32(bias_without_flag[0].data, 20, 0);
     spit(path, assemble(bias_without_flag));
     require_format_error(path, "metadata says no biases");
+
+    {
+        // The last section starts past the declared end and its length wraps
+        // around 2^64 back onto that end; it claims 2^62 - 1 rated items.
+        auto reordered = sections;
+        std::rotate(reordered.begin() + 16, reordered.begin() + 17, reordered.end());  // rated_items last
+        const std::string json32 = "{\"v\":\"" + std::string(24, 'x') + "\"}";  // 32 bytes
+        reordered[17].data.assign(json32.begin(), json32.end());                 // diagnostics, second to last
+        reordered[17].count = 32;
+        Bytes file = assemble(reordered);
+        const size_t last = 40 + 40 * 18;
+        const uint64_t start = u64_at(file, last + 8);  // end of diagnostics + 32 bytes of padding
+        REQUIRE(u64_at(file, last - 40 + 8) + 32 + 32 == start);
+        file.resize(static_cast<size_t>(start - 4));
+        set_u64(file, 16, file.size());
+        set_u64(file, last + 16, 0 - uint64_t{4});
+        set_u64(file, last + 24, (uint64_t{1} << 62) - 1);
+        reseal(file);
+        spit(path, file);
+        require_format_error(path, "section rated_items extends past the end of file");
+    }
 
     auto bad_json = sections;  // fit metadata that is not JSON
     bad_json[17].data = Bytes{'{', 'x'};
