@@ -637,6 +637,11 @@ Posterior read_posterior_file(const std::string& path) {
     if (!nlohmann::json::accept(p.diagnostics_json)) r.corrupt("section diagnostics is not valid JSON");
     if (auto dup = first_duplicate(p.user_ids)) r.corrupt("user id '" + *dup + "' appears twice");
     if (auto dup = first_duplicate(p.item_ids)) r.corrupt("item id '" + *dup + "' appears twice");
+    // Posterior::validate walks each user's CSR row; make sure every row lies
+    // inside rated_items before it does.
+    for (size_t u = 0; u + 1 < p.rated_offsets.size(); ++u)
+        if (p.rated_offsets[u] > p.rated_offsets[u + 1] || p.rated_offsets[u + 1] > p.rated_items.size())
+            r.corrupt("section rated_offsets does not describe rows of rated_items (user " + std::to_string(u) + ")");
     try {
         p.validate();
     } catch (const FormatError& e) {

@@ -410,6 +410,21 @@ TEST_CASE("consistent checksums do not make an impossible file readable") {
         require_format_error(path, "section rated_items extends past the end of file");
     }
 
+    {
+        // A CSR row that runs past the item list: user 0 claims items [0, 6)
+        // of 5, all in ascending order so only the bounds check can stop it.
+        auto bad_rows = sections;
+        std::vector<uint64_t> offsets{0, 6, 3, 4, 5};
+        std::vector<uint32_t> items{0, 1, 2, 3, 4};
+        bad_rows[15].data.resize(offsets.size() * 8);
+        std::memcpy(bad_rows[15].data.data(), offsets.data(), offsets.size() * 8);
+        bad_rows[16].count = items.size();
+        bad_rows[16].data.resize(items.size() * 4);
+        std::memcpy(bad_rows[16].data.data(), items.data(), items.size() * 4);
+        spit(path, assemble(bad_rows));
+        require_format_error(path, "section rated_offsets does not describe rows of rated_items (user 0)");
+    }
+
     auto bad_json = sections;  // fit metadata that is not JSON
     bad_json[17].data = Bytes{'{', 'x'};
     bad_json[17].count = 2;
