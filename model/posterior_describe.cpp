@@ -5,8 +5,9 @@
 // modules; this summary picks out a few well-known keys when present, at the
 // top level or one object deep (e.g. "seed" or "options": {"seed": ...}):
 //   fit metadata: seed, data_fingerprint, seconds, credence_version, created_at
-//   diagnostics:  verdict, max_r_hat, min_ess
-// Anything else is left to `credence inspect --json`-style tooling.
+//   diagnostics:  verdict, max_rhat, min_ess_bulk_per_chain,
+//                 min_ess_tail_per_chain, warnings (counted)
+// (the diagnostics keys are those of model/convergence_summary.cpp).
 #include <cmath>
 #include <cstdio>
 #include <filesystem>
@@ -105,8 +106,13 @@ std::string describe_posterior(const Posterior& p, const std::string& path) {
                                                              {"credence_version", "credence version"},
                                                              {"created_at", "created at"}});
     out << "fit metadata:   " << (fit.empty() ? "(none recorded)" : fit) << "\n";
-    const std::string diag = highlights(p.diagnostics_json,
-                                        {{"verdict", "verdict"}, {"max_r_hat", "max R-hat"}, {"min_ess", "min ESS"}});
+    std::string diag = highlights(p.diagnostics_json, {{"verdict", "verdict"},
+                                                       {"max_rhat", "max R-hat"},
+                                                       {"min_ess_bulk_per_chain", "min bulk ESS per chain"},
+                                                       {"min_ess_tail_per_chain", "min tail ESS per chain"}});
+    const json diag_doc = json::parse(p.diagnostics_json, nullptr, false);
+    if (const json* w = diag_doc.is_discarded() ? nullptr : find_key(diag_doc, "warnings"); w && w->is_array())
+        diag += (diag.empty() ? "" : ", ") + std::to_string(w->size()) + (w->size() == 1 ? " warning" : " warnings");
     out << "diagnostics:    " << (diag.empty() ? "(none recorded)" : diag) << "\n";
     return out.str();
 }

@@ -518,7 +518,8 @@ TEST_CASE("describe_posterior reports the key numbers") {
     Posterior p = make_posterior({.users = 12, .items = 17, .rank = 5, .samples = 6, .chains = 3, .biases = true,
                                   .seed = 8});
     p.fit_metadata_json = R"({"options": {"seed": 4242, "rank": 5}, "data_fingerprint": "a1b2c3d4e5f60718"})";
-    p.diagnostics_json = R"({"verdict": "not converged", "max_r_hat": 1.31})";
+    p.diagnostics_json = R"({"thresholds": {"max_rhat": 1.01}, "max_rhat": 1.31, "min_ess_bulk_per_chain": 38.5,
+                             "verdict": "not_converged", "warnings": ["raise the sample count", "thin more"]})";
     const uint64_t bytes = write_posterior(p, path.string());
     const std::string text = credence::describe_posterior(read_posterior(path.string()), path.string());
     INFO(text);
@@ -532,8 +533,8 @@ TEST_CASE("describe_posterior reports the key numbers") {
          {std::string("12 users x 17 items, rank 5"), std::string("6 kept over 3 chains (per chain: 2 2 2)"),
           std::to_string(bytes) + " bytes", std::string("user and item"), std::string("[1, 5] (declared)"),
           std::string(mean), std::string(noise_sd), std::string("seed 4242"),
-          std::string("data fingerprint a1b2c3d4e5f60718"), std::string("verdict not converged"),
-          std::string("max R-hat 1.31"), "rated pairs:    " + std::to_string(p.rated_items.size())})
+          std::string("data fingerprint a1b2c3d4e5f60718"), std::string("verdict not_converged"),
+          std::string("max R-hat 1.31"), std::string("min bulk ESS per chain 38.5"), std::string("2 warnings"), "rated pairs:    " + std::to_string(p.rated_items.size())})
         CHECK(text.find(fragment) != std::string::npos);
 
     p.has_biases = false;

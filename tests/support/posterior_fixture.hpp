@@ -85,7 +85,7 @@ inline Posterior make_posterior(const PosteriorSpec& spec) {
     p.fit_metadata_json = "{\"seed\": " + std::to_string(spec.seed) +
                           ", \"data_fingerprint\": \"0f1e2d3c4b5a6978\", \"options\": {\"rank\": " +
                           std::to_string(spec.rank) + "}}";
-    p.diagnostics_json = R"({"verdict": "converged", "max_r_hat": 1.01})";
+    p.diagnostics_json = R"({"verdict": "converged", "max_rhat": 1.004, "warnings": []})";
     return p;
 }
 
