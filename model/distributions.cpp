@@ -37,7 +37,7 @@ Eigen::MatrixXd draw_wishart(Rng& rng, const Eigen::MatrixXd& scale, double dof)
 }
 
 void draw_normal_from_precision_factor(Rng& rng, const Eigen::VectorXd& mean,
-                                       const Eigen::MatrixXd& lower_factor, Eigen::VectorXd& out) {
+                                       const Eigen::Ref<const Eigen::MatrixXd>& lower_factor, Eigen::VectorXd& out) {
     const Eigen::Index d = mean.size();
     out.resize(d);
     for (Eigen::Index i = 0; i < d; ++i) out[i] = rng.normal();
@@ -53,8 +53,7 @@ Eigen::VectorXd draw_normal_from_precision(Rng& rng, const Eigen::VectorXd& mean
         throw NumericError("normal draw: precision matrix is not positive definite (smallest diagonal " +
                            std::to_string(precision.diagonal().minCoeff()) + ")");
     Eigen::VectorXd out;
-    const Eigen::MatrixXd lower = llt.matrixL();
-    draw_normal_from_precision_factor(rng, mean, lower, out);
+    draw_normal_from_precision_factor(rng, mean, llt.matrixLLT(), out);
     return out;
 }
 

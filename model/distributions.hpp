@@ -23,9 +23,11 @@ Eigen::MatrixXd draw_wishart(Rng& rng, const Eigen::MatrixXd& scale, double dof)
 
 // x ~ Normal(mean, precision^-1) given the LOWER Cholesky factor L of the
 // precision (precision = L L^T): x = mean + L^-T z with z standard normal.
-// Writes into `out` (resized to mean.size()).
+// Only the lower triangle of `lower_factor` is read (so an LLT's packed
+// matrixLLT() can be passed without a copy). Writes into `out` (resized to
+// mean.size()).
 void draw_normal_from_precision_factor(Rng& rng, const Eigen::VectorXd& mean,
-                                       const Eigen::MatrixXd& lower_factor, Eigen::VectorXd& out);
+                                       const Eigen::Ref<const Eigen::MatrixXd>& lower_factor, Eigen::VectorXd& out);
 
 // x ~ Normal(mean, precision^-1). Throws NumericError when `precision` is
 // not positive definite.

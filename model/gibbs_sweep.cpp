@@ -49,7 +49,7 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
     {
         Eigen::MatrixXd x(d, max_n);  // column-major: one column per rating of the row
         Eigen::VectorXd y(max_n), out(d);
-        Eigen::MatrixXd p(d, d);
+        RowWorkspace work;
 #pragma omp for schedule(dynamic, 64)
         for (int64_t row = 0; row < rows; ++row) {
             const uint64_t begin = csr.offsets[row];
@@ -68,7 +68,7 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
             Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, s.block, static_cast<uint64_t>(row));
             try {
                 draw_row(prior_precision, prior_pm, x.leftCols(n), y.head(n), tau, rng,
-                         RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, p, out);
+                         RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, work, out);
             } catch (const NumericError& e) {
 #pragma omp critical(credence_row_failure)
                 if (row < failed_row) {
@@ -138,25 +138,24 @@ void row_prior(const Eigen::VectorXd& mu, const Eigen::MatrixXd& lambda, bool bi
 
 void draw_row(const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_precision_mean,
               const Eigen::Ref<const Eigen::MatrixXd>& x, const Eigen::Ref<const Eigen::VectorXd>& y, double tau,
-              Rng& rng, const RowContext& context, Eigen::MatrixXd& p, Eigen::VectorXd& out) {
-    p = prior_precision;
-    Eigen::VectorXd rhs = prior_precision_mean;
+              Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::VectorXd& out) {
+    work.p = prior_precision;
+    work.rhs = prior_precision_mean;
     if (x.cols() > 0) {
-        p.selfadjointView<Eigen::Lower>().rankUpdate(x, tau);  // SYRK on the lower triangle
-        rhs.noalias() += tau * (x * y);
+        work.p.selfadjointView<Eigen::Lower>().rankUpdate(x, tau);  // SYRK on the lower triangle
+        work.rhs.noalias() += tau * (x * y);
     }
-    Eigen::LLT<Eigen::MatrixXd, Eigen::Lower> llt(p);
-    const bool ok = llt.info() == Eigen::Success && llt.matrixLLT().diagonal().allFinite();
-    if (ok) {
-        const Eigen::VectorXd mean = llt.solve(rhs);
-        const Eigen::MatrixXd lower = llt.matrixL();
-        draw_normal_from_precision_factor(rng, mean, lower, out);
+    work.llt.compute(work.p);
+    if (work.llt.info() == Eigen::Success && work.llt.matrixLLT().diagonal().allFinite()) {
+        work.mean = work.llt.solve(work.rhs);
+        draw_normal_from_precision_factor(rng, work.mean, work.llt.matrixLLT(), out);
         if (out.allFinite()) return;
     }
     throw NumericError("sampler: chain " + std::to_string(context.chain) + ", sweep " +
                        std::to_string(context.sweep) + ", " + context.side + " row " +
                        std::to_string(context.row) + ": the conditional precision is not positive definite " +
-                       "or the draw is not finite (smallest diagonal " + std::to_string(p.diagonal().minCoeff()) +
+                       "or the draw is not finite (smallest diagonal " +
+                       std::to_string(work.p.diagonal().minCoeff()) +
                        "); check the data for extreme values and the prior and noise options");
 }
 

@@ -63,14 +63,20 @@ struct RowContext {
     uint64_t row = 0;
 };
 
+// Scratch space for draw_row, reused across rows so the hot loop does not allocate.
+struct RowWorkspace {
+    Eigen::MatrixXd p;                              // conditional precision, lower triangle
+    Eigen::LLT<Eigen::MatrixXd, Eigen::Lower> llt;
+    Eigen::VectorXd rhs, mean;
+};
+
 // The exact Gaussian conditional of one row: precision P = prior_precision +
 // tau X X^T (X is D x n, one column per rating) and mean P^-1
 // (prior_precision_mean + tau X y); writes a draw mean + L^-T z into `out`
-// (z from `rng`). `p` is scratch (D x D). Throws NumericError (with the
-// context and P's smallest diagonal) when P is not positive definite or the
-// draw is not finite.
+// (z from `rng`). Throws NumericError (with the context and P's smallest
+// diagonal) when P is not positive definite or the draw is not finite.
 void draw_row(const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_precision_mean,
               const Eigen::Ref<const Eigen::MatrixXd>& x, const Eigen::Ref<const Eigen::VectorXd>& y,
-              double tau, Rng& rng, const RowContext& context, Eigen::MatrixXd& p, Eigen::VectorXd& out);
+              double tau, Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::VectorXd& out);
 
 }  // namespace credence

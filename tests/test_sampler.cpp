@@ -404,7 +404,8 @@ TEST_CASE("a conditional precision that is not positive definite raises NumericE
     Eigen::MatrixXd prior(2, 2);
     prior << 1.0, 0.0, 0.0, -0.5;
     const Eigen::VectorXd pm = Eigen::VectorXd::Zero(2);
-    Eigen::MatrixXd x(2, 0), p;
+    Eigen::MatrixXd x(2, 0);
+    RowWorkspace p;
     Eigen::VectorXd y(0), out;
     Rng rng(1);
     try {
