@@ -108,9 +108,18 @@ NormalWishart factor_prior(const FitOptions& o) {
 void draw_hyper(const std::vector<float>& factors, uint32_t rows, const FitOptions& o, const SweepKey& key,
                 StreamBlock block, Eigen::VectorXd& mu, Eigen::MatrixXd& lambda) {
     const FactorStatistics st = factor_statistics(factors.data(), rows, o.rank);
-    const NormalWishart post = normal_wishart_posterior(factor_prior(o), st);
     Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, block, 0);
-    MeanPrecision mp = draw_normal_wishart(rng, post);
+    MeanPrecision mp;
+    try {
+        mp = draw_normal_wishart(rng, normal_wishart_posterior(factor_prior(o), st));
+    } catch (const NumericError& e) {
+        throw NumericError("sampler: chain " + std::to_string(key.chain) + ", sweep " + std::to_string(key.sweep) +
+                           ", " + (block == StreamBlock::user_hyper ? "user" : "item") +
+                           " hyperparameters: " + e.what() + "; check the data for extreme values");
+    }
+    if (!mp.mu.allFinite() || !mp.lambda.allFinite())
+        throw NumericError("sampler: chain " + std::to_string(key.chain) + ", sweep " + std::to_string(key.sweep) +
+                           ": a hyperparameter draw is not finite; check the data for extreme values");
     mu = std::move(mp.mu);
     lambda = std::move(mp.lambda);
 }
