@@ -2,6 +2,7 @@
 
 #include <omp.h>
 
+#include <algorithm>
 #include <cmath>
 #include <limits>
 #include <stdexcept>
@@ -33,12 +34,44 @@ struct SidePass {
     double* sse_rows;         // per-row squared error with the new draws; null to skip
 };
 
+// Ratings of one row are gathered in blocks of this many columns, so the
+// per-thread buffer stays small (d x 2048 doubles) even for a row with
+// millions of ratings, while each block is still large enough for SYRK speed.
+constexpr Eigen::Index gather_block = 2048;
+
+void start_row(const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_precision_mean,
+               RowWorkspace& work) {
+    work.p = prior_precision;
+    work.rhs = prior_precision_mean;
+}
+
+void add_ratings(const Eigen::Ref<const Eigen::MatrixXd>& x, const Eigen::Ref<const Eigen::VectorXd>& y, double tau,
+                 RowWorkspace& work) {
+    if (x.cols() == 0) return;
+    work.p.selfadjointView<Eigen::Lower>().rankUpdate(x, tau);  // SYRK on the lower triangle
+    work.rhs.noalias() += tau * (x * y);
+}
+
+void finish_row(Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::VectorXd& out) {
+    work.llt.compute(work.p);
+    if (work.llt.info() == Eigen::Success && work.llt.matrixLLT().diagonal().allFinite()) {
+        work.mean = work.llt.solve(work.rhs);
+        draw_normal_from_precision_factor(rng, work.mean, work.llt.matrixLLT(), out);
+        if (out.allFinite()) return;
+    }
+    throw NumericError("sampler: chain " + std::to_string(context.chain) + ", sweep " +
+                       std::to_string(context.sweep) + ", " + context.side + " row " +
+                       std::to_string(context.row) + ": the conditional precision is not positive definite " +
+                       "or the draw is not finite (smallest diagonal " +
+                       std::to_string(work.p.diagonal().minCoeff()) +
+                       "); check the data for extreme values and the prior and noise options");
+}
+
 void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_mean,
                double tau, double g, uint32_t rank, bool biases, const SweepKey& key, int threads) {
     const Eigen::Index d = rank + (biases ? 1 : 0);
     const Eigen::VectorXd prior_pm = prior_precision * prior_mean;
     const CsrMatrix& csr = *s.csr;
-    const auto max_n = static_cast<Eigen::Index>(csr.max_row_size());
     const auto rows = static_cast<int64_t>(csr.num_rows);
     // The first failure by row order wins, so the message does not depend on scheduling.
     int64_t failed_row = std::numeric_limits<int64_t>::max();
@@ -47,28 +80,31 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
 
 #pragma omp parallel num_threads(team)
     {
-        Eigen::MatrixXd x(d, max_n);  // column-major: one column per rating of the row
-        Eigen::VectorXd y(max_n), out(d);
+        Eigen::MatrixXd x(d, gather_block);  // column-major: one column per rating
+        Eigen::VectorXd y(gather_block), out(d);
         RowWorkspace work;
 #pragma omp for schedule(dynamic, 64)
         for (int64_t row = 0; row < rows; ++row) {
-            const uint64_t begin = csr.offsets[row];
-            const auto n = static_cast<Eigen::Index>(csr.offsets[row + 1] - begin);
-            for (Eigen::Index j = 0; j < n; ++j) {
-                const uint32_t other = csr.index[begin + j];
-                const float* f = s.other_factors + static_cast<size_t>(other) * rank;
-                for (uint32_t k = 0; k < rank; ++k) x(k, j) = f[k];
-                double target = double(csr.value[begin + j]) - g;
-                if (biases) {
-                    x(rank, j) = 1.0;
-                    target -= s.other_bias[other];
+            const uint64_t begin = csr.offsets[row], end = csr.offsets[row + 1];
+            start_row(prior_precision, prior_pm, work);
+            for (uint64_t block = begin; block < end; block += gather_block) {
+                const auto n = static_cast<Eigen::Index>(std::min<uint64_t>(gather_block, end - block));
+                for (Eigen::Index j = 0; j < n; ++j) {
+                    const uint32_t other = csr.index[block + j];
+                    const float* f = s.other_factors + static_cast<size_t>(other) * rank;
+                    for (uint32_t k = 0; k < rank; ++k) x(k, j) = f[k];
+                    double target = double(csr.value[block + j]) - g;
+                    if (biases) {
+                        x(rank, j) = 1.0;
+                        target -= s.other_bias[other];
+                    }
+                    y[j] = target;
                 }
-                y[j] = target;
+                add_ratings(x.leftCols(n), y.head(n), tau, work);
             }
             Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, s.block, static_cast<uint64_t>(row));
             try {
-                draw_row(prior_precision, prior_pm, x.leftCols(n), y.head(n), tau, rng,
-                         RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, work, out);
+                finish_row(rng, RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, work, out);
             } catch (const NumericError& e) {
 #pragma omp critical(credence_row_failure)
                 if (row < failed_row) {
@@ -83,10 +119,13 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
             if (s.sse_rows) {
                 // Residuals with the stored float32 values, as predictions will see them.
                 double sse = 0.0;
-                for (Eigen::Index j = 0; j < n; ++j) {
-                    double pred = biases ? double(s.bias[row]) : 0.0;
-                    for (uint32_t k = 0; k < rank; ++k) pred += double(mine[k]) * x(k, j);
-                    const double r = y[j] - pred;
+                for (uint64_t j = begin; j < end; ++j) {
+                    const uint32_t other = csr.index[j];
+                    const float* f = s.other_factors + static_cast<size_t>(other) * rank;
+                    double pred = g;
+                    if (biases) pred += double(s.bias[row]) + s.other_bias[other];
+                    for (uint32_t k = 0; k < rank; ++k) pred += double(mine[k]) * f[k];
+                    const double r = csr.value[j] - pred;
                     sse += r * r;
                 }
                 s.sse_rows[row] = sse;
@@ -148,24 +187,9 @@ void row_prior(const Eigen::VectorXd& mu, const Eigen::MatrixXd& lambda, bool bi
 void draw_row(const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_precision_mean,
               const Eigen::Ref<const Eigen::MatrixXd>& x, const Eigen::Ref<const Eigen::VectorXd>& y, double tau,
               Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::VectorXd& out) {
-    work.p = prior_precision;
-    work.rhs = prior_precision_mean;
-    if (x.cols() > 0) {
-        work.p.selfadjointView<Eigen::Lower>().rankUpdate(x, tau);  // SYRK on the lower triangle
-        work.rhs.noalias() += tau * (x * y);
-    }
-    work.llt.compute(work.p);
-    if (work.llt.info() == Eigen::Success && work.llt.matrixLLT().diagonal().allFinite()) {
-        work.mean = work.llt.solve(work.rhs);
-        draw_normal_from_precision_factor(rng, work.mean, work.llt.matrixLLT(), out);
-        if (out.allFinite()) return;
-    }
-    throw NumericError("sampler: chain " + std::to_string(context.chain) + ", sweep " +
-                       std::to_string(context.sweep) + ", " + context.side + " row " +
-                       std::to_string(context.row) + ": the conditional precision is not positive definite " +
-                       "or the draw is not finite (smallest diagonal " +
-                       std::to_string(work.p.diagonal().minCoeff()) +
-                       "); check the data for extreme values and the prior and noise options");
+    start_row(prior_precision, prior_precision_mean, work);
+    add_ratings(x, y, tau, work);
+    finish_row(rng, context, work, out);
 }
 
 GibbsState initial_state(const GibbsData& data, const FitOptions& o, uint64_t seed, uint32_t chain) {
