@@ -1,5 +1,6 @@
 // credence fit: ratings export in, posterior file out.
 #include <cmath>
+#include <ctime>
 #include <iostream>
 #include <optional>
 
@@ -30,6 +31,15 @@ struct FitFlags {
     bool quiet = false;
 };
 
+std::string utc_now_iso8601() {
+    const std::time_t now = std::time(nullptr);
+    std::tm tm{};
+    gmtime_r(&now, &tm);
+    char buf[32];
+    std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
+    return buf;
+}
+
 std::string sweep_line(const SweepReport& r, uint32_t chains) {
     const double total = static_cast<double>(r.sweeps_per_chain) * chains;
     const double done = static_cast<double>(r.chain) * r.sweeps_per_chain + r.sweep + 1;
@@ -43,6 +53,8 @@ std::string sweep_line(const SweepReport& r, uint32_t chains) {
 }
 
 int run_fit(FitFlags& f) {
+    if (f.holdout && !(*f.holdout > 0.0 && *f.holdout < 1.0))
+        throw std::invalid_argument("--holdout must be strictly between 0 and 1");
     if (f.holdout && !f.validation_path.empty())
         throw std::invalid_argument("--holdout and --validation are alternatives; give one");
     FitOptions options = f.fit;
@@ -69,7 +81,7 @@ int run_fit(FitFlags& f) {
     if (f.holdout) {
         HoldoutSplit split = split_holdout(std::move(data.ratings), *f.holdout, options.seed);
         train = std::move(split.train);
-        validation = std::move(split.validation);
+        validation = std::move(split.test);
         validation_meta = {{"kind", "holdout"}, {"fraction", *f.holdout}, {"ratings", validation.size()}};
         log(fmt::format("holding out {} ratings ({:.1f}%) for validation", validation.size(), 100 * *f.holdout));
     } else {
@@ -103,13 +115,15 @@ int run_fit(FitFlags& f) {
 
     nlohmann::json meta = nlohmann::json::parse(result.posterior.fit_metadata_json, nullptr, false);
     if (meta.is_discarded() || !meta.is_object()) meta = nlohmann::json::object();
-    meta["data"] = {{"source", f.ingest.path},
-                    {"fingerprint", data.summary.fingerprint},
-                    {"rows_read", data.summary.rows_read},
-                    {"kept", data.summary.kept},
-                    {"rejected", data.summary.rejected},
-                    {"merged_duplicates", data.summary.merged_duplicates},
-                    {"training_ratings", train.size()}};
+    meta["data_fingerprint"] = data.summary.fingerprint;
+    meta["credence_version"] = "0.1.0";
+    meta["created_at"] = utc_now_iso8601();
+    meta["data"].update(nlohmann::json{{"source", f.ingest.path},
+                                       {"rows_read", data.summary.rows_read},
+                                       {"kept", data.summary.kept},
+                                       {"rejected", data.summary.rejected},
+                                       {"merged_duplicates", data.summary.merged_duplicates},
+                                       {"training_ratings", train.size()}});
     meta["validation"] = validation_meta;
     result.posterior.fit_metadata_json = meta.dump();
 

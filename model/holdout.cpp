@@ -3,14 +3,15 @@
 #include <cmath>
 #include <numeric>
 #include <stdexcept>
+#include <string>
 
 #include "model/random.hpp"
 
 namespace credence {
 
 HoldoutSplit split_holdout(RatingSet all, double fraction, uint64_t seed) {
-    if (!(fraction > 0.0 && fraction < 1.0))
-        throw std::invalid_argument("holdout fraction must be strictly between 0 and 1");
+    if (!(fraction >= 0.0 && fraction < 1.0))
+        throw std::invalid_argument("holdout fraction must be at least 0 and below 1, not " + std::to_string(fraction));
     const size_t n = all.ratings.size();
     const auto n_out = static_cast<size_t>(std::llround(fraction * static_cast<double>(n)));
     // Partial Fisher-Yates over indices: the first n_out positions are the holdout.
@@ -27,10 +28,10 @@ HoldoutSplit split_holdout(RatingSet all, double fraction, uint64_t seed) {
     order.shrink_to_fit();
 
     HoldoutSplit split;
-    split.validation.reserve(n_out);
+    split.test.reserve(n_out);
     size_t w = 0;
     for (size_t r = 0; r < n; ++r) {
-        if (held[r]) split.validation.push_back(all.ratings[r]);
+        if (held[r]) split.test.push_back(all.ratings[r]);
         else all.ratings[w++] = all.ratings[r];
     }
     all.ratings.resize(w);

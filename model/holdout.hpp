@@ -9,13 +9,14 @@
 namespace credence {
 
 struct HoldoutSplit {
-    RatingSet train;                 // same id maps and scale as the input; order preserved
-    std::vector<Rating> validation;  // indices refer to train's id maps
+    RatingSet train;                 // same id maps and scale as the input; order preserved (sorted stays sorted)
+    std::vector<Rating> test;        // indices refer to train's id maps; input order
 };
 
-// Moves round(fraction * N) ratings, chosen uniformly by a seeded shuffle,
-// to the validation side. Needs 0 < fraction < 1; throws std::invalid_argument
-// otherwise. Users or items whose ratings all land in validation stay in the
+// Moves exactly round(fraction * N) ratings, chosen uniformly by a partial
+// Fisher-Yates shuffle keyed by (seed, StreamBlock::split), to the test side.
+// Needs 0 <= fraction < 1; throws std::invalid_argument otherwise. Takes the
+// set by value: pass an rvalue to split without a copy. Users or items whose ratings all land in validation stay in the
 // id maps (the sampler draws them from the population prior).
 HoldoutSplit split_holdout(RatingSet all, double fraction, uint64_t seed);
 
