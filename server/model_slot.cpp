@@ -93,7 +93,7 @@ void population_stats(const Posterior& p, const std::vector<double>& user_cov, L
             const auto v = p.item_factor(s, i);
             for (uint32_t k = 0; k < K; ++k) Y(i, k) = v[k];
             Y(i, K) = 1.0;
-            Y(i, K + 1) = p.global_mean + p.item_bias_of(s, i);
+            Y(i, K + 1) = static_cast<double>(p.global_mean) + p.item_bias_of(s, i);
         }
         const Eigen::VectorXd mean_s = Y * xbar;
         const Eigen::VectorXd second_s = ((Y * M).cwiseProduct(Y)).rowwise().sum();
