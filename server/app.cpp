@@ -13,11 +13,13 @@ namespace credence::server {
 
 namespace {
 
+std::shared_ptr<spdlog::logger> stderr_logger(const std::string& name) {
+    auto existing = spdlog::get(name);
+    return existing ? existing : spdlog::stderr_logger_mt(name);
+}
+
 std::shared_ptr<spdlog::logger> access_logger() {
-    static const auto logger = [] {
-        auto existing = spdlog::get("credence.access");
-        return existing ? existing : spdlog::stderr_logger_mt("credence.access");
-    }();
+    static const auto logger = stderr_logger("credence.access");
     return logger;
 }
 
@@ -47,6 +49,11 @@ std::string percent_decode(std::string_view s) {
 
 }  // namespace
 
+spdlog::logger& server_log() {
+    static const auto logger = stderr_logger("credence.serve");
+    return *logger;
+}
+
 std::shared_ptr<const LoadedModel> AppContext::model() const {
     auto m = slot.get();
     if (!m) throw no_model();
@@ -59,7 +66,7 @@ std::shared_ptr<const LoadedModel> AppContext::reload(const std::string& path) {
         auto next = load_model_file(path);
         slot.set(next);
         metrics.reload_finished(true);
-        spdlog::info("serving model {} from {} (loaded in {:.1f} ms)", next->fingerprint, path, next->load_ms);
+        server_log().info("serving model {} from {} (loaded in {:.1f} ms)", next->fingerprint, path, next->load_ms);
         return next;
     } catch (...) {
         metrics.reload_finished(false);
@@ -82,7 +89,7 @@ httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHan
         } catch (const HttpProblem& p) {
             write_problem(res, p, req.target);
         } catch (const std::exception& e) {
-            spdlog::error("{} {}: unexpected error: {}", req.method, route, e.what());
+            server_log().error("{} {}: unexpected error: {}", req.method, route, e.what());
             write_problem(res, 500, "internal", "Internal Server Error",
                           "the server failed to answer this request; the log has the details", req.target);
         } catch (...) {

@@ -13,6 +13,7 @@
 
 #include <httplib.h>
 #include <nlohmann/json.hpp>
+#include <spdlog/logger.h>
 
 #include "model/predict.hpp"
 #include "server/metrics.hpp"
@@ -38,6 +39,9 @@ struct AppContext {
     // A fresh seed for requests that did not give one.
     uint64_t next_seed();
 };
+
+// The service log (stderr, so stdout carries only the "listening on" line).
+spdlog::logger& server_log();
 
 using RouteHandler = std::function<void(const httplib::Request&, httplib::Response&)>;
 

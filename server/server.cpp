@@ -86,7 +86,7 @@ int run_server(const ServeOptions& options) {
     try {
         validate_serve_options(options);
     } catch (const Error& e) {
-        spdlog::error("{}", e.what());
+        server_log().error("{}", e.what());
         return 1;
     }
     AppContext ctx;
@@ -94,7 +94,7 @@ int run_server(const ServeOptions& options) {
     try {
         ctx.admin_token = resolve_admin_token(options);
     } catch (const Error& e) {
-        spdlog::error("{}", e.what());
+        server_log().error("{}", e.what());
         return 1;
     }
 
@@ -119,7 +119,7 @@ int run_server(const ServeOptions& options) {
     const bool bound = options.port == 0 ? (port = server.bind_to_any_port(options.host)) > 0
                                          : server.bind_to_port(options.host, options.port);
     if (!bound) {
-        spdlog::error("serve: cannot bind {}:{}; is the port in use or the host not local?", options.host,
+        server_log().error("serve: cannot bind {}:{}; is the port in use or the host not local?", options.host,
                       options.port);
         pthread_sigmask(SIG_SETMASK, &previous, nullptr);
         return 1;
@@ -135,7 +135,7 @@ int run_server(const ServeOptions& options) {
         try {
             ctx.reload(options.model_path);
         } catch (const std::exception& e) {
-            spdlog::error("serve: cannot load model {}: {}", options.model_path, e.what());
+            server_log().error("serve: cannot load model {}: {}", options.model_path, e.what());
             exit_code = 1;
             stop_requested = true;
         }
@@ -152,10 +152,10 @@ int run_server(const ServeOptions& options) {
                 try {
                     ctx.reload(path);
                 } catch (const std::exception& e) {
-                    spdlog::error("reload on SIGHUP failed, still serving the previous model: {}", e.what());
+                    server_log().error("reload on SIGHUP failed, still serving the previous model: {}", e.what());
                 }
             } else if (sig == SIGINT || sig == SIGTERM) {
-                spdlog::info("serve: stopping on signal {}", sig);
+                server_log().info("serve: stopping on signal {}", sig);
                 stop_requested = true;
             }
             if (stop_requested && server.is_running()) {

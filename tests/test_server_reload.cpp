@@ -9,6 +9,11 @@
 #include <map>
 #include <thread>
 
+#include <fstream>
+#include <mutex>
+
+#include <nlohmann/json.hpp>
+
 #include "bench/synthetic_posterior.hpp"
 #include "model/posterior_file.hpp"
 #include "model/predict.hpp"
