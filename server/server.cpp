@@ -108,8 +108,13 @@ int run_server(const ServeOptions& options) {
     pthread_sigmask(SIG_BLOCK, &handled, &previous);
 
     httplib::Server server;
-    const uint32_t threads = options.threads ? options.threads : std::max(1u, std::thread::hardware_concurrency());
+    // Each open keep-alive connection holds a worker, so the default is
+    // generous: idle workers cost little, starved connections cost seconds.
+    const uint32_t threads =
+        options.threads ? options.threads : std::max(16u, 4 * std::max(1u, std::thread::hardware_concurrency()));
     server.new_task_queue = [threads] { return new httplib::ThreadPool(threads); };
+    // Small JSON answers must not wait for the peer's delayed ACK (~40 ms).
+    server.set_tcp_nodelay(true);
     server.set_payload_max_length(options.body_limit_bytes);
     server.set_read_timeout(options.read_timeout_ms / 1000, (options.read_timeout_ms % 1000) * 1000);
     server.set_write_timeout(options.write_timeout_ms / 1000, (options.write_timeout_ms % 1000) * 1000);

@@ -13,7 +13,7 @@ struct ServeOptions {
     std::string model_path;                      // posterior file to serve (required)
     std::string host = "127.0.0.1";              // loopback unless told otherwise
     uint16_t port = 8080;                        // 0 binds an ephemeral port (reported on stdout)
-    uint32_t threads = 0;                        // worker threads; 0 = hardware concurrency
+    uint32_t threads = 0;                        // worker threads (one per open connection); 0 = max(16, 4 x hardware threads)
     uint64_t body_limit_bytes = 8u << 20;        // larger request bodies get 413
     uint32_t read_timeout_ms = 5000;
     uint32_t write_timeout_ms = 5000;
