@@ -37,12 +37,12 @@ struct RecommendOptions {
     double level = 0.9;
     bool exclude_rated = true;
     std::optional<std::vector<uint32_t>> candidates;  // restrict to these items (deduplicated by the engine)
-    uint64_t draw_seed = 0;                           // for RankBy::draw: which sample and noise
+    uint64_t draw_seed = 0;                           // for RankBy::draw: which posterior sample
 };
 
 struct Recommendation {
     uint32_t item = 0;
-    double score = 0.0;  // the value ranked by
+    double score = 0.0;  // the value ranked by, before clipping to the scale
     Prediction prediction;
 };
 
@@ -80,6 +80,9 @@ public:
 
 private:
     std::shared_ptr<const Posterior> posterior_;
+    // [S] largest item-factor norm of each sample: bounds the float rounding
+    // of the all-items scoring pass so pruning stays exact.
+    std::vector<double> max_item_norm_;
 };
 
 }  // namespace credence

@@ -1,0 +1,111 @@
+// Streaming RFC 4180 record reader for CSV/TSV exports: quoted fields,
+// doubled quotes, delimiters and line breaks inside quotes, LF / CRLF / CR
+// line ends, a leading UTF-8 byte order mark. It reads through one large
+// buffer and never holds more than a buffer's worth of the input, so files of
+// any size stream through in constant memory.
+//
+// A malformed record is reported, not repaired: the record comes back with a
+// `problem` set, its first physical line as `raw`, and no fields, and reading
+// resumes at the next physical line, so a stray quote that never closes (or
+// not within max_record_bytes) costs one line rather than the rest of the
+// file. A stray quote that a later quote does close cannot be told from a
+// quoted line break: the lines between become one record, usually with the
+// wrong field count.
+#pragma once
+#include <cstddef>
+#include <cstdint>
+#include <cstdio>
+#include <functional>
+#include <optional>
+#include <string>
+#include <string_view>
+#include <vector>
+
+namespace credence {
+
+enum class CsvProblem {
+    none,
+    unterminated_quote,   // input ended inside a quoted field
+    text_after_quote,     // e.g. "abc"x, : characters between a closing quote and the delimiter
+    record_too_long,      // longer than max_record_bytes (usually an unbalanced quote)
+};
+
+// A short human phrase for a problem ("unterminated quote", ...).
+const char* describe(CsvProblem problem);
+
+struct CsvRecord {
+    // Field contents with quotes removed and doubled quotes collapsed. Views
+    // into the reader's buffer: valid until the next call to next().
+    std::vector<std::string_view> fields;
+    // The record's bytes as they stand in the file, without the line end
+    // (several physical lines when a quoted field spans lines).
+    std::string_view raw;
+    uint64_t line = 0;                // 1-based physical line where the record starts
+    CsvProblem problem = CsvProblem::none;
+};
+
+class CsvReader {
+public:
+    static constexpr size_t default_buffer_bytes = size_t{4} << 20;
+    static constexpr size_t default_max_record_bytes = size_t{1} << 20;
+
+    // Needs: `file` open for reading; it is not owned and not closed.
+    // `on_bytes` (optional) sees every byte read from the file exactly once,
+    // in order, BOM included, a buffer-full at a time: the hook for hashing
+    // and progress. buffer_bytes is raised to at least 2 * max_record_bytes.
+    explicit CsvReader(std::FILE* file, std::function<void(std::string_view)> on_bytes = {},
+                       size_t buffer_bytes = default_buffer_bytes,
+                       size_t max_record_bytes = default_max_record_bytes);
+
+    // Returns the start of the input (after any BOM) without consuming it, up
+    // to max_bytes or whatever the first buffer fill holds. For delimiter
+    // detection; call before the first next().
+    std::string_view peek(size_t max_bytes = 64 * 1024);
+
+    // The field separator; ',' until set. Any byte except '"', '\r', '\n'.
+    void set_delimiter(char delimiter);
+    char delimiter() const { return delimiter_; }
+
+    // Reads the next record into `record`; false at end of input. A blank
+    // line comes back as a record with one empty field and an empty raw.
+    // Throws DataError if the file cannot be read.
+    bool next(CsvRecord& record);
+
+    uint64_t bytes_read() const { return bytes_read_; }
+    bool had_bom() const { return had_bom_; }
+
+private:
+    enum class Parse { done, need_more };
+    struct FieldSpan {
+        bool in_scratch;
+        size_t offset;
+        size_t length;
+    };
+    bool fill();  // reads more input behind end_; false at end of file
+    Parse parse(CsvRecord& record);
+    void take_first_line(CsvRecord& record);
+
+    std::FILE* file_;
+    std::function<void(std::string_view)> on_bytes_;
+    std::vector<char> buffer_;
+    size_t begin_ = 0;          // start of the unconsumed input in buffer_
+    size_t end_ = 0;            // end of valid bytes in buffer_
+    bool eof_ = false;
+    bool started_ = false;      // first fill done (BOM handled)
+    bool had_bom_ = false;
+    char delimiter_ = ',';
+    size_t max_record_bytes_;
+    uint64_t line_ = 1;
+    uint64_t bytes_read_ = 0;
+    std::vector<FieldSpan> spans_;
+    std::string scratch_;       // unescaped text of fields with doubled quotes
+    std::string long_line_;     // raw of a malformed record whose first line outgrew the buffer
+};
+
+// Picks the separator among ',', '\t', ';', '|' from the first lines of
+// `sample`: the candidate that appears the same nonzero number of times on
+// every sampled line wins, the most frequent on the first line otherwise
+// (ties in that order). Quoted text is ignored. nullopt when none appears.
+std::optional<char> detect_delimiter(std::string_view sample);
+
+}  // namespace credence
