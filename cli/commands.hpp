@@ -16,7 +16,6 @@ Runner add_predict_command(CLI::App& app);
 Runner add_recommend_command(CLI::App& app);
 Runner add_inspect_command(CLI::App& app);
 Runner add_demo_data_command(CLI::App& app);
-Runner add_simulate_command(CLI::App& app);
 Runner add_serve_command(CLI::App& app);
 
 }  // namespace credence::cli

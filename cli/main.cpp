@@ -24,6 +24,7 @@ int main(int argc, char** argv) {
     add(credence::cli::add_predict_command);
     add(credence::cli::add_recommend_command);
     add(credence::cli::add_inspect_command);
+    add(credence::cli::add_serve_command);
     add(credence::cli::add_demo_data_command);
 
     try {
