@@ -10,6 +10,7 @@
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
 #include "cli/progress.hpp"
+#include "model/convergence_summary.hpp"
 #include "model/error.hpp"
 #include "model/holdout.hpp"
 #include "model/ingest.hpp"
@@ -38,6 +39,15 @@ std::string utc_now_iso8601() {
     char buf[32];
     std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
     return buf;
+}
+
+std::string describe_verdict(const ConvergenceSummary& c) {
+    std::string out = fmt::format("convergence: {} (max R-hat {:.3f}, min bulk ESS per chain {:.0f}, min tail ESS per chain {:.0f}; "
+                                  "{} chains x {} draws)\n",
+                                  c.verdict, c.max_rhat, c.min_ess_bulk_per_chain, c.min_ess_tail_per_chain,
+                                  c.num_chains, c.draws_per_chain);
+    for (const auto& w : c.warnings) out += "warning: " + w + "\n";
+    return out;
 }
 
 std::string sweep_line(const SweepReport& r, uint32_t chains) {
@@ -126,6 +136,11 @@ int run_fit(FitFlags& f) {
                                        {"training_ratings", train.size()}});
     meta["validation"] = validation_meta;
     result.posterior.fit_metadata_json = meta.dump();
+
+    // Convergence figures travel with the model (inspect, /v1/model, report).
+    const ConvergenceSummary convergence = summarize_convergence(result.posterior);
+    result.posterior.diagnostics_json = to_json(convergence).dump();
+    std::cerr << describe_verdict(convergence);
 
     const uint64_t bytes = write_posterior(result.posterior, f.out);
     const auto& trace = result.trace;

@@ -8,13 +8,11 @@
 #include <algorithm>
 #include <chrono>
 #include <cmath>
-#include <fstream>
 #include <iostream>
-#include <sstream>
 #include <string>
-#include <tuple>
 #include <vector>
 
+#include "model/ingest.hpp"
 #include "model/sampler.hpp"
 #include "model/simulate.hpp"
 #include "tests/support/paths.hpp"
@@ -22,32 +20,6 @@
 using namespace credence;
 
 namespace {
-
-// Minimal reader for the file's "userId,movieId,rating,timestamp" layout
-// (the dataset has no quoting and no duplicate pairs).
-RatingSet read_ratings_csv(const std::filesystem::path& path) {
-    std::ifstream in(path);
-    RatingSet rs;
-    std::string line;
-    std::getline(in, line);  // header
-    float lo = 1e9f, hi = -1e9f;
-    while (std::getline(in, line)) {
-        if (line.empty()) continue;
-        std::istringstream f(line);
-        std::string user, item, value;
-        std::getline(f, user, ',');
-        std::getline(f, item, ',');
-        std::getline(f, value, ',');
-        const float v = std::stof(value);
-        rs.ratings.push_back({rs.users.intern(user), rs.items.intern(item), v});
-        lo = std::min(lo, v);
-        hi = std::max(hi, v);
-    }
-    std::sort(rs.ratings.begin(), rs.ratings.end(),
-              [](auto& a, auto& b) { return std::tie(a.user, a.item) < std::tie(b.user, b.item); });
-    rs.scale = {lo, hi, false};
-    return rs;
-}
 
 double clip(double x, const RatingScale& s) { return std::min<double>(s.max, std::max<double>(s.min, x)); }
 
@@ -75,7 +47,11 @@ double mixture_quantile(const std::vector<double>& m, const std::vector<double>&
 TEST_CASE("open dataset: rank-10 fit beats the bias baseline with calibrated intervals") {
     const auto path = credence::testing::open_ratings_dataset();
     if (path.empty()) return;  // notice already printed
-    const RatingSet all = read_ratings_csv(path);
+    IngestOptions in;
+    in.path = path.string();
+    in.scale = RatingScale{0.5f, 5.0f, true};
+    in.rejects_path = (credence::testing::scratch_dir("real_data_fit") / "rejects.tsv").string();
+    const RatingSet all = ingest_ratings(in).ratings;
     REQUIRE(all.size() > 50000);
     const HoldoutSplit split = split_holdout(all, 0.1, 2015);
     const RatingSet& train = split.train;
