@@ -59,9 +59,11 @@ void Posterior::validate() const {
     expect_size("rated_offsets", rated_offsets.size(), U + 1);
     if (rated_offsets.front() != 0 || rated_offsets.back() != rated_items.size())
         throw FormatError("posterior: rated-items offsets do not span the item list");
-    for (size_t u = 0; u < U; ++u) {
+    // All offsets first, so the row walk below never reads past the list.
+    for (size_t u = 0; u < U; ++u)
         if (rated_offsets[u] > rated_offsets[u + 1])
             throw FormatError("posterior: rated-items offsets decrease at user " + std::to_string(u));
+    for (size_t u = 0; u < U; ++u) {
         for (uint64_t p = rated_offsets[u]; p < rated_offsets[u + 1]; ++p) {
             if (rated_items[p] >= I)
                 throw FormatError("posterior: user " + std::to_string(u) + " rated item index " +
