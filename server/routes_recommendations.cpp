@@ -1,0 +1,167 @@
+// GET /v1/users/{user}/recommendations: top-N for a known user.
+// POST /v1/recommendations: top-N for a visitor, by fold-in (server/foldin.hpp).
+// Both rank by mean, lower or upper interval bound, or one posterior draw,
+// and give mean, sd and interval for every item.
+#include <algorithm>
+#include <set>
+
+#include "server/app.hpp"
+#include "server/foldin.hpp"
+
+namespace credence::server {
+
+namespace {
+
+uint32_t item_index(const LoadedModel& model, const std::string& id) {
+    const auto index = model.items.find(id);
+    if (!index) throw not_found("item", "the model has no item '" + id + "'");
+    return *index;
+}
+
+nlohmann::json recommendation_list(const LoadedModel& model, const std::vector<Recommendation>& recs) {
+    nlohmann::json items = nlohmann::json::array();
+    for (const auto& r : recs) {
+        nlohmann::json entry = {{"item", model.items.name(r.item)}, {"score", r.score}};
+        put_prediction(entry, r.prediction);
+        items.push_back(std::move(entry));
+    }
+    return items;
+}
+
+void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    const auto segments = decoded_path_segments(req);
+    // ["", "v1", "users", <user>, "recommendations"]; ids may contain '/' when encoded.
+    if (segments.size() != 5 || segments[4] != "recommendations")
+        throw HttpProblem(404, "no-route", "Not Found",
+                          "no route for " + req.path + "; did you mean /v1/users/{user}/recommendations?");
+    const std::string& user_id = segments[3];
+
+    RecommendOptions options;
+    options.n = query_count(req, "n", 10, ctx.options.max_n);
+    options.rank_by = req.has_param("rank_by") ? parse_rank_by(req.get_param_value("rank_by")) : RankBy::mean;
+    options.level = query_level(req, "interval", 0.9);
+    options.exclude_rated = query_bool(req, "exclude_rated", true);
+    const auto seed = query_seed(req, "seed");
+    options.draw_seed = seed ? *seed : ctx.next_seed();
+    const size_t candidate_count = req.get_param_value_count("items");
+    if (candidate_count > ctx.options.max_batch)
+        throw bad_request("items may list at most " + std::to_string(ctx.options.max_batch) + " candidates");
+
+    const auto model = ctx.model();
+    const auto user = model->users.find(user_id);
+    if (!user)
+        throw not_found("user", "the model has no user '" + user_id +
+                                    "'; use POST /v1/recommendations with the visitor's ratings instead");
+    if (candidate_count > 0) {
+        std::vector<uint32_t> candidates;
+        for (size_t k = 0; k < candidate_count; ++k)
+            candidates.push_back(item_index(*model, req.get_param_value("items", k)));
+        options.candidates = std::move(candidates);
+    }
+    const auto recs = model->engine.recommend(*user, options);
+    nlohmann::json body = {{"model", model->fingerprint},
+                           {"user", user_id},
+                           {"rank_by", rank_by_name(options.rank_by)},
+                           {"level", options.level},
+                           {"items", recommendation_list(*model, recs)}};
+    if (options.rank_by == RankBy::draw) body["seed"] = options.draw_seed;
+    write_json(res, body, model.get());
+}
+
+uint32_t json_count(const nlohmann::json& body, const char* name, uint32_t fallback, uint32_t max_value) {
+    const auto it = body.find(name);
+    if (it == body.end()) return fallback;
+    if (!it->is_number_integer()) throw bad_request(std::string(name) + " must be a whole number");
+    const auto value = it->get<int64_t>();
+    if (value < 1 || static_cast<uint64_t>(value) > max_value)
+        throw bad_request(std::string(name) + " must be between 1 and " + std::to_string(max_value) + ", got " +
+                          std::to_string(value));
+    return static_cast<uint32_t>(value);
+}
+
+void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    const nlohmann::json body = parse_json_body(req);
+    RecommendOptions options;
+    options.n = json_count(body, "n", 10, ctx.options.max_n);
+    options.level = json_level(body, 0.9);
+    if (const auto it = body.find("rank_by"); it != body.end()) options.rank_by = parse_rank_by(json_string(*it, "rank_by"));
+    if (const auto it = body.find("exclude_rated"); it != body.end()) {
+        if (!it->is_boolean()) throw bad_request("exclude_rated must be true or false");
+        options.exclude_rated = it->get<bool>();
+    }
+    uint64_t seed = 0;
+    if (const auto it = body.find("seed"); it != body.end()) {
+        if (!it->is_number_unsigned()) throw bad_request("seed must be an unsigned 64-bit integer");
+        seed = it->get<uint64_t>();
+    } else {
+        seed = ctx.next_seed();
+    }
+    options.draw_seed = seed;
+
+    std::vector<std::pair<std::string, double>> rated;
+    if (const auto it = body.find("ratings"); it != body.end()) {
+        if (!it->is_array()) throw bad_request("ratings must be an array of {\"item\": ..., \"rating\": ...}");
+        if (it->size() > ctx.options.max_batch)
+            throw bad_request("ratings may hold at most " + std::to_string(ctx.options.max_batch) + " entries");
+        for (size_t k = 0; k < it->size(); ++k) {
+            const auto& r = (*it)[k];
+            const std::string where = "ratings[" + std::to_string(k) + "]";
+            if (!r.is_object() || !r.contains("item") || !r.contains("rating"))
+                throw bad_request(where + " must be an object {\"item\": ..., \"rating\": ...}");
+            if (!r["rating"].is_number()) throw bad_request(where + ".rating must be a number");
+            rated.emplace_back(json_string(r["item"], where + ".item"), r["rating"].get<double>());
+        }
+    }
+    std::vector<std::string> candidate_ids;
+    if (const auto it = body.find("items"); it != body.end()) {
+        if (!it->is_array()) throw bad_request("items must be an array of item ids");
+        if (it->size() > ctx.options.max_batch)
+            throw bad_request("items may list at most " + std::to_string(ctx.options.max_batch) + " candidates");
+        for (size_t k = 0; k < it->size(); ++k)
+            candidate_ids.push_back(json_string((*it)[k], "items[" + std::to_string(k) + "]"));
+    }
+
+    const auto model = ctx.model();
+    const Posterior& p = *model->posterior;
+    std::vector<VisitorRating> ratings;
+    std::set<uint32_t> seen;
+    for (const auto& [id, value] : rated) {
+        const uint32_t item = item_index(*model, id);
+        if (!seen.insert(item).second)
+            throw bad_request("item '" + id + "' is rated twice; give each item once");
+        if (!(value >= p.scale.min && value <= p.scale.max))
+            throw bad_request("rating " + std::to_string(value) + " for item '" + id + "' is outside the scale [" +
+                              std::to_string(p.scale.min) + ", " + std::to_string(p.scale.max) + "]");
+        ratings.push_back({item, value});
+    }
+    if (!candidate_ids.empty()) {
+        std::vector<uint32_t> candidates;
+        for (const auto& id : candidate_ids) candidates.push_back(item_index(*model, id));
+        options.candidates = std::move(candidates);
+    }
+    const VisitorFactors visitor = fold_in_visitor(p, ratings, seed);
+    const std::vector<uint32_t> exclude(seen.begin(), seen.end());  // sorted
+    const auto recs = model->engine.recommend_for_factors(visitor.factors, visitor.bias, exclude, options);
+    write_json(res,
+               {{"model", model->fingerprint},
+                {"seed", seed},
+                {"rank_by", rank_by_name(options.rank_by)},
+                {"level", options.level},
+                {"items", recommendation_list(*model, recs)}},
+               model.get());
+}
+
+}  // namespace
+
+void install_recommendation_routes(httplib::Server& server, AppContext& ctx) {
+    server.Get(R"(/v1/users/(.+))", wrap_route(ctx, "/v1/users/{user}/recommendations",
+                                               [&ctx](const httplib::Request& req, httplib::Response& res) {
+                                                   user_handler(ctx, req, res);
+                                               }));
+    server.Post("/v1/recommendations", wrap_route(ctx, "/v1/recommendations",
+                                                  [&ctx](const httplib::Request& req, httplib::Response& res) {
+                                                      visitor_handler(ctx, req, res);
+                                                  }));
+}
+
+}  // namespace credence::server
