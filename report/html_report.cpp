@@ -63,7 +63,9 @@ table { border-collapse:collapse; font-size:12.5px; margin:6px 0; }
 th, td { padding:4px 10px; text-align:right; border-bottom:1px solid #eee9de; }
 th { background:#f7f5ef; font-weight:600; color:#333; }
 td:first-child, th:first-child { text-align:left; }
-tr.flag td { color:var(--bad); font-weight:600; }
+td.bad { color:var(--bad); font-weight:600; }
+td { white-space:nowrap; }
+.grid.tables { gap:28px; align-items:flex-start; }
 tr.pick td { background:#eef4fa; font-weight:600; }
 ul.warnings { color:var(--bad); margin:6px 0; padding-left:20px; font-size:13px; }
 footer { color:var(--muted); font-size:12px; text-align:center; padding:8px 0 30px; }
@@ -127,7 +129,7 @@ std::string sweep_traces(const nlohmann::json& meta) {
         std::vector<Series> series;
         for (auto& [c, s] : by_chain) series.push_back(std::move(s));
         PlotSpec spec = make_spec(id, title, "sweep (count)", ylabel);
-        spec.width_px = 560;
+        spec.width_px = 520;
         if (burn_in > 0 && !values.empty()) {
             double lo = *std::min_element(values.begin(), values.end()), hi = *std::max_element(values.begin(), values.end());
             spec.guides.push_back({burn_in + 0.5, lo, burn_in + 0.5, hi, "end of burn-in"});
@@ -165,11 +167,11 @@ std::string probe_traces(const ReportInputs& in, const ConvergenceSummary& conv)
         std::vector<Series> series;
         for (auto& [c, s] : by_chain) series.push_back(std::move(s));
         PlotSpec spec = make_spec(fmt::format("trace-probe-{}", drawn + 1),
-                                  fmt::format("{} \xe2\x86\x92 {}   (R-hat {})", q.user_id, q.item_id,
-                                              fixed(q.stats.rhat, 3)),
+                                  fmt::format("{} \xe2\x86\x92 {}", q.user_id, q.item_id),
                                   "kept sample within chain (count)", "predicted rating (rating units)");
-        spec.width_px = 370;
-        spec.height_px = 250;
+        spec.note = "R-hat " + fixed(q.stats.rhat, 3);
+        spec.width_px = 342;
+        spec.height_px = 240;
         spec.legend = drawn == 0;
         o += render_svg(spec, series);
         ++drawn;
@@ -191,19 +193,29 @@ std::string convergence_table(const ConvergenceSummary& conv) {
         for (const auto& w : conv.warnings) o += "<li>" + escape_xml(w) + "</li>";
         o += "</ul>";
     }
-    o += "<table class=\"diagnostics\"><thead><tr><th>quantity</th><th>R-hat</th><th>bulk ESS</th><th>tail ESS</th>"
-         "<th>bulk ESS / chain</th></tr></thead><tbody>";
     const double chains = std::max<double>(1, conv.num_chains);
-    for (const QuantityConvergence& q : conv.quantities) {
-        const auto& st = q.stats;
-        const bool flag = (std::isfinite(st.rhat) && st.rhat > conv.options.max_rhat) ||
-                          (std::isfinite(st.ess_bulk) && st.ess_bulk / chains < conv.options.min_ess_per_chain) ||
-                          (std::isfinite(st.ess_tail) && st.ess_tail / chains < conv.options.min_ess_per_chain);
-        o += fmt::format("<tr{}><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>", flag ? " class=\"flag\"" : "",
-                         escape_xml(q.label()), fixed(st.rhat, 3), fixed(st.ess_bulk, 0), fixed(st.ess_tail, 0),
-                         fixed(st.ess_bulk / chains, 0));
-    }
-    o += "</tbody></table></section>\n";
+    auto table = [&](bool predictions) {
+        std::string t = fmt::format("<table class=\"diagnostics\"><thead><tr><th>{}</th><th>R-hat</th><th>bulk ESS</th>"
+                                    "<th>tail ESS</th><th>bulk / chain</th></tr></thead><tbody>",
+                                    predictions ? "probe prediction" : "quantity");
+        for (const QuantityConvergence& q : conv.quantities) {
+            if ((q.quantity == "prediction") != predictions) continue;
+            const auto& st = q.stats;
+            const double min_ess = conv.options.min_ess_per_chain * chains;
+            auto cell = [](bool bad, const std::string& text) {
+                return fmt::format("<td{}>{}</td>", bad ? " class=\"bad\"" : "", text);
+            };
+            const std::string name = predictions ? q.user_id + " \xe2\x86\x92 " + q.item_id : q.label();
+            t += "<tr><td>" + escape_xml(name) + "</td>" +
+                 cell(std::isfinite(st.rhat) && st.rhat > conv.options.max_rhat, fixed(st.rhat, 3)) +
+                 cell(std::isfinite(st.ess_bulk) && st.ess_bulk < min_ess, fixed(st.ess_bulk, 0)) +
+                 cell(std::isfinite(st.ess_tail) && st.ess_tail < min_ess, fixed(st.ess_tail, 0)) +
+                 cell(false, fixed(st.ess_bulk / chains, 0)) + "</tr>";
+        }
+        return t + "</tbody></table>";
+    };
+    o += "<div class=\"grid tables\">" + table(false) + table(true) + "</div>";
+    o += "<p class=\"note\">Figures in red miss a threshold.</p></section>\n";
     return o;
 }
 

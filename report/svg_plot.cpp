@@ -137,8 +137,13 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
                      escape_xml(spec.id), kLeft, kTop, num(W - kLeft - kRight), num(H - kTop - kBottom));
     o += fmt::format("<rect class=\"frame\" x=\"{}\" y=\"{}\" width=\"{}\" height=\"{}\" fill=\"#fbfaf7\" stroke=\"#d9d4c7\"/>\n",
                      kLeft, kTop, num(W - kLeft - kRight), num(H - kTop - kBottom));
-    o += fmt::format("<text class=\"title\" x=\"{}\" y=\"20\" font-size=\"14\" font-weight=\"600\" fill=\"#222\">{}</text>\n",
-                     kLeft, escape_xml(spec.title));
+    // Shrink a long title to the width rather than let it run off the plot.
+    const double title_px = std::min(14.0, (W - 24) / (0.62 * std::max<size_t>(1, spec.title.size())));
+    o += fmt::format("<text class=\"title\" x=\"14\" y=\"20\" font-size=\"{}\" font-weight=\"600\" fill=\"#222\">{}</text>\n",
+                     num(title_px), escape_xml(spec.title));
+    if (!spec.note.empty())
+        o += fmt::format("<text class=\"note\" x=\"{}\" y=\"42\" text-anchor=\"end\" font-size=\"11.5\" fill=\"#6f6a5f\">{}</text>\n",
+                         num(W - kRight), escape_xml(spec.note));
 
     // ---- ticks and grid
     auto in_range = [](double v, const Axis& a) { return v >= std::min(a.lo, a.hi) - 1e-12 && v <= std::max(a.lo, a.hi) + 1e-12; };
@@ -146,7 +151,7 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
     if (spec.log_x) {
         for (double t = xa.lo; t <= xa.hi * 1.0001; t *= 10) xticks.push_back(t);
     } else if (xa.lo < xa.hi) {
-        xticks = nice_ticks(xa.lo, xa.hi, std::max(3, static_cast<int>(W / 110)));
+        xticks = nice_ticks(xa.lo, xa.hi, std::max(3, static_cast<int>(W / 85)));
     }
     for (double t : xticks) {
         if (!in_range(t, xa)) continue;
@@ -157,7 +162,7 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
                          num(px), kTop, num(H - kBottom), num(H - kBottom + 4), num(H - kBottom + 16), tick_label(t));
     }
     if (ya.lo < ya.hi)
-        for (double t : nice_ticks(ya.lo, ya.hi, std::max(3, static_cast<int>(H / 70)))) {
+        for (double t : nice_ticks(ya.lo, ya.hi, std::max(4, static_cast<int>(H / 55)))) {
             if (!in_range(t, ya)) continue;
             const double py = ya.map(t);
             o += fmt::format("<line class=\"grid\" x1=\"{0}\" x2=\"{1}\" y1=\"{2}\" y2=\"{2}\" stroke=\"#ebe7dd\"/>"

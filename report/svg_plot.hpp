@@ -40,6 +40,7 @@ struct Guide {
 struct PlotSpec {
     std::string id;               // data-plot attribute; [a-z0-9-] only
     std::string title;
+    std::string note;             // short muted text at the right of the legend row (e.g. "R-hat 1.003")
     std::string x_label, y_label; // include the unit, e.g. "sweep (count)"
     double width_px = 560, height_px = 320;
     bool log_x = false;           // log10 x axis; needs every x > 0
