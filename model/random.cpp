@@ -11,6 +11,7 @@ uint64_t splitmix64(uint64_t& x) {
     z = (z ^ (z >> 27)) * 0x94D049BB133111EBull;
     return z ^ (z >> 31);
 }
+__extension__ typedef unsigned __int128 u128;  // GCC/Clang extension, for Lemire's method
 uint64_t rotl(uint64_t x, int k) { return (x << k) | (x >> (64 - k)); }
 }  // namespace
 
@@ -89,12 +90,12 @@ double Rng::gamma(double shape) {
 
 uint64_t Rng::below(uint64_t n) {
     if (n == 0) throw std::invalid_argument("Rng::below needs n > 0");
-    unsigned __int128 m = static_cast<unsigned __int128>(next_u64()) * n;
+    u128 m = static_cast<u128>(next_u64()) * n;
     uint64_t low = static_cast<uint64_t>(m);
     if (low < n) {
         const uint64_t threshold = -n % n;
         while (low < threshold) {
-            m = static_cast<unsigned __int128>(next_u64()) * n;
+            m = static_cast<u128>(next_u64()) * n;
             low = static_cast<uint64_t>(m);
         }
     }

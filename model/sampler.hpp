@@ -47,7 +47,8 @@ struct FitOptions {
     bool biases = true;
     bool sample_noise = true;
     double fixed_noise_precision = 2.0;  // used when !sample_noise (the paper's alpha = 2)
-    double init_scale = 0.1;         // sd of the random initial factors
+    double init_scale = -1.0;        // sd of the random initial factors; negative: automatic,
+                                     // (rating variance / 2K)^(1/4), so u.v starts with half the variance
     HyperpriorOptions prior;
 };
 

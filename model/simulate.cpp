@@ -97,27 +97,5 @@ SimulatedData simulate_ratings(const SimulationOptions& o) {
     return d;
 }
 
-HoldoutSplit split_holdout(const RatingSet& ratings, double test_fraction, uint64_t seed) {
-    if (!(test_fraction >= 0.0 && test_fraction < 1.0))
-        throw std::invalid_argument("split: test fraction must be in [0, 1)");
-    const size_t n = ratings.ratings.size();
-    const auto n_test = static_cast<size_t>(std::llround(test_fraction * double(n)));
-    std::vector<uint32_t> order(n);
-    std::iota(order.begin(), order.end(), 0u);
-    Rng rng = Rng::keyed(seed, 0, 0, StreamBlock::split, 0);
-    // Partial Fisher-Yates: the first n_test positions become a uniform sample.
-    for (size_t j = 0; j < n_test; ++j) std::swap(order[j], order[j + rng.below(n - j)]);
-    std::vector<char> is_test(n, 0);
-    for (size_t j = 0; j < n_test; ++j) is_test[order[j]] = 1;
-
-    HoldoutSplit s;
-    s.train.users = ratings.users;
-    s.train.items = ratings.items;
-    s.train.scale = ratings.scale;
-    s.train.ratings.reserve(n - n_test);
-    s.test.reserve(n_test);
-    for (size_t j = 0; j < n; ++j) (is_test[j] ? s.test : s.train.ratings).push_back(ratings.ratings[j]);
-    return s;
-}
 
 }  // namespace credence

@@ -5,6 +5,7 @@
 #include <cstdint>
 #include <vector>
 
+#include "model/holdout.hpp"  // split_holdout, used with simulated data
 #include "model/ratings.hpp"
 
 namespace credence {
@@ -41,14 +42,5 @@ struct SimulatedData {
 // ratings_per_user > items, negative sds, or an empty result.
 SimulatedData simulate_ratings(const SimulationOptions& options);
 
-struct HoldoutSplit {
-    RatingSet train;            // same id maps and scale as the input; sorted
-    std::vector<Rating> test;   // indices refer to train's id maps; sorted
-};
-
-// Moves a seeded random `test_fraction` (in [0, 1)) of the ratings to the
-// test side: a Fisher-Yates shuffle keyed by (seed, StreamBlock::split)
-// picks exactly round(test_fraction * N) ratings.
-HoldoutSplit split_holdout(const RatingSet& ratings, double test_fraction, uint64_t seed);
 
 }  // namespace credence

@@ -32,13 +32,6 @@ fs::path write_file(const fs::path& dir, const std::string& name, const std::str
     return path;
 }
 
-std::string read_text(const fs::path& path) {
-    std::ifstream in(path, std::ios::binary);
-    std::stringstream ss;
-    ss << in.rdbuf();
-    return ss.str();
-}
-
 std::vector<std::string> read_lines(const fs::path& path) {
     std::ifstream in(path);
     std::vector<std::string> lines;

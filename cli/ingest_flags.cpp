@@ -1,0 +1,68 @@
+#include "cli/ingest_flags.hpp"
+
+#include <charconv>
+#include <stdexcept>
+
+namespace credence::cli {
+
+void add_ingest_flags(CLI::App& cmd, IngestFlags& f, const std::string& ratings_flag) {
+    cmd.add_option(ratings_flag, f.path, "Ratings export, CSV or TSV ('-' for standard input)")->required();
+    cmd.add_option("--delimiter", f.delimiter, "Field delimiter: ',', ';', '|' or 'tab' (default: detected)");
+    auto* nh = cmd.add_flag("--no-header", f.no_header, "The first row is data, not column names");
+    cmd.add_flag("--header", f.header, "The first row is column names (default: detected)")->excludes(nh);
+    cmd.add_option("--user-column", f.user_column, "User id column, by header name or 0-based index");
+    cmd.add_option("--item-column", f.item_column, "Item id column, by header name or 0-based index");
+    cmd.add_option("--rating-column", f.rating_column, "Rating column, by header name or 0-based index");
+    cmd.add_option("--timestamp-column", f.timestamp_column, "Optional timestamp column (orders duplicates)");
+    cmd.add_option("--scale", f.scale, "Declared rating scale MIN:MAX; ratings outside it are rejected (default: observed range)");
+    cmd.add_option("--duplicates", f.duplicates, "Repeated (user, item) pairs: 'latest' (by timestamp, else file order) or 'mean'")
+        ->check(CLI::IsMember({"latest", "mean"}))
+        ->capture_default_str();
+    cmd.add_option("--max-reject-fraction", f.max_reject_fraction, "Stop if more than this share of rows is rejected")
+        ->check(CLI::Range(0.0, 1.0))
+        ->capture_default_str();
+    cmd.add_option("--rejects-path", f.rejects_path, "Where rejected rows go (default: <ratings>.rejects.tsv)");
+}
+
+namespace {
+float parse_float(const std::string& s, const std::string& what) {
+    float v = 0;
+    const auto [p, ec] = std::from_chars(s.data(), s.data() + s.size(), v);
+    if (ec != std::errc() || p != s.data() + s.size())
+        throw std::invalid_argument("--scale: '" + s + "' is not a number (" + what + ")");
+    return v;
+}
+}  // namespace
+
+IngestOptions to_ingest_options(const IngestFlags& f) {
+    IngestOptions o;
+    o.path = f.path;
+    if (!f.delimiter.empty()) {
+        if (f.delimiter == "tab" || f.delimiter == "\\t" || f.delimiter == "\t") o.delimiter = '\t';
+        else if (f.delimiter.size() == 1 && std::string(",;|").find(f.delimiter[0]) != std::string::npos)
+            o.delimiter = f.delimiter[0];
+        else throw std::invalid_argument("--delimiter: use ',', ';', '|' or 'tab', not '" + f.delimiter + "'");
+    }
+    if (f.no_header) o.has_header = false;
+    if (f.header) o.has_header = true;
+    o.user_column = f.user_column;
+    o.item_column = f.item_column;
+    o.rating_column = f.rating_column;
+    o.timestamp_column = f.timestamp_column;
+    if (!f.scale.empty()) {
+        const auto colon = f.scale.find(':');
+        if (colon == std::string::npos) throw std::invalid_argument("--scale: expected MIN:MAX, e.g. 1:5, not '" + f.scale + "'");
+        RatingScale s;
+        s.min = parse_float(f.scale.substr(0, colon), "MIN");
+        s.max = parse_float(f.scale.substr(colon + 1), "MAX");
+        s.declared = true;
+        if (!(s.min < s.max)) throw std::invalid_argument("--scale: MIN must be below MAX in '" + f.scale + "'");
+        o.scale = s;
+    }
+    o.duplicates = f.duplicates == "mean" ? DuplicatePolicy::mean : DuplicatePolicy::latest;
+    o.max_reject_fraction = f.max_reject_fraction;
+    o.rejects_path = f.rejects_path;
+    return o;
+}
+
+}  // namespace credence::cli
