@@ -17,5 +17,7 @@ Runner add_recommend_command(CLI::App& app);
 Runner add_inspect_command(CLI::App& app);
 Runner add_demo_data_command(CLI::App& app);
 Runner add_serve_command(CLI::App& app);
+Runner add_compare_command(CLI::App& app);
+Runner add_report_command(CLI::App& app);
 
 }  // namespace credence::cli

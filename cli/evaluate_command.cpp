@@ -20,6 +20,9 @@ struct EvaluateFlags {
     std::string model;
     IngestFlags ingest;
     bool json = false;
+    uint32_t k = 10;
+    double relevance_threshold = 4.0;
+    bool no_ranking = false;
 };
 
 int run_evaluate(const EvaluateFlags& f) {
@@ -27,7 +30,11 @@ int run_evaluate(const EvaluateFlags& f) {
     IngestOptions options = to_ingest_options(f.ingest);
     IngestResult test = ingest_ratings(options);
     PredictionEngine engine(posterior);
-    EvaluationReport report = evaluate(engine, test.ratings, EvaluationOptions{});
+    EvaluationOptions eo;
+    eo.ranking = !f.no_ranking;
+    eo.ranking_k = f.k;
+    eo.relevance_threshold = f.relevance_threshold;
+    EvaluationReport report = evaluate(engine, test.ratings, eo);
     nlohmann::json j = to_json(report);
     if (f.json) {
         std::cout << j.dump(2) << "\n";
@@ -41,6 +48,20 @@ int run_evaluate(const EvaluateFlags& f) {
     std::cout << "  interval coverage (share of ratings inside the central interval):\n";
     for (const auto& [level, share] : report.coverage)
         std::cout << fmt::format("    {:>5}  {:.3f}\n", level, share);
+    const PitHistogram& h = report.pit_histogram;
+    std::cout << fmt::format("  PIT histogram ({} bins; uniform when calibrated; chi-square {:.1f} on {} df):\n   ",
+                             h.counts.size(), h.chi_square, h.degrees_of_freedom);
+    for (uint64_t c : h.counts) std::cout << fmt::format(" {}", c);
+    std::cout << "\n";
+    if (!report.ranking.empty()) {
+        std::cout << fmt::format("  top-{} lists over products not rated in training; relevant: held-out rating >= {:g}\n",
+                                 report.ranking_k, report.relevance_threshold);
+        std::cout << fmt::format("    {:<6} {:>12} {:>10} {:>9} {:>10} {:>10}\n", "rank by", "precision@k",
+                                 "recall@k", "NDCG@k", "coverage", "customers");
+        for (const auto& [mode, m] : report.ranking)
+            std::cout << fmt::format("    {:<6} {:>12.4f} {:>10.4f} {:>9.4f} {:>10.4f} {:>10}\n", mode, m.precision_at_k,
+                                     m.recall_at_k, m.ndcg_at_k, m.catalogue_coverage, m.users_evaluated);
+    }
     return 0;
 }
 
@@ -52,6 +73,12 @@ Runner add_evaluate_command(CLI::App& app) {
     cmd->add_option("--model,-m", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
     add_ingest_flags(*cmd, f->ingest);
     cmd->add_flag("--json", f->json, "Print one JSON object instead of a table");
+    cmd->add_option("--k", f->k, "List length for precision@k, recall@k and NDCG@k")
+        ->check(CLI::Range(1u, 10000u))->capture_default_str();
+    cmd->add_option("--relevance-threshold", f->relevance_threshold,
+                    "A held-out rating at or above this counts as relevant (rating units; 4 suits a 1..5 scale)")
+        ->capture_default_str();
+    cmd->add_flag("--no-ranking", f->no_ranking, "Skip the top-k ranking metrics (they score every product per customer)");
     return [f] { return run_evaluate(*f); };
 }
 

@@ -26,6 +26,8 @@ int main(int argc, char** argv) {
     add(credence::cli::add_inspect_command);
     add(credence::cli::add_serve_command);
     add(credence::cli::add_demo_data_command);
+    add(credence::cli::add_compare_command);
+    add(credence::cli::add_report_command);
 
     try {
         app.parse(argc, argv);

@@ -192,3 +192,144 @@ TEST_CASE("report serializes to JSON and rejects bad levels") {
     bad.coverage_levels = {0.9, 1.0};
     CHECK_THROWS_AS(evaluate(engine, test, bad), std::invalid_argument);
 }
+
+TEST_CASE("coverage curve and PIT histogram are calibrated on ratings simulated from the model") {
+    // As above: ratings drawn from the model's own predictive mixture, so the
+    // PIT values are iid Uniform(0,1) and the coverage at level L is
+    // Binomial(N, L)/N. Tolerance: 4 binomial standard errors
+    // sqrt(L(1-L)/N) at each of the 18 levels (two-sided 4-sigma: about 6e-5
+    // per level), fixed seeds.
+    RandomPosteriorOptions opt;
+    opt.scale = {-100.0f, 100.0f, true};
+    opt.jitter_sd = 0.4;
+    const auto post = random_posterior({30, 40, 3, 25, 1, true}, 707, opt);
+    const PredictionEngine engine(post);
+    const size_t N = 6000;
+    const auto report = evaluate(engine, predictive_draws(*post, N, 11), {});
+    REQUIRE(report.coverage_curve.size() == 18);
+    CHECK(report.coverage_curve.front().level == 0.1);
+    CHECK(report.coverage_curve.back().level == 0.95);
+    for (const auto& point : report.coverage_curve) {
+        INFO("level " << point.level);
+        CHECK(point.total == N);
+        CHECK(std::abs(point.coverage - point.level) < 4 * std::sqrt(point.level * (1 - point.level) / N));
+    }
+    // Histogram: 10 bins, chi-square with 9 degrees of freedom below its
+    // 0.999 quantile 27.877 (scipy.stats.chi2.ppf(0.999, 9)).
+    REQUIRE(report.pit_histogram.counts.size() == 10);
+    CHECK(report.pit_histogram.total == N);
+    CHECK(report.pit_histogram.chi_square < 27.877);
+
+    // The curve has power: halving every predictive sd (tau x 4) pulls the
+    // 0.5-level coverage far below nominal.
+    auto narrow = std::make_shared<Posterior>(*post);
+    for (auto& t : narrow->noise_precision) t *= 4.0f;
+    const auto overconfident = evaluate(PredictionEngine(narrow), predictive_draws(*post, N, 11), {});
+    CHECK(overconfident.coverage_curve[8].level == 0.5);
+    CHECK(overconfident.coverage_curve[8].coverage < 0.5 - 4 * std::sqrt(0.25 / N));
+    CHECK(overconfident.pit_histogram.chi_square > 27.877);
+}
+
+namespace {
+
+// Two customers, six products, rank 1, no biases, global mean 3, tau = 100
+// (sd 0.1), four identical samples except product 2, whose factor alternates
+// -1.5, 2.5 (mean 0.5, wide). Customer 0 has factor +1 and rated product 0 in
+// training; customer 1 has factor -1 and rated nothing.
+// Sample means: customer 0: p0 4.5, p1 4.0, p2 {1.5, 5.5}, p3 3.0, p4 2.5, p5 2.0
+//               customer 1: p0 1.5, p1 2.0, p2 {4.5, 0.5}, p3 3.0, p4 3.5, p5 4.0
+std::shared_ptr<const Posterior> ranking_posterior() {
+    Posterior p = blank_posterior({2, 6, 1, 4, 1, false});
+    p.global_mean = 3.0f;
+    const float item_value[6] = {1.5f, 1.0f, 0.0f, 0.0f, -0.5f, -1.0f};
+    for (uint32_t s = 0; s < 4; ++s) {
+        p.user_factors[s * 2 + 0] = 1.0f;
+        p.user_factors[s * 2 + 1] = -1.0f;
+        for (uint32_t i = 0; i < 6; ++i) p.item_factors[s * 6 + i] = item_value[i];
+        p.item_factors[s * 6 + 2] = (s % 2 == 0) ? -1.5f : 2.5f;
+        p.noise_precision[s] = 100.0f;
+    }
+    p.rated_offsets = {0, 1, 1};
+    p.rated_items = {0};
+    p.validate();
+    return std::make_shared<const Posterior>(p);
+}
+
+}  // namespace
+
+TEST_CASE("ranking metrics per rank_by mode match a hand-worked example") {
+    // Held out: customer 0: p1 = 5, p3 = 4, p5 = 2; customer 1: p5 = 5, p0 = 1.
+    // k = 2, relevance threshold 4 (so relevant: c0 {p1, p3}, c1 {p5}), graded gains.
+    // Top-2 lists (p0 is excluded for c0, rated in training):
+    //   mean:  c0 [p1 4.0, p2 3.5]  c1 [p5 4.0, p4 3.5]
+    //   lower (90%): c0 [p1 3.84, p3 2.84] (p2's lower bound is about 1.37)
+    //                c1 [p5 3.84, p4 3.34]
+    //   upper (90%): c0 [p2 ~5.6, p1 4.16]  c1 [p2 ~4.6, p5 4.16]
+    // Per customer (precision, recall, NDCG; IDCG c0 = 5 + 4/log2(3), c1 = 5):
+    //   mean:  c0 (1/2, 1/2, 5/IDCG = 0.664565)      c1 (1/2, 1, 1)
+    //   lower: c0 (1, 1, 1)                          c1 (1/2, 1, 1)
+    //   upper: c0 (1/2, 1/2, (5/log2 3)/IDCG = 0.419294)  c1 (1/2, 1, (5/log2 3)/5 = 0.630930)
+    // Catalogue coverage: mean {1,2,4,5} 4/6, lower {1,3,4,5} 4/6, upper {1,2,5} 3/6.
+    // NDCG figures computed by hand with python3 math.log2.
+    const auto post = ranking_posterior();
+    RatingSet test;
+    for (uint32_t u = 0; u < 2; ++u) test.users.intern(shop_id("cust", u));
+    for (uint32_t i = 0; i < 6; ++i) test.items.intern(shop_id("sku", i));
+    test.ratings = {{0, 1, 5.0f}, {0, 3, 4.0f}, {0, 5, 2.0f}, {1, 5, 5.0f}, {1, 0, 1.0f}};
+    EvaluationOptions options;
+    options.ranking_k = 2;
+    options.relevance_threshold = 4.0;
+    const auto report = evaluate(PredictionEngine(post), test, options);
+    REQUIRE(report.ranking.size() == 4);
+    struct Expected {
+        const char* mode;
+        double precision, recall, ndcg, coverage;
+    };
+    const Expected expected[] = {{"mean", 0.5, 0.75, (0.664565 + 1) / 2, 4.0 / 6},
+                                 {"lower", 0.75, 1.0, 1.0, 4.0 / 6},
+                                 {"upper", 0.5, 0.75, (0.419294 + 0.630930) / 2, 3.0 / 6}};
+    for (size_t j = 0; j < 3; ++j) {
+        const auto& [mode, m] = report.ranking[j];
+        INFO("rank_by " << mode);
+        CHECK(mode == expected[j].mode);
+        CHECK(m.k == 2);
+        CHECK(m.users_evaluated == 2);
+        CHECK(m.precision_at_k == Approx(expected[j].precision).margin(1e-12));
+        CHECK(m.recall_at_k == Approx(expected[j].recall).margin(1e-12));
+        CHECK(m.ndcg_at_k == Approx(expected[j].ndcg).margin(1e-6));
+        CHECK(m.catalogue_coverage == Approx(expected[j].coverage).margin(1e-12));
+    }
+    // draw: each customer sees one sample. c0 gets the upper-like list when
+    // its p2 draw is 5.5, else the lower-like one; c1 gets the upper-like
+    // list when its p2 draw is 4.5, else the mean one. Whatever the draws,
+    // the averages are one of these four combinations.
+    const auto& draw = report.ranking[3];
+    CHECK(draw.rank_by == "draw");
+    const double c0[2][3] = {{0.5, 0.5, 0.419294}, {1, 1, 1}};
+    const double c1[2][3] = {{0.5, 1, 0.630930}, {0.5, 1, 1}};
+    bool matched = false;
+    for (const auto& a : c0)
+        for (const auto& b : c1)
+            matched = matched || (std::abs(draw.metrics.precision_at_k - (a[0] + b[0]) / 2) < 1e-9 &&
+                                  std::abs(draw.metrics.recall_at_k - (a[1] + b[1]) / 2) < 1e-9 &&
+                                  std::abs(draw.metrics.ndcg_at_k - (a[2] + b[2]) / 2) < 1e-6);
+    CHECK(matched);
+
+    const auto json = to_json(report);
+    CHECK(json["ranking"]["k"] == 2);
+    CHECK(json["ranking"]["relevance_threshold"] == 4.0);
+    CHECK(json["ranking"]["modes"]["lower"]["precision_at_k"] == 0.75);
+    CHECK(json["ranking"]["modes"].size() == 4);
+    CHECK(json["pit_histogram"]["total"] == 5);
+    CHECK(json["coverage_curve"].size() == 18);
+    // The earlier keys are all still there.
+    for (const char* key : {"rmse", "mae", "mean_log_predictive_density", "coverage", "rated", "unknown_users",
+                            "unknown_items"})
+        CHECK(json.contains(key));
+
+    options.ranking = false;
+    CHECK_FALSE(to_json(evaluate(PredictionEngine(post), test, options)).contains("ranking"));
+    options.ranking = true;
+    options.ranking_k = 0;
+    CHECK_THROWS_AS(evaluate(PredictionEngine(post), test, options), std::invalid_argument);
+}

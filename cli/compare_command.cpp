@@ -1,0 +1,95 @@
+// credence compare: fit several ranks (optionally with and without biases)
+// on held-out splits of one ratings export and recommend one (model/compare.hpp).
+#include <iostream>
+#include <sstream>
+
+#include <fmt/format.h>
+#include <nlohmann/json.hpp>
+
+#include "cli/commands.hpp"
+#include "cli/ingest_flags.hpp"
+#include "model/compare.hpp"
+#include "model/error.hpp"
+#include "model/ingest.hpp"
+
+namespace credence::cli {
+
+namespace {
+
+struct CompareFlags {
+    IngestFlags ingest;
+    std::string ranks = "2,4,8,16,32";
+    uint32_t folds = 1;
+    double holdout = 0.1;
+    bool both_bias_settings = false;
+    bool no_biases = false;
+    bool json = false;
+    bool quiet = false;
+    FitOptions fit;
+};
+
+std::vector<uint32_t> parse_ranks(const std::string& text) {
+    std::vector<uint32_t> ranks;
+    std::stringstream in(text);
+    for (std::string part; std::getline(in, part, ',');) {
+        size_t used = 0;
+        unsigned long r = 0;
+        try {
+            r = std::stoul(part, &used);
+        } catch (const std::exception&) {
+            used = 0;
+        }
+        if (used == 0 || used != part.size() || r == 0 || r > 512)
+            throw std::invalid_argument("--ranks: '" + part + "' is not a rank between 1 and 512 (give e.g. 2,4,8)");
+        ranks.push_back(static_cast<uint32_t>(r));
+    }
+    return ranks;
+}
+
+int run_compare(const CompareFlags& f) {
+    CompareOptions o;
+    o.ranks = parse_ranks(f.ranks);
+    o.folds = f.folds;
+    o.holdout_fraction = f.holdout;
+    o.both_bias_settings = f.both_bias_settings;
+    o.fit = f.fit;
+    o.fit.biases = !f.no_biases;
+    o.split_seed = f.fit.seed;
+    const IngestResult data = ingest_ratings(to_ingest_options(f.ingest));
+    if (!f.quiet) std::cerr << describe(data.summary) << "\n";
+    if (data.ratings.size() == 0) throw DataError("no ratings left to compare models on");
+    auto log = [&](const std::string& line) { if (!f.quiet) std::cerr << line << "\n"; };
+    const ComparisonResult result = compare_models(data.ratings, o, log);
+    if (f.json) std::cout << to_json(result).dump(2) << "\n";
+    else std::cout << format_table(result);
+    return 0;
+}
+
+}  // namespace
+
+Runner add_compare_command(CLI::App& app) {
+    auto f = std::make_shared<CompareFlags>();
+    f->fit.burn_in = 100;
+    f->fit.samples = 40;
+    CLI::App* cmd = app.add_subcommand(
+        "compare", "Fit several ranks on held-out splits and recommend the simplest within one SE of the best");
+    add_ingest_flags(*cmd, f->ingest);
+    cmd->add_option("--ranks", f->ranks, "Comma-separated ranks to fit")->capture_default_str();
+    cmd->add_option("--folds", f->folds, "K-fold cross-validation with K folds; below 2: one holdout split")
+        ->check(CLI::Range(0u, 100u))->capture_default_str();
+    cmd->add_option("--holdout", f->holdout, "Share of ratings held out when --folds is below 2")
+        ->check(CLI::Range(0.0, 1.0))->capture_default_str();
+    cmd->add_flag("--with-without-biases", f->both_bias_settings, "Fit every rank both with and without bias terms");
+    cmd->add_flag("--no-biases", f->no_biases, "Fit without bias terms (ignored with --with-without-biases)");
+    cmd->add_option("--burn-in", f->fit.burn_in, "Sweeps discarded at the start of each chain")->capture_default_str();
+    cmd->add_option("--samples", f->fit.samples, "Samples kept per chain")->check(CLI::Range(1u, 100000u))->capture_default_str();
+    cmd->add_option("--thin", f->fit.thin, "Sweeps between kept samples")->check(CLI::Range(1u, 10000u))->capture_default_str();
+    cmd->add_option("--chains", f->fit.chains, "Independent chains per fit")->check(CLI::Range(1u, 64u))->capture_default_str();
+    cmd->add_option("--seed", f->fit.seed, "Random seed for the splits and the fits")->capture_default_str();
+    cmd->add_option("--threads", f->fit.threads, "Worker threads (0: all cores)")->check(CLI::Range(0, 1024))->capture_default_str();
+    cmd->add_flag("--json", f->json, "Print one JSON object (readable by credence report --comparison) instead of a table");
+    cmd->add_flag("--quiet,-q", f->quiet, "No progress lines on stderr");
+    return [f] { return run_compare(*f); };
+}
+
+}  // namespace credence::cli

@@ -1,0 +1,38 @@
+// The model report: one self-contained HTML file (inline CSS and SVG, no
+// scripts, no external assets; a Content-Security-Policy forbids loading
+// any) that shows whether a fit can be trusted:
+//   - trace plots per chain of the noise precision over every sweep,
+//     burn-in included (the "trace" of Posterior::fit_metadata_json, written
+//     by fit_bpmf: keys chain, sweep, noise_precision, train_rmse), and of
+//     the probe predictions over kept samples (probes as chosen by
+//     model/convergence_summary.hpp);
+//   - the R-hat / ESS table and verdict (summarize_convergence);
+//   - the calibration curve and PIT histogram of a validation set, if given;
+//   - predictive sd against the number of training ratings per item;
+//   - the rank comparison table and plot, if a comparison is given.
+#pragma once
+#include <optional>
+#include <string>
+
+#include "model/compare.hpp"
+#include "model/evaluate.hpp"
+#include "model/posterior.hpp"
+
+namespace credence::report {
+
+struct ReportInputs {
+    const Posterior* posterior = nullptr;      // required; must pass Posterior::validate()
+    std::string model_name;                    // shown in the header (e.g. the file path)
+    std::optional<EvaluationReport> validation;
+    std::string validation_name;               // shown with the calibration section
+    std::optional<ComparisonResult> comparison;
+    uint32_t max_probe_plots = 6;              // probe prediction traces drawn (of up to 20 probes)
+    uint32_t sd_reference_users = 25;          // customers averaged for the per-item predictive sd
+};
+
+// Returns the whole HTML document. Throws std::invalid_argument when
+// posterior is null; a fit_metadata_json without a trace gives a section
+// that says so instead of a plot.
+std::string render_html_report(const ReportInputs& inputs);
+
+}  // namespace credence::report
