@@ -2,6 +2,8 @@
 
 #include <algorithm>
 #include <cmath>
+
+#include <Eigen/Dense>
 #include <limits>
 #include <set>
 #include <string>
@@ -111,12 +113,29 @@ ConvergenceSummary summarize_convergence(const Posterior& posterior, const Conve
 
     const uint32_t K = posterior.rank;
     assess(named("noise_precision"), [&](uint32_t s) { return double(posterior.noise_precision[s]); });
-    for (uint32_t k = 0; k < K; ++k)
-        assess(named("user_mu", int32_t(k)),
-               [&](uint32_t s) { return double(posterior.user_mu[size_t(s) * K + k]); });
-    for (uint32_t k = 0; k < K; ++k)
-        assess(named("item_mu", int32_t(k)),
-               [&](uint32_t s) { return double(posterior.item_mu[size_t(s) * K + k]); });
+    // The likelihood is unchanged when every user factor is mapped by an
+    // invertible R and every item factor by R^-T, so single components of
+    // mu, or their norms, drift between chains even when every prediction
+    // has mixed. Assess functions that this map leaves unchanged:
+    //   mu_interaction    = mu_U . mu_V
+    //   factor_cov_product = trace(Lambda_U^-1 Lambda_V^-1)
+    auto dot_mu = [&](uint32_t s) {
+        double d = 0.0;
+        for (uint32_t k = 0; k < K; ++k)
+            d += double(posterior.user_mu[size_t(s) * K + k]) * double(posterior.item_mu[size_t(s) * K + k]);
+        return d;
+    };
+    auto cov_product = [&](uint32_t s) {
+        using Mat = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+        const Eigen::MatrixXd lu = Eigen::Map<const Mat>(posterior.user_lambda.data() + size_t(s) * K * K, K, K).cast<double>();
+        const Eigen::MatrixXd lv = Eigen::Map<const Mat>(posterior.item_lambda.data() + size_t(s) * K * K, K, K).cast<double>();
+        Eigen::LLT<Eigen::MatrixXd> cu(lu), cv(lv);
+        if (cu.info() != Eigen::Success || cv.info() != Eigen::Success) return kNaN;
+        const Eigen::MatrixXd id = Eigen::MatrixXd::Identity(K, K);
+        return (cu.solve(id) * cv.solve(id)).trace();
+    };
+    assess(named("mu_interaction"), dot_mu);
+    assess(named("factor_cov_product"), cov_product);
     const auto& offsets = posterior.rated_offsets;
     for (uint64_t pos : probe_positions(offsets.back(), options.max_probe_pairs, options.probe_seed)) {
         const auto user = static_cast<uint32_t>(std::upper_bound(offsets.begin(), offsets.end(), pos) -

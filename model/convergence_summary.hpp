@@ -5,13 +5,16 @@
 //
 // Quantities assessed (chains are the runs of equal sample_chain values):
 //   noise_precision       tau of every kept sample
-//   user_mu[k], item_mu[k]  each component of the hyperparameter means
+//   mu_interaction        mu_U . mu_V        } the hyperparameters, through
+//   factor_cov_product    tr(Lambda_U^-1     } functions the model identifies
+//                            Lambda_V^-1)    } (see summarize_convergence)
 //   prediction(u, i)      the sample's mean rating for up to max_probe_pairs
 //                         rated (user, item) pairs, chosen without
 //                         replacement from the rated-items CSR by an Rng
 //                         seeded with probe_seed, reported in CSR order
-// Factors themselves are not assessed: they are identified only up to
-// rotation and sign, so their R-hat is large even for a well-mixed fit.
+// Factors and single hyperparameter components are not assessed: they are
+// identified only up to an invertible map of the factor space, so their
+// R-hat is large even for a well-mixed fit.
 //
 // Chains of unequal length are compared on their last n draws, n the shortest
 // chain's length (later draws are further from the start), with a warning.
@@ -39,8 +42,8 @@ struct ConvergenceOptions {
 };
 
 struct QuantityConvergence {
-    std::string quantity;   // "noise_precision", "user_mu", "item_mu", "prediction"
-    int32_t component = -1; // for user_mu / item_mu, else -1
+    std::string quantity;   // "noise_precision", "mu_interaction", "factor_cov_product", "prediction"
+    int32_t component = -1; // reserved for per-component quantities; -1 for all current ones
     std::string user_id;    // for prediction, else empty
     std::string item_id;    // for prediction, else empty
     ConvergenceStats stats;

@@ -38,8 +38,10 @@ struct HyperpriorOptions {
 
 struct FitOptions {
     uint32_t rank = 10;
-    uint32_t burn_in = 150;          // sweeps discarded per chain
-    uint32_t samples = 50;           // samples kept per chain
+    // Defaults: 100 kept draws per chain is the least that can show the
+    // ESS >= 100 per chain the convergence check asks for (Vehtari et al. 2021).
+    uint32_t burn_in = 200;          // sweeps discarded per chain
+    uint32_t samples = 100;          // samples kept per chain
     uint32_t thin = 2;               // sweeps between kept samples
     uint32_t chains = 2;
     uint64_t seed = 1;

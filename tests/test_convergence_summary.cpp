@@ -43,8 +43,14 @@ Posterior mixed_posterior(uint32_t chains, uint32_t per_chain, uint64_t seed) {
     fill(p.noise_precision, S, 2.0, 0.1);
     fill(p.user_mu, S * K, 0.0, 0.1);
     fill(p.item_mu, S * K, 0.0, 0.1);
+    // Precisions: diagonal, 1 + a small positive jitter, so both are positive definite.
     p.user_lambda.assign(S * K * K, 0.0f);
     p.item_lambda.assign(S * K * K, 0.0f);
+    for (size_t s = 0; s < S; ++s)
+        for (size_t k = 0; k < K; ++k) {
+            p.user_lambda[s * K * K + k * K + k] = static_cast<float>(1.0 + 0.05 * std::abs(rng.normal()));
+            p.item_lambda[s * K * K + k * K + k] = static_cast<float>(1.0 + 0.05 * std::abs(rng.normal()));
+        }
     p.rated_offsets.push_back(0);
     for (uint32_t u = 0; u < p.num_users; ++u) {
         for (uint32_t i = u % 2; i < p.num_items; i += 2) p.rated_items.push_back(i);
@@ -64,8 +70,8 @@ TEST_CASE("a well-mixed fit is converged with no warnings") {
     const auto s = summarize_convergence(p);
     CHECK(s.num_chains == 4);
     CHECK(s.draws_per_chain == 1000);
-    // noise precision + 2 user_mu + 2 item_mu + 20 of the 30 rated pairs.
-    REQUIRE(s.quantities.size() == 1 + 2 + 2 + 20);
+    // noise precision + mu_interaction + factor_cov_product + 20 of the 30 rated pairs.
+    REQUIRE(s.quantities.size() == 1 + 2 + 20);
     CHECK(s.verdict == "converged");
     CHECK(s.warnings.empty());
     CHECK(s.max_rhat < 1.01);
@@ -95,18 +101,22 @@ TEST_CASE("probe pairs are distinct rated pairs chosen by the seed") {
     }
     ConvergenceOptions all;
     all.max_probe_pairs = 100;
-    CHECK(summarize_convergence(p, all).quantities.size() == 5 + 30);
+    CHECK(summarize_convergence(p, all).quantities.size() == 3 + 30);
 }
 
 TEST_CASE("a chain stuck elsewhere or a slowly mixing quantity is flagged") {
     Posterior shifted = mixed_posterior(4, 1000, 3);
-    // Chain 3's item_mu[1] sits 3 sd away from the others.
-    for (uint32_t s = 3000; s < 4000; ++s) shifted.item_mu[size_t(s) * 2 + 1] += 0.3f;
+    // Chain 3's user_mu[1] and item_mu[1] both sit 3 sd away from the others,
+    // so mu_U . mu_V shifts by ~0.09, over 6 of its sds (~0.014).
+    for (uint32_t s = 3000; s < 4000; ++s) {
+        shifted.user_mu[size_t(s) * 2 + 1] += 0.3f;
+        shifted.item_mu[size_t(s) * 2 + 1] += 0.3f;
+    }
     const auto a = summarize_convergence(shifted);
     CHECK(a.verdict == "not_converged");
     CHECK(a.max_rhat > 1.1);
     REQUIRE(!a.warnings.empty());
-    CHECK(a.warnings.front().find("item_mu[1]") != std::string::npos);
+    CHECK(a.warnings.front().find("mu_interaction") != std::string::npos);
 
     // Noise precision as an AR(1) with rho = 0.99: ESS per chain ~ 1000 *
     // 0.01/1.99 ~ 5, far below 100 (AR(1) autocorrelation time, see
@@ -173,8 +183,8 @@ TEST_CASE("JSON form carries every figure in snake_case") {
     CHECK(j["thresholds"]["min_ess_per_chain"] == 100.0);
     REQUIRE(j["quantities"].size() == s.quantities.size());
     CHECK(j["quantities"][0]["quantity"] == "noise_precision");
-    CHECK(j["quantities"][1]["quantity"] == "user_mu");
-    CHECK(j["quantities"][1]["component"] == 0);
+    CHECK(j["quantities"][1]["quantity"] == "mu_interaction");
+    CHECK(j["quantities"][2]["quantity"] == "factor_cov_product");
     const auto& last = j["quantities"].back();
     CHECK(last["quantity"] == "prediction");
     CHECK(last["user_id"].get<std::string>().rfind("cust-", 0) == 0);

@@ -1,0 +1,47 @@
+// Runs the built `credence` program as a user would and captures what it
+// printed, for end-to-end tests of the command line.
+#pragma once
+#include <sys/wait.h>
+
+#include <cstdio>
+#include <filesystem>
+#include <fstream>
+#include <sstream>
+#include <string>
+
+#include "tests/support/paths.hpp"
+
+namespace credence::testing {
+
+struct CommandResult {
+    int exit_code = -1;
+    std::string out;  // stdout
+    std::string err;  // stderr
+};
+
+// `args` is appended to the binary's path as shell words; quote them yourself.
+// stdin is /dev/null, so the program sees no terminal.
+inline CommandResult run_credence(const std::string& args) {
+    static int counter = 0;
+    const auto err_path = std::filesystem::temp_directory_path() /
+                          ("credence-test-stderr-" + std::to_string(::getpid()) + "-" + std::to_string(counter++));
+    const std::string command = "'" + credence_binary().string() + "' " + args + " </dev/null 2>'" + err_path.string() + "'";
+    CommandResult r;
+    FILE* pipe = popen(command.c_str(), "r");
+    if (!pipe) return r;
+    char buffer[4096];
+    size_t got;
+    while ((got = fread(buffer, 1, sizeof buffer, pipe)) > 0) r.out.append(buffer, got);
+    const int status = pclose(pipe);
+    r.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : -1;
+    std::ifstream in(err_path);
+    std::stringstream ss;
+    ss << in.rdbuf();
+    r.err = ss.str();
+    std::filesystem::remove(err_path);
+    return r;
+}
+
+inline std::string quoted(const std::filesystem::path& p) { return "'" + p.string() + "'"; }
+
+}  // namespace credence::testing
