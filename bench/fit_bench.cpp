@@ -223,9 +223,13 @@ int run_speed(const Args& args) {
             const auto& one = by_threads.at(1);
             for (const auto& [t, timing] : by_threads) {
                 if (t == 1) continue;
-                std::printf("speed-up rank %d: %d threads vs 1: %.2fx (median), %.2fx (best); GEMM %.2fx; samples %s\n",
+                // With other work on the machine the wall-clock speed-up understates what
+                // idle cores give; the CPU-time ratio shows the parallel overhead alone
+                // (1.00: the threads did no more work in total than one thread did).
+                std::printf("speed-up rank %d: %d threads vs 1: %.2fx (median), %.2fx (best); GEMM %.2fx; "
+                            "CPU-time ratio 1/%d threads %.2f; samples %s\n",
                             rank, t, one.median_s() / timing.median_s(), one.min_s() / timing.min_s(),
-                            gemm.at(t) / gemm.at(1),
+                            gemm.at(t) / gemm.at(1), t, one.cpu_median_s() / timing.cpu_median_s(),
                             timing.final_user_factors == one.final_user_factors ? "bit-identical" : "DIFFER");
             }
         }
