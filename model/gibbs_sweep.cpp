@@ -67,6 +67,32 @@ void finish_row(Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::
                        "); check the data for extreme values and the prior and noise options");
 }
 
+// Per-thread scratch of a row pass. The gathered block is (d + 1) x n: the
+// other side's factors (and a 1 for the bias) with the target as the last
+// row, so one SYRK into the (d + 1) x (d + 1) lower triangle of `gram` yields
+// both X X^T (top-left d x d) and (X y)^T (row d): the right-hand side costs
+// no separate pass over the block.
+struct PassWorkspace {
+    Eigen::MatrixXd xy;    // [d + 1][gather_block], column-major, one column per rating
+    Eigen::MatrixXd gram;  // [d + 1][d + 1], lower triangle
+    Eigen::VectorXd w, residual;
+    RowWorkspace row;
+};
+
+// Writes column j of the block: the other row's factors, its bias slot and the target.
+inline void gather_rating(const SidePass& s, const CsrMatrix& csr, uint64_t at, double g, uint32_t rank, bool biases,
+                          double* column) {
+    const uint32_t other = csr.index[at];
+    const float* f = s.other_factors + static_cast<size_t>(other) * rank;
+    for (uint32_t k = 0; k < rank; ++k) column[k] = f[k];
+    double target = double(csr.value[at]) - g;
+    if (biases) {
+        column[rank] = 1.0;
+        target -= s.other_bias[other];
+    }
+    column[rank + (biases ? 1 : 0)] = target;
+}
+
 void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_mean,
                double tau, double g, uint32_t rank, bool biases, const SweepKey& key, int threads) {
     const Eigen::Index d = rank + (biases ? 1 : 0);
@@ -80,31 +106,30 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
 
 #pragma omp parallel num_threads(team)
     {
-        Eigen::MatrixXd x(d, gather_block);  // column-major: one column per rating
-        Eigen::VectorXd y(gather_block), out(d);
-        RowWorkspace work;
-#pragma omp for schedule(dynamic, 64)
+        PassWorkspace ws;
+        ws.xy.resize(d + 1, gather_block);
+        ws.gram.resize(d + 1, d + 1);
+        ws.w.resize(d);
+        ws.residual.resize(gather_block);
+        ws.row.p.setZero(d, d);  // only the lower triangle is written and read
+        ws.row.rhs.resize(d);
+        Eigen::VectorXd out(d);
+#pragma omp for schedule(dynamic, 32)
         for (int64_t row = 0; row < rows; ++row) {
             const uint64_t begin = csr.offsets[row], end = csr.offsets[row + 1];
-            start_row(prior_precision, prior_pm, work);
+            const bool one_block = end - begin <= uint64_t(gather_block);
+            ws.gram.setZero();
             for (uint64_t block = begin; block < end; block += gather_block) {
                 const auto n = static_cast<Eigen::Index>(std::min<uint64_t>(gather_block, end - block));
-                for (Eigen::Index j = 0; j < n; ++j) {
-                    const uint32_t other = csr.index[block + j];
-                    const float* f = s.other_factors + static_cast<size_t>(other) * rank;
-                    for (uint32_t k = 0; k < rank; ++k) x(k, j) = f[k];
-                    double target = double(csr.value[block + j]) - g;
-                    if (biases) {
-                        x(rank, j) = 1.0;
-                        target -= s.other_bias[other];
-                    }
-                    y[j] = target;
-                }
-                add_ratings(x.leftCols(n), y.head(n), tau, work);
+                for (Eigen::Index j = 0; j < n; ++j) gather_rating(s, csr, block + j, g, rank, biases, &ws.xy(0, j));
+                ws.gram.selfadjointView<Eigen::Lower>().rankUpdate(ws.xy.leftCols(n));  // SYRK
             }
+            ws.row.p.triangularView<Eigen::Lower>() = prior_precision;
+            ws.row.p.triangularView<Eigen::Lower>() += tau * ws.gram.topLeftCorner(d, d);
+            ws.row.rhs = prior_pm + tau * ws.gram.row(d).head(d).transpose();
             Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, s.block, static_cast<uint64_t>(row));
             try {
-                finish_row(rng, RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, work, out);
+                finish_row(rng, RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, ws.row, out);
             } catch (const NumericError& e) {
 #pragma omp critical(credence_row_failure)
                 if (row < failed_row) {
@@ -118,15 +143,18 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
             if (biases) s.bias[row] = static_cast<float>(out[rank]);
             if (s.sse_rows) {
                 // Residuals with the stored float32 values, as predictions will see them.
+                for (uint32_t k = 0; k < rank; ++k) ws.w[k] = mine[k];
+                if (biases) ws.w[rank] = s.bias[row];
                 double sse = 0.0;
-                for (uint64_t j = begin; j < end; ++j) {
-                    const uint32_t other = csr.index[j];
-                    const float* f = s.other_factors + static_cast<size_t>(other) * rank;
-                    double pred = g;
-                    if (biases) pred += double(s.bias[row]) + s.other_bias[other];
-                    for (uint32_t k = 0; k < rank; ++k) pred += double(mine[k]) * f[k];
-                    const double r = csr.value[j] - pred;
-                    sse += r * r;
+                for (uint64_t block = begin; block < end; block += gather_block) {
+                    const auto n = static_cast<Eigen::Index>(std::min<uint64_t>(gather_block, end - block));
+                    if (!one_block)  // a long row: the block buffer holds only its last part
+                        for (Eigen::Index j = 0; j < n; ++j)
+                            gather_rating(s, csr, block + j, g, rank, biases, &ws.xy(0, j));
+                    auto r = ws.residual.head(n);
+                    r = ws.xy.block(d, 0, 1, n).transpose();
+                    r.noalias() -= ws.xy.topLeftCorner(d, n).transpose() * ws.w;
+                    sse += r.squaredNorm();
                 }
                 s.sse_rows[row] = sse;
             }
