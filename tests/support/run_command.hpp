@@ -13,6 +13,12 @@
 
 namespace credence::testing {
 
+inline std::string quoted(const std::filesystem::path& p) {
+    std::string q(1, '\'');
+    q.append(p.string()).push_back('\'');
+    return q;
+}
+
 struct CommandResult {
     int exit_code = -1;
     std::string out;  // stdout
@@ -25,7 +31,9 @@ inline CommandResult run_credence(const std::string& args) {
     static int counter = 0;
     const auto err_path = std::filesystem::temp_directory_path() /
                           ("credence-test-stderr-" + std::to_string(::getpid()) + "-" + std::to_string(counter++));
-    const std::string command = "'" + credence_binary().string() + "' " + args + " </dev/null 2>'" + err_path.string() + "'";
+    // Built with append: GCC 12 warns falsely (-Wrestrict) on chains of "'" + string.
+    std::string command;
+    command.append(quoted(credence_binary())).append(" ").append(args).append(" </dev/null 2>").append(quoted(err_path));
     CommandResult r;
     FILE* pipe = popen(command.c_str(), "r");
     if (!pipe) return r;
@@ -42,6 +50,5 @@ inline CommandResult run_credence(const std::string& args) {
     return r;
 }
 
-inline std::string quoted(const std::filesystem::path& p) { return "'" + p.string() + "'"; }
 
 }  // namespace credence::testing
