@@ -16,31 +16,15 @@
 #include "model/sampler.hpp"
 #include "model/simulate.hpp"
 #include "tests/support/paths.hpp"
+#include "tests/support/reference_mixture.hpp"
 
 using namespace credence;
+using credence::testing::reference_mixture_quantile;
 
 namespace {
 
 double clip(double x, const RatingScale& s) { return std::min<double>(s.max, std::max<double>(s.min, x)); }
 
-double mixture_cdf(const std::vector<double>& m, const std::vector<double>& tau, double x) {
-    double c = 0.0;
-    for (size_t s = 0; s < m.size(); ++s) c += 0.5 * std::erfc(-(x - m[s]) * std::sqrt(tau[s] / 2.0));
-    return c / double(m.size());
-}
-
-double mixture_quantile(const std::vector<double>& m, const std::vector<double>& tau, double p) {
-    double lo = 1e300, hi = -1e300;
-    for (size_t s = 0; s < m.size(); ++s) {
-        lo = std::min(lo, m[s] - 10.0 / std::sqrt(tau[s]));
-        hi = std::max(hi, m[s] + 10.0 / std::sqrt(tau[s]));
-    }
-    for (int it = 0; it < 60; ++it) {
-        const double mid = 0.5 * (lo + hi);
-        (mixture_cdf(m, tau, mid) < p ? lo : hi) = mid;
-    }
-    return 0.5 * (lo + hi);
-}
 
 }  // namespace
 
@@ -97,7 +81,7 @@ TEST_CASE("open dataset: rank-10 fit beats the bias baseline with calibrated int
         for (uint32_t s = 0; s < p.num_samples; ++s) mean += m[s] = p.sample_prediction(s, r.user, r.item);
         mean /= p.num_samples;
         se += std::pow(r.value - clip(mean, train.scale), 2);
-        inside += r.value >= mixture_quantile(m, tau, 0.05) && r.value <= mixture_quantile(m, tau, 0.95);
+        inside += r.value >= reference_mixture_quantile(m, tau, 0.05) && r.value <= reference_mixture_quantile(m, tau, 0.95);
     }
     const double rmse = std::sqrt(se / double(split.test.size()));
     const double coverage = double(inside) / double(split.test.size());

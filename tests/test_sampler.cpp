@@ -17,10 +17,12 @@
 #include "model/gibbs_sweep.hpp"
 #include "model/normal_wishart.hpp"
 #include "model/sampler.hpp"
+#include "tests/support/reference_mixture.hpp"
 #include "model/simulate.hpp"
 #include "model/sparse.hpp"
 
 using namespace credence;
+using credence::testing::reference_mixture_quantile;
 
 namespace {
 
@@ -139,26 +141,6 @@ struct Moments {
     }
 };
 
-// ---- predictive interval of the posterior mixture, computed here directly:
-// the equal-weight mixture over samples of Normal(m_s, 1/tau_s).
-double mixture_cdf(const std::vector<double>& m, const std::vector<double>& tau, double x) {
-    double c = 0.0;
-    for (size_t s = 0; s < m.size(); ++s) c += 0.5 * std::erfc(-(x - m[s]) * std::sqrt(tau[s] / 2.0));
-    return c / double(m.size());
-}
-
-double mixture_quantile(const std::vector<double>& m, const std::vector<double>& tau, double p) {
-    double lo = 1e300, hi = -1e300;
-    for (size_t s = 0; s < m.size(); ++s) {
-        lo = std::min(lo, m[s] - 10.0 / std::sqrt(tau[s]));
-        hi = std::max(hi, m[s] + 10.0 / std::sqrt(tau[s]));
-    }
-    for (int it = 0; it < 100; ++it) {
-        const double mid = 0.5 * (lo + hi);
-        (mixture_cdf(m, tau, mid) < p ? lo : hi) = mid;
-    }
-    return 0.5 * (lo + hi);
-}
 
 struct HeldOut {
     double rmse = 0.0;
@@ -175,7 +157,7 @@ HeldOut evaluate_held_out(const Posterior& post, const std::vector<Rating>& test
         for (uint32_t s = 0; s < post.num_samples; ++s) mean += m[s] = post.sample_prediction(s, r.user, r.item);
         mean /= post.num_samples;
         se += (r.value - mean) * (r.value - mean);
-        const double q05 = mixture_quantile(m, tau, 0.05), q95 = mixture_quantile(m, tau, 0.95);
+        const double q05 = reference_mixture_quantile(m, tau, 0.05), q95 = reference_mixture_quantile(m, tau, 0.95);
         inside += (r.value >= q05 && r.value <= q95);
     }
     return {std::sqrt(se / double(test.size())), double(inside) / double(test.size())};
