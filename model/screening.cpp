@@ -4,21 +4,30 @@
 // satisfies |fl(a.b) - a.b| <= gamma_K sum|a_k b_k| <= gamma_K |a| |b| with
 // gamma_K = K u / (1 - K u), u = 2^-24 (Higham, Accuracy and Stability of
 // Numerical Algorithms, 2nd ed., section 3.1). The bound is doubled to cover
-// the double-precision reference and the norms' own rounding, and storing a
-// screened mean as float adds at most |m| u.
+// the double-precision reference and the norms' own rounding. Storing a
+// screened mean as float adds at most u |m|, and the double sums over at
+// most a few million terms far less; 2 u (1 + max |m|) covers both.
+//
+// The all-items pass walks the catalogue in tiles of items; for each tile it
+// reads every sample's slice of the item block once and scores it for every
+// job while the slice is in L1, so the item samples stream from memory once
+// per pass however many viewers share it. Summaries live in item-indexed
+// double arrays; a tile's part of them stays in cache across samples.
 #include "model/screening.hpp"
 
-#include <Eigen/Core>
 #include <algorithm>
 #include <cmath>
+#include <cstring>
+#include <limits>
 
 namespace credence {
 
 namespace {
 
-using RowMajorF = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
-
 constexpr double kFloatUnit = 0x1.0p-24;
+
+// Items per tile: one sample's slice is kTileItems * K floats (16 KiB at K = 16).
+constexpr uint32_t kTileItems = 256;
 
 double norm_of(const float* f, uint32_t K) {
     double sum = 0.0;
@@ -36,9 +45,116 @@ double offset(const Posterior& p, const Viewer& v, uint32_t s, uint32_t item) {
     return static_cast<double>(p.global_mean) + v.bias_of(s) + static_cast<double>(p.item_bias_of(s, item));
 }
 
-// Items per tile: the tile's [S][tile] float scores stay in L2 while they
-// are transposed into item-major rows.
-constexpr uint32_t kTileItems = 256;
+// Four float lanes (GCC/Clang vector extension: SIMD on any target, no
+// target-specific intrinsics).
+typedef float Lanes4 __attribute__((vector_size(16)));
+
+inline Lanes4 load4(const float* x) {
+    Lanes4 v;
+    std::memcpy(&v, x, sizeof v);
+    return v;
+}
+
+// Float dot product in a fixed order: four partial sums, then a pairwise add.
+inline float dot_float(const float* a, const float* b, uint32_t K) {
+    Lanes4 acc = {0.0f, 0.0f, 0.0f, 0.0f};
+    uint32_t k = 0;
+    for (; k + 4 <= K; k += 4) acc += load4(a + k) * load4(b + k);
+    float tail = 0.0f;
+    for (; k < K; ++k) tail += a[k] * b[k];
+    return ((acc[0] + acc[1]) + (acc[2] + acc[3])) + tail;
+}
+
+double job_dot_slack(const Posterior& p, std::span<const double> max_item_norm, const Viewer& v) {
+    double dot = 0.0;
+    for (uint32_t s = 0; s < p.num_samples; ++s)
+        dot = std::max(dot, dot_slack(p.rank, norm_of(v.factor(s), p.rank), max_item_norm[s]));
+    return dot;
+}
+
+void reset(ScreenJob& job, size_t count) {
+    job.sum.assign(count, 0.0);
+    job.magnitude.assign(count, 0.0);
+    if (job.quantiles()) {
+        job.sum_sq.assign(count, 0.0);
+        job.lo.assign(count, std::numeric_limits<double>::infinity());
+        job.hi.assign(count, -std::numeric_limits<double>::infinity());
+        job.rows.resize(count * job.shift.size());  // every entry is written by the pass
+    } else {
+        job.rows.clear();
+        job.sum_sq.clear();
+        job.lo.clear();
+        job.hi.clear();
+    }
+}
+
+// dots[j] = dot_float(vectors + j * K, u, K) for j < count, four items at a
+// time (same summation order, so the same bits).
+void dot_many(const float* vectors, const float* u, uint32_t K, size_t count, float* dots) {
+    size_t j = 0;
+    if (K % 4 == 0) {
+        for (; j + 4 <= count; j += 4) {
+            const float* v = vectors + j * K;
+            Lanes4 a0 = {0, 0, 0, 0}, a1 = a0, a2 = a0, a3 = a0;
+            for (uint32_t k = 0; k < K; k += 4) {
+                const Lanes4 uk = load4(u + k);
+                a0 += load4(v + k) * uk;
+                a1 += load4(v + K + k) * uk;
+                a2 += load4(v + 2 * K + k) * uk;
+                a3 += load4(v + 3 * K + k) * uk;
+            }
+            // Lane q ends as (a_q[0] + a_q[1]) + (a_q[2] + a_q[3]).
+            const Lanes4 s01 = __builtin_shufflevector(a0, a1, 0, 4, 2, 6) + __builtin_shufflevector(a0, a1, 1, 5, 3, 7);
+            const Lanes4 s23 = __builtin_shufflevector(a2, a3, 0, 4, 2, 6) + __builtin_shufflevector(a2, a3, 1, 5, 3, 7);
+            const Lanes4 r = __builtin_shufflevector(s01, s23, 0, 1, 4, 5) + __builtin_shufflevector(s01, s23, 2, 3, 6, 7);
+            std::memcpy(dots + j, &r, sizeof r);
+        }
+    }
+    for (; j < count; ++j) dots[j] = dot_float(vectors + j * K, u, K);
+}
+
+// Adds sample s's screened means m_j = off + bias[j] + dots[j] of `count`
+// items to a job's summaries, starting at item `first` (bias null: none).
+void accumulate(ScreenJob& job, size_t first, uint32_t s, const float* dots, const float* bias, size_t count,
+                double off) {
+    double* sum = job.sum.data() + first;
+    double* magnitude = job.magnitude.data() + first;
+    if (job.quantiles()) {
+        double* sum_sq = job.sum_sq.data() + first;
+        double* lo = job.lo.data() + first;
+        double* hi = job.hi.data() + first;
+        const size_t S = job.shift.size();
+        float* row = job.rows.data() + first * S + s;
+        const double shift = job.shift[s];
+        for (size_t j = 0; j < count; ++j) {
+            const double m = (off + (bias ? static_cast<double>(bias[j]) : 0.0)) + static_cast<double>(dots[j]);
+            sum[j] += m;
+            sum_sq[j] += m * m;
+            lo[j] = std::min(lo[j], m + shift);
+            hi[j] = std::max(hi[j], m + shift);
+            magnitude[j] = std::max(magnitude[j], std::abs(m));
+            row[j * S] = static_cast<float>(m);
+        }
+    } else if (bias) {
+        for (size_t j = 0; j < count; ++j) {
+            const double m = (off + static_cast<double>(bias[j])) + static_cast<double>(dots[j]);
+            sum[j] += m;
+            magnitude[j] = std::max(magnitude[j], std::abs(m));
+        }
+    } else {
+        for (size_t j = 0; j < count; ++j) {
+            const double m = off + static_cast<double>(dots[j]);
+            sum[j] += m;
+            magnitude[j] = std::max(magnitude[j], std::abs(m));
+        }
+    }
+}
+
+void finish_slack(const Posterior& p, std::span<const double> max_item_norm, ScreenJob& job) {
+    double largest = 0.0;
+    for (double m : job.magnitude) largest = std::max(largest, m);
+    job.slack = job_dot_slack(p, max_item_norm, job.viewer) + 2.0 * kFloatUnit * (1.0 + largest);
+}
 
 }  // namespace
 
@@ -74,68 +190,51 @@ std::vector<double> max_item_norms(const Posterior& p) {
     return out;
 }
 
-ScreenedMeans screen_all_samples(const Posterior& p, std::span<const double> max_item_norm, const Viewer& v,
-                                 const std::vector<uint32_t>& pool) {
-    const uint32_t S = p.num_samples, K = p.rank;
-    ScreenedMeans out;
-    out.samples = S;
-    out.values.resize(pool.size() * S);
-    double dot = 0.0, largest = 0.0;
-    for (uint32_t s = 0; s < S; ++s) dot = std::max(dot, dot_slack(K, norm_of(v.factor(s), K), max_item_norm[s]));
-    const bool dense = pool.size() * 4 >= p.num_items;
-    if (dense) {
-        // Tile by item ranges; pool is ascending, so a tile's pool entries are
-        // one contiguous run.
-        Eigen::VectorXf tile_scores(kTileItems);
-        size_t j0 = 0;
-        for (uint32_t i0 = 0; i0 < p.num_items && j0 < pool.size(); i0 += kTileItems) {
-            const uint32_t len = std::min(kTileItems, p.num_items - i0);
-            size_t j1 = j0;
-            while (j1 < pool.size() && pool[j1] < i0 + len) ++j1;
-            if (j1 == j0) continue;
-            for (uint32_t s = 0; s < S; ++s) {
-                const Eigen::Map<const RowMajorF> V(p.item_block(s) + static_cast<size_t>(i0) * K, len, K);
-                const Eigen::Map<const Eigen::VectorXf> u(v.factor(s), K);
-                tile_scores.head(len).noalias() = V * u;
-                for (size_t j = j0; j < j1; ++j) {
-                    const double m = offset(p, v, s, pool[j]) + static_cast<double>(tile_scores[pool[j] - i0]);
-                    out.values[j * S + s] = static_cast<float>(m);
-                    largest = std::max(largest, std::abs(m));
-                }
+void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs) {
+    const uint32_t S = p.num_samples, K = p.rank, I = p.num_items;
+    for (ScreenJob* job : jobs) reset(*job, I);
+    float dots[kTileItems];
+    for (uint32_t i0 = 0; i0 < I; i0 += kTileItems) {
+        const uint32_t len = std::min(kTileItems, I - i0);
+        for (uint32_t s = 0; s < S; ++s) {
+            const float* slice = p.item_block(s) + static_cast<size_t>(i0) * K;
+            const float* bias = p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * I + i0 : nullptr;
+            for (ScreenJob* job : jobs) {
+                dot_many(slice, job->viewer.factor(s), K, len, dots);
+                const double off = static_cast<double>(p.global_mean) + job->viewer.bias_of(s);
+                accumulate(*job, i0, s, dots, bias, len, off);
             }
-            j0 = j1;
         }
-    } else {
-        for (size_t j = 0; j < pool.size(); ++j)
-            for (uint32_t s = 0; s < S; ++s) {
-                const Eigen::Map<const Eigen::VectorXf> a(v.factor(s), K);
-                const Eigen::Map<const Eigen::VectorXf> b(p.item_block(s) + static_cast<size_t>(pool[j]) * K, K);
-                const double m = offset(p, v, s, pool[j]) + static_cast<double>(b.dot(a));
-                out.values[j * S + s] = static_cast<float>(m);
-                largest = std::max(largest, std::abs(m));
-            }
     }
-    out.slack = dot + 2.0 * kFloatUnit * (1.0 + largest);
-    return out;
+    for (ScreenJob* job : jobs) finish_slack(p, max_item_norm, *job);
+}
+
+void screen_pool(const Posterior& p, std::span<const double> max_item_norm, const std::vector<uint32_t>& pool,
+                 ScreenJob& job) {
+    const uint32_t S = p.num_samples, K = p.rank;
+    reset(job, pool.size());
+    for (uint32_t s = 0; s < S; ++s) {
+        const double off = static_cast<double>(p.global_mean) + job.viewer.bias_of(s);
+        const float* u = job.viewer.factor(s);
+        for (size_t j = 0; j < pool.size(); ++j) {
+            const uint32_t item = pool[j];
+            const float dot = dot_float(p.item_block(s) + static_cast<size_t>(item) * K, u, K);
+            const float* bias = p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * p.num_items + item : nullptr;
+            accumulate(job, j, s, &dot, bias, 1, off);
+        }
+    }
+    finish_slack(p, max_item_norm, job);
 }
 
 double screen_one_sample(const Posterior& p, std::span<const double> max_item_norm, const Viewer& v,
                          const std::vector<uint32_t>& pool, uint32_t s, std::vector<double>& out) {
     const uint32_t K = p.rank;
     out.resize(pool.size());
-    const Eigen::Map<const Eigen::VectorXf> u(v.factor(s), K);
-    if (pool.size() * 4 >= p.num_items) {
-        const Eigen::Map<const RowMajorF> V(p.item_block(s), p.num_items, K);
-        const Eigen::VectorXf scores = V * u;
-        for (size_t j = 0; j < pool.size(); ++j)
-            out[j] = offset(p, v, s, pool[j]) + static_cast<double>(scores[pool[j]]);
-    } else {
-        for (size_t j = 0; j < pool.size(); ++j) {
-            const Eigen::Map<const Eigen::VectorXf> b(p.item_block(s) + static_cast<size_t>(pool[j]) * K, K);
-            out[j] = offset(p, v, s, pool[j]) + static_cast<double>(b.dot(u));
-        }
-    }
-    return dot_slack(K, norm_of(v.factor(s), K), max_item_norm[s]);
+    const float* u = v.factor(s);
+    for (size_t j = 0; j < pool.size(); ++j)
+        out[j] = offset(p, v, s, pool[j]) +
+                 static_cast<double>(dot_float(p.item_block(s) + static_cast<size_t>(pool[j]) * K, u, K));
+    return dot_slack(K, norm_of(u, K), max_item_norm[s]);
 }
 
 }  // namespace credence
