@@ -89,8 +89,11 @@ void reset(ScreenJob& job, size_t count) {
 }
 
 // dots[j] = dot_float(vectors + j * K, u, K) for j < count, four items at a
-// time (same summation order, so the same bits).
-void dot_many(const float* vectors, const float* u, uint32_t K, size_t count, float* dots) {
+// time (same summation order, so the same bits). KK > 0 fixes K at compile
+// time so the inner loop unrolls; KK == 0 reads it at run time.
+template <uint32_t KK>
+void dot_many_k(const float* vectors, const float* u, uint32_t K, size_t count, float* dots) {
+    if constexpr (KK > 0) K = KK;
     size_t j = 0;
     if (K % 4 == 0) {
         for (; j + 4 <= count; j += 4) {
@@ -111,6 +114,15 @@ void dot_many(const float* vectors, const float* u, uint32_t K, size_t count, fl
         }
     }
     for (; j < count; ++j) dots[j] = dot_float(vectors + j * K, u, K);
+}
+
+void dot_many(const float* vectors, const float* u, uint32_t K, size_t count, float* dots) {
+    switch (K) {
+        case 8: return dot_many_k<8>(vectors, u, K, count, dots);
+        case 16: return dot_many_k<16>(vectors, u, K, count, dots);
+        case 32: return dot_many_k<32>(vectors, u, K, count, dots);
+        default: return dot_many_k<0>(vectors, u, K, count, dots);
+    }
 }
 
 // Adds sample s's screened means m_j = off + bias[j] + dots[j] of `count`
