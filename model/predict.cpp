@@ -2,17 +2,21 @@
 //
 // recommend() works in two passes so that a request over every item stays
 // cheap while the ranking stays exact:
-//   1. Screening (model/screening.hpp): every candidate's per-sample means in
-//      float, from Eigen matrix-vector products over the item blocks, each
-//      within a proven slack of the reference values. From them, an interval
-//      certain to contain the candidate's exact score: the mixture mean +-
-//      slack; for quantiles, the smallest and largest component quantile
-//      (the mixture quantile lies between them, see model/mixture.cpp); for a
-//      draw, the drawn sample's mean +- slack.
+//   1. Screening (model/screening.hpp): per-item summaries of every
+//      candidate's per-sample means, from float dot products over the item
+//      blocks, each within a proven slack of the reference values. From
+//      them, an interval certain to contain the candidate's exact score: the
+//      mixture mean +- slack; for quantiles, the smallest and largest
+//      component quantile (the mixture quantile lies between them, see
+//      model/mixture.cpp); for a draw, the drawn sample's mean +- slack.
+//      recommend_batch() screens many users in one pass over the item
+//      samples, so the model is read from memory once for all of them.
 //   2. Selection (model/top_n.hpp): exact scores, from the reference means
 //      exactly as predict() computes them, only for candidates whose interval
 //      can still reach the top n; for quantile rankings a partial mixture-CDF
 //      sum over the screened means rules out most of those first.
+// Screening only decides which exact scores get computed, never their value,
+// so a batched answer is the same, bit for bit, as one computed alone.
 // Scores are unclipped (a clipped upper bound would tie every item whose
 // bound passes the scale maximum); the Prediction carried with each item is
 // clipped like predict()'s.
@@ -222,14 +226,31 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
     return out;
 }
 
-// Per-thread buffers, so a request allocates little beyond its answer.
+// Per-thread buffers, so a request allocates little beyond its answer. A
+// server has many threads, so each keeps only a few jobs' buffers, and no
+// large quantile rows ([I][S] floats) between requests.
 struct Scratch {
+    static constexpr size_t kKeptJobs = 4;
+    static constexpr size_t kKeptRowBytes = size_t(8) << 20;
+
     std::vector<Plan> plans;
     std::vector<ScreenJob> jobs;
     void reserve(size_t n) {
         if (plans.size() < n) plans.resize(n);
         if (jobs.size() < n) jobs.resize(n);
     }
+    void trim() {
+        if (jobs.size() > kKeptJobs) jobs.resize(kKeptJobs);
+        if (plans.size() > kKeptJobs) plans.resize(kKeptJobs);
+        for (ScreenJob& job : jobs)
+            if (job.rows.capacity() * sizeof(float) > kKeptRowBytes) std::vector<float>().swap(job.rows);
+    }
+};
+
+// Trims the scratch however the request ends.
+struct TrimOnExit {
+    Scratch& scratch;
+    ~TrimOnExit() { scratch.trim(); }
 };
 
 Scratch& scratch() {
@@ -241,6 +262,7 @@ std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const 
                                             const Viewer& viewer, std::span<const uint32_t> exclude,
                                             const RecommendOptions& options) {
     Scratch& s = scratch();
+    const TrimOnExit trim{s};
     s.reserve(1);
     Plan& plan = s.plans[0];
     ScreenJob& job = s.jobs[0];
@@ -285,6 +307,7 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
     const size_t count = requests.size();
     std::vector<RecommendAnswer> answers(count);
     Scratch& s = scratch();
+    const TrimOnExit trim{s};
     s.reserve(count);
     std::vector<char> planned(count, 0);
     for (size_t k = 0; k < count; ++k) {
