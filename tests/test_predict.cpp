@@ -470,3 +470,50 @@ TEST_CASE("a batch of one and an empty batch") {
     REQUIRE(one.size() == 1);
     CHECK(same_answer(one[0].items, engine.recommend(2, r.options)));
 }
+
+#include "model/screening.hpp"
+
+TEST_CASE("screened summaries stay within their stated slack of the reference means") {
+    // The exactness of every ranking rests on this bound (model/screening.cpp
+    // derives it). Ranks 16 and 8 take the grouped float path for means (the
+    // wide one where the CPU has it), 12 the four-lane one, 5 the per-sample
+    // path; large factor scales make the rounding visible.
+    for (const uint32_t rank : {16u, 12u, 8u, 5u}) {
+        RandomPosteriorOptions opt;
+        opt.factor_sd = 3.0;
+        const auto post = random_posterior({4, 900, rank, 37, 1, true}, 300 + rank, opt);
+        const Posterior& p = *post;
+        const auto norms = max_item_norms(p);
+        std::vector<double> shift(p.num_samples);
+        for (uint32_t s = 0; s < p.num_samples; ++s) shift[s] = -1.3 / std::sqrt(double(p.noise_precision[s]));
+        std::vector<ScreenJob> jobs(4);
+        std::vector<ScreenJob*> pointers;
+        for (uint32_t u = 0; u < 4; ++u) {
+            jobs[u].viewer = known_user(p, u);
+            if (u % 2) jobs[u].shift = shift;  // quantile jobs
+            pointers.push_back(&jobs[u]);
+        }
+        screen_all_items(p, norms, pointers);
+        double worst = 0.0;  // largest error relative to the slack
+        for (uint32_t u = 0; u < 4; ++u) {
+            const ScreenJob& job = jobs[u];
+            REQUIRE(job.slack > 0.0);
+            for (uint32_t i = 0; i < p.num_items; ++i) {
+                const auto m = direct_means(p, u, i);
+                worst = std::max(worst, std::abs(job.sum[i] / p.num_samples - mixture_mean(m)) / job.slack);
+                if (!job.quantiles()) continue;
+                double lo = std::numeric_limits<double>::infinity(), hi = -lo;
+                for (uint32_t s = 0; s < p.num_samples; ++s) {
+                    worst = std::max(worst, std::abs(double(job.rows[size_t(i) * p.num_samples + s]) - m[s]) / job.slack);
+                    lo = std::min(lo, m[s] + shift[s]);
+                    hi = std::max(hi, m[s] + shift[s]);
+                }
+                worst = std::max(worst, std::abs(job.lo[i] - lo) / job.slack);
+                worst = std::max(worst, std::abs(job.hi[i] - hi) / job.slack);
+            }
+        }
+        INFO("rank " << rank << ": largest error / slack " << worst);
+        CHECK(worst <= 1.0);
+        CHECK(worst > 0.0);  // the screened values really are approximations
+    }
+}
