@@ -12,6 +12,7 @@
 #include <numbers>
 #include <stdexcept>
 #include <string>
+#include <vector>
 
 #include "model/inverse_normal.hpp"
 #include "model/predict.hpp"
@@ -34,19 +35,23 @@ double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, 
     const size_t S = m.size();
     const double inv_S = 1.0 / static_cast<double>(S);
     const double z = normal_quantile(target);
+    // sqrt(tau_s) once per solve (the same bits every evaluation would get).
+    thread_local std::vector<double> root_tau;
+    root_tau.resize(S);
+    for (size_t s = 0; s < S; ++s) root_tau[s] = std::sqrt(static_cast<double>(tau[s]));
     double lo = std::numeric_limits<double>::infinity(), hi = -lo, start = 0.0;
     for (size_t s = 0; s < S; ++s) {
-        const double q = sign * m[s] + z / std::sqrt(static_cast<double>(tau[s]));
+        const double q = sign * m[s] + z / root_tau[s];
         lo = std::min(lo, q);
         hi = std::max(hi, q);
         start += q;
     }
     start *= inv_S;
-    // F(y) - target and its derivative.
+    // F(y) - target, and with it the derivative when Newton needs it.
     auto eval = [&](double y, double& density) {
         double cdf = 0.0, pdf = 0.0;
         for (size_t s = 0; s < S; ++s) {
-            const double st = std::sqrt(static_cast<double>(tau[s]));
+            const double st = root_tau[s];
             const double t = st * (y - sign * m[s]);
             cdf += normal_cdf(t);
             pdf += st * std::exp(-0.5 * t * t);
@@ -54,11 +59,16 @@ double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, 
         density = pdf * inv_S / std::sqrt(2.0 * std::numbers::pi);
         return cdf * inv_S - target;
     };
+    auto excess = [&](double y) {
+        double cdf = 0.0;
+        for (size_t s = 0; s < S; ++s) cdf += normal_cdf(root_tau[s] * (y - sign * m[s]));
+        return cdf * inv_S - target;
+    };
     // The bracket is exact in real arithmetic; widen it if rounding in the
     // component quantiles put it a hair off.
     double dens;
-    for (double step = 1e-12 * (1.0 + std::abs(lo)); eval(lo, dens) > 0.0; step *= 2.0) lo -= step;
-    for (double step = 1e-12 * (1.0 + std::abs(hi)); eval(hi, dens) < 0.0; step *= 2.0) hi += step;
+    for (double step = 1e-12 * (1.0 + std::abs(lo)); excess(lo) > 0.0; step *= 2.0) lo -= step;
+    for (double step = 1e-12 * (1.0 + std::abs(hi)); excess(hi) < 0.0; step *= 2.0) hi += step;
     double y = start;
     for (int iter = 0; iter < 200; ++iter) {
         const double tol = 1e-11 * (1.0 + std::abs(y));

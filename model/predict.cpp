@@ -2,17 +2,21 @@
 //
 // recommend() works in two passes so that a request over every item stays
 // cheap while the ranking stays exact:
-//   1. Screening (model/screening.hpp): every candidate's per-sample means in
-//      float, from Eigen matrix-vector products over the item blocks, each
-//      within a proven slack of the reference values. From them, an interval
-//      certain to contain the candidate's exact score: the mixture mean +-
-//      slack; for quantiles, the smallest and largest component quantile
-//      (the mixture quantile lies between them, see model/mixture.cpp); for a
-//      draw, the drawn sample's mean +- slack.
+//   1. Screening (model/screening.hpp): per-item summaries of every
+//      candidate's per-sample means, from float dot products over the item
+//      blocks, each within a proven slack of the reference values. From
+//      them, an interval certain to contain the candidate's exact score: the
+//      mixture mean +- slack; for quantiles, the smallest and largest
+//      component quantile (the mixture quantile lies between them, see
+//      model/mixture.cpp); for a draw, the drawn sample's mean +- slack.
+//      recommend_batch() screens many users in one pass over the item
+//      samples, so the model is read from memory once for all of them.
 //   2. Selection (model/top_n.hpp): exact scores, from the reference means
 //      exactly as predict() computes them, only for candidates whose interval
 //      can still reach the top n; for quantile rankings a partial mixture-CDF
 //      sum over the screened means rules out most of those first.
+// Screening only decides which exact scores get computed, never their value,
+// so a batched answer is the same, bit for bit, as one computed alone.
 // Scores are unclipped (a clipped upper bound would tie every item whose
 // bound passes the scale maximum); the Prediction carried with each item is
 // clipped like predict()'s.
@@ -21,6 +25,7 @@
 #include <algorithm>
 #include <cmath>
 #include <limits>
+#include <new>
 #include <stdexcept>
 #include <string>
 
@@ -87,56 +92,90 @@ std::vector<uint32_t> candidate_pool(const Posterior& p, std::span<const uint32_
     return pool;
 }
 
-std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const double> max_item_norm,
-                                            const Viewer& viewer, std::span<const uint32_t> exclude,
-                                            const RecommendOptions& options) {
+// One validated request, ready to screen and select.
+struct Plan {
+    Viewer viewer;
+    const RecommendOptions* options = nullptr;
+    std::vector<uint32_t> pool;  // ascending, unique
+    bool by_quantile = false;
+    double prob = 0.5;            // the quantile ranked by
+    double noise_variance = 0.0;  // mean of 1/tau_s
+    double z = 0.0;               // standard normal quantile of prob
+    std::vector<double> shift;    // [S] z / sqrt(tau_s), when by_quantile
+    bool full_pass = false;       // screen every item (summary index = item) rather than the pool
+    uint32_t drawn = 0;           // for RankBy::draw: the kept sample drawn
+};
+
+// Validates the options and fills `plan` (reusing its buffers). Throws like recommend().
+void make_plan(const Posterior& p, const Viewer& viewer, std::span<const uint32_t> exclude,
+               const RecommendOptions& options, Plan& plan) {
     if (options.n == 0) throw std::invalid_argument("number of recommendations n must be at least 1");
     check_level(options.level);
-    const std::vector<uint32_t> pool = candidate_pool(p, exclude, options);
-    if (pool.empty()) return {};
-
+    plan.viewer = viewer;
+    plan.options = &options;
+    plan.pool = candidate_pool(p, exclude, options);
     const uint32_t S = p.num_samples;
     const std::span<const float> tau(p.noise_precision);
-    const bool by_quantile = options.rank_by == RankBy::lower || options.rank_by == RankBy::upper;
-    const double prob = options.rank_by == RankBy::lower ? 0.5 * (1.0 - options.level) : 0.5 * (1.0 + options.level);
+    plan.by_quantile = options.rank_by == RankBy::lower || options.rank_by == RankBy::upper;
+    plan.prob = options.rank_by == RankBy::lower ? 0.5 * (1.0 - options.level) : 0.5 * (1.0 + options.level);
+    plan.z = plan.by_quantile ? normal_quantile(plan.prob) : 0.0;
+    plan.noise_variance = 0.0;
+    plan.shift.clear();
+    for (uint32_t s = 0; s < S; ++s) {
+        if (plan.by_quantile) plan.shift.push_back(plan.z / std::sqrt(static_cast<double>(tau[s])));
+        plan.noise_variance += 1.0 / static_cast<double>(tau[s]) / S;
+    }
+    const bool draw = options.rank_by == RankBy::draw;
+    // A pool of a quarter of the catalogue or more costs about a full pass.
+    plan.full_pass = !draw && plan.pool.size() * 4 >= p.num_items;
+    // Thompson sampling over the mean: one kept sample, uniformly chosen.
+    plan.drawn = draw ? static_cast<uint32_t>(Rng::keyed(options.draw_seed, 0, 0, StreamBlock::serve, 0).below(S)) : 0;
+}
 
-    // ---- pass 1: an interval for every pool item
+void prepare_job(const Plan& plan, ScreenJob& job) {
+    job.viewer = plan.viewer;
+    job.shift = plan.by_quantile ? std::span<const double>(plan.shift) : std::span<const double>();
+}
+
+// Pass 1 for one request alone (a full pass is shared in recommend_batch).
+void screen_alone(const Posterior& p, std::span<const double> max_item_norm, const Plan& plan, ScreenJob& job) {
+    if (plan.options->rank_by == RankBy::draw || plan.pool.empty()) return;
+    prepare_job(plan, job);
+    if (plan.full_pass) {
+        ScreenJob* jobs[] = {&job};
+        screen_all_items(p, max_item_norm, jobs);
+    } else {
+        screen_pool(p, max_item_norm, plan.pool, job);
+    }
+}
+
+// Bounds from the screened summaries (or the drawn sample), then pass 2.
+std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const double> max_item_norm,
+                                            const Plan& plan, const ScreenJob& job) {
+    const std::vector<uint32_t>& pool = plan.pool;
+    if (pool.empty()) return {};
+    const RecommendOptions& options = *plan.options;
+    const uint32_t S = p.num_samples;
+    const std::span<const float> tau(p.noise_precision);
+    const Viewer& viewer = plan.viewer;
+
+    // ---- pass 1 results: an interval for every pool item
     std::vector<ScoreBound> bounds(pool.size());
-    ScreenedMeans screened;
-    uint32_t drawn = 0;
     if (options.rank_by == RankBy::draw) {
-        // Thompson sampling over the mean: one kept sample, uniformly chosen.
-        drawn = static_cast<uint32_t>(Rng::keyed(options.draw_seed, 0, 0, StreamBlock::serve, 0).below(S));
         std::vector<double> m;
-        const double slack = screen_one_sample(p, max_item_norm, viewer, pool, drawn, m);
+        const double slack = screen_one_sample(p, max_item_norm, viewer, pool, plan.drawn, m);
         for (size_t j = 0; j < pool.size(); ++j)
             bounds[j] = {pool[j], m[j] - slack - pad(m[j]), m[j] + slack + pad(m[j]), m[j]};
     } else {
-        screened = screen_all_samples(p, max_item_norm, viewer, pool);
-        const double slack = screened.slack;
-        std::vector<double> shift(S);  // component quantile offset z / sqrt(tau_s)
-        double noise_variance = 0.0;
-        const double z = by_quantile ? normal_quantile(prob) : 0.0;
-        for (uint32_t s = 0; s < S; ++s) {
-            shift[s] = z / std::sqrt(static_cast<double>(tau[s]));
-            noise_variance += 1.0 / static_cast<double>(tau[s]) / S;
-        }
+        const double slack = job.slack;
         for (size_t j = 0; j < pool.size(); ++j) {
-            const auto row = screened.row(j);
-            double sum = 0.0, sum_sq = 0.0;
-            double lo = std::numeric_limits<double>::infinity(), hi = -lo;
-            for (uint32_t s = 0; s < S; ++s) {
-                const double m = row[s];
-                sum += m;
-                sum_sq += m * m;
-                lo = std::min(lo, m + shift[s]);
-                hi = std::max(hi, m + shift[s]);
-            }
-            const double mean = sum / S;
-            if (by_quantile) {
+            const size_t at = plan.full_pass ? pool[j] : j;
+            const double mean = job.sum[at] / S;
+            if (plan.by_quantile) {
                 // Visit in the order of the normal with the mixture's moments.
-                const double variance = std::max(0.0, sum_sq / S - mean * mean) + noise_variance;
-                bounds[j] = {pool[j], lo - slack - pad(lo), hi + slack + pad(hi), mean + z * std::sqrt(variance)};
+                const double lo = job.lo[at], hi = job.hi[at];
+                const double variance = std::max(0.0, job.sum_sq[at] / S - mean * mean) + plan.noise_variance;
+                bounds[j] = {pool[j], lo - slack - pad(lo), hi + slack + pad(hi), mean + plan.z * std::sqrt(variance)};
             } else {
                 bounds[j] = {pool[j], mean - slack - pad(mean), mean + slack + pad(mean), mean};
             }
@@ -145,22 +184,30 @@ std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const 
 
     // ---- pass 2: exact scores where they can matter
     std::vector<double> m;
+    uint32_t cached_item = std::numeric_limits<uint32_t>::max();
+    auto means_of = [&](uint32_t item) -> const std::vector<double>& {
+        if (item != cached_item) {
+            reference_means(p, viewer, item, m);
+            cached_item = item;
+        }
+        return m;
+    };
     auto exact = [&](uint32_t item) -> double {
-        if (options.rank_by == RankBy::draw) return reference_mean(p, viewer, drawn, item);
-        reference_means(p, viewer, item, m);
-        return by_quantile ? mixture_quantile(m, tau, prob) : mixture_mean(m);
+        if (options.rank_by == RankBy::draw) return reference_mean(p, viewer, plan.drawn, item);
+        const auto& means = means_of(item);
+        return plan.by_quantile ? mixture_quantile(means, tau, plan.prob) : mixture_mean(means);
     };
-    // A quantile below t shows as F(x) > p at x a little under t. On screened
-    // means (each within slack of the reference) the test point moves down by
-    // the slack; the partial CDF sum only grows, so it stops once past p.
-    const auto item_row = [&](uint32_t item) {
-        const size_t j = static_cast<size_t>(std::lower_bound(pool.begin(), pool.end(), item) - pool.begin());
-        return screened.row(j);
-    };
+    // A quantile below t shows as F(x) > p at x a little under t (the pad
+    // covers the quantile solver's tolerance). On screened means (each
+    // within slack of the reference) the test point moves down by the
+    // slack; the partial CDF sum only grows, so it stops once past p.
     auto below = [&](uint32_t item, double t) -> bool {
-        if (!by_quantile) return false;
-        const auto row = item_row(item);
-        const double x = t - pad(t) - screened.slack, target = (prob + 1e-12) * S;
+        if (!plan.by_quantile) return false;
+        const size_t j = plan.full_pass ? item
+                                        : static_cast<size_t>(std::lower_bound(pool.begin(), pool.end(), item) -
+                                                              pool.begin());
+        const float* row = job.rows.data() + j * S;
+        const double x = t - pad(t) - job.slack, target = (plan.prob + 1e-12) * S;
         double partial = 0.0;
         for (uint32_t s = 0; s < S; ++s) {
             partial += normal_cdf(std::sqrt(static_cast<double>(tau[s])) * (x - row[s]));
@@ -173,10 +220,55 @@ std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const 
     std::vector<Recommendation> out;
     out.reserve(top.size());
     for (const auto& t : top) {
-        reference_means(p, viewer, t.item, m);
-        out.push_back({t.item, t.score, prediction_from(p, m, options.level)});
+        const auto& means = means_of(t.item);
+        out.push_back({t.item, t.score, prediction_from(p, means, options.level)});
     }
     return out;
+}
+
+// Per-thread buffers, so a request allocates little beyond its answer. A
+// server has many threads, so each keeps only a few jobs' buffers, and no
+// large quantile rows ([I][S] floats) between requests.
+struct Scratch {
+    static constexpr size_t kKeptJobs = 4;
+    static constexpr size_t kKeptRowBytes = size_t(8) << 20;
+
+    std::vector<Plan> plans;
+    std::vector<ScreenJob> jobs;
+    void reserve(size_t n) {
+        if (plans.size() < n) plans.resize(n);
+        if (jobs.size() < n) jobs.resize(n);
+    }
+    void trim() {
+        if (jobs.size() > kKeptJobs) jobs.resize(kKeptJobs);
+        if (plans.size() > kKeptJobs) plans.resize(kKeptJobs);
+        for (ScreenJob& job : jobs)
+            if (job.rows.capacity() * sizeof(float) > kKeptRowBytes) std::vector<float>().swap(job.rows);
+    }
+};
+
+// Trims the scratch however the request ends.
+struct TrimOnExit {
+    Scratch& scratch;
+    ~TrimOnExit() { scratch.trim(); }
+};
+
+Scratch& scratch() {
+    thread_local Scratch s;
+    return s;
+}
+
+std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const double> max_item_norm,
+                                            const Viewer& viewer, std::span<const uint32_t> exclude,
+                                            const RecommendOptions& options) {
+    Scratch& s = scratch();
+    const TrimOnExit trim{s};
+    s.reserve(1);
+    Plan& plan = s.plans[0];
+    ScreenJob& job = s.jobs[0];
+    make_plan(p, viewer, exclude, options, plan);
+    screen_alone(p, max_item_norm, plan, job);
+    return select_for_plan(p, max_item_norm, plan, job);
 }
 
 }  // namespace
@@ -208,6 +300,53 @@ std::vector<Recommendation> PredictionEngine::recommend(uint32_t user, const Rec
         throw std::out_of_range("recommend: user index " + std::to_string(user) + " is beyond the model's " +
                                 std::to_string(p.num_users) + " users");
     return rank_for_viewer(p, max_item_norm_, known_user(p, user), p.rated_by(user), options);
+}
+
+std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests) const {
+    const Posterior& p = *posterior_;
+    const size_t count = requests.size();
+    std::vector<RecommendAnswer> answers(count);
+    Scratch& s = scratch();
+    const TrimOnExit trim{s};
+    s.reserve(count);
+    std::vector<char> planned(count, 0);
+    for (size_t k = 0; k < count; ++k) {
+        try {
+            const uint32_t user = requests[k].user;
+            if (user >= p.num_users)
+                throw std::out_of_range("recommend: user index " + std::to_string(user) + " is beyond the model's " +
+                                        std::to_string(p.num_users) + " users");
+            make_plan(p, known_user(p, user), p.rated_by(user), requests[k].options, s.plans[k]);
+            planned[k] = 1;
+        } catch (const std::bad_alloc&) {
+            throw;
+        } catch (...) {
+            answers[k].error = std::current_exception();
+        }
+    }
+    // One shared pass for every full-pass request; the rest screen alone.
+    std::vector<ScreenJob*> shared;
+    for (size_t k = 0; k < count; ++k) {
+        if (!planned[k]) continue;
+        if (s.plans[k].full_pass && !s.plans[k].pool.empty()) {
+            prepare_job(s.plans[k], s.jobs[k]);
+            shared.push_back(&s.jobs[k]);
+        } else {
+            screen_alone(p, max_item_norm_, s.plans[k], s.jobs[k]);
+        }
+    }
+    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared);
+    for (size_t k = 0; k < count; ++k) {
+        if (!planned[k]) continue;
+        try {
+            answers[k].items = select_for_plan(p, max_item_norm_, s.plans[k], s.jobs[k]);
+        } catch (const std::bad_alloc&) {
+            throw;
+        } catch (...) {
+            answers[k].error = std::current_exception();
+        }
+    }
+    return answers;
 }
 
 std::vector<Recommendation> PredictionEngine::recommend_for_factors(std::span<const float> visitor_factors,

@@ -8,6 +8,7 @@
 // CDF), then clipped to the rating scale. Thread-safe: all methods are const.
 #pragma once
 #include <cstdint>
+#include <exception>
 #include <memory>
 #include <optional>
 #include <span>
@@ -46,6 +47,18 @@ struct Recommendation {
     Prediction prediction;
 };
 
+// One known user's request in a batch, and its answer: the items, or the
+// exception recommend() would have thrown for it.
+struct RecommendRequest {
+    uint32_t user = 0;
+    RecommendOptions options;
+};
+
+struct RecommendAnswer {
+    std::vector<Recommendation> items;
+    std::exception_ptr error;  // null on success
+};
+
 // Mixture helpers over per-sample means m[s] and noise precisions tau[s].
 // All need m.size() == tau.size() > 0.
 double mixture_mean(std::span<const double> m);
@@ -69,6 +82,13 @@ public:
     // Top-n items for a known user. Ties break by item index. Throws
     // std::invalid_argument for level outside (0,1) or n == 0.
     std::vector<Recommendation> recommend(uint32_t user, const RecommendOptions& options) const;
+
+    // Several requests at once: answer k equals recommend(requests[k].user,
+    // requests[k].options), or holds what it would have thrown. Requests that
+    // rank by mean, lower or upper over most of the catalogue share one pass
+    // over the item samples, which reads the model from memory once for all
+    // of them. Never throws for a bad request; std::bad_alloc may escape.
+    std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests) const;
 
     // Top-n for a visitor described by per-sample factors and biases (fold-in):
     // visitor_factors is [S][K], visitor_bias is [S] (zeros without biases),

@@ -1,9 +1,12 @@
 // Per-sample means m_s = g + b_u,s + c_i,s + <U_u,s, V_i,s> for the prediction
 // engine, in two precisions. Internal to model/.
 //   - Reference (double): what predict() and every exact score use.
-//   - Screening (float, Eigen matrix-vector products over item blocks): for
-//     all candidate items at once, with a proven bound on its distance from
-//     the reference, so pruning on screened values never changes a result.
+//   - Screening (float dot products, double sums): per-item summaries over
+//     all samples (sum, sum of squares, min and max of m_s + shift_s), each
+//     m_s within a proven slack of the reference value, so pruning on the
+//     summaries never changes a result. One pass over the item samples can
+//     serve several viewers at once: each item block is read from memory once
+//     and scored for every viewer while it is in cache.
 #pragma once
 #include <cstddef>
 #include <cstdint>
@@ -34,16 +37,34 @@ double reference_mean(const Posterior& p, const Viewer& v, uint32_t s, uint32_t 
 // [S] largest item-factor norm per sample; feeds the rounding bound.
 std::vector<double> max_item_norms(const Posterior& p);
 
-struct ScreenedMeans {
-    uint32_t samples = 0;
-    std::vector<float> values;  // [pool][S], item-major so one item's samples are contiguous
-    double slack = 0.0;         // every |value - reference| <= slack
-    std::span<const float> row(size_t j) const { return {values.data() + j * samples, samples}; }
+// One viewer's share of an all-samples screening pass. The caller sets
+// `viewer` and, for quantile rankings, `shift` ([S], shift_s = z / sqrt(tau_s));
+// the pass fills the summaries. With m_s the screened means of an item:
+//   sum = sum_s m_s always; sum_sq = sum_s m_s^2, lo = min_s (m_s + shift_s)
+//   and hi = max_s (m_s + shift_s) only when shift is given (else empty),
+//   and then also rows[j * S + s] = m_s in float, for a closer look at the
+//   few candidates near the top.
+// Every |m_s - reference m_s| <= slack. Reusing one ScreenJob across
+// requests keeps its buffers (no allocation per request).
+struct ScreenJob {
+    Viewer viewer;
+    std::span<const double> shift;
+    std::vector<double> sum, sum_sq, lo, hi;
+    std::vector<double> magnitude;  // max_s |m_s| per item: feeds the slack
+    std::vector<float> rows;        // [count][S], quantile rankings only
+    double slack = 0.0;
+
+    bool quantiles() const { return !shift.empty(); }
 };
 
-// Screened m_s of every pool item (pool ascending) under every sample.
-ScreenedMeans screen_all_samples(const Posterior& p, std::span<const double> max_item_norm, const Viewer& v,
-                                 const std::vector<uint32_t>& pool);
+// Screens every item of the model (summary index = item index) for every
+// job in one pass over the item samples. Needs shift.size() == S where given.
+void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs);
+
+// Screens only the `pool` items (summary index = position in pool) for one
+// job: cheaper than a full pass when the pool is a small part of the catalogue.
+void screen_pool(const Posterior& p, std::span<const double> max_item_norm, const std::vector<uint32_t>& pool,
+                 ScreenJob& job);
 
 // Screened m_s of every pool item under sample s; returns the slack.
 double screen_one_sample(const Posterior& p, std::span<const double> max_item_norm, const Viewer& v,

@@ -1,16 +1,25 @@
 // GET /v1/users/{user}/recommendations: top-N for a known user.
 // POST /v1/recommendations: top-N for a visitor, by fold-in (server/foldin.hpp).
 // Both rank by mean, lower or upper interval bound, or one posterior draw,
-// and give mean, sd and interval for every item.
+// and give mean, sd and interval for every item. Known users' requests that
+// arrive together share one pass over the item samples (server/topn_batcher.hpp).
 #include <algorithm>
 #include <set>
 
 #include "server/app.hpp"
 #include "server/foldin.hpp"
+#include "server/topn_batcher.hpp"
 
 namespace credence::server {
 
 namespace {
+
+// One for the process: requests share passes only when they are for the
+// same engine, so servers and models in one process never mix.
+TopNBatcher& known_user_batcher() {
+    static TopNBatcher batcher;
+    return batcher;
+}
 
 uint32_t item_index(const LoadedModel& model, const std::string& id) {
     const auto index = model.items.find(id);
@@ -58,7 +67,7 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
             candidates.push_back(item_index(*model, req.get_param_value("items", k)));
         options.candidates = std::move(candidates);
     }
-    const auto recs = model->engine.recommend(*user, options);
+    const auto recs = known_user_batcher().recommend(model->engine, *user, options);
     nlohmann::json body = {{"model", model->fingerprint},
                            {"user", user_id},
                            {"rank_by", rank_by_name(options.rank_by)},

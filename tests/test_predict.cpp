@@ -380,3 +380,140 @@ TEST_CASE("top-n selection equals a full sort and skips hopeless candidates") {
         }
     }
 }
+
+namespace {
+
+bool same_answer(const std::vector<Recommendation>& a, const std::vector<Recommendation>& b) {
+    if (a.size() != b.size()) return false;
+    for (size_t j = 0; j < a.size(); ++j) {
+        if (a[j].item != b[j].item || a[j].score != b[j].score) return false;
+        const Prediction &x = a[j].prediction, &y = b[j].prediction;
+        if (x.mean != y.mean || x.sd != y.sd || x.lower != y.lower || x.upper != y.upper) return false;
+    }
+    return true;
+}
+
+}  // namespace
+
+TEST_CASE("a batch answers every request exactly as recommend does alone") {
+    // Ranks 16 (the unrolled kernel) and 5 (the general one with a tail),
+    // with and without biases; the batch mixes every ranking, levels, n,
+    // dense and sparse candidate lists, exclusion on and off, and bad
+    // requests, which must fail alone with recommend()'s exception.
+    for (const PosteriorShape shape : {PosteriorShape{9, 1300, 16, 24, 2, true}, PosteriorShape{9, 700, 5, 31, 1, false}}) {
+        RandomPosteriorOptions opt;
+        opt.duplicate_items = 3;
+        const auto post = random_posterior(shape, 777 + shape.rank, opt);
+        const PredictionEngine engine(post);
+        Rng rng(shape.rank);
+        std::vector<RecommendRequest> requests;
+        for (uint32_t k = 0; k < 40; ++k) {
+            RecommendRequest r;
+            r.user = k % shape.users;
+            r.options.rank_by = std::vector<RankBy>{RankBy::mean, RankBy::lower, RankBy::upper, RankBy::draw}[k % 4];
+            r.options.n = 1 + static_cast<uint32_t>(rng.below(30));
+            r.options.level = 0.5 + 0.45 * rng.uniform();
+            r.options.exclude_rated = k % 3 != 0;
+            r.options.draw_seed = k;
+            if (k % 5 == 1) {  // sparse: a few candidates
+                std::vector<uint32_t> c;
+                for (int j = 0; j < 12; ++j) c.push_back(static_cast<uint32_t>(rng.below(shape.items)));
+                r.options.candidates = c;
+            } else if (k % 5 == 2) {  // dense: most of the catalogue
+                std::vector<uint32_t> c;
+                for (uint32_t i = 0; i < shape.items; ++i)
+                    if (i % 4 != 1) c.push_back(i);
+                r.options.candidates = c;
+            }
+            requests.push_back(r);
+        }
+        requests[7].options.n = 0;
+        requests[13].options.level = 1.5;
+        requests[21].user = shape.users;  // beyond the model
+        requests[22].options.candidates = std::vector<uint32_t>{0, shape.items};
+
+        const auto answers = engine.recommend_batch(requests);
+        REQUIRE(answers.size() == requests.size());
+        for (size_t k = 0; k < requests.size(); ++k) {
+            INFO("rank " << shape.rank << " request " << k);
+            const auto& r = requests[k];
+            if (k == 7 || k == 13 || k == 22) {
+                CHECK_THROWS_AS(engine.recommend(r.user, r.options), std::invalid_argument);
+                REQUIRE(answers[k].error);
+                CHECK_THROWS_AS(std::rethrow_exception(answers[k].error), std::invalid_argument);
+            } else if (k == 21) {
+                CHECK_THROWS_AS(engine.recommend(r.user, r.options), std::out_of_range);
+                REQUIRE(answers[k].error);
+                CHECK_THROWS_AS(std::rethrow_exception(answers[k].error), std::out_of_range);
+            } else {
+                REQUIRE_FALSE(answers[k].error);
+                CHECK(!answers[k].items.empty());
+                CHECK(same_answer(answers[k].items, engine.recommend(r.user, r.options)));
+            }
+        }
+        // And one batched mean ranking against brute force, independently of the engine.
+        const auto& first = requests[0];
+        REQUIRE(first.options.rank_by == RankBy::mean);
+        CHECK(same_ranking(answers[0].items, brute_force(*post, first.user, first.options,
+                                                         [](const std::vector<double>& m) { return mixture_mean(m); })));
+    }
+}
+
+TEST_CASE("a batch of one and an empty batch") {
+    const auto post = random_posterior({3, 200, 16, 10, 1, true}, 99);
+    const PredictionEngine engine(post);
+    CHECK(engine.recommend_batch({}).empty());
+    RecommendRequest r;
+    r.user = 2;
+    r.options.rank_by = RankBy::upper;
+    const auto one = engine.recommend_batch(std::vector<RecommendRequest>{r});
+    REQUIRE(one.size() == 1);
+    CHECK(same_answer(one[0].items, engine.recommend(2, r.options)));
+}
+
+#include "model/screening.hpp"
+
+TEST_CASE("screened summaries stay within their stated slack of the reference means") {
+    // The exactness of every ranking rests on this bound (model/screening.cpp
+    // derives it). Ranks 16 and 8 take the grouped float path for means (the
+    // wide one where the CPU has it), 12 the four-lane one, 5 the per-sample
+    // path; large factor scales make the rounding visible.
+    for (const uint32_t rank : {16u, 12u, 8u, 5u}) {
+        RandomPosteriorOptions opt;
+        opt.factor_sd = 3.0;
+        const auto post = random_posterior({4, 900, rank, 37, 1, true}, 300 + rank, opt);
+        const Posterior& p = *post;
+        const auto norms = max_item_norms(p);
+        std::vector<double> shift(p.num_samples);
+        for (uint32_t s = 0; s < p.num_samples; ++s) shift[s] = -1.3 / std::sqrt(double(p.noise_precision[s]));
+        std::vector<ScreenJob> jobs(4);
+        std::vector<ScreenJob*> pointers;
+        for (uint32_t u = 0; u < 4; ++u) {
+            jobs[u].viewer = known_user(p, u);
+            if (u % 2) jobs[u].shift = shift;  // quantile jobs
+            pointers.push_back(&jobs[u]);
+        }
+        screen_all_items(p, norms, pointers);
+        double worst = 0.0;  // largest error relative to the slack
+        for (uint32_t u = 0; u < 4; ++u) {
+            const ScreenJob& job = jobs[u];
+            REQUIRE(job.slack > 0.0);
+            for (uint32_t i = 0; i < p.num_items; ++i) {
+                const auto m = direct_means(p, u, i);
+                worst = std::max(worst, std::abs(job.sum[i] / p.num_samples - mixture_mean(m)) / job.slack);
+                if (!job.quantiles()) continue;
+                double lo = std::numeric_limits<double>::infinity(), hi = -lo;
+                for (uint32_t s = 0; s < p.num_samples; ++s) {
+                    worst = std::max(worst, std::abs(double(job.rows[size_t(i) * p.num_samples + s]) - m[s]) / job.slack);
+                    lo = std::min(lo, m[s] + shift[s]);
+                    hi = std::max(hi, m[s] + shift[s]);
+                }
+                worst = std::max(worst, std::abs(job.lo[i] - lo) / job.slack);
+                worst = std::max(worst, std::abs(job.hi[i] - hi) / job.slack);
+            }
+        }
+        INFO("rank " << rank << ": largest error / slack " << worst);
+        CHECK(worst <= 1.0);
+        CHECK(worst > 0.0);  // the screened values really are approximations
+    }
+}

@@ -1,0 +1,72 @@
+// TopNBatcher (server/topn_batcher.hpp).
+#include "server/topn_batcher.hpp"
+
+#include <algorithm>
+#include <stdexcept>
+#include <thread>
+
+namespace credence::server {
+
+TopNBatcher::TopNBatcher(unsigned lanes, size_t max_batch)
+    : lanes_(lanes ? lanes : std::max(1u, std::thread::hardware_concurrency())), max_batch_(max_batch) {
+    if (max_batch_ == 0) throw std::invalid_argument("top-N batcher needs a batch size of at least 1");
+}
+
+std::vector<TopNBatcher::Job*> TopNBatcher::take_batch() {
+    std::vector<Job*> batch;
+    const PredictionEngine* engine = queue_.front()->engine;
+    for (auto it = queue_.begin(); it != queue_.end() && batch.size() < max_batch_;) {
+        if ((*it)->engine == engine) {
+            batch.push_back(*it);
+            it = queue_.erase(it);
+        } else {
+            ++it;
+        }
+    }
+    return batch;
+}
+
+std::vector<Recommendation> TopNBatcher::recommend(const PredictionEngine& engine, uint32_t user,
+                                                   const RecommendOptions& options) {
+    Job job;
+    job.engine = &engine;
+    job.request = {user, options};
+    std::unique_lock lock(mutex_);
+    queue_.push_back(&job);
+    while (!job.done) {
+        if (running_ >= lanes_ || queue_.empty()) {
+            // Our job is queued behind a busy lane, or taken by another lane.
+            finished_.wait(lock);
+            continue;
+        }
+        ++running_;
+        std::vector<Job*> batch = take_batch();
+        lock.unlock();
+        std::vector<RecommendRequest> requests;
+        requests.reserve(batch.size());
+        for (const Job* j : batch) requests.push_back(j->request);
+        try {
+            auto answers = batch.front()->engine->recommend_batch(requests);
+            for (size_t k = 0; k < batch.size(); ++k) batch[k]->answer = std::move(answers[k]);
+        } catch (...) {
+            for (Job* j : batch) j->answer.error = std::current_exception();
+        }
+        lock.lock();
+        for (Job* j : batch) j->done = true;
+        --running_;
+        stats_.requests += batch.size();
+        stats_.passes += 1;
+        stats_.largest_batch = std::max(stats_.largest_batch, batch.size());
+        finished_.notify_all();
+    }
+    lock.unlock();
+    if (job.answer.error) std::rethrow_exception(job.answer.error);
+    return std::move(job.answer.items);
+}
+
+TopNBatcher::Stats TopNBatcher::stats() const {
+    std::lock_guard lock(mutex_);
+    return stats_;
+}
+
+}  // namespace credence::server
