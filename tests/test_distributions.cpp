@@ -14,21 +14,11 @@
 
 #include "model/distributions.hpp"
 #include "model/error.hpp"
+#include "tests/support/python_reference.hpp"
 
 using namespace credence;
 
-namespace {
-// Runs /usr/bin/python3 with a script; returns its stdout or "" when python
-// or scipy is missing.
-std::string run_python(const std::string& script) {
-    std::unique_ptr<FILE, int (*)(FILE*)> pipe(popen(("/usr/bin/python3 -c '" + script + "' 2>/dev/null").c_str(), "r"), pclose);
-    if (!pipe) return {};
-    std::string out;
-    char buf[512];
-    while (fgets(buf, sizeof buf, pipe.get())) out += buf;
-    return out;
-}
-}  // namespace
+using credence::testing::run_python_inline;
 
 TEST_CASE("draw_gamma has mean shape/rate and variance shape/rate^2") {
     // Gamma(a, b) with rate b: mean a/b, variance a/b^2 (Bishop, PRML, Appendix B).
@@ -85,7 +75,7 @@ TEST_CASE("Wishart draws have mean nu*W and variances nu*(W_ij^2 + W_ii*W_jj)") 
         }
 
     // Outside reference: scipy.stats.wishart's own mean and variance for the same W and nu.
-    const std::string ref = run_python(
+    const std::string ref = run_python_inline(
         "import numpy as np\nfrom scipy.stats import wishart\n"
         "w=np.array([[2.0,0.6,-0.3],[0.6,1.0,0.2],[-0.3,0.2,0.5]])\n"
         "d=wishart(df=4.5, scale=w)\n"

@@ -11,20 +11,12 @@
 #include <vector>
 
 #include "model/error.hpp"
+#include "tests/support/python_reference.hpp"
 #include "model/normal_wishart.hpp"
 
 using namespace credence;
 
-namespace {
-std::string run_python(const std::string& script) {
-    std::unique_ptr<FILE, int (*)(FILE*)> pipe(popen(("/usr/bin/python3 -c '" + script + "' 2>/dev/null").c_str(), "r"), pclose);
-    if (!pipe) return {};
-    std::string out;
-    char buf[512];
-    while (fgets(buf, sizeof buf, pipe.get())) out += buf;
-    return out;
-}
-}  // namespace
+using credence::testing::run_python_inline;
 
 TEST_CASE("factor statistics: count, mean and scatter about the mean") {
     // Rows (1,2), (3,0), (5,4): mean (3,2); deviations (-2,0), (0,-2), (2,2);
@@ -75,7 +67,7 @@ TEST_CASE("two-dimensional posterior update matches an independent numpy computa
     prior.w << 2.0, 0.5, 0.5, 1.0;
     prior.nu = 3.0;
     const NormalWishart post = normal_wishart_posterior(prior, factor_statistics(rows.data(), 4, 2));
-    const std::string ref = run_python(
+    const std::string ref = run_python_inline(
         "import numpy as np\n"
         "x=np.array([[0.5,1.0],[-1.0,2.0],[2.0,0.0],[1.5,-0.5]]); n=len(x)\n"
         "m0=np.array([1.0,-1.0]); k0=2.0; W0=np.array([[2.0,0.5],[0.5,1.0]]); nu0=3.0\n"

@@ -36,4 +36,18 @@ inline std::string run_python(const std::filesystem::path& dir, const std::strin
     return out;
 }
 
+// Runs `python3 -c script` (the script must not contain a single quote) and
+// returns its stdout, or "" when python, numpy or scipy is missing or it fails.
+inline std::string run_python_inline(const std::string& script) {
+    std::string command("/usr/bin/python3 -c '");
+    command.append(script).append("' 2>/dev/null");
+    FILE* pipe = popen(command.c_str(), "r");
+    if (!pipe) return {};
+    std::string out;
+    char buffer[512];
+    while (fgets(buffer, sizeof buffer, pipe)) out += buffer;
+    if (pclose(pipe) != 0) return {};
+    return out;
+}
+
 }  // namespace credence::testing
