@@ -1,11 +1,15 @@
-// Synthetic ratings drawn from the model itself, for recovery tests and
-// benchmarks, and a seeded train/holdout split. Ids are invented shop ids
-// ("customer-000017", "product-000042").
+// Synthetic data for tests and benchmarks: ratings drawn from the model
+// itself (recovery tests), a seeded train/holdout split, and a random but
+// valid fitted Posterior built without running the sampler (file format,
+// prediction, evaluation, server tests and the serving benchmark). Ids are
+// invented shop ids ("customer-000017", "product-000042", "cust-0007").
 #pragma once
 #include <cstdint>
+#include <string>
 #include <vector>
 
 #include "model/holdout.hpp"  // split_holdout, used with simulated data
+#include "model/posterior.hpp"
 #include "model/ratings.hpp"
 
 namespace credence {
@@ -41,6 +45,57 @@ struct SimulatedData {
 // Throws std::invalid_argument for zero sizes, density outside (0, 1],
 // ratings_per_user > items, negative sds, or an empty result.
 SimulatedData simulate_ratings(const SimulationOptions& options);
+
+// How simulate_posterior names users and items.
+enum class SimulatedIdStyle {
+    numbered,  // "<user_prefix>-0007", "<item_prefix>-0042", zero-padded to id_digits
+    goods,     // "customer-1000", "teapot-0", ...; every sixth item id is
+               // non-ASCII UTF-8 ("\xc3\xb6ko-mug-5") to exercise id handling
+};
+
+struct SimulatedPosteriorOptions {
+    // ---- shape; samples are split over the chains as evenly as possible
+    uint32_t users = 20;
+    uint32_t items = 50;
+    uint32_t rank = 4;
+    uint32_t samples = 30;
+    uint32_t chains = 1;
+    bool biases = true;
+    uint64_t seed = 1;  // same options -> bit-identical posterior
+
+    // ---- values. Each factor (and bias) row has a centre ~ Normal(0, sd^2)
+    // and each sample adds its own Normal(0, jitter_sd^2), so samples disagree
+    // the way real posterior draws do. Hyperparameters are random too: mu ~
+    // Normal(0, 0.1^2), Lambda symmetric and diagonally dominant (so positive
+    // definite), bias precisions in [8, 9).
+    bool zero_values = false;      // instead: zero factors, biases and mu, tau = 1,
+                                   // identity Lambda, bias precisions 1, nothing rated;
+                                   // for tests that then write chosen numbers in
+    double factor_sd = 0.6;
+    double jitter_sd = 0.25;
+    double bias_sd = 0.3;
+    double noise_precision = 2.0;  // mean of tau; each sample's tau is within +-20%
+    double rated_fraction = 0.2;   // chance that a user rated a given item, in [0, 1]
+    uint32_t duplicate_items = 0;  // the last d items copy items 0..d-1 exactly (score
+                                   // ties); must be <= items / 2
+    float global_mean = 3.5f;
+    RatingScale scale{1.0f, 5.0f, true};
+
+    // ---- identity and documents
+    SimulatedIdStyle id_style = SimulatedIdStyle::numbered;
+    std::string user_prefix = "cust";
+    std::string item_prefix = "sku";
+    uint32_t id_digits = 4;
+    // Empty: {"generator":"synthetic","seed":<seed>} and {"verdict":"not assessed"}.
+    std::string fit_metadata_json{};
+    std::string diagnostics_json{};
+};
+
+// Returns a posterior that passes Posterior::validate(). Throws
+// std::invalid_argument for samples == 0, chains == 0 or > samples,
+// rank == 0, rated_fraction outside [0, 1], negative sds, or
+// duplicate_items > items / 2.
+Posterior simulate_posterior(const SimulatedPosteriorOptions& options);
 
 
 }  // namespace credence

@@ -5,21 +5,22 @@
 
 #include <algorithm>
 #include <cmath>
+#include <memory>
 #include <numbers>
 #include <stdexcept>
 #include <vector>
 
 #include "model/evaluate.hpp"
 #include "model/random.hpp"
-#include "tests/support/posterior_builder.hpp"
+#include "model/simulate.hpp"
 
 using namespace credence;
-using credence::testing::blank_posterior;
-using credence::testing::random_posterior;
-using credence::testing::RandomPosteriorOptions;
-using credence::testing::shop_id;
 
 namespace {
+
+std::shared_ptr<const Posterior> simulated(const SimulatedPosteriorOptions& options) {
+    return std::make_shared<const Posterior>(simulate_posterior(options));
+}
 
 double direct_mean(const Posterior& p, uint32_t s, uint32_t u, uint32_t i) {
     double v = p.global_mean + double(p.user_bias_of(s, u)) + p.item_bias_of(s, i);
@@ -55,10 +56,10 @@ TEST_CASE("coverage and PIT are calibrated when ratings come from the predictive
     // N = 6,000 independent pairs the coverage is Binomial(N, L)/N; the
     // tolerance is 4 binomial standard errors sqrt(L(1-L)/N), fixed seeds.
     // The scale is wide so clipping never acts.
-    RandomPosteriorOptions opt;
+    SimulatedPosteriorOptions opt{.users = 30, .items = 40, .rank = 3, .samples = 25, .chains = 1, .seed = 606};
     opt.scale = {-100.0f, 100.0f, true};
     opt.jitter_sd = 0.4;
-    const auto post = random_posterior({30, 40, 3, 25, 1, true}, 606, opt);
+    const auto post = simulated(opt);
     const PredictionEngine engine(post);
     const size_t N = 6000;
     const auto test = predictive_draws(*post, N, 7);
@@ -95,7 +96,8 @@ TEST_CASE("metrics match a hand computation, with clipping only where documented
     // Two samples, rank 1, no biases, global mean 3, scale [1, 5]:
     // pair (0,0): m = {3 + 1*1, 3 + 2*1} = {4, 5}, mean 4.5
     // pair (1,1): m = {3 + 3*1, 3 + 3*1} = {6, 6}, mean 6 -> clipped to 5
-    Posterior p = blank_posterior({2, 2, 1, 2, 1, false});
+    Posterior p = simulate_posterior({.users = 2, .items = 2, .rank = 1, .samples = 2, .chains = 1,
+                                      .biases = false, .zero_values = true});
     p.global_mean = 3.0f;
     // user_factors [S][U][K]
     p.user_factors = {1, 3, 2, 3};
@@ -131,7 +133,7 @@ TEST_CASE("metrics match a hand computation, with clipping only where documented
 }
 
 TEST_CASE("pairs with unknown users or items are counted once and skipped") {
-    const auto post = random_posterior({5, 6, 2, 4, 1, true}, 3);
+    const auto post = simulated({.users = 5, .items = 6, .rank = 2, .samples = 4, .chains = 1, .seed = 3});
     RatingSet test;
     const uint32_t known_u = test.users.intern("cust-0002"), stranger = test.users.intern("cust-9999");
     const uint32_t known_i = test.items.intern("sku-0004"), novelty = test.items.intern("sku-new-tea");
@@ -152,7 +154,7 @@ TEST_CASE("pairs with unknown users or items are counted once and skipped") {
 }
 
 TEST_CASE("evaluation does not depend on the thread count") {
-    const auto post = random_posterior({20, 30, 4, 15, 1, true}, 9);
+    const auto post = simulated({.users = 20, .items = 30, .rank = 4, .samples = 15, .chains = 1, .seed = 9});
     const PredictionEngine engine(post);
     const auto test = predictive_draws(*post, 3000, 1);
     const int threads = omp_get_max_threads();
@@ -168,7 +170,7 @@ TEST_CASE("evaluation does not depend on the thread count") {
 }
 
 TEST_CASE("report serializes to JSON and rejects bad levels") {
-    const auto post = random_posterior({3, 3, 2, 4, 1, true}, 4);
+    const auto post = simulated({.users = 3, .items = 3, .rank = 2, .samples = 4, .chains = 1, .seed = 4});
     const PredictionEngine engine(post);
     RatingSet test;
     test.users.intern("cust-0001");
@@ -199,10 +201,10 @@ TEST_CASE("coverage curve and PIT histogram are calibrated on ratings simulated 
     // Binomial(N, L)/N. Tolerance: 4 binomial standard errors
     // sqrt(L(1-L)/N) at each of the 18 levels (two-sided 4-sigma: about 6e-5
     // per level), fixed seeds.
-    RandomPosteriorOptions opt;
+    SimulatedPosteriorOptions opt{.users = 30, .items = 40, .rank = 3, .samples = 25, .chains = 1, .seed = 707};
     opt.scale = {-100.0f, 100.0f, true};
     opt.jitter_sd = 0.4;
-    const auto post = random_posterior({30, 40, 3, 25, 1, true}, 707, opt);
+    const auto post = simulated(opt);
     const PredictionEngine engine(post);
     const size_t N = 6000;
     const auto report = evaluate(engine, predictive_draws(*post, N, 11), {});
@@ -239,7 +241,8 @@ namespace {
 // Sample means: customer 0: p0 4.5, p1 4.0, p2 {1.5, 5.5}, p3 3.0, p4 2.5, p5 2.0
 //               customer 1: p0 1.5, p1 2.0, p2 {4.5, 0.5}, p3 3.0, p4 3.5, p5 4.0
 std::shared_ptr<const Posterior> ranking_posterior() {
-    Posterior p = blank_posterior({2, 6, 1, 4, 1, false});
+    Posterior p = simulate_posterior({.users = 2, .items = 6, .rank = 1, .samples = 4, .chains = 1,
+                                      .biases = false, .zero_values = true});
     p.global_mean = 3.0f;
     const float item_value[6] = {1.5f, 1.0f, 0.0f, 0.0f, -0.5f, -1.0f};
     for (uint32_t s = 0; s < 4; ++s) {
@@ -273,8 +276,8 @@ TEST_CASE("ranking metrics per rank_by mode match a hand-worked example") {
     // NDCG figures computed by hand with python3 math.log2.
     const auto post = ranking_posterior();
     RatingSet test;
-    for (uint32_t u = 0; u < 2; ++u) test.users.intern(shop_id("cust", u));
-    for (uint32_t i = 0; i < 6; ++i) test.items.intern(shop_id("sku", i));
+    for (uint32_t u = 0; u < 2; ++u) test.users.intern(post->user_ids[u]);
+    for (uint32_t i = 0; i < 6; ++i) test.items.intern(post->item_ids[i]);
     test.ratings = {{0, 1, 5.0f}, {0, 3, 4.0f}, {0, 5, 2.0f}, {1, 5, 5.0f}, {1, 0, 1.0f}};
     EvaluationOptions options;
     options.ranking_k = 2;

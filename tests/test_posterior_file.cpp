@@ -22,8 +22,8 @@
 
 #include "model/error.hpp"
 #include "model/posterior_file.hpp"
+#include "model/simulate.hpp"
 #include "tests/support/paths.hpp"
-#include "tests/support/posterior_fixture.hpp"
 
 namespace fs = std::filesystem;
 using credence::Error;
@@ -31,8 +31,7 @@ using credence::FormatError;
 using credence::Posterior;
 using credence::read_posterior;
 using credence::write_posterior;
-using credence::testing::make_posterior;
-using credence::testing::PosteriorSpec;
+using credence::SimulatedPosteriorOptions;
 using credence::testing::scratch_dir;
 
 namespace {
@@ -159,20 +158,28 @@ void reseal(Bytes& file) {
     set_u64(file, 32, XXH3_64bits(covered.data(), covered.size()));
 }
 
-const PosteriorSpec kTiny{.users = 2, .items = 3, .rank = 1, .samples = 1, .chains = 1, .biases = true, .seed = 3};
+// A random posterior that fills every file section: goods-style ids (one
+// item id in six is non-ASCII UTF-8), four in ten pairs rated, and a declared
+// scale for even seeds only, so both flag values reach the file.
+Posterior make_posterior(SimulatedPosteriorOptions options) {
+    options.id_style = credence::SimulatedIdStyle::goods;
+    options.rated_fraction = 0.4;
+    options.scale.declared = options.seed % 2 == 0;
+    return credence::simulate_posterior(options);
+}
+
+const SimulatedPosteriorOptions kTiny{.users = 2, .items = 3, .rank = 1, .samples = 1, .chains = 1, .biases = true,
+                                      .seed = 3};
 
 }  // namespace
 
 TEST_CASE("round trip is exact for every field, with and without biases") {
     const auto dir = scratch_dir("posterior_file_roundtrip");
-    for (const PosteriorSpec& spec : {PosteriorSpec{.users = 9, .items = 13, .rank = 4, .samples = 6, .chains = 3,
-                                                    .biases = true, .seed = 11},
-                                      PosteriorSpec{.users = 9, .items = 13, .rank = 4, .samples = 6, .chains = 3,
-                                                    .biases = false, .seed = 12},
-                                      PosteriorSpec{.users = 1, .items = 1, .rank = 1, .samples = 1, .chains = 1,
-                                                    .biases = false, .seed = 13},
-                                      PosteriorSpec{.users = 0, .items = 5, .rank = 2, .samples = 2, .chains = 2,
-                                                    .biases = true, .seed = 14}}) {
+    using Spec = SimulatedPosteriorOptions;
+    for (const Spec& spec : {Spec{.users = 9, .items = 13, .rank = 4, .samples = 6, .chains = 3, .seed = 11},
+                             Spec{.users = 9, .items = 13, .rank = 4, .samples = 6, .chains = 3, .biases = false, .seed = 12},
+                             Spec{.users = 1, .items = 1, .rank = 1, .samples = 1, .chains = 1, .biases = false, .seed = 13},
+                             Spec{.users = 0, .items = 5, .rank = 2, .samples = 2, .chains = 2, .seed = 14}}) {
         INFO("users " << spec.users << " biases " << spec.biases);
         Posterior p = make_posterior(spec);
         const auto path = dir / "model.posterior";

@@ -6,20 +6,22 @@
 #include <algorithm>
 #include <cmath>
 #include <limits>
+#include <memory>
 #include <stdexcept>
 #include <vector>
 
 #include "model/predict.hpp"
 #include "model/random.hpp"
 #include "model/top_n.hpp"
-#include "tests/support/posterior_builder.hpp"
+#include "model/simulate.hpp"
 
 using namespace credence;
-using credence::testing::PosteriorShape;
-using credence::testing::random_posterior;
-using credence::testing::RandomPosteriorOptions;
 
 namespace {
+
+std::shared_ptr<const Posterior> simulated(const SimulatedPosteriorOptions& options) {
+    return std::make_shared<const Posterior>(simulate_posterior(options));
+}
 
 // m_s written out from the arrays, independently of the engine.
 std::vector<double> direct_means(const Posterior& p, uint32_t u, uint32_t i) {
@@ -88,9 +90,9 @@ bool same_ranking(const std::vector<Recommendation>& got, const std::vector<Rank
 }  // namespace
 
 TEST_CASE("predict matches a direct computation from the sample arrays") {
-    RandomPosteriorOptions opt;
+    SimulatedPosteriorOptions opt{.users = 15, .items = 25, .rank = 3, .samples = 40, .chains = 2, .seed = 11};
     opt.global_mean = 4.6f;  // pushes some means and bounds past the scale maximum 5
-    const auto post = random_posterior({15, 25, 3, 40, 2, true}, 11, opt);
+    const auto post = simulated(opt);
     const PredictionEngine engine(post);
     const auto& tau = post->noise_precision;
     int clipped_means = 0, clipped_uppers = 0;
@@ -137,16 +139,16 @@ TEST_CASE("recommend equals brute force for every ranking on random posteriors")
     int checked = 0;
     for (uint64_t seed = 1; seed <= 24; ++seed) {
         Rng shape_rng(seed);
-        PosteriorShape shape;
-        shape.users = 6;
-        shape.items = 40 + static_cast<uint32_t>(shape_rng.below(400));
-        shape.rank = 1 + static_cast<uint32_t>(shape_rng.below(8));
-        shape.samples = 5 + static_cast<uint32_t>(shape_rng.below(50));
-        shape.biases = seed % 3 != 0;
-        RandomPosteriorOptions opt;
+        SimulatedPosteriorOptions opt;
+        opt.users = 6;
+        opt.items = 40 + static_cast<uint32_t>(shape_rng.below(400));
+        opt.rank = 1 + static_cast<uint32_t>(shape_rng.below(8));
+        opt.samples = 5 + static_cast<uint32_t>(shape_rng.below(50));
+        opt.biases = seed % 3 != 0;
+        opt.seed = 1000 + seed;
         opt.duplicate_items = 5;
         opt.jitter_sd = 0.05 + 0.4 * shape_rng.uniform();
-        const auto post = random_posterior(shape, 1000 + seed, opt);
+        const auto post = simulated(opt);
         const PredictionEngine engine(post);
         const auto& tau = post->noise_precision;
         for (uint32_t user : {0u, 5u}) {
@@ -157,9 +159,9 @@ TEST_CASE("recommend equals brute force for every ranking on random posteriors")
                 o.level = variant < 2 ? 0.9 : 0.5;
                 if (variant == 1 || variant == 2) {
                     std::vector<uint32_t> c;
-                    for (int j = 0; j < 30; ++j) c.push_back(static_cast<uint32_t>(shape_rng.below(shape.items)));
+                    for (int j = 0; j < 30; ++j) c.push_back(static_cast<uint32_t>(shape_rng.below(opt.items)));
                     c.push_back(c.front());
-                    c.push_back(shape.items - 1);  // a duplicated item
+                    c.push_back(opt.items - 1);  // a duplicated item
                     c.push_back(4);                // its twin
                     o.candidates = c;
                 }
@@ -192,7 +194,7 @@ TEST_CASE("recommend equals brute force for every ranking on random posteriors")
                 o.draw_seed = seed * 31 + variant;
                 const auto drawn = engine.recommend(user, o);
                 bool matched = false;
-                for (uint32_t s = 0; s < shape.samples && !matched; ++s)
+                for (uint32_t s = 0; s < opt.samples && !matched; ++s)
                     matched = same_ranking(drawn, brute_force(*post, user, o, [s](const std::vector<double>& m) {
                                                return m[s];
                                            }));
@@ -206,7 +208,7 @@ TEST_CASE("recommend equals brute force for every ranking on random posteriors")
 
 TEST_CASE("recommend stays exact on a wide catalogue where pruning matters") {
     // 3,000 items and 60 samples: the realistic case the pruning is for.
-    const auto post = random_posterior({3, 3000, 8, 60, 2, true}, 5150);
+    const auto post = simulated({.users = 3, .items = 3000, .rank = 8, .samples = 60, .chains = 2, .seed = 5150});
     const PredictionEngine engine(post);
     const auto& tau = post->noise_precision;
     for (RankBy by : {RankBy::mean, RankBy::lower, RankBy::upper}) {
@@ -223,10 +225,10 @@ TEST_CASE("recommend stays exact on a wide catalogue where pruning matters") {
 TEST_CASE("ties break by the lower item index") {
     // Two items with identical factors and biases in every sample score
     // identically under every ranking; the lower index must come first.
-    RandomPosteriorOptions opt;
+    SimulatedPosteriorOptions opt{.users = 2, .items = 40, .rank = 3, .samples = 20, .chains = 1, .seed = 3};
     opt.duplicate_items = 10;  // items 30..39 copy items 0..9
     opt.rated_fraction = 0.0;
-    const auto post = random_posterior({2, 40, 3, 20, 1, true}, 3, opt);
+    const auto post = simulated(opt);
     const PredictionEngine engine(post);
     for (RankBy by : {RankBy::mean, RankBy::lower, RankBy::upper, RankBy::draw}) {
         RecommendOptions o;
@@ -242,7 +244,8 @@ TEST_CASE("ties break by the lower item index") {
 }
 
 TEST_CASE("rated items are excluded only when asked") {
-    const auto post = random_posterior({4, 60, 3, 10, 1, true}, 8, {.rated_fraction = 0.5});
+    const auto post = simulated({.users = 4, .items = 60, .rank = 3, .samples = 10, .chains = 1,
+                                 .seed = 8, .rated_fraction = 0.5});
     const PredictionEngine engine(post);
     RecommendOptions o;
     o.n = 60;
@@ -261,7 +264,8 @@ TEST_CASE("rated items are excluded only when asked") {
 
 TEST_CASE("a visitor with a known user's factors gets that user's recommendations") {
     for (bool biases : {true, false}) {
-        const auto post = random_posterior({5, 120, 4, 25, 1, biases}, 21);
+        const auto post = simulated({.users = 5, .items = 120, .rank = 4, .samples = 25, .chains = 1,
+                                     .biases = biases, .seed = 21});
         const PredictionEngine engine(post);
         const uint32_t u = 3, S = post->num_samples, K = post->rank;
         std::vector<float> factors, bias;
@@ -293,9 +297,9 @@ TEST_CASE("draw ranks items first as often as the posterior says they are better
     // Thompson sampling over the mean: item a comes first in the proportion of
     // samples where m_a,s beats m_b,s (ties to the lower index). N = 20,000
     // seeds; tolerance 5 binomial standard errors sqrt(q(1-q)/N), fixed seeds.
-    RandomPosteriorOptions opt;
+    SimulatedPosteriorOptions opt{.users = 3, .items = 30, .rank = 3, .samples = 200, .chains = 2, .seed = 404};
     opt.jitter_sd = 0.6;  // samples disagree a lot
-    const auto post = random_posterior({3, 30, 3, 200, 2, true}, 404, opt);
+    const auto post = simulated(opt);
     const PredictionEngine engine(post);
     const uint32_t user = 1;
     // Pick the pair whose posterior probability is nearest 1/2.
@@ -326,7 +330,7 @@ TEST_CASE("draw ranks items first as often as the posterior says they are better
 }
 
 TEST_CASE("recommend validates its options") {
-    const auto post = random_posterior({2, 10, 2, 5, 1, true}, 1);
+    const auto post = simulated({.users = 2, .items = 10, .rank = 2, .samples = 5, .chains = 1, .seed = 1});
     const PredictionEngine engine(post);
     RecommendOptions o;
     o.n = 0;
@@ -400,16 +404,18 @@ TEST_CASE("a batch answers every request exactly as recommend does alone") {
     // with and without biases; the batch mixes every ranking, levels, n,
     // dense and sparse candidate lists, exclusion on and off, and bad
     // requests, which must fail alone with recommend()'s exception.
-    for (const PosteriorShape shape : {PosteriorShape{9, 1300, 16, 24, 2, true}, PosteriorShape{9, 700, 5, 31, 1, false}}) {
-        RandomPosteriorOptions opt;
+    using Spec = SimulatedPosteriorOptions;
+    for (Spec opt : {Spec{.users = 9, .items = 1300, .rank = 16, .samples = 24, .chains = 2},
+                     Spec{.users = 9, .items = 700, .rank = 5, .samples = 31, .chains = 1, .biases = false}}) {
+        opt.seed = 777 + opt.rank;
         opt.duplicate_items = 3;
-        const auto post = random_posterior(shape, 777 + shape.rank, opt);
+        const auto post = simulated(opt);
         const PredictionEngine engine(post);
-        Rng rng(shape.rank);
+        Rng rng(opt.rank);
         std::vector<RecommendRequest> requests;
         for (uint32_t k = 0; k < 40; ++k) {
             RecommendRequest r;
-            r.user = k % shape.users;
+            r.user = k % opt.users;
             r.options.rank_by = std::vector<RankBy>{RankBy::mean, RankBy::lower, RankBy::upper, RankBy::draw}[k % 4];
             r.options.n = 1 + static_cast<uint32_t>(rng.below(30));
             r.options.level = 0.5 + 0.45 * rng.uniform();
@@ -417,11 +423,11 @@ TEST_CASE("a batch answers every request exactly as recommend does alone") {
             r.options.draw_seed = k;
             if (k % 5 == 1) {  // sparse: a few candidates
                 std::vector<uint32_t> c;
-                for (int j = 0; j < 12; ++j) c.push_back(static_cast<uint32_t>(rng.below(shape.items)));
+                for (int j = 0; j < 12; ++j) c.push_back(static_cast<uint32_t>(rng.below(opt.items)));
                 r.options.candidates = c;
             } else if (k % 5 == 2) {  // dense: most of the catalogue
                 std::vector<uint32_t> c;
-                for (uint32_t i = 0; i < shape.items; ++i)
+                for (uint32_t i = 0; i < opt.items; ++i)
                     if (i % 4 != 1) c.push_back(i);
                 r.options.candidates = c;
             }
@@ -429,13 +435,13 @@ TEST_CASE("a batch answers every request exactly as recommend does alone") {
         }
         requests[7].options.n = 0;
         requests[13].options.level = 1.5;
-        requests[21].user = shape.users;  // beyond the model
-        requests[22].options.candidates = std::vector<uint32_t>{0, shape.items};
+        requests[21].user = opt.users;  // beyond the model
+        requests[22].options.candidates = std::vector<uint32_t>{0, opt.items};
 
         const auto answers = engine.recommend_batch(requests);
         REQUIRE(answers.size() == requests.size());
         for (size_t k = 0; k < requests.size(); ++k) {
-            INFO("rank " << shape.rank << " request " << k);
+            INFO("rank " << opt.rank << " request " << k);
             const auto& r = requests[k];
             if (k == 7 || k == 13 || k == 22) {
                 CHECK_THROWS_AS(engine.recommend(r.user, r.options), std::invalid_argument);
@@ -460,7 +466,7 @@ TEST_CASE("a batch answers every request exactly as recommend does alone") {
 }
 
 TEST_CASE("a batch of one and an empty batch") {
-    const auto post = random_posterior({3, 200, 16, 10, 1, true}, 99);
+    const auto post = simulated({.users = 3, .items = 200, .rank = 16, .samples = 10, .chains = 1, .seed = 99});
     const PredictionEngine engine(post);
     CHECK(engine.recommend_batch({}).empty());
     RecommendRequest r;
@@ -479,9 +485,10 @@ TEST_CASE("screened summaries stay within their stated slack of the reference me
     // wide one where the CPU has it), 12 the four-lane one, 5 the per-sample
     // path; large factor scales make the rounding visible.
     for (const uint32_t rank : {16u, 12u, 8u, 5u}) {
-        RandomPosteriorOptions opt;
+        SimulatedPosteriorOptions opt{.users = 4, .items = 900, .rank = rank, .samples = 37, .chains = 1,
+                                      .seed = 300 + rank};
         opt.factor_sd = 3.0;
-        const auto post = random_posterior({4, 900, rank, 37, 1, true}, 300 + rank, opt);
+        const auto post = simulated(opt);
         const Posterior& p = *post;
         const auto norms = max_item_norms(p);
         std::vector<double> shift(p.num_samples);

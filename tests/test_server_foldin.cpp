@@ -6,8 +6,9 @@
 #include <cmath>
 #include <vector>
 
-#include "bench/synthetic_posterior.hpp"
 #include "model/predict.hpp"
+#include "model/random.hpp"
+#include "model/simulate.hpp"
 #include "server/foldin.hpp"
 #include "server/model_slot.hpp"
 #include "server/population.hpp"
@@ -19,14 +20,7 @@ namespace {
 
 // A one-sample, rank-1 model with chosen numbers.
 Posterior tiny(bool biases) {
-    bench::SyntheticSpec spec;
-    spec.users = 3;
-    spec.items = 4;
-    spec.rank = 1;
-    spec.samples = 1;
-    spec.chains = 1;
-    spec.biases = biases;
-    Posterior p = bench::synthetic_posterior(spec);
+    Posterior p = simulate_posterior({.users = 3, .items = 4, .rank = 1, .samples = 1, .chains = 1, .biases = biases});
     p.global_mean = 3.0f;
     p.item_factors = {0.8f, -0.5f, 1.2f, 0.1f};
     if (biases) {

@@ -11,9 +11,9 @@
 #include <set>
 #include <sstream>
 
-#include "bench/synthetic_posterior.hpp"
 #include "model/posterior_file.hpp"
 #include "model/predict.hpp"
+#include "model/simulate.hpp"
 #include "server/app.hpp"
 #include "server/foldin.hpp"
 #include "tests/support/paths.hpp"
@@ -43,13 +43,10 @@ struct Fixture {
 
     Fixture() {
         dir = scratch_dir("server_http");
-        bench::SyntheticSpec spec;
-        spec.users = 40;
-        spec.items = 120;
-        spec.rank = 4;
-        spec.samples = 16;
+        SimulatedPosteriorOptions spec{.users = 40, .items = 120, .rank = 4, .samples = 16, .chains = 2};
         spec.rated_fraction = 0.1;
-        Posterior p = bench::synthetic_posterior(spec);
+        spec.id_digits = 5;  // the requests below name "cust-00001", "sku-00010", ...
+        Posterior p = simulate_posterior(spec);
         p.user_ids[3] = kOddUser;
         p.item_ids[5] = kOddItem;
         p.item_ids[6] = kSimilarItem;
@@ -57,7 +54,7 @@ struct Fixture {
         write_posterior(p, model_path.string());
         spec.seed = 2;
         other_path = dir / "shop-next.posterior";
-        write_posterior(bench::synthetic_posterior(spec), other_path.string());
+        write_posterior(simulate_posterior(spec), other_path.string());
         corrupt_path = dir / "broken.posterior";
         std::ofstream(corrupt_path) << "not a posterior file";
         posterior = std::make_shared<const Posterior>(read_posterior(model_path.string()));

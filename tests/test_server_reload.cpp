@@ -14,9 +14,9 @@
 
 #include <nlohmann/json.hpp>
 
-#include "bench/synthetic_posterior.hpp"
 #include "model/posterior_file.hpp"
 #include "model/predict.hpp"
+#include "model/simulate.hpp"
 #include "server/model_slot.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/server_process.hpp"
@@ -30,13 +30,9 @@ namespace {
 
 const std::string kToken = "reload-token-93be7a";
 
-bench::SyntheticSpec shop_spec(uint64_t seed) {
-    bench::SyntheticSpec spec;
-    spec.users = 30;
-    spec.items = 400;
-    spec.rank = 6;
-    spec.samples = 12;
-    spec.seed = seed;
+SimulatedPosteriorOptions shop_spec(uint64_t seed) {
+    SimulatedPosteriorOptions spec{.users = 30, .items = 400, .rank = 6, .samples = 12, .chains = 2, .seed = seed};
+    spec.rated_fraction = 0.05;
     return spec;
 }
 
@@ -50,16 +46,17 @@ struct Expected {
 TEST_CASE("reload under load: no failed request, every answer from one whole model") {
     const fs::path dir = scratch_dir("server_reload");
     const fs::path a_path = dir / "spring.posterior", b_path = dir / "summer.posterior";
-    write_posterior(bench::synthetic_posterior(shop_spec(11)), a_path.string());
-    write_posterior(bench::synthetic_posterior(shop_spec(12)), b_path.string());
+    const Posterior model_a = simulate_posterior(shop_spec(11));  // model b has the same ids
+    write_posterior(model_a, a_path.string());
+    write_posterior(simulate_posterior(shop_spec(12)), b_path.string());
 
     // The batch every client sends, and each model's offline answers to it.
     json pairs = json::array();
     std::vector<std::pair<uint32_t, uint32_t>> index;
     for (uint32_t k = 0; k < 8; ++k) {
         index.emplace_back((k * 11) % 30, (k * 47 + 3) % 400);
-        pairs.push_back({{"user", bench::synthetic_id("cust", index.back().first)},
-                         {"item", bench::synthetic_id("sku", index.back().second)}});
+        pairs.push_back({{"user", model_a.user_ids[index.back().first]},
+                         {"item", model_a.item_ids[index.back().second]}});
     }
     const std::string body = json{{"pairs", pairs}}.dump();
     std::map<std::string, Expected> expected;
@@ -142,12 +139,12 @@ TEST_CASE("reload under load: no failed request, every answer from one whole mod
 TEST_CASE("SIGHUP re-reads the model file; a bad file keeps the old model") {
     const fs::path dir = scratch_dir("server_sighup");
     const fs::path path = dir / "shop.posterior";
-    write_posterior(bench::synthetic_posterior(shop_spec(21)), path.string());
+    write_posterior(simulate_posterior(shop_spec(21)), path.string());
     ServerProcess server(dir, path, "access_log = false\n");
     auto c = server.client();
     const std::string first = json::parse(c->Get("/v1/model")->body)["model"];
 
-    const Posterior next = bench::synthetic_posterior(shop_spec(22));
+    const Posterior next = simulate_posterior(shop_spec(22));
     write_posterior(next, path.string());
     server.signal(SIGHUP);
     const std::string want = server::posterior_fingerprint(next);

@@ -1,10 +1,12 @@
 // Tests for model/simulate: synthetic data follows its options and seed, and
-// the holdout split partitions the ratings.
+// the holdout split partitions the ratings; simulated posteriors are valid and
+// follow their options.
 #include <catch2/catch.hpp>
 
 #include <algorithm>
 #include <cmath>
 #include <set>
+#include <stdexcept>
 #include <tuple>
 
 #include "model/simulate.hpp"
@@ -86,4 +88,57 @@ TEST_CASE("holdout split partitions the ratings and repeats for a seed") {
     CHECK(same);
     CHECK(differs);
     CHECK_THROWS_AS(split_holdout(d.ratings, 1.0, 1), std::invalid_argument);
+}
+
+TEST_CASE("simulated posterior is valid, repeats for a seed and honours its options") {
+    SimulatedPosteriorOptions o{.users = 200, .items = 100, .rank = 3, .samples = 6, .chains = 3, .seed = 5};
+    o.duplicate_items = 4;
+    o.id_digits = 5;
+    const Posterior a = simulate_posterior(o);
+    CHECK_NOTHROW(a.validate());
+    const Posterior b = simulate_posterior(o);
+    CHECK(a.user_factors == b.user_factors);
+    CHECK(a.item_bias == b.item_bias);
+    CHECK(a.user_lambda == b.user_lambda);
+    CHECK(a.rated_items == b.rated_items);
+    o.seed = 6;
+    CHECK(simulate_posterior(o).item_factors != a.item_factors);
+
+    CHECK(a.user_ids[7] == "cust-00007");
+    CHECK(a.item_ids[42] == "sku-00042");
+    CHECK(a.sample_chain == std::vector<uint32_t>{0, 0, 1, 1, 2, 2});
+    // The last four items copy items 0..3 exactly in every sample.
+    for (uint32_t s = 0; s < a.num_samples; ++s)
+        for (uint32_t j = 0; j < 4; ++j) {
+            const auto from = a.item_factor(s, j), to = a.item_factor(s, 96 + j);
+            CHECK(std::equal(from.begin(), from.end(), to.begin()));
+            CHECK(a.item_bias_of(s, j) == a.item_bias_of(s, 96 + j));
+        }
+    // Each of the 20,000 pairs is rated with probability 0.2: the observed
+    // fraction has binomial sd sqrt(0.2 * 0.8 / 20000) = 0.0028; tolerance 4 sd.
+    CHECK(double(a.rated_items.size()) / 20000.0 == Approx(0.2).margin(0.0113));
+}
+
+TEST_CASE("simulated posterior: zero values, goods ids and bad options") {
+    SimulatedPosteriorOptions o{.users = 3, .items = 7, .rank = 2, .samples = 4, .chains = 2, .biases = false};
+    o.zero_values = true;
+    o.id_style = SimulatedIdStyle::goods;
+    const Posterior p = simulate_posterior(o);
+    CHECK(std::all_of(p.item_factors.begin(), p.item_factors.end(), [](float v) { return v == 0.0f; }));
+    CHECK(p.noise_precision == std::vector<float>(4, 1.0f));
+    CHECK(p.user_lambda[0] == 1.0f);
+    CHECK(p.user_lambda[1] == 0.0f);
+    CHECK(p.rated_items.empty());
+    CHECK(p.user_bias.empty());
+    CHECK(p.user_ids[0] == "customer-1000");
+    CHECK(p.item_ids[5] == "\xc3\xb6ko-mug-5");
+
+    SimulatedPosteriorOptions bad{.items = 10};
+    bad.duplicate_items = 6;
+    CHECK_THROWS_AS(simulate_posterior(bad), std::invalid_argument);
+    bad = {.samples = 2, .chains = 3};
+    CHECK_THROWS_AS(simulate_posterior(bad), std::invalid_argument);
+    bad = {};
+    bad.rated_fraction = 1.5;
+    CHECK_THROWS_AS(simulate_posterior(bad), std::invalid_argument);
 }

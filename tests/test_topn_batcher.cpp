@@ -3,19 +3,23 @@
 #include <catch2/catch.hpp>
 
 #include <atomic>
+#include <memory>
 #include <stdexcept>
 #include <thread>
 #include <vector>
 
 #include "model/predict.hpp"
 #include "server/topn_batcher.hpp"
-#include "tests/support/posterior_builder.hpp"
+#include "model/simulate.hpp"
 
 using namespace credence;
 using credence::server::TopNBatcher;
-using credence::testing::random_posterior;
 
 namespace {
+
+std::shared_ptr<const Posterior> simulated(const SimulatedPosteriorOptions& options) {
+    return std::make_shared<const Posterior>(simulate_posterior(options));
+}
 
 bool same_answer(const std::vector<Recommendation>& a, const std::vector<Recommendation>& b) {
     if (a.size() != b.size()) return false;
@@ -42,8 +46,8 @@ TEST_CASE("concurrent callers get the engine's own answers, from the right engin
     // Two models served at once through one batcher with a single lane, so
     // callers queue behind each other and share passes; every answer must be
     // bit-identical to a direct call on the engine it asked.
-    const auto post_a = random_posterior({12, 900, 16, 20, 2, true}, 41);
-    const auto post_b = random_posterior({12, 900, 16, 20, 2, true}, 42);
+    const auto post_a = simulated({.users = 12, .items = 900, .rank = 16, .samples = 20, .chains = 2, .seed = 41});
+    const auto post_b = simulated({.users = 12, .items = 900, .rank = 16, .samples = 20, .chains = 2, .seed = 42});
     const PredictionEngine engine_a(post_a), engine_b(post_b);
     TopNBatcher batcher(1, 4);
 
@@ -74,7 +78,7 @@ TEST_CASE("concurrent callers get the engine's own answers, from the right engin
 }
 
 TEST_CASE("a bad request fails alone and the others still get their answers") {
-    const auto post = random_posterior({6, 400, 8, 12, 1, true}, 7);
+    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 7});
     const PredictionEngine engine(post);
     TopNBatcher batcher(1, 8);
     std::atomic<int> wrong{0};
