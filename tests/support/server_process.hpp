@@ -1,10 +1,8 @@
 // Runs the real HTTP server in a child process on an ephemeral loopback port
 // for tests, and talks to it with httplib::Client.
 //
-// The child is `credence serve --config FILE` when the built program has the
-// serve subcommand; otherwise (while the command line is being built) the
-// child is a fork of the test that calls run_server() directly, with a
-// visible NOTICE. Either way requests cross a real socket to another process.
+// The child is the built program, `credence serve --config FILE`, so the
+// tests exercise exactly what a shop runs; requests cross a real socket.
 // The config file written for the child sets port 0; the harness reads the
 // "listening on http://127.0.0.1:PORT" line from the child's stdout.
 #pragma once
@@ -28,18 +26,9 @@
 
 #include <httplib.h>
 
-#include "server/server.hpp"
 #include "tests/support/paths.hpp"
 
 namespace credence::testing {
-
-inline bool cli_has_serve() {
-    static const bool has = [] {
-        const std::string cmd = "'" + credence_binary().string() + "' serve --help >/dev/null 2>&1";
-        return std::system(cmd.c_str()) == 0;
-    }();
-    return has;
-}
 
 class ServerProcess {
 public:
@@ -56,10 +45,6 @@ public:
         }
         int out[2];
         if (pipe(out) != 0) throw std::runtime_error("pipe failed");
-        const bool exec_cli = cli_has_serve();
-        if (!exec_cli)
-            std::cerr << "NOTICE: '" << credence_binary().string()
-                      << " serve' is not available yet; running the server in a forked child instead\n";
         pid_ = fork();
         if (pid_ < 0) throw std::runtime_error("fork failed");
         if (pid_ == 0) {
@@ -68,19 +53,9 @@ public:
             if (log_fd >= 0) dup2(log_fd, STDERR_FILENO);
             close(out[0]);
             close(out[1]);
-            if (exec_cli) {
-                const std::string bin = credence_binary().string(), cfg = config_.string();
-                execl(bin.c_str(), bin.c_str(), "serve", "--config", cfg.c_str(), static_cast<char*>(nullptr));
-                _exit(127);
-            }
-            int rc = 1;
-            try {
-                rc = server::run_server(server::load_serve_config(config_.string()));
-            } catch (const std::exception& e) {
-                std::cerr << e.what() << "\n";
-            }
-            std::cout.flush();
-            _exit(rc);
+            const std::string bin = credence_binary().string(), cfg = config_.string();
+            execl(bin.c_str(), bin.c_str(), "serve", "--config", cfg.c_str(), static_cast<char*>(nullptr));
+            _exit(127);
         }
         close(out[1]);
         stdout_fd_ = out[0];
