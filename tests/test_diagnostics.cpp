@@ -209,7 +209,7 @@ TEST_CASE("degenerate draws give the documented values, never a crash") {
 }
 
 TEST_CASE("matches a numpy/scipy re-implementation of the paper's formulas") {
-    // Outside reference: an independent, direct transcription in numpy of the
+    // Outside reference: an independent, direct re-implementation in numpy of the
     // definitions in Vehtari et al. (2021), Sec. 3-4 (ranks by
     // scipy.stats.rankdata, Phi^-1 by scipy.stats.norm.ppf, autocovariance by
     // a direct sum, rho_t with explicit s_m^2 rho_{t,m}).
