@@ -59,7 +59,8 @@ ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base) 
 
     static const std::set<std::string> known = {
         "model", "host", "port", "threads", "body_limit_bytes", "read_timeout_ms", "write_timeout_ms",
-        "admin_token_file", "admin_token_env", "model_dir", "log_ids", "access_log", "max_n", "max_batch"};
+        "admin_token_file", "admin_token_env", "model_dir", "log_ids", "access_log", "max_n", "max_batch",
+        "topn_lanes", "topn_batch_max"};
     for (const auto& [key, value] : *t)
         if (!known.count(std::string(key.str())))
             config_error(toml_path, std::string(key.str()), "is not a known option (see config/credence.toml)");
@@ -78,6 +79,8 @@ ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base) 
     read_bool(*t, toml_path, "access_log", base.access_log);
     read_uint(*t, toml_path, "max_n", base.max_n, 1);
     read_uint(*t, toml_path, "max_batch", base.max_batch, 1);
+    read_uint(*t, toml_path, "topn_lanes", base.topn_lanes, 0);
+    read_uint(*t, toml_path, "topn_batch_max", base.topn_batch_max, 1);
     return base;
 }
 
@@ -88,6 +91,7 @@ void validate_serve_options(const ServeOptions& o) {
     if (o.read_timeout_ms == 0 || o.write_timeout_ms == 0) throw Error("serve: timeouts must be at least 1 ms");
     if (o.max_n == 0) throw Error("serve: max_n must be at least 1");
     if (o.max_batch == 0) throw Error("serve: max_batch must be at least 1");
+    if (o.topn_batch_max == 0) throw Error("serve: topn_batch_max must be at least 1");
 }
 
 std::string resolve_admin_token(const ServeOptions& o) {

@@ -14,10 +14,11 @@ namespace credence::server {
 
 namespace {
 
-// One for the process: requests share passes only when they are for the
-// same engine, so servers and models in one process never mix.
-TopNBatcher& known_user_batcher() {
-    static TopNBatcher batcher;
+// One for the process, sized by the first server's options (a process runs
+// one server): requests share passes only when they are for the same
+// engine, so models never mix.
+TopNBatcher& known_user_batcher(const ServeOptions& options) {
+    static TopNBatcher batcher(options.topn_lanes, options.topn_batch_max);
     return batcher;
 }
 
@@ -67,7 +68,7 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
             candidates.push_back(item_index(*model, req.get_param_value("items", k)));
         options.candidates = std::move(candidates);
     }
-    const auto recs = known_user_batcher().recommend(model->engine, *user, options);
+    const auto recs = known_user_batcher(ctx.options).recommend(model->engine, *user, options);
     nlohmann::json body = {{"model", model->fingerprint},
                            {"user", user_id},
                            {"rank_by", rank_by_name(options.rank_by)},

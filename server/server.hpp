@@ -24,6 +24,8 @@ struct ServeOptions {
     bool access_log = true;                      // one log line per request
     uint32_t max_n = 1000;                       // largest n for top-N and item lists
     uint32_t max_batch = 10000;                  // largest prediction batch / fold-in rating count
+    uint32_t topn_lanes = 0;                     // top-N passes running at once; 0 = one per hardware thread
+    uint32_t topn_batch_max = 16;                // most top-N requests sharing one pass over the item samples
 };
 
 // Reads the [serve] table of a TOML file over `base` (keys absent from the

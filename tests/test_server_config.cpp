@@ -38,6 +38,8 @@ TEST_CASE("the shipped config documents every option with the built-in defaults"
     CHECK(loaded.log_ids == defaults.log_ids);
     CHECK(loaded.max_n == defaults.max_n);
     CHECK(loaded.max_batch == defaults.max_batch);
+    CHECK(loaded.topn_lanes == defaults.topn_lanes);
+    CHECK(loaded.topn_batch_max == defaults.topn_batch_max);
     // Every key is preceded by a comment line.
     std::ifstream in(path);
     std::string line, previous;
@@ -50,7 +52,7 @@ TEST_CASE("the shipped config documents every option with the built-in defaults"
         }
         previous = line;
     }
-    CHECK(keys == 14);
+    CHECK(keys == 16);  // one per ServeOptions field
 }
 
 TEST_CASE("config values override defaults; mistakes name the key") {
