@@ -23,6 +23,9 @@ struct Prediction {
     double sd = 0.0;     // mixture sd (unclipped predictive spread)
     double lower = 0.0;  // (1-level)/2 quantile, clipped to the scale
     double upper = 0.0;  // (1+level)/2 quantile, clipped to the scale
+    // Exact (bitwise for finite values) equality: batched and unbatched
+    // answers must agree to the last bit.
+    bool operator==(const Prediction&) const = default;
 };
 
 enum class RankBy {
@@ -45,6 +48,7 @@ struct Recommendation {
     uint32_t item = 0;
     double score = 0.0;  // the value ranked by, before clipping to the scale
     Prediction prediction;
+    bool operator==(const Recommendation&) const = default;
 };
 
 // One known user's request in a batch, and its answer: the items, or the

@@ -387,16 +387,6 @@ TEST_CASE("top-n selection equals a full sort and skips hopeless candidates") {
 
 namespace {
 
-bool same_answer(const std::vector<Recommendation>& a, const std::vector<Recommendation>& b) {
-    if (a.size() != b.size()) return false;
-    for (size_t j = 0; j < a.size(); ++j) {
-        if (a[j].item != b[j].item || a[j].score != b[j].score) return false;
-        const Prediction &x = a[j].prediction, &y = b[j].prediction;
-        if (x.mean != y.mean || x.sd != y.sd || x.lower != y.lower || x.upper != y.upper) return false;
-    }
-    return true;
-}
-
 }  // namespace
 
 TEST_CASE("a batch answers every request exactly as recommend does alone") {
@@ -454,7 +444,7 @@ TEST_CASE("a batch answers every request exactly as recommend does alone") {
             } else {
                 REQUIRE_FALSE(answers[k].error);
                 CHECK(!answers[k].items.empty());
-                CHECK(same_answer(answers[k].items, engine.recommend(r.user, r.options)));
+                CHECK((answers[k].items == engine.recommend(r.user, r.options)));
             }
         }
         // And one batched mean ranking against brute force, independently of the engine.
@@ -474,7 +464,7 @@ TEST_CASE("a batch of one and an empty batch") {
     r.options.rank_by = RankBy::upper;
     const auto one = engine.recommend_batch(std::vector<RecommendRequest>{r});
     REQUIRE(one.size() == 1);
-    CHECK(same_answer(one[0].items, engine.recommend(2, r.options)));
+    CHECK((one[0].items == engine.recommend(2, r.options)));
 }
 
 #include "model/screening.hpp"
