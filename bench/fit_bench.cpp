@@ -2,7 +2,7 @@
 //
 //   fit_bench speed [--users N] [--items N] [--per-user N] [--ranks 8,16,32]
 //                   [--threads 1,2] [--sweeps N] [--warmup N] [--gemm-size N] [--no-biases]
-//       Times Gibbs sweeps on synthetic data (model/simulate.hpp) and, in the
+//       Times Gibbs sweeps on synthetic data (tests/support/simulate.hpp) and, in the
 //       same process, Eigen's dense double matrix multiply at each thread
 //       count. Prints one table row per (rank, threads) and one per rank with
 //       the thread speed-up. "cpu s" is the process CPU time of a sweep (all
@@ -34,10 +34,10 @@
 
 #include <Eigen/Dense>
 
-#include "model/gibbs_sweep.hpp"
-#include "model/sampler.hpp"
-#include "model/simulate.hpp"
-#include "model/sparse.hpp"
+#include "model/fit/gibbs_sweep.hpp"
+#include "model/fit/sampler.hpp"
+#include "tests/support/simulate.hpp"
+#include "model/fit/sparse.hpp"
 
 namespace {
 
@@ -252,7 +252,7 @@ int run_csv(const Args& args) {
     return 0;
 }
 
-// Bytes of the kept samples as the Posterior holds them (model/posterior.hpp):
+// Bytes of the kept samples as the Posterior holds them (model/posterior/posterior.hpp):
 // factors and biases of every row, plus tau, mu, Lambda and bias precisions.
 int run_budget(const Args& args) {
     const uint64_t R = args.number("ratings", 0), U = args.number("users", 0), I = args.number("items", 0);

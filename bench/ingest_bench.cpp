@@ -9,7 +9,7 @@
 #include <string>
 
 #include "model/error.hpp"
-#include "model/ingest.hpp"
+#include "model/data/ingest.hpp"
 
 namespace {
 

@@ -9,8 +9,8 @@
 #include <string>
 #include <vector>
 
-#include "model/posterior_file.hpp"
-#include "model/simulate.hpp"
+#include "model/posterior/posterior_file.hpp"
+#include "tests/support/simulate.hpp"
 #include "server/server.hpp"
 
 namespace {

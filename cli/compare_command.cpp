@@ -1,5 +1,5 @@
 // credence compare: fit several ranks (optionally with and without biases)
-// on held-out splits of one ratings export and recommend one (model/compare.hpp).
+// on held-out splits of one ratings export and recommend one (model/assess/compare.hpp).
 #include <iostream>
 #include <sstream>
 
@@ -8,9 +8,9 @@
 
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
-#include "model/compare.hpp"
+#include "model/assess/compare.hpp"
 #include "model/error.hpp"
-#include "model/ingest.hpp"
+#include "model/data/ingest.hpp"
 
 namespace credence::cli {
 

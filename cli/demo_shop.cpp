@@ -10,7 +10,7 @@
 #include <fmt/format.h>
 
 #include "model/error.hpp"
-#include "model/random.hpp"
+#include "model/math/random.hpp"
 
 namespace credence::cli {
 

@@ -7,10 +7,10 @@
 
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
-#include "model/evaluate.hpp"
-#include "model/ingest.hpp"
-#include "model/posterior_file.hpp"
-#include "model/predict.hpp"
+#include "model/assess/evaluate.hpp"
+#include "model/data/ingest.hpp"
+#include "model/posterior/posterior_file.hpp"
+#include "model/predict/predict.hpp"
 
 namespace credence::cli {
 

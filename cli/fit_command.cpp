@@ -10,12 +10,12 @@
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
 #include "cli/progress.hpp"
-#include "model/convergence_summary.hpp"
+#include "model/fit/convergence_summary.hpp"
 #include "model/error.hpp"
-#include "model/holdout.hpp"
-#include "model/ingest.hpp"
-#include "model/posterior_file.hpp"
-#include "model/sampler.hpp"
+#include "model/data/holdout.hpp"
+#include "model/data/ingest.hpp"
+#include "model/posterior/posterior_file.hpp"
+#include "model/fit/sampler.hpp"
 
 namespace credence::cli {
 

@@ -4,7 +4,7 @@
 #include <CLI/CLI.hpp>
 #include <string>
 
-#include "model/ingest.hpp"
+#include "model/data/ingest.hpp"
 
 namespace credence::cli {
 

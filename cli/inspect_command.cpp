@@ -3,7 +3,7 @@
 #include <memory>
 
 #include "cli/commands.hpp"
-#include "model/posterior_file.hpp"
+#include "model/posterior/posterior_file.hpp"
 
 namespace credence::cli {
 

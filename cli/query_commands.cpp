@@ -9,8 +9,8 @@
 
 #include "cli/commands.hpp"
 #include "model/error.hpp"
-#include "model/posterior_file.hpp"
-#include "model/predict.hpp"
+#include "model/posterior/posterior_file.hpp"
+#include "model/predict/predict.hpp"
 
 namespace credence::cli {
 

@@ -8,12 +8,12 @@
 #include <nlohmann/json.hpp>
 
 #include "cli/commands.hpp"
-#include "model/compare.hpp"
+#include "model/assess/compare.hpp"
 #include "model/error.hpp"
-#include "model/evaluate.hpp"
-#include "model/ingest.hpp"
-#include "model/posterior_file.hpp"
-#include "model/predict.hpp"
+#include "model/assess/evaluate.hpp"
+#include "model/data/ingest.hpp"
+#include "model/posterior/posterior_file.hpp"
+#include "model/predict/predict.hpp"
 #include "report/html_report.hpp"
 
 namespace credence::cli {

@@ -11,8 +11,8 @@
 #include <map>
 #include <stdexcept>
 
-#include "model/convergence_summary.hpp"
-#include "model/predict.hpp"
+#include "model/fit/convergence_summary.hpp"
+#include "model/predict/predict.hpp"
 #include "report/svg_plot.hpp"
 
 namespace credence::report {

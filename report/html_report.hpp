@@ -5,7 +5,7 @@
 //     burn-in included (the "trace" of Posterior::fit_metadata_json, written
 //     by fit_bpmf: keys chain, sweep, noise_precision, train_rmse), and of
 //     the probe predictions over kept samples (probes as chosen by
-//     model/convergence_summary.hpp);
+//     model/fit/convergence_summary.hpp);
 //   - the R-hat / ESS table and verdict (summarize_convergence);
 //   - the calibration curve and PIT histogram of a validation set, if given;
 //   - predictive sd against the number of training ratings per item;
@@ -14,9 +14,9 @@
 #include <optional>
 #include <string>
 
-#include "model/compare.hpp"
-#include "model/evaluate.hpp"
-#include "model/posterior.hpp"
+#include "model/assess/compare.hpp"
+#include "model/assess/evaluate.hpp"
+#include "model/posterior/posterior.hpp"
 
 namespace credence::report {
 

@@ -15,7 +15,7 @@
 #include <nlohmann/json.hpp>
 #include <spdlog/logger.h>
 
-#include "model/predict.hpp"
+#include "model/predict/predict.hpp"
 #include "server/metrics.hpp"
 #include "server/model_slot.hpp"
 #include "server/problem.hpp"

@@ -3,7 +3,7 @@
 #include <Eigen/Dense>
 
 #include "model/error.hpp"
-#include "model/random.hpp"
+#include "model/math/random.hpp"
 
 namespace credence::server {
 

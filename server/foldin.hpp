@@ -15,7 +15,7 @@
 #include <span>
 #include <vector>
 
-#include "model/posterior.hpp"
+#include "model/posterior/posterior.hpp"
 
 namespace credence::server {
 

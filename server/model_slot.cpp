@@ -9,7 +9,7 @@
 #include <xxhash.h>
 
 #include "model/error.hpp"
-#include "model/posterior_file.hpp"
+#include "model/posterior/posterior_file.hpp"
 
 namespace credence::server {
 

@@ -14,9 +14,9 @@
 #include <string>
 #include <vector>
 
-#include "model/posterior.hpp"
-#include "model/predict.hpp"
-#include "model/ratings.hpp"
+#include "model/posterior/posterior.hpp"
+#include "model/predict/predict.hpp"
+#include "model/data/ratings.hpp"
 
 namespace credence::server {
 

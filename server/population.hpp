@@ -14,7 +14,7 @@
 #include <cstdint>
 #include <optional>
 
-#include "model/predict.hpp"
+#include "model/predict/predict.hpp"
 #include "server/model_slot.hpp"
 
 namespace credence::server {

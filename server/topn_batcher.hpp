@@ -1,7 +1,7 @@
 // Shares passes over the item samples between concurrent top-N requests.
 //
 // Scoring every item reads the whole item-sample block (S * I * K floats)
-// from memory; one pass can score many users at once (model/predict.hpp,
+// from memory; one pass can score many users at once (model/predict/predict.hpp,
 // recommend_batch). A request that finds a lane free runs at once, together
 // with whatever is already queued; there is no waiting window, so a lone
 // client pays nothing. Requests that arrive while every lane is busy queue
@@ -15,7 +15,7 @@
 #include <mutex>
 #include <vector>
 
-#include "model/predict.hpp"
+#include "model/predict/predict.hpp"
 
 namespace credence::server {
 

@@ -1,7 +1,7 @@
 // A deliberately plain second implementation of the posterior predictive
 // mixture (equal-weight mixture over samples of Normal(m_s, 1/tau_s)): CDF by
 // erfc, quantile by 100 bisection steps. Tests of the sampler use it so that
-// their coverage figures do not depend on model/mixture.cpp.
+// their coverage figures do not depend on model/predict/mixture.cpp.
 #pragma once
 #include <algorithm>
 #include <cmath>

@@ -1,0 +1,215 @@
+// Offline evaluation (model/assess/evaluate.hpp). Each pair's results go into its
+// own slot of per-pair arrays inside the parallel loop; the sums are taken
+// afterwards in test-set order, so the report is identical for any thread
+// count.
+#include "model/assess/evaluate.hpp"
+
+#include <fmt/format.h>
+
+#include <algorithm>
+#include <cmath>
+#include <limits>
+#include <optional>
+#include <stdexcept>
+
+#include "model/math/random.hpp"
+
+namespace credence {
+
+namespace {
+
+std::string level_key(double level) { return fmt::format("{}", level); }
+
+void check_options(const EvaluationOptions& options) {
+    auto check_level = [](double level, const char* what) {
+        if (!(level > 0.0 && level < 1.0))
+            throw std::invalid_argument(fmt::format("{} must be strictly between 0 and 1, got {}", what, level));
+    };
+    for (double level : options.coverage_levels) check_level(level, "coverage level");
+    for (double level : options.curve_levels) check_level(level, "coverage curve level");
+    if (options.pit_bins == 0) throw std::invalid_argument("the PIT histogram needs at least 1 bin");
+    if (options.ranking) {
+        if (options.ranking_k == 0) throw std::invalid_argument("ranking k must be at least 1");
+        if (!std::isfinite(options.relevance_threshold))
+            throw std::invalid_argument("the relevance threshold must be a finite rating value");
+        check_level(options.ranking_level, "ranking interval level");
+    }
+}
+
+const char* mode_name(RankBy mode) {
+    switch (mode) {
+        case RankBy::mean: return "mean";
+        case RankBy::lower: return "lower";
+        case RankBy::upper: return "upper";
+        case RankBy::draw: return "draw";
+    }
+    return "?";
+}
+
+// Top-k lists of every user with held-out ratings, for each rank_by mode.
+std::vector<RankingByMode> rank_users(const PredictionEngine& engine, const std::vector<uint32_t>& users,
+                                      const std::vector<HeldOutRatings>& held_out, const EvaluationOptions& options) {
+    std::vector<RankingByMode> out;
+    if (users.empty()) return out;
+    for (RankBy mode : {RankBy::mean, RankBy::lower, RankBy::upper, RankBy::draw}) {
+        std::vector<std::vector<uint32_t>> ranked(users.size());
+#pragma omp parallel for schedule(dynamic, 4)
+        for (size_t j = 0; j < users.size(); ++j) {
+            RecommendOptions ro;
+            ro.n = options.ranking_k;
+            ro.rank_by = mode;
+            ro.level = options.ranking_level;
+            ro.exclude_rated = true;
+            // A different posterior sample per user, as separate requests would get.
+            ro.draw_seed = Rng::keyed(options.draw_seed, 0, 0, StreamBlock::serve, users[j]).next_u64();
+            for (const Recommendation& r : engine.recommend(users[j], ro)) ranked[j].push_back(r.item);
+        }
+        out.push_back({mode_name(mode), ranking_metrics(ranked, held_out, engine.posterior().num_items,
+                                                        options.ranking_k, options.relevance_threshold,
+                                                        GainKind::graded)});
+    }
+    return out;
+}
+
+}  // namespace
+
+std::vector<double> EvaluationOptions::default_curve_levels() {
+    std::vector<double> levels;
+    for (int percent = 10; percent <= 95; percent += 5) levels.push_back(percent / 100.0);
+    return levels;
+}
+
+EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options) {
+    check_options(options);
+    const Posterior& p = engine.posterior();
+    const IdMap users = IdMap::from_names(p.user_ids);
+    const IdMap items = IdMap::from_names(p.item_ids);
+
+    // Test-set id -> posterior index, resolved once per distinct id.
+    auto translate = [](const IdMap& from, const IdMap& to) {
+        std::vector<std::optional<uint32_t>> out(from.size());
+        for (uint32_t i = 0; i < from.size(); ++i) out[i] = to.find(from.name(i));
+        return out;
+    };
+    const auto user_of = translate(test.users, users);
+    const auto item_of = translate(test.items, items);
+
+    const size_t N = test.ratings.size(), L = options.coverage_levels.size();
+    enum : uint8_t { rated, unknown_user, unknown_item };
+    std::vector<uint8_t> status(N);
+    std::vector<double> abs_error(N, 0.0), log_density(N, 0.0), pit(N, 0.0);
+    std::vector<uint8_t> inside(N * L, 0);
+    const std::span<const float> tau(p.noise_precision);
+    const double lo_scale = p.scale.min, hi_scale = p.scale.max;
+
+#pragma omp parallel
+    {
+        std::vector<double> m;
+#pragma omp for schedule(dynamic, 64)
+        for (size_t k = 0; k < N; ++k) {
+            const Rating& r = test.ratings[k];
+            const auto u = user_of[r.user];
+            const auto i = item_of[r.item];
+            if (!u) {
+                status[k] = unknown_user;
+                continue;
+            }
+            if (!i) {
+                status[k] = unknown_item;
+                continue;
+            }
+            status[k] = rated;
+            engine.sample_means(*u, *i, m);
+            const double x = r.value;
+            abs_error[k] = std::abs(std::clamp(mixture_mean(m), lo_scale, hi_scale) - x);
+            log_density[k] = mixture_log_density(m, tau, x);
+            pit[k] = mixture_cdf(m, tau, x);
+            for (size_t l = 0; l < L; ++l) {
+                const double level = options.coverage_levels[l];
+                const double lower = std::clamp(mixture_quantile(m, tau, 0.5 * (1.0 - level)), lo_scale, hi_scale);
+                const double upper = std::clamp(mixture_quantile(m, tau, 0.5 * (1.0 + level)), lo_scale, hi_scale);
+                inside[k * L + l] = lower <= x && x <= upper;
+            }
+        }
+    }
+
+    EvaluationReport report;
+    std::map<uint32_t, HeldOutRatings> held_out_by_user;  // posterior user -> held-out ratings
+    double sq = 0.0, abs = 0.0, lpd = 0.0;
+    std::vector<uint64_t> covered(L, 0);
+    for (size_t k = 0; k < N; ++k) {
+        if (status[k] == unknown_user) {
+            ++report.unknown_users;
+            continue;
+        }
+        if (status[k] == unknown_item) {
+            ++report.unknown_items;
+            continue;
+        }
+        ++report.rated;
+        sq += abs_error[k] * abs_error[k];
+        abs += abs_error[k];
+        lpd += log_density[k];
+        report.pit.push_back(pit[k]);
+        if (options.ranking) {
+            const Rating& r = test.ratings[k];
+            held_out_by_user[*user_of[r.user]][*item_of[r.item]] = r.value;
+        }
+        for (size_t l = 0; l < L; ++l) covered[l] += inside[k * L + l];
+    }
+    const double n = static_cast<double>(report.rated);
+    const double nan = std::numeric_limits<double>::quiet_NaN();
+    report.rmse = report.rated ? std::sqrt(sq / n) : nan;
+    report.mae = report.rated ? abs / n : nan;
+    report.mean_log_predictive_density = report.rated ? lpd / n : nan;
+    for (size_t l = 0; l < L; ++l)
+        report.coverage[level_key(options.coverage_levels[l])] = report.rated ? covered[l] / n : nan;
+    report.pit_histogram = pit_histogram(report.pit, options.pit_bins);
+    report.coverage_curve = coverage_from_pit(report.pit, options.curve_levels);
+    if (options.ranking) {
+        std::vector<uint32_t> users;
+        std::vector<HeldOutRatings> held_out;
+        for (auto& [u, ratings] : held_out_by_user) {
+            users.push_back(u);
+            held_out.push_back(std::move(ratings));
+        }
+        report.ranking = rank_users(engine, users, held_out, options);
+        report.ranking_k = options.ranking_k;
+        report.relevance_threshold = options.relevance_threshold;
+    }
+    return report;
+}
+
+nlohmann::json to_json(const EvaluationReport& report) {
+    auto number = [](double v) { return std::isfinite(v) ? nlohmann::json(v) : nlohmann::json(nullptr); };
+    nlohmann::json coverage = nlohmann::json::object();
+    for (const auto& [level, share] : report.coverage) coverage[level] = number(share);
+    nlohmann::json j = {{"rmse", number(report.rmse)},
+                        {"mae", number(report.mae)},
+                        {"mean_log_predictive_density", number(report.mean_log_predictive_density)},
+                        {"coverage", coverage},
+                        {"rated", report.rated},
+                        {"unknown_users", report.unknown_users},
+                        {"unknown_items", report.unknown_items},
+                        {"pit_histogram", to_json(report.pit_histogram)},
+                        {"coverage_curve", to_json(report.coverage_curve)}};
+    if (!report.ranking.empty()) {
+        nlohmann::json modes = nlohmann::json::object();
+        for (const auto& [mode, m] : report.ranking)
+            modes[mode] = {{"precision_at_k", number(m.precision_at_k)},
+                           {"recall_at_k", number(m.recall_at_k)},
+                           {"ndcg_at_k", number(m.ndcg_at_k)},
+                           {"catalogue_coverage", number(m.catalogue_coverage)},
+                           {"users_evaluated", m.users_evaluated},
+                           {"users_without_relevant", m.users_without_relevant},
+                           {"distinct_items_recommended", m.distinct_items_recommended}};
+        j["ranking"] = {{"k", report.ranking_k},
+                        {"relevance_threshold", report.relevance_threshold},
+                        {"gain", "graded"},
+                        {"candidates", "all items not rated in training"},
+                        {"modes", modes}};
+    }
+    return j;
+}
+
+}  // namespace credence

@@ -1,0 +1,95 @@
+// Rating ingest: a CSV/TSV export in, a validated RatingSet out, and nothing
+// lost silently. Every row read is either kept, rejected (written to the
+// rejects file with its line number and reason) or merged into another row
+// by the duplicate policy; the summary's counts add up to rows read.
+//
+// Format: RFC 4180 (quoted fields, doubled quotes, delimiters and line breaks
+// inside quotes, LF/CRLF/CR line ends), optional UTF-8 BOM. Spaces and tabs
+// around a field are not part of it. A stray quote that never closes costs
+// only the line it opens on; one that a later quote closes (within 1 MiB)
+// makes one malformed record of the lines between (see model/data/csv_reader.hpp).
+//
+// Rejects file: TSV with a header line "line<TAB>reason<TAB>record"; line is
+// the 1-based physical line where the record starts; a tab, CR, LF or
+// backslash inside reason or record is written as \t, \r, \n or \\ (so one
+// reject is one line).
+//
+// Memory: the input streams through one 4 MiB buffer; each kept row costs
+// 12 bytes while reading (+8 for its timestamp under the latest policy) and
+// 4 more while sorting, plus the id maps. Error messages refer to the
+// command-line options --user-column, --item-column, --rating-column,
+// --timestamp-column, --delimiter, --header/--no-header, --scale,
+// --max-reject-fraction and --rejects-path.
+#pragma once
+#include <cstdint>
+#include <functional>
+#include <optional>
+#include <string>
+
+#include "model/data/ratings.hpp"
+
+namespace credence {
+
+enum class DuplicatePolicy {
+    latest,  // the row with the largest timestamp wins (file order breaks ties and stands in without a timestamp column)
+    mean,    // the ratings are averaged
+};
+
+struct IngestOptions {
+    std::string path;                   // file to read; "-" is standard input
+    std::optional<char> delimiter;      // nullopt: detect from the first line (',', '\t', ';' or '|')
+    std::optional<bool> has_header;     // nullopt: detect (first row has a non-numeric rating field;
+                                        // naming any column implies a header)
+    // Columns by header name (exact, else ignoring case and punctuation) or by
+    // 0-based index given as digits ("0", "2"). Defaults: with a header, the
+    // header name that matches user/customer/buyer/..., item/product/sku/...,
+    // rating/score/stars/... (a header with no match is a DataError naming the
+    // option to pass, never a guess); without a header, indices 0, 1, 2.
+    std::string user_column;
+    std::string item_column;
+    std::string rating_column;
+    // Empty: none, unless the header has "timestamp"/"time"/"date"/... .
+    // Values: epoch seconds (any finite number) or ISO-8601 YYYY-MM-DD with an
+    // optional [T ]hh:mm[:ss[.fff]] and Z/+hh:mm offset (a date alone is
+    // midnight UTC); anything else is rejected.
+    std::string timestamp_column;
+    std::optional<RatingScale> scale;   // declared scale: ratings outside are rejected
+    DuplicatePolicy duplicates = DuplicatePolicy::latest;
+    // Above this the ingest throws DataError. Below 0.5, a file whose first
+    // 1000+ rows are mostly rejected stops early (a wrong delimiter or column).
+    double max_reject_fraction = 0.01;
+    std::string rejects_path;           // empty: "<path>.rejects.tsv" when any row is rejected ("-" input: none)
+    // Called after each buffer fill (every 4 MiB) with bytes consumed so far and total (0 if unknown).
+    std::function<void(uint64_t bytes_done, uint64_t bytes_total)> progress;
+};
+
+struct IngestSummary {
+    uint64_t rows_read = 0;        // data rows (header excluded, blank lines excluded)
+    uint64_t kept = 0;             // ratings in the result
+    uint64_t rejected = 0;         // rows written to the rejects file
+    uint64_t merged_duplicates = 0;// rows folded into another by the duplicate policy
+    uint64_t blank_lines = 0;      // skipped, not counted as rows
+    std::string rejects_path;      // where rejects went ("" if none)
+    char delimiter = ',';
+    bool had_header = false;
+    std::string fingerprint;       // xxh3-64 hex of the file bytes, for the posterior's metadata
+    // rows_read == kept + rejected + merged_duplicates always holds.
+};
+
+struct IngestResult {
+    RatingSet ratings;
+    IngestSummary summary;
+};
+
+// Reads the file in a streaming pass. Throws DataError when the file cannot be
+// read, a named column does not exist, nothing is kept, or the reject fraction
+// exceeds max_reject_fraction (the message gives counts, the first reject and
+// the rejects path). Ratings in the result are sorted by (user, item) and
+// unique; ids are interned in order of first appearance among kept rows.
+// The scale is the declared one (declared = true) or the observed min/max.
+IngestResult ingest_ratings(const IngestOptions& options);
+
+// Human summary, one line: "read 1000 rows: kept 990, rejected 4, merged 6 duplicates (rejects in x.rejects.tsv)".
+std::string describe(const IngestSummary& summary);
+
+}  // namespace credence

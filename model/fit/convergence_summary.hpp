@@ -1,0 +1,74 @@
+// The convergence report of a fitted model: R-hat, bulk-ESS and tail-ESS
+// (model/math/convergence_diagnostics.hpp) of a fixed set of scalar quantities, a verdict and
+// warnings a user can act on. Its JSON form is what the fit stores in
+// Posterior::diagnostics_json.
+//
+// Quantities assessed (chains are the runs of equal sample_chain values):
+//   noise_precision       tau of every kept sample
+//   mu_interaction        mu_U . mu_V        } the hyperparameters, through
+//   factor_cov_product    tr(Lambda_U^-1     } functions the model identifies
+//                            Lambda_V^-1)    } (see summarize_convergence)
+//   prediction(u, i)      the sample's mean rating for up to max_probe_pairs
+//                         rated (user, item) pairs, chosen without
+//                         replacement from the rated-items CSR by an Rng
+//                         seeded with probe_seed, reported in CSR order
+// Factors and single hyperparameter components are not assessed: they are
+// identified only up to an invertible map of the factor space, so their
+// R-hat is large even for a well-mixed fit.
+//
+// Chains of unequal length are compared on their last n draws, n the shortest
+// chain's length (later draws are further from the start), with a warning.
+// Fewer than 4 draws per chain, or a single kept sample, gives the verdict
+// "not_assessable" rather than an exception, so a short fit still saves.
+#pragma once
+#include <cstdint>
+#include <string>
+#include <vector>
+
+#include <nlohmann/json.hpp>
+
+#include "model/math/convergence_diagnostics.hpp"
+#include "model/posterior/posterior.hpp"
+
+namespace credence {
+
+struct ConvergenceOptions {
+    uint32_t max_probe_pairs = 20;
+    uint64_t probe_seed = 0x5eed'd1a6ULL;
+    // Warn above / below: the thresholds Vehtari et al. (2021) recommend
+    // (R-hat below 1.01; bulk- and tail-ESS of at least 100 per chain).
+    double max_rhat = 1.01;
+    double min_ess_per_chain = 100.0;
+};
+
+struct QuantityConvergence {
+    std::string quantity;   // "noise_precision", "mu_interaction", "factor_cov_product", "prediction"
+    int32_t component = -1; // reserved for per-component quantities; -1 for all current ones
+    std::string user_id;    // for prediction, else empty
+    std::string item_id;    // for prediction, else empty
+    ConvergenceStats stats;
+    std::string label() const;  // e.g. "item_mu[2]", "prediction(cust-7, item-19)"
+};
+
+struct ConvergenceSummary {
+    uint32_t num_chains = 0;       // chains with kept samples
+    uint32_t draws_per_chain = 0;  // draws of each chain used
+    std::vector<QuantityConvergence> quantities;
+    // Over quantities whose figure is defined; NaN when none is.
+    double max_rhat = 0.0;
+    double min_ess_bulk_per_chain = 0.0;
+    double min_ess_tail_per_chain = 0.0;
+    std::string verdict;  // "converged", "not_converged" or "not_assessable"
+    std::vector<std::string> warnings;
+    ConvergenceOptions options;
+};
+
+// Needs a posterior that passes Posterior::validate(). Throws DataError for
+// options out of range (max_probe_pairs is allowed to be 0).
+ConvergenceSummary summarize_convergence(const Posterior& posterior, const ConvergenceOptions& options = {});
+
+// snake_case JSON; undefined (NaN) and infinite figures are written as null
+// and explained in "warnings".
+nlohmann::json to_json(const ConvergenceSummary& summary);
+
+}  // namespace credence

@@ -1,0 +1,64 @@
+#include "model/fit/normal_wishart.hpp"
+
+#include <stdexcept>
+#include <string>
+
+#include "model/math/distributions.hpp"
+#include "model/error.hpp"
+
+namespace credence {
+
+FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t dim) {
+    FactorStatistics st;
+    st.n = static_cast<double>(count);
+    st.mean = Eigen::VectorXd::Zero(dim);
+    st.scatter = Eigen::MatrixXd::Zero(dim, dim);
+    if (count == 0) return st;
+    for (uint64_t r = 0; r < count; ++r)
+        for (uint32_t k = 0; k < dim; ++k) st.mean[k] += rows[r * dim + k];
+    st.mean /= st.n;
+    Eigen::VectorXd d(dim);
+    for (uint64_t r = 0; r < count; ++r) {
+        for (uint32_t k = 0; k < dim; ++k) d[k] = rows[r * dim + k] - st.mean[k];
+        for (uint32_t j = 0; j < dim; ++j)
+            for (uint32_t k = 0; k <= j; ++k) st.scatter(j, k) += d[j] * d[k];
+    }
+    st.scatter.triangularView<Eigen::StrictlyUpper>() = st.scatter.transpose();
+    return st;
+}
+
+namespace {
+Eigen::MatrixXd spd_inverse(const Eigen::MatrixXd& m, const char* what) {
+    Eigen::LLT<Eigen::MatrixXd> llt(0.5 * (m + m.transpose()));
+    if (llt.info() != Eigen::Success || !llt.matrixLLT().allFinite())
+        throw NumericError(std::string("Normal-Wishart update: ") + what +
+                           " is not positive definite (smallest diagonal " +
+                           std::to_string(m.diagonal().minCoeff()) + ")");
+    Eigen::MatrixXd inv = llt.solve(Eigen::MatrixXd::Identity(m.rows(), m.cols()));
+    return 0.5 * (inv + inv.transpose());
+}
+}  // namespace
+
+NormalWishart normal_wishart_posterior(const NormalWishart& prior, const FactorStatistics& stats) {
+    const Eigen::Index k = prior.mu.size();
+    if (prior.w.rows() != k || prior.w.cols() != k || stats.mean.size() != k || stats.scatter.rows() != k)
+        throw std::invalid_argument("Normal-Wishart update: dimensions of prior and statistics disagree");
+    NormalWishart post;
+    post.beta = prior.beta + stats.n;
+    post.nu = prior.nu + stats.n;
+    post.mu = (prior.beta * prior.mu + stats.n * stats.mean) / post.beta;
+    const Eigen::VectorXd diff = stats.mean - prior.mu;
+    Eigen::MatrixXd w_inv = spd_inverse(prior.w, "the prior scale W0") + stats.scatter +
+                            (prior.beta * stats.n / post.beta) * diff * diff.transpose();
+    post.w = spd_inverse(w_inv, "the posterior inverse scale");
+    return post;
+}
+
+MeanPrecision draw_normal_wishart(Rng& rng, const NormalWishart& nw) {
+    MeanPrecision out;
+    out.lambda = draw_wishart(rng, nw.w, nw.nu);
+    out.mu = draw_normal_from_precision(rng, nw.mu, nw.beta * out.lambda);
+    return out;
+}
+
+}  // namespace credence

@@ -1,0 +1,32 @@
+// The posterior file: Credence's own versioned, checksummed binary container
+// for a Posterior. The byte layout is specified in model/posterior/FORMAT.md; this
+// header is the only code that should know it.
+#pragma once
+#include <cstdint>
+#include <string>
+
+#include "model/posterior/posterior.hpp"
+
+namespace credence {
+
+inline constexpr uint32_t kPosteriorFormatVersion = 1;
+
+// Writes `posterior` to `path` atomically: bytes go to a temporary file in
+// the same directory, which is flushed, fsync'd and renamed over `path` (and
+// the directory fsync'd). On any failure the temporary file is removed, the
+// previous file under `path` (if any) is untouched, and Error is thrown.
+// Returns the number of bytes written.
+uint64_t write_posterior(const Posterior& posterior, const std::string& path);
+
+// Reads and fully validates a posterior file: magic, version, section table,
+// every section's checksum and size, and Posterior::validate(). Throws
+// FormatError with a message naming the file and what is wrong (truncated,
+// wrong version, checksum mismatch in section X, ...). Never crashes or
+// allocates beyond the file's size on a corrupt file.
+Posterior read_posterior(const std::string& path);
+
+// A short human-readable summary (for `credence inspect`): shape, samples,
+// chains, scale, fit metadata highlights, diagnostics verdict, file size.
+std::string describe_posterior(const Posterior& posterior, const std::string& path);
+
+}  // namespace credence

@@ -1,0 +1,120 @@
+// describe_posterior: the human-readable summary behind `credence inspect`.
+// Declared in model/posterior/posterior_file.hpp.
+//
+// The fit metadata and diagnostics are free-form JSON written by other
+// modules; this summary picks out a few well-known keys when present, at the
+// top level or one object deep (e.g. "seed" or "options": {"seed": ...}):
+//   fit metadata: seed, data_fingerprint, seconds, credence_version, created_at
+//   diagnostics:  verdict, max_rhat, min_ess_bulk_per_chain,
+//                 min_ess_tail_per_chain, warnings (counted)
+// (the diagnostics keys are those of model/fit/convergence_summary.cpp).
+#include <cmath>
+#include <cstdio>
+#include <filesystem>
+#include <map>
+#include <sstream>
+#include <string>
+
+#include <nlohmann/json.hpp>
+
+#include "model/posterior/posterior_file.hpp"
+
+namespace credence {
+namespace {
+
+using nlohmann::json;
+
+// The value under `key` at the top level, or in any top-level object member.
+const json* find_key(const json& doc, const std::string& key) {
+    if (!doc.is_object()) return nullptr;
+    if (auto it = doc.find(key); it != doc.end()) return &*it;
+    for (const auto& [name, value] : doc.items()) {
+        (void)name;
+        if (value.is_object())
+            if (auto it = value.find(key); it != value.end()) return &*it;
+    }
+    return nullptr;
+}
+
+std::string scalar_text(const json& v) {
+    if (v.is_string()) return v.get<std::string>();
+    if (v.is_number_float()) {
+        char buf[32];
+        std::snprintf(buf, sizeof buf, "%.4g", v.get<double>());
+        return buf;
+    }
+    return v.dump();
+}
+
+std::string fixed(double x, int digits) {
+    char buf[64];
+    std::snprintf(buf, sizeof buf, "%.*f", digits, x);
+    return buf;
+}
+
+// "key1 value1, key2 value2" for the keys present; empty when none are.
+std::string highlights(const std::string& text, const std::vector<std::pair<const char*, const char*>>& keys) {
+    const json doc = json::parse(text, nullptr, /*allow_exceptions=*/false);
+    if (doc.is_discarded()) return "(not valid JSON)";
+    std::string out;
+    for (const auto& [key, label] : keys)
+        if (const json* v = find_key(doc, key); v && !v->is_null() && !v->is_structured())
+            out += (out.empty() ? "" : ", ") + std::string(label) + " " + scalar_text(*v);
+    return out;
+}
+
+}  // namespace
+
+std::string describe_posterior(const Posterior& p, const std::string& path) {
+    std::ostringstream out;
+    std::error_code ec;
+    const auto file_bytes = std::filesystem::file_size(path, ec);
+    out << "posterior file: " << path;
+    if (ec)
+        out << " (size unavailable: " << ec.message() << ")\n";
+    else
+        out << " (" << file_bytes << " bytes, format version " << kPosteriorFormatVersion << ")\n";
+
+    out << "shape:          " << p.num_users << " users x " << p.num_items << " items, rank " << p.rank << "\n";
+
+    std::map<uint32_t, uint32_t> per_chain;
+    for (uint32_t c : p.sample_chain) per_chain[c]++;
+    out << "samples:        " << p.num_samples << " kept over " << p.num_chains
+        << (p.num_chains == 1 ? " chain" : " chains");
+    if (!per_chain.empty()) {
+        out << " (per chain:";
+        for (const auto& [chain, n] : per_chain) out << " " << n;
+        out << ")";
+    }
+    out << "\n";
+
+    out << "biases:         " << (p.has_biases ? "user and item" : "none") << "\n";
+    out << "rating scale:   [" << scalar_text(json(p.scale.min)) << ", " << scalar_text(json(p.scale.max)) << "] "
+        << (p.scale.declared ? "(declared)" : "(observed in training data)") << "\n";
+    out << "global mean:    " << fixed(p.global_mean, 4) << "\n";
+
+    if (!p.noise_precision.empty()) {
+        double sd_sum = 0.0;
+        for (float tau : p.noise_precision) sd_sum += 1.0 / std::sqrt(static_cast<double>(tau));
+        out << "mean noise sd:  " << fixed(sd_sum / static_cast<double>(p.noise_precision.size()), 4) << "\n";
+    }
+    out << "rated pairs:    " << p.rated_items.size() << "\n";
+
+    const std::string fit = highlights(p.fit_metadata_json, {{"seed", "seed"},
+                                                             {"data_fingerprint", "data fingerprint"},
+                                                             {"seconds", "fit seconds"},
+                                                             {"credence_version", "credence version"},
+                                                             {"created_at", "created at"}});
+    out << "fit metadata:   " << (fit.empty() ? "(none recorded)" : fit) << "\n";
+    std::string diag = highlights(p.diagnostics_json, {{"verdict", "verdict"},
+                                                       {"max_rhat", "max R-hat"},
+                                                       {"min_ess_bulk_per_chain", "min bulk ESS per chain"},
+                                                       {"min_ess_tail_per_chain", "min tail ESS per chain"}});
+    const json diag_doc = json::parse(p.diagnostics_json, nullptr, false);
+    if (const json* w = diag_doc.is_discarded() ? nullptr : find_key(diag_doc, "warnings"); w && w->is_array())
+        diag += (diag.empty() ? "" : ", ") + std::to_string(w->size()) + (w->size() == 1 ? " warning" : " warnings");
+    out << "diagnostics:    " << (diag.empty() ? "(none recorded)" : diag) << "\n";
+    return out.str();
+}
+
+}  // namespace credence

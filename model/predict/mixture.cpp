@@ -1,0 +1,142 @@
+// Mixture helpers declared in model/predict/predict.hpp.
+//
+// Mixture quantiles: every component quantile q_s = m_s + z_p / sqrt(tau_s)
+// has F_s(q_s) = p, so F(min_s q_s) <= p <= F(max_s q_s) for the mixture CDF F
+// (an average of the F_s). That bracket is refined by Newton steps on F,
+// falling back to bisection whenever a step leaves the bracket. Upper-half
+// probabilities are solved on the mirrored mixture so that 1 - p never
+// suffers cancellation.
+#include <algorithm>
+#include <cmath>
+#include <limits>
+#include <numbers>
+#include <stdexcept>
+#include <string>
+#include <vector>
+
+#include "model/math/standard_normal.hpp"
+#include "model/predict/predict.hpp"
+
+namespace credence {
+
+namespace {
+
+void check_sizes(std::span<const double> m, std::span<const float> tau) {
+    if (m.empty() || m.size() != tau.size())
+        throw std::invalid_argument("mixture needs as many noise precisions as means, and at least one (got " +
+                                    std::to_string(m.size()) + " means, " + std::to_string(tau.size()) +
+                                    " precisions)");
+}
+
+// Solves mean_s Phi(sqrt(tau_s) * (y - sign * m_s)) = target for y. With
+// sign = -1 this is the mirrored mixture, whose CDF at -x is the survival
+// function of the original at x.
+double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, double sign, double target) {
+    const size_t S = m.size();
+    const double inv_S = 1.0 / static_cast<double>(S);
+    const double z = normal_quantile(target);
+    // sqrt(tau_s) once per solve (the same bits every evaluation would get).
+    thread_local std::vector<double> root_tau;
+    root_tau.resize(S);
+    for (size_t s = 0; s < S; ++s) root_tau[s] = std::sqrt(static_cast<double>(tau[s]));
+    double lo = std::numeric_limits<double>::infinity(), hi = -lo, start = 0.0;
+    for (size_t s = 0; s < S; ++s) {
+        const double q = sign * m[s] + z / root_tau[s];
+        lo = std::min(lo, q);
+        hi = std::max(hi, q);
+        start += q;
+    }
+    start *= inv_S;
+    // F(y) - target, and with it the derivative when Newton needs it.
+    auto eval = [&](double y, double& density) {
+        double cdf = 0.0, pdf = 0.0;
+        for (size_t s = 0; s < S; ++s) {
+            const double st = root_tau[s];
+            const double t = st * (y - sign * m[s]);
+            cdf += normal_cdf(t);
+            pdf += st * std::exp(-0.5 * t * t);
+        }
+        density = pdf * inv_S / std::sqrt(2.0 * std::numbers::pi);
+        return cdf * inv_S - target;
+    };
+    auto excess = [&](double y) {
+        double cdf = 0.0;
+        for (size_t s = 0; s < S; ++s) cdf += normal_cdf(root_tau[s] * (y - sign * m[s]));
+        return cdf * inv_S - target;
+    };
+    // The bracket is exact in real arithmetic; widen it if rounding in the
+    // component quantiles put it a hair off.
+    double dens;
+    for (double step = 1e-12 * (1.0 + std::abs(lo)); excess(lo) > 0.0; step *= 2.0) lo -= step;
+    for (double step = 1e-12 * (1.0 + std::abs(hi)); excess(hi) < 0.0; step *= 2.0) hi += step;
+    double y = start;
+    for (int iter = 0; iter < 200; ++iter) {
+        const double tol = 1e-11 * (1.0 + std::abs(y));
+        if (hi - lo <= tol) return 0.5 * (lo + hi);
+        const double f = eval(y, dens);
+        if (f == 0.0) return y;
+        (f < 0.0 ? lo : hi) = y;
+        double next = dens > 0.0 ? y - f / dens : std::numeric_limits<double>::quiet_NaN();
+        if (!(next > lo && next < hi)) next = 0.5 * (lo + hi);
+        if (std::abs(next - y) <= tol) return next;
+        y = next;
+    }
+    return y;
+}
+
+}  // namespace
+
+double mixture_mean(std::span<const double> m) {
+    if (m.empty()) throw std::invalid_argument("mixture needs at least one component");
+    double sum = 0.0;
+    for (double v : m) sum += v;
+    return sum / static_cast<double>(m.size());
+}
+
+double mixture_sd(std::span<const double> m, std::span<const float> tau) {
+    check_sizes(m, tau);
+    // Law of total variance: mean noise variance + spread of the means
+    // (two-pass, so no cancellation).
+    const double mean = mixture_mean(m);
+    double spread = 0.0, noise = 0.0;
+    for (size_t s = 0; s < m.size(); ++s) {
+        spread += (m[s] - mean) * (m[s] - mean);
+        noise += 1.0 / static_cast<double>(tau[s]);
+    }
+    return std::sqrt((spread + noise) / static_cast<double>(m.size()));
+}
+
+double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x) {
+    check_sizes(m, tau);
+    double sum = 0.0;
+    for (size_t s = 0; s < m.size(); ++s)
+        sum += normal_cdf(std::sqrt(static_cast<double>(tau[s])) * (x - m[s]));
+    return sum / static_cast<double>(m.size());
+}
+
+double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p) {
+    check_sizes(m, tau);
+    if (!(p > 0.0 && p < 1.0))
+        throw std::invalid_argument("mixture quantile needs a probability strictly between 0 and 1, got " +
+                                    std::to_string(p));
+    if (p <= 0.5) return solve_mixture_cdf(m, tau, 1.0, p);
+    return -solve_mixture_cdf(m, tau, -1.0, 1.0 - p);
+}
+
+double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x) {
+    check_sizes(m, tau);
+    // log-sum-exp over components, so far tails do not underflow to -inf.
+    double best = -std::numeric_limits<double>::infinity();
+    for (size_t s = 0; s < m.size(); ++s) {
+        const double t = static_cast<double>(tau[s]);
+        best = std::max(best, 0.5 * std::log(t) - 0.5 * t * (x - m[s]) * (x - m[s]));
+    }
+    double sum = 0.0;
+    for (size_t s = 0; s < m.size(); ++s) {
+        const double t = static_cast<double>(tau[s]);
+        sum += std::exp(0.5 * std::log(t) - 0.5 * t * (x - m[s]) * (x - m[s]) - best);
+    }
+    return best + std::log(sum / static_cast<double>(m.size())) - 0.5 * std::log(2.0 * std::numbers::pi);
+}
+
+}  // namespace credence

@@ -1,0 +1,112 @@
+// The prediction engine: posterior predictive answers for one model, shared
+// by the offline commands (predict, recommend, evaluate) and the HTTP server.
+//
+// The predictive distribution of a rating is the equal-weight mixture over
+// kept samples s of Normal(m_s, 1/tau_s), where m_s is sample s's
+// prediction. Its mean and sd are exact mixture moments; interval bounds are
+// exact mixture quantiles (found by bracketing and bisection on the mixture
+// CDF), then clipped to the rating scale. Thread-safe: all methods are const.
+#pragma once
+#include <cstdint>
+#include <exception>
+#include <memory>
+#include <optional>
+#include <span>
+#include <vector>
+
+#include "model/posterior/posterior.hpp"
+
+namespace credence {
+
+struct Prediction {
+    double mean = 0.0;   // mixture mean, clipped to the scale
+    double sd = 0.0;     // mixture sd (unclipped predictive spread)
+    double lower = 0.0;  // (1-level)/2 quantile, clipped to the scale
+    double upper = 0.0;  // (1+level)/2 quantile, clipped to the scale
+    // Exact (bitwise for finite values) equality: batched and unbatched
+    // answers must agree to the last bit.
+    bool operator==(const Prediction&) const = default;
+};
+
+enum class RankBy {
+    mean,   // posterior predictive mean
+    lower,  // lower interval bound: cautious
+    upper,  // upper interval bound: optimistic
+    draw,   // one posterior sample's prediction: exploration by posterior sampling
+};
+
+struct RecommendOptions {
+    uint32_t n = 10;
+    RankBy rank_by = RankBy::mean;
+    double level = 0.9;
+    bool exclude_rated = true;
+    std::optional<std::vector<uint32_t>> candidates;  // restrict to these items (deduplicated by the engine)
+    uint64_t draw_seed = 0;                           // for RankBy::draw: which posterior sample
+};
+
+struct Recommendation {
+    uint32_t item = 0;
+    double score = 0.0;  // the value ranked by, before clipping to the scale
+    Prediction prediction;
+    bool operator==(const Recommendation&) const = default;
+};
+
+// One known user's request in a batch, and its answer: the items, or the
+// exception recommend() would have thrown for it.
+struct RecommendRequest {
+    uint32_t user = 0;
+    RecommendOptions options;
+};
+
+struct RecommendAnswer {
+    std::vector<Recommendation> items;
+    std::exception_ptr error;  // null on success
+};
+
+// Mixture helpers over per-sample means m[s] and noise precisions tau[s].
+// All need m.size() == tau.size() > 0.
+double mixture_mean(std::span<const double> m);
+double mixture_sd(std::span<const double> m, std::span<const float> tau);
+double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x);
+double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p);
+double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x);
+
+class PredictionEngine {
+public:
+    explicit PredictionEngine(std::shared_ptr<const Posterior> posterior);
+
+    const Posterior& posterior() const { return *posterior_; }
+
+    // Per-sample means m_s for a known (user, item) pair; size S.
+    void sample_means(uint32_t user, uint32_t item, std::vector<double>& out) const;
+
+    // level in (0, 1). Indices must be valid (callers map ids first).
+    Prediction predict(uint32_t user, uint32_t item, double level) const;
+
+    // Top-n items for a known user. Ties break by item index. Throws
+    // std::invalid_argument for level outside (0,1) or n == 0.
+    std::vector<Recommendation> recommend(uint32_t user, const RecommendOptions& options) const;
+
+    // Several requests at once: answer k equals recommend(requests[k].user,
+    // requests[k].options), or holds what it would have thrown. Requests that
+    // rank by mean, lower or upper over most of the catalogue share one pass
+    // over the item samples, which reads the model from memory once for all
+    // of them. Never throws for a bad request; std::bad_alloc may escape.
+    std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests) const;
+
+    // Top-n for a visitor described by per-sample factors and biases (fold-in):
+    // visitor_factors is [S][K], visitor_bias is [S] (zeros without biases),
+    // `exclude` lists item indices the visitor has rated (sorted).
+    std::vector<Recommendation> recommend_for_factors(std::span<const float> visitor_factors,
+                                                      std::span<const float> visitor_bias,
+                                                      std::span<const uint32_t> exclude,
+                                                      const RecommendOptions& options) const;
+
+private:
+    std::shared_ptr<const Posterior> posterior_;
+    // [S] largest item-factor norm of each sample: bounds the float rounding
+    // of the all-items scoring pass so pruning stays exact.
+    std::vector<double> max_item_norm_;
+};
+
+}  // namespace credence

@@ -1,0 +1,177 @@
+// End-to-end tests of the `credence` program: the analyst's path from a
+// ratings export to a posterior file, offline answers and evaluation, with
+// bad input handled by clear messages and exit codes.
+#include <catch2/catch.hpp>
+
+#include <filesystem>
+#include <fstream>
+#include <string>
+
+#include <nlohmann/json.hpp>
+
+#include "model/posterior/posterior_file.hpp"
+#include "tests/support/paths.hpp"
+#include "tests/support/run_command.hpp"
+
+using namespace credence::testing;
+namespace fs = std::filesystem;
+using nlohmann::json;
+
+namespace {
+
+// One demo-shop export and one fit shared by the cases below (fitting is the slow part).
+struct DemoFit {
+    fs::path dir, ratings, model;
+    CommandResult fit;
+};
+
+const DemoFit& demo_fit() {
+    static DemoFit d = [] {
+        DemoFit x;
+        x.dir = scratch_dir("cli");
+        const auto gen = run_credence("demo-data --out-dir " + quoted(x.dir) + " --customers 300 --products 80 --seed 11");
+        REQUIRE(gen.exit_code == 0);
+        x.ratings = x.dir / "ratings.csv";
+        x.model = x.dir / "shop.posterior";
+        x.fit = run_credence("fit --ratings " + quoted(x.ratings) + " --scale 1:5 --out " + quoted(x.model) +
+                             " --rank 4 --burn-in 40 --samples 20 --thin 1 --chains 2 --seed 3 --holdout 0.1");
+        return x;
+    }();
+    return d;
+}
+
+size_t count_lines(const fs::path& p) {
+    std::ifstream in(p);
+    size_t n = 0;
+    for (std::string line; std::getline(in, line);) ++n;
+    return n;
+}
+
+}  // namespace
+
+TEST_CASE("fit turns a demo export into a posterior file and accounts for every row") {
+    const auto& d = demo_fit();
+    INFO(d.fit.err);
+    REQUIRE(d.fit.exit_code == 0);
+    REQUIRE(fs::exists(d.model));
+    CHECK(d.fit.out.find("wrote") != std::string::npos);
+    // The demo export carries three faulty rows on purpose; they land in the
+    // rejects file (header + 3 lines), and the summary says so.
+    CHECK(d.fit.err.find("rejected 3") != std::string::npos);
+    CHECK(count_lines(d.dir / "ratings.csv.rejects.tsv") == 4);
+    // stderr is not a terminal here: no progress line redraws.
+    CHECK(d.fit.err.find('\r') == std::string::npos);
+    CHECK(d.fit.err.find("convergence:") != std::string::npos);
+
+    const auto p = credence::read_posterior(d.model.string());
+    CHECK(p.rank == 4);
+    CHECK(p.num_samples == 40);
+    CHECK(p.num_chains == 2);
+    CHECK(p.scale.declared);
+    const auto diag = json::parse(p.diagnostics_json);
+    CHECK(diag.contains("verdict"));
+    CHECK(diag.contains("max_rhat"));
+    const auto meta = json::parse(p.fit_metadata_json);
+    CHECK(meta.at("data_fingerprint").get<std::string>().size() == 16);
+    CHECK(meta.at("data").at("rejected") == 3);
+}
+
+TEST_CASE("inspect, predict and recommend answer from the file") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto ins = run_credence("inspect " + quoted(d.model));
+    REQUIRE(ins.exit_code == 0);
+    CHECK(ins.out.find("rank 4") != std::string::npos);
+
+    const auto pred = run_credence("predict --model " + quoted(d.model) + " --user c-00007 --item tea-0001 --json");
+    INFO(pred.err);
+    REQUIRE(pred.exit_code == 0);
+    const auto pj = json::parse(pred.out);
+    CHECK(pj.at("lower").get<double>() <= pj.at("mean").get<double>());
+    CHECK(pj.at("mean").get<double>() <= pj.at("upper").get<double>());
+    CHECK(pj.at("lower").get<double>() >= 1.0);
+    CHECK(pj.at("upper").get<double>() <= 5.0);
+    CHECK(pj.at("sd").get<double>() > 0.0);
+
+    const auto rec = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 5 --rank-by lower --json");
+    REQUIRE(rec.exit_code == 0);
+    const auto rj = json::parse(rec.out);
+    REQUIRE(rj.at("items").size() == 5);
+    // Ranked by the lower bound: non-increasing scores.
+    for (size_t k = 1; k < 5; ++k)
+        CHECK(rj["items"][k - 1]["score"].get<double>() >= rj["items"][k]["score"].get<double>());
+    // Items the customer rated in training are excluded by default.
+    const auto p = credence::read_posterior(d.model.string());
+    uint32_t u = 0;
+    while (p.user_ids[u] != "c-00007") ++u;
+    for (const auto& item : rj["items"])
+        for (uint32_t i : p.rated_by(u)) CHECK(p.item_ids[i] != item["item"].get<std::string>());
+}
+
+TEST_CASE("evaluate --json carries the documented keys") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto ev = run_credence("evaluate --model " + quoted(d.model) + " --ratings " + quoted(d.ratings) +
+                                 " --scale 1:5 --json --rejects-path " + quoted(d.dir / "eval-rejects.tsv"));
+    INFO(ev.err);
+    REQUIRE(ev.exit_code == 0);
+    const auto j = json::parse(ev.out);
+    for (const char* key : {"rmse", "mae", "mean_log_predictive_density", "coverage", "rated", "unknown_users", "unknown_items"})
+        CHECK(j.contains(key));
+    for (const char* level : {"0.5", "0.8", "0.9", "0.95"}) CHECK(j["coverage"].contains(level));
+    CHECK(j["rated"].get<uint64_t>() > 1000);
+    // Stars are integers 1..5 and the model predicts better than the spread of the data.
+    CHECK(j["rmse"].get<double>() < 1.2);
+}
+
+TEST_CASE("bad input gives an actionable message and a failing exit code") {
+    const auto dir = scratch_dir("cli-errors");
+    SECTION("too many rejected rows stop the fit") {
+        std::ofstream(dir / "bad.csv") << "customer,sku,stars\nc1,a,5\nc2,b,x\nc3,c,4\nc4,d,3\n";
+        const auto r = run_credence("fit --ratings " + quoted(dir / "bad.csv") + " --out " + quoted(dir / "m.posterior"));
+        CHECK(r.exit_code == 1);
+        CHECK(r.err.find("--max-reject-fraction") != std::string::npos);
+        CHECK_FALSE(fs::exists(dir / "m.posterior"));
+    }
+    SECTION("a corrupt posterior file is refused, not crashed on") {
+        const auto& d = demo_fit();
+        REQUIRE(d.fit.exit_code == 0);
+        fs::copy_file(d.model, dir / "broken.posterior", fs::copy_options::overwrite_existing);
+        {
+            std::fstream f(dir / "broken.posterior", std::ios::in | std::ios::out | std::ios::binary);
+            f.seekp(static_cast<std::streamoff>(fs::file_size(dir / "broken.posterior") / 2));
+            f.put('\x5a');
+        }
+        const auto r = run_credence("inspect " + quoted(dir / "broken.posterior"));
+        CHECK(r.exit_code == 1);
+        CHECK(r.err.find("broken.posterior") != std::string::npos);
+    }
+    SECTION("an unknown customer is named") {
+        const auto& d = demo_fit();
+        REQUIRE(d.fit.exit_code == 0);
+        const auto r = run_credence("predict --model " + quoted(d.model) + " --user nobody --item tea-0001");
+        CHECK(r.exit_code == 1);
+        CHECK(r.err.find("'nobody'") != std::string::npos);
+    }
+    SECTION("holdout and validation together are refused as usage") {
+        const auto& d = demo_fit();
+        const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --out " + quoted(dir / "x.posterior") +
+                                    " --holdout 0.1 --validation " + quoted(d.ratings));
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("--holdout") != std::string::npos);
+    }
+}
+
+TEST_CASE("the same seed gives the same samples with one thread or two") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto dir = scratch_dir("cli-threads");
+    std::string common = "fit --ratings " + quoted(d.ratings) + " --scale 1:5 --rank 3 --burn-in 5 --samples 3 --chains 2 --seed 9 -q";
+    REQUIRE(run_credence(common + " --threads 1 --out " + quoted(dir / "one.posterior")).exit_code == 0);
+    REQUIRE(run_credence(common + " --threads 2 --out " + quoted(dir / "two.posterior")).exit_code == 0);
+    const auto a = credence::read_posterior((dir / "one.posterior").string());
+    const auto b = credence::read_posterior((dir / "two.posterior").string());
+    CHECK(a.user_factors == b.user_factors);
+    CHECK(a.item_factors == b.item_factors);
+    CHECK(a.noise_precision == b.noise_precision);
+}

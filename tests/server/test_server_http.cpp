@@ -1,0 +1,498 @@
+// Tests for server/: the real server in another process on an ephemeral
+// loopback port, every route exercised with a real HTTP client, bad inputs
+// included. Answers are checked against the offline PredictionEngine (exact
+// equality) and against direct computation for the item statistics.
+#include <catch2/catch.hpp>
+
+#include <algorithm>
+#include <cmath>
+#include <fstream>
+#include <memory>
+#include <set>
+#include <sstream>
+
+#include "model/posterior/posterior_file.hpp"
+#include "model/predict/predict.hpp"
+#include "tests/support/simulate.hpp"
+#include "server/app.hpp"
+#include "server/foldin.hpp"
+#include "tests/support/paths.hpp"
+#include "tests/support/server_http.hpp"
+#include "tests/support/server_process.hpp"
+
+namespace fs = std::filesystem;
+using namespace credence;
+using namespace credence::testing;
+using nlohmann::json;
+
+namespace {
+
+// Ids chosen to stress routing: a slash, a space, a non-ASCII letter, URL
+// metacharacters, and an item whose id ends in "/similar".
+const std::string kOddUser = "cust/07 \xC3\xBC?&#";
+const std::string kOddItem = "SKU 19/B%";
+const std::string kSimilarItem = "gift/similar";
+const std::string kToken = "shop-admin-4f9c2b7d1e";
+
+struct Fixture {
+    fs::path dir;
+    fs::path model_path, other_path, corrupt_path;
+    std::shared_ptr<const Posterior> posterior;  // as read back from the file
+    std::unique_ptr<PredictionEngine> engine;
+    std::unique_ptr<ServerProcess> server;
+
+    Fixture() {
+        dir = scratch_dir("server_http");
+        SimulatedPosteriorOptions spec{.users = 40, .items = 120, .rank = 4, .samples = 16, .chains = 2};
+        spec.rated_fraction = 0.1;
+        spec.id_digits = 5;  // the requests below name "cust-00001", "sku-00010", ...
+        Posterior p = simulate_posterior(spec);
+        p.user_ids[3] = kOddUser;
+        p.item_ids[5] = kOddItem;
+        p.item_ids[6] = kSimilarItem;
+        model_path = dir / "shop.posterior";
+        write_posterior(p, model_path.string());
+        spec.seed = 2;
+        other_path = dir / "shop-next.posterior";
+        write_posterior(simulate_posterior(spec), other_path.string());
+        corrupt_path = dir / "broken.posterior";
+        std::ofstream(corrupt_path) << "not a posterior file";
+        posterior = std::make_shared<const Posterior>(read_posterior(model_path.string()));
+        engine = std::make_unique<PredictionEngine>(posterior);
+        std::ofstream(dir / "admin.token") << kToken << "\n";
+        server = std::make_unique<ServerProcess>(
+            dir, model_path,
+            "max_batch = 50\nmax_n = 100\nbody_limit_bytes = 65536\naccess_log = true\n"
+            "admin_token_file = \"" + (dir / "admin.token").string() + "\"\nmodel_dir = \"" + dir.string() + "\"\n");
+    }
+};
+
+Fixture& fixture() {
+    static Fixture f;
+    return f;
+}
+
+void require_problem(const Answer& a, int status) {
+    INFO(a.text);
+    REQUIRE(a.status == status);
+    REQUIRE(a.content_type == "application/problem+json");
+    REQUIRE(a.body.is_object());
+    CHECK(a.body["status"] == status);
+    CHECK(a.body["type"].get<std::string>().rfind("urn:credence:problem:", 0) == 0);
+    CHECK(!a.body["title"].get<std::string>().empty());
+    CHECK(!a.body["detail"].get<std::string>().empty());
+    CHECK(a.body.contains("instance"));
+}
+
+void require_same_prediction(const json& got, const Prediction& want) {
+    CHECK(got["mean"].get<double>() == want.mean);
+    CHECK(got["sd"].get<double>() == want.sd);
+    CHECK(got["lower"].get<double>() == want.lower);
+    CHECK(got["upper"].get<double>() == want.upper);
+}
+
+std::string user_path(const std::string& user) { return "/v1/users/" + url_encode(user) + "/recommendations"; }
+
+const std::string kUserRoute = "/v1/users/{user}/recommendations";
+
+}  // namespace
+
+TEST_CASE("health, readiness and the model description") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    auto health = get(*c, "/v1/health", "/v1/health");
+    REQUIRE(health.status == 200);
+    CHECK(health.body["status"] == "alive");
+    auto ready = get(*c, "/v1/ready", "/v1/ready");
+    REQUIRE(ready.status == 200);
+    const std::string fingerprint = ready.body["model"];
+    CHECK(fingerprint.size() == 16);
+    CHECK(ready.model_header == fingerprint);
+
+    auto model = get(*c, "/v1/model", "/v1/model");
+    REQUIRE(model.status == 200);
+    CHECK(model.body["rank"] == 4);
+    CHECK(model.body["samples"] == 16);
+    CHECK(model.body["chains"] == 2);
+    CHECK(model.body["users"] == 40);
+    CHECK(model.body["items"] == 120);
+    CHECK(model.body["scale"]["min"] == 1.0);
+    CHECK(model.body["scale"]["max"] == 5.0);
+    CHECK(model.body["fit"]["generator"] == "synthetic");
+    CHECK(model.body["diagnostics"]["verdict"] == "not assessed");
+    CHECK(model.body["model"] == fingerprint);
+}
+
+TEST_CASE("predictions equal the offline engine exactly, per pair") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    json pairs = json::array();
+    std::vector<std::pair<uint32_t, uint32_t>> index;
+    for (uint32_t k = 0; k < 30; ++k) {
+        const uint32_t u = (k * 7) % p.num_users, i = (k * 13 + 5) % p.num_items;
+        pairs.push_back({{"user", p.user_ids[u]}, {"item", p.item_ids[i]}});
+        index.emplace_back(u, i);
+    }
+    for (double level : {0.9, 0.5}) {
+        json req = {{"pairs", pairs}};
+        if (level != 0.9) req["level"] = level;
+        auto a = post(*c, "/v1/predictions", "/v1/predictions", req.dump());
+        REQUIRE(a.status == 200);
+        CHECK(a.body["level"] == level);
+        REQUIRE(a.body["predictions"].size() == index.size());
+        for (size_t k = 0; k < index.size(); ++k) {
+            const auto& got = a.body["predictions"][k];
+            CHECK(got["user"] == p.user_ids[index[k].first]);
+            CHECK(got["item"] == p.item_ids[index[k].second]);
+            CHECK(got["source"] == "model");
+            require_same_prediction(got, f.engine->predict(index[k].first, index[k].second, level));
+        }
+    }
+}
+
+TEST_CASE("unknown ids fail per pair, or get a population answer on request") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    json pairs = json::array({{{"user", p.user_ids[0]}, {"item", p.item_ids[0]}},
+                              {{"user", "cust-nobody"}, {"item", p.item_ids[1]}},
+                              {{"user", p.user_ids[1]}, {"item", "sku-discontinued"}},
+                              {{"user", "cust-nobody"}, {"item", "sku-discontinued"}}});
+    auto strict = post(*c, "/v1/predictions", "/v1/predictions", json{{"pairs", pairs}}.dump());
+    REQUIRE(strict.status == 200);
+    const auto& s = strict.body["predictions"];
+    CHECK(s[0]["source"] == "model");
+    for (int k = 1; k < 4; ++k) {
+        CHECK(s[k]["error"]["status"] == 404);
+        CHECK_FALSE(s[k].contains("mean"));
+    }
+    CHECK(s[1]["error"]["title"] == "Unknown user");
+    CHECK(s[2]["error"]["title"] == "Unknown item");
+
+    auto lenient =
+        post(*c, "/v1/predictions", "/v1/predictions", json{{"pairs", pairs}, {"fallback", "population"}}.dump());
+    REQUIRE(lenient.status == 200);
+    const auto& l = lenient.body["predictions"];
+    require_same_prediction(l[0], f.engine->predict(0, 0, 0.9));
+    for (int k = 1; k < 4; ++k) {
+        INFO(l[k].dump());
+        CHECK(l[k]["source"] == "population");
+        const double lower = l[k]["lower"], mean = l[k]["mean"], upper = l[k]["upper"], sd = l[k]["sd"];
+        CHECK(p.scale.min <= lower);
+        CHECK(lower <= mean);
+        CHECK(mean <= upper);
+        CHECK(upper <= p.scale.max);
+        // The population answer cannot be surer than the noise alone:
+        // sd >= 1/sqrt(max tau) (a mixture's variance is at least the least variance).
+        CHECK(sd >= 1.0 / std::sqrt(*std::max_element(p.noise_precision.begin(), p.noise_precision.end())));
+    }
+    // An unseen user is less predictable than a known one for the same item.
+    CHECK(l[1]["sd"].get<double>() > f.engine->predict(0, 1, 0.9).sd);
+}
+
+TEST_CASE("bad prediction requests get problem documents") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const std::string pair = R"({"user":"cust-00000","item":"sku-00000"})";
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", "{not json"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", "[1,2]"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs": 3})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 1.0})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 0})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": "high"})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[{"user": 7, "item": "sku-00000"}]})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[{"user": "cust-00000"}]})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "fallback": "guess"})"), 400);
+    // Bounded work: the configured batch limit is 50 pairs.
+    std::string big = R"({"pairs":[)";
+    for (int k = 0; k < 51; ++k) big += (k ? "," : "") + pair;
+    big += "]}";
+    auto over = post(*c, "/v1/predictions", "/v1/predictions", big);
+    require_problem(over, 400);
+    CHECK(over.body["detail"].get<std::string>().find("50") != std::string::npos);
+    // The body limit is 64 KiB.
+    auto huge = post(*c, "/v1/predictions", "/v1/predictions", std::string(70000, ' '));
+    require_problem(huge, 413);
+    // The server is still fine afterwards.
+    CHECK(get(*c, "/v1/health", "/v1/health").status == 200);
+}
+
+TEST_CASE("user top-N equals the offline engine for every ranking") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    for (uint32_t u : {0u, 3u, 17u}) {
+        for (const char* rank_by : {"mean", "lower", "upper", "draw"}) {
+            RecommendOptions o;
+            o.n = 7;
+            o.level = 0.8;
+            o.rank_by = server::parse_rank_by(rank_by);
+            o.draw_seed = 99;
+            const auto want = f.engine->recommend(u, o);
+            auto a = get(*c, kUserRoute, user_path(p.user_ids[u]) + "?n=7&interval=0.8&seed=99&rank_by=" + rank_by);
+            INFO(a.text);
+            REQUIRE(a.status == 200);
+            CHECK(a.body["user"] == p.user_ids[u]);
+            CHECK(a.body["rank_by"] == rank_by);
+            REQUIRE(a.body["items"].size() == want.size());
+            for (size_t k = 0; k < want.size(); ++k) {
+                CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
+                CHECK(a.body["items"][k]["score"].get<double>() == want[k].score);
+                require_same_prediction(a.body["items"][k], want[k].prediction);
+            }
+        }
+    }
+    SECTION("candidates and rated items") {
+        RecommendOptions o;
+        o.n = 3;
+        o.exclude_rated = false;
+        o.candidates = std::vector<uint32_t>{5, 6, 9, 40};
+        const auto want = f.engine->recommend(3, o);
+        auto a = get(*c, kUserRoute,
+                     user_path(kOddUser) + "?n=3&exclude_rated=false&items=" + url_encode(kOddItem) + "&items=" +
+                         url_encode(kSimilarItem) + "&items=sku-00009&items=sku-00040");
+        INFO(a.text);
+        REQUIRE(a.status == 200);
+        REQUIRE(a.body["items"].size() == want.size());
+        for (size_t k = 0; k < want.size(); ++k) CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
+    }
+}
+
+TEST_CASE("bad recommendation requests get problem documents") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const std::string base = user_path("cust-00001");
+    require_problem(get(*c, kUserRoute, user_path("cust-stranger")), 404);
+    require_problem(get(*c, kUserRoute, base + "?n=0"), 400);
+    require_problem(get(*c, kUserRoute, base + "?n=101"), 400);
+    require_problem(get(*c, kUserRoute, base + "?n=ten"), 400);
+    require_problem(get(*c, kUserRoute, base + "?rank_by=luck"), 400);
+    require_problem(get(*c, kUserRoute, base + "?interval=1.5"), 400);
+    require_problem(get(*c, kUserRoute, base + "?exclude_rated=maybe"), 400);
+    require_problem(get(*c, kUserRoute, base + "?items=sku-missing"), 404);
+    require_problem(get(*c, kUserRoute, "/v1/users/cust-00001/wishlist"), 404);
+    require_problem(get(*c, kUserRoute, "/v1/users/cust%zz/recommendations"), 400);
+}
+
+TEST_CASE("visitor fold-in matches the offline fold-in and engine") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    const std::vector<server::VisitorRating> ratings = {{10, 5.0}, {11, 1.5}, {5, 4.0}};
+    RecommendOptions o;
+    o.n = 6;
+    o.rank_by = RankBy::lower;
+    const auto visitor = server::fold_in_visitor(p, ratings, 1234);
+    const auto want = f.engine->recommend_for_factors(visitor.factors, visitor.bias, std::vector<uint32_t>{5, 10, 11}, o);
+    const json req = {{"ratings", json::array({{{"item", "sku-00010"}, {"rating", 5.0}},
+                                               {{"item", "sku-00011"}, {"rating", 1.5}},
+                                               {{"item", kOddItem}, {"rating", 4}}})},
+                      {"n", 6},
+                      {"rank_by", "lower"},
+                      {"seed", 1234}};
+    auto a = post(*c, "/v1/recommendations", "/v1/recommendations", req.dump());
+    INFO(a.text);
+    REQUIRE(a.status == 200);
+    CHECK(a.body["seed"] == 1234);
+    REQUIRE(a.body["items"].size() == want.size());
+    for (size_t k = 0; k < want.size(); ++k) {
+        CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
+        require_same_prediction(a.body["items"][k], want[k].prediction);
+    }
+    // Same seed, same answer; no ratings at all is a valid (prior) visitor.
+    CHECK(post(*c, "/v1/recommendations", "/v1/recommendations", req.dump()).text == a.text);
+    auto cold = post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": 3})");
+    REQUIRE(cold.status == 200);
+    CHECK(cold.body["items"].size() == 3);
+
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
+                         R"({"ratings":[{"item":"sku-ghost","rating":3}]})"), 404);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
+                         R"({"ratings":[{"item":"sku-00001","rating":9}]})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
+                         R"({"ratings":[{"item":"sku-00001","rating":3},{"item":"sku-00001","rating":4}]})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": -2})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"seed": "abc"})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", "nope"), 400);
+}
+
+TEST_CASE("item detail and lists agree with direct computation") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    const uint32_t S = p.num_samples, U = p.num_users, I = p.num_items, K = p.rank;
+    // Direct: mean and sd of m_s(u,i) over every (user, sample), and the
+    // posterior sd of each factor coordinate, by plain loops in double.
+    auto direct = [&](uint32_t i) {
+        double sum = 0, sum_sq = 0;
+        for (uint32_t s = 0; s < S; ++s)
+            for (uint32_t u = 0; u < U; ++u) {
+                double m = double(p.global_mean) + p.user_bias_of(s, u) + p.item_bias_of(s, i);
+                for (uint32_t k = 0; k < K; ++k) m += double(p.user_factor(s, u)[k]) * p.item_factor(s, i)[k];
+                sum += m;
+                sum_sq += m * m;
+            }
+        const double n = double(S) * U, mean = sum / n;
+        return std::pair{mean, std::sqrt(sum_sq / n - mean * mean)};
+    };
+    std::vector<uint32_t> counts(I, 0);
+    for (uint32_t i : p.rated_items) ++counts[i];
+    for (uint32_t i : {0u, 5u, 6u, 77u}) {
+        auto a = get(*c, "/v1/items/{item}", "/v1/items/" + url_encode(p.item_ids[i]));
+        INFO(p.item_ids[i] << " " << a.text);
+        REQUIRE(a.status == 200);
+        CHECK(a.body["item"] == p.item_ids[i]);
+        CHECK(a.body["rating_count"] == counts[i]);
+        const auto [mean, sd] = direct(i);
+        // Two summation orders of ~1e3 terms: agreement to 1e-9 relative.
+        CHECK(a.body["mean"].get<double>() == Approx(mean).epsilon(1e-9));
+        CHECK(a.body["sd"].get<double>() == Approx(sd).epsilon(1e-7));
+        for (uint32_t k = 0; k < K; ++k) {
+            double s1 = 0, s2 = 0;
+            for (uint32_t s = 0; s < S; ++s) {
+                s1 += p.item_factor(s, i)[k];
+                s2 += double(p.item_factor(s, i)[k]) * p.item_factor(s, i)[k];
+            }
+            CHECK(a.body["factor_mean"][k].get<double>() == Approx(s1 / S).epsilon(1e-6));
+            CHECK(a.body["factor_sd"][k].get<double>() == Approx(std::sqrt(s2 / S - (s1 / S) * (s1 / S))).epsilon(1e-4));
+        }
+    }
+    require_problem(get(*c, "/v1/items/{item}", "/v1/items/sku-ghost"), 404);
+
+    auto popular = get(*c, "/v1/items", "/v1/items?order=popularity&n=15");
+    REQUIRE(popular.status == 200);
+    REQUIRE(popular.body["items"].size() == 15);
+    for (size_t k = 1; k < 15; ++k)
+        CHECK(popular.body["items"][k - 1]["rating_count"] >= popular.body["items"][k]["rating_count"]);
+    CHECK(popular.body["items"][0]["rating_count"] == *std::max_element(counts.begin(), counts.end()));
+    for (const char* order : {"uncertainty", "mean"}) {
+        const std::string key = std::string(order) == "mean" ? "mean" : "factor_spread";
+        auto list = get(*c, "/v1/items", std::string("/v1/items?n=100&order=") + order);
+        REQUIRE(list.status == 200);
+        REQUIRE(list.body["items"].size() == 100);
+        for (size_t k = 1; k < 100; ++k) CHECK(list.body["items"][k - 1][key] >= list.body["items"][k][key]);
+    }
+    CHECK(get(*c, "/v1/items", "/v1/items").body["items"].size() == 20);
+    require_problem(get(*c, "/v1/items", "/v1/items?order=price"), 400);
+    require_problem(get(*c, "/v1/items", "/v1/items?n=1000"), 400);
+}
+
+TEST_CASE("similar items are ranked by per-sample cosine averaged over samples") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    for (uint32_t target : {6u, 30u}) {
+        std::vector<std::pair<double, uint32_t>> want;
+        for (uint32_t i = 0; i < I; ++i) {
+            if (i == target) continue;
+            double total = 0;
+            for (uint32_t s = 0; s < S; ++s) {
+                double dot = 0, na = 0, nb = 0;
+                for (uint32_t k = 0; k < K; ++k) {
+                    const double a = p.item_factor(s, target)[k], b = p.item_factor(s, i)[k];
+                    dot += a * b;
+                    na += a * a;
+                    nb += b * b;
+                }
+                total += dot / std::sqrt(na * nb);
+            }
+            want.emplace_back(-total / S, i);
+        }
+        std::sort(want.begin(), want.end());
+        auto a = get(*c, "/v1/items/{item}/similar", "/v1/items/" + url_encode(p.item_ids[target]) + "/similar?n=5");
+        INFO(a.text);
+        REQUIRE(a.status == 200);
+        REQUIRE(a.body["items"].size() == 5);
+        for (size_t k = 0; k < 5; ++k) {
+            // float scoring vs double here: near-ties could swap, so compare scores, not just ids.
+            CHECK(a.body["items"][k]["similarity"].get<double>() == Approx(-want[k].first).margin(1e-5));
+        }
+        CHECK(a.body["items"][0]["item"] == p.item_ids[want[0].second]);
+    }
+    require_problem(get(*c, "/v1/items/{item}/similar", "/v1/items/sku-ghost/similar"), 404);
+    require_problem(get(*c, "/v1/items/{item}/similar", "/v1/items/sku-00001/similar?n=0"), 400);
+}
+
+TEST_CASE("admin reload needs the token, stays inside the model directory and survives bad files") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const std::string before = get(*c, "/v1/model", "/v1/model").body["model"];
+    const auto bearer = httplib::Headers{{"Authorization", "Bearer " + kToken}};
+    require_problem(post(*c, "/v1/admin/reload", "/v1/admin/reload", ""), 401);
+    require_problem(post(*c, "/v1/admin/reload", "/v1/admin/reload", "", {{"Authorization", "Bearer wrong"}}), 403);
+    require_problem(post(*c, "/v1/admin/reload", "/v1/admin/reload", R"({"path":"/etc/passwd"})", bearer), 403);
+    require_problem(post(*c, "/v1/admin/reload", "/v1/admin/reload", R"({"path":"../elsewhere.posterior"})", bearer), 403);
+    auto broken = post(*c, "/v1/admin/reload", "/v1/admin/reload",
+                       json{{"path", f.corrupt_path.filename().string()}}.dump(), bearer);
+    require_problem(broken, 422);
+    CHECK(get(*c, "/v1/model", "/v1/model").body["model"] == before);
+
+    auto swap = post(*c, "/v1/admin/reload", "/v1/admin/reload", json{{"path", f.other_path.string()}}.dump(), bearer);
+    INFO(swap.text);
+    REQUIRE(swap.status == 200);
+    CHECK(swap.body["previous"] == before);
+    CHECK(swap.body["model"] != before);
+    CHECK(get(*c, "/v1/model", "/v1/model").body["model"] == swap.body["model"]);
+    auto back = post(*c, "/v1/admin/reload", "/v1/admin/reload", json{{"path", "shop.posterior"}}.dump(), bearer);
+    REQUIRE(back.status == 200);
+    CHECK(back.body["model"] == before);
+}
+
+TEST_CASE("metrics are Prometheus text with requests, latency, in-flight and model") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    get(*c, "/v1/health", "/v1/health");
+    require_problem(get(*c, "", "/v1/nowhere"), 404);
+    auto r = c->Get("/metrics");
+    REQUIRE(r);
+    REQUIRE(r->status == 200);
+    answered_routes().insert({"get", "/metrics", 200});
+    CHECK(r->get_header_value("Content-Type").rfind("text/plain; version=0.0.4", 0) == 0);
+    const std::string& text = r->body;
+    CHECK(text.find("credence_http_requests_total{route=\"/v1/health\",status=\"200\"}") != std::string::npos);
+    CHECK(text.find("credence_http_requests_total{route=\"unmatched\",status=\"404\"}") != std::string::npos);
+    CHECK(text.find("credence_http_request_duration_seconds_bucket{route=\"/v1/health\",le=\"+Inf\"}") != std::string::npos);
+    CHECK(text.find("# TYPE credence_http_request_duration_seconds histogram") != std::string::npos);
+    // This very request is in flight while the page is rendered.
+    CHECK(text.find("credence_http_requests_in_flight 1\n") != std::string::npos);
+    const std::string fingerprint = get(*c, "/v1/model", "/v1/model").body["model"];
+    CHECK(text.find("credence_model_info{fingerprint=\"" + fingerprint + "\"") != std::string::npos);
+    CHECK(text.find("credence_model_load_seconds ") != std::string::npos);
+    // Every sample line is "name{labels} value" or "name value" with a numeric value.
+    std::istringstream lines(text);
+    std::string line;
+    while (std::getline(lines, line)) {
+        if (line.empty() || line[0] == '#') continue;
+        const auto space = line.rfind(' ');
+        REQUIRE(space != std::string::npos);
+        INFO(line);
+        CHECK_NOTHROW(std::stod(line.substr(space + 1)));
+    }
+}
+
+TEST_CASE("every route and status the server answered is described in openapi.json") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    auto served = get(*c, "/v1/openapi.json", "/v1/openapi.json");
+    REQUIRE(served.status == 200);
+    std::ifstream in(source_dir() / "server" / "openapi.json");
+    const json doc = json::parse(in);
+    CHECK(served.body == doc);
+    REQUIRE(doc.contains("openapi"));
+    REQUIRE(doc.contains("paths"));
+    CHECK(doc.at("openapi").get<std::string>().rfind("3.1", 0) == 0);
+    const json& paths = doc.at("paths");
+    size_t checked = 0;
+    for (const auto& [method, pattern, status] : answered_routes()) {
+        if (pattern.empty()) continue;  // deliberately unknown routes
+        INFO(method << " " << pattern << " " << status);
+        REQUIRE(paths.contains(pattern));
+        REQUIRE(paths.at(pattern).contains(method));
+        CHECK(paths.at(pattern).at(method).at("responses").contains(std::to_string(status)));
+        ++checked;
+    }
+    // Each route answered at least once when the whole file runs.
+    CHECK(checked > 0);
+}
