@@ -4,6 +4,7 @@
 
 #include "cli/commands.hpp"
 #include "model/posterior/posterior_file.hpp"
+#include "model/posterior/posterior_summary.hpp"
 
 namespace credence::cli {
 

@@ -1,3 +1,5 @@
+#include "server/config.hpp"
+
 #include <cstdlib>
 #include <fstream>
 #include <limits>
@@ -6,7 +8,6 @@
 #include <toml++/toml.h>
 
 #include "model/error.hpp"
-#include "server/server.hpp"
 
 namespace credence::server {
 

@@ -2,6 +2,8 @@
 // SIGINT/SIGTERM, reloads on SIGHUP. Also installs the routes that belong to
 // no group (/metrics, /v1/openapi.json) and the problem answers for requests
 // that reach no handler (unknown route, body too large, malformed request).
+#include "server/server.hpp"
+
 #include <csignal>
 #include <cstdio>
 #include <fstream>

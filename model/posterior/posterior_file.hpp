@@ -25,8 +25,4 @@ uint64_t write_posterior(const Posterior& posterior, const std::string& path);
 // allocates beyond the file's size on a corrupt file.
 Posterior read_posterior(const std::string& path);
 
-// A short human-readable summary (for `credence inspect`): shape, samples,
-// chains, scale, fit metadata highlights, diagnostics verdict, file size.
-std::string describe_posterior(const Posterior& posterior, const std::string& path);
-
 }  // namespace credence

@@ -1,5 +1,4 @@
 // describe_posterior: the human-readable summary behind `credence inspect`.
-// Declared in model/posterior/posterior_file.hpp.
 //
 // The fit metadata and diagnostics are free-form JSON written by other
 // modules; this summary picks out a few well-known keys when present, at the
@@ -8,6 +7,8 @@
 //   diagnostics:  verdict, max_rhat, min_ess_bulk_per_chain,
 //                 min_ess_tail_per_chain, warnings (counted)
 // (the diagnostics keys are those of model/fit/convergence_summary.cpp).
+#include "model/posterior/posterior_summary.hpp"
+
 #include <cmath>
 #include <cstdio>
 #include <filesystem>
@@ -18,6 +19,7 @@
 #include <nlohmann/json.hpp>
 
 #include "model/posterior/posterior_file.hpp"
+
 
 namespace credence {
 namespace {

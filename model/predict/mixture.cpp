@@ -1,4 +1,4 @@
-// Mixture helpers declared in model/predict/predict.hpp.
+// The predictive mixture (model/predict/mixture.hpp).
 //
 // Mixture quantiles: every component quantile q_s = m_s + z_p / sqrt(tau_s)
 // has F_s(q_s) = p, so F(min_s q_s) <= p <= F(max_s q_s) for the mixture CDF F
@@ -6,6 +6,8 @@
 // falling back to bisection whenever a step leaves the bracket. Upper-half
 // probabilities are solved on the mirrored mixture so that 1 - p never
 // suffers cancellation.
+#include "model/predict/mixture.hpp"
+
 #include <algorithm>
 #include <cmath>
 #include <limits>
@@ -14,8 +16,9 @@
 #include <string>
 #include <vector>
 
+#include "model/predict/mixture.hpp"
+
 #include "model/math/standard_normal.hpp"
-#include "model/predict/predict.hpp"
 
 namespace credence {
 

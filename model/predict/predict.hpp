@@ -15,6 +15,7 @@
 #include <vector>
 
 #include "model/posterior/posterior.hpp"
+#include "model/predict/mixture.hpp"
 
 namespace credence {
 
@@ -62,14 +63,6 @@ struct RecommendAnswer {
     std::vector<Recommendation> items;
     std::exception_ptr error;  // null on success
 };
-
-// Mixture helpers over per-sample means m[s] and noise precisions tau[s].
-// All need m.size() == tau.size() > 0.
-double mixture_mean(std::span<const double> m);
-double mixture_sd(std::span<const double> m, std::span<const float> tau);
-double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x);
-double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p);
-double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x);
 
 class PredictionEngine {
 public:

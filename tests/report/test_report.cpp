@@ -136,8 +136,7 @@ TEST_CASE("the report of a small fit renders in headless Chromium with content i
     CHECK(html.find("https://") == std::string::npos);
     CHECK(html.find("src=") == std::string::npos);
 
-    const fs::path artifacts = fs::current_path() / "test-artifacts";
-    fs::create_directories(artifacts);
+    const fs::path artifacts = credence::testing::artifacts_dir();
     const fs::path page = artifacts / "report.html";
     std::ofstream(page) << html;
 

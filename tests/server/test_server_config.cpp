@@ -6,7 +6,7 @@
 #include <fstream>
 
 #include "model/error.hpp"
-#include "server/server.hpp"
+#include "server/config.hpp"
 #include "tests/support/paths.hpp"
 
 using namespace credence;

@@ -12,6 +12,14 @@ namespace credence::testing {
 inline std::filesystem::path source_dir() { return CREDENCE_SOURCE_DIR; }
 inline std::filesystem::path credence_binary() { return CREDENCE_BINARY; }
 
+// Where tests keep what a person should look at afterwards (screenshots):
+// <build>/test-artifacts, created on first use.
+inline std::filesystem::path artifacts_dir() {
+    auto p = std::filesystem::path(CREDENCE_BUILD_DIR) / "test-artifacts";
+    std::filesystem::create_directories(p);
+    return p;
+}
+
 // The MovieLens small ratings file, or an empty path with a visible notice
 // on stderr when it is absent (a user's clone has no ../shared).
 inline std::filesystem::path open_ratings_dataset() {
@@ -25,9 +33,10 @@ inline std::filesystem::path open_ratings_dataset() {
     return p;
 }
 
-// A fresh scratch directory under the build tree, removed first if present.
+// A fresh scratch directory under the build tree (<build>/test-scratch/name,
+// whatever the working directory), removed first if present.
 inline std::filesystem::path scratch_dir(const std::string& name) {
-    auto p = std::filesystem::current_path() / "test-scratch" / name;
+    auto p = std::filesystem::path(CREDENCE_BUILD_DIR) / "test-scratch" / name;
     std::filesystem::remove_all(p);
     std::filesystem::create_directories(p);
     return p;

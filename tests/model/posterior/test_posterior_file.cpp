@@ -22,6 +22,7 @@
 
 #include "model/error.hpp"
 #include "model/posterior/posterior_file.hpp"
+#include "model/posterior/posterior_summary.hpp"
 #include "tests/support/simulate.hpp"
 #include "tests/support/paths.hpp"
 

@@ -1,5 +1,5 @@
-// credence predict / credence recommend: offline answers from a posterior
-// file, through the same prediction engine the server uses.
+// credence recommend: one customer's top-N from a posterior file, through the
+// same prediction engine the server uses.
 #include <iostream>
 #include <memory>
 #include <sstream>
@@ -8,6 +8,7 @@
 #include <nlohmann/json.hpp>
 
 #include "cli/commands.hpp"
+#include "cli/model_lookup.hpp"
 #include "model/error.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/predict.hpp"
@@ -15,40 +16,6 @@
 namespace credence::cli {
 
 namespace {
-
-uint32_t find_index(const std::vector<std::string>& ids, const std::string& id, const char* kind) {
-    for (uint32_t i = 0; i < ids.size(); ++i)
-        if (ids[i] == id) return i;
-    throw DataError(fmt::format("{} '{}' is not in the model (it has {} {}s)", kind, id, ids.size(), kind));
-}
-
-nlohmann::json prediction_json(const Prediction& p, double level) {
-    return {{"mean", p.mean}, {"sd", p.sd}, {"lower", p.lower}, {"upper", p.upper}, {"level", level}};
-}
-
-struct PredictFlags {
-    std::string model, user, item;
-    double level = 0.9;
-    bool json = false;
-};
-
-int run_predict(const PredictFlags& f) {
-    auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
-    PredictionEngine engine(posterior);
-    const uint32_t u = find_index(posterior->user_ids, f.user, "user");
-    const uint32_t i = find_index(posterior->item_ids, f.item, "item");
-    const Prediction p = engine.predict(u, i, f.level);
-    if (f.json) {
-        nlohmann::json j = prediction_json(p, f.level);
-        j["user"] = f.user;
-        j["item"] = f.item;
-        std::cout << j.dump(2) << "\n";
-    } else {
-        std::cout << fmt::format("{} -> {}: {:.2f} ± {:.2f}  ({:.0f}% interval {:.2f} .. {:.2f})\n", f.user, f.item,
-                                 p.mean, p.sd, 100 * f.level, p.lower, p.upper);
-    }
-    return 0;
-}
 
 struct RecommendFlags {
     std::string model, user, rank_by = "mean", items;
@@ -103,17 +70,6 @@ int run_recommend(const RecommendFlags& f) {
 }
 
 }  // namespace
-
-Runner add_predict_command(CLI::App& app) {
-    auto f = std::make_shared<PredictFlags>();
-    CLI::App* cmd = app.add_subcommand("predict", "Predicted rating of one user for one item, with sd and credible interval");
-    cmd->add_option("--model,-m", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
-    cmd->add_option("--user,-u", f->user, "User id as in the ratings export")->required();
-    cmd->add_option("--item,-i", f->item, "Item id as in the ratings export")->required();
-    cmd->add_option("--level", f->level, "Credible interval level")->check(CLI::Range(0.001, 0.999))->capture_default_str();
-    cmd->add_flag("--json", f->json, "Print JSON");
-    return [f] { return run_predict(*f); };
-}
 
 Runner add_recommend_command(CLI::App& app) {
     auto f = std::make_shared<RecommendFlags>();

@@ -1,0 +1,18 @@
+// The posterior predictive mixture of one rating: the equal-weight mixture
+// over kept samples s of Normal(m[s], 1/tau[s]). Used by the prediction
+// engine, population answers, evaluation, comparison and the report.
+// Quantiles are exact (bracket and Newton/bisection; see mixture.cpp).
+#pragma once
+#include <span>
+
+namespace credence {
+
+// Mixture helpers over per-sample means m[s] and noise precisions tau[s].
+// All need m.size() == tau.size() > 0.
+double mixture_mean(std::span<const double> m);
+double mixture_sd(std::span<const double> m, std::span<const float> tau);
+double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x);
+double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p);
+double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x);
+
+}  // namespace credence
