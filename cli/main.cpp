@@ -38,6 +38,9 @@ int main(int argc, char** argv) {
         if (!sub->parsed()) continue;
         try {
             return runner();
+        } catch (const credence::OptionError& e) {
+            std::cerr << "credence " << sub->get_name() << ": " << e.what() << "\n";
+            return 2;
         } catch (const credence::Error& e) {
             std::cerr << "credence " << sub->get_name() << ": " << e.what() << "\n";
             return 1;

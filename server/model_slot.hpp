@@ -2,9 +2,10 @@
 //
 // A LoadedModel is everything one model needs to answer requests: the
 // posterior, its prediction engine, id maps and per-item statistics computed
-// once at load. It is immutable; each request takes one shared_ptr snapshot
-// from the ModelSlot, so every answer comes whole from one model even while a
-// reload swaps in another.
+// once at load (model/predict/item_statistics.hpp). It is immutable; each
+// request takes one shared_ptr snapshot from the ModelSlot, so every answer
+// comes whole from one model even while a reload swaps in another. Used by
+// every route file and by `credence serve`.
 #pragma once
 #include <atomic>
 #include <chrono>
@@ -14,9 +15,10 @@
 #include <string>
 #include <vector>
 
-#include "model/posterior/posterior.hpp"
-#include "model/predict/predict.hpp"
 #include "model/data/ratings.hpp"
+#include "model/posterior/posterior.hpp"
+#include "model/predict/item_statistics.hpp"
+#include "model/predict/predict.hpp"
 
 namespace credence::server {
 
@@ -32,29 +34,18 @@ struct LoadedModel {
     double load_ms = 0.0;      // read + validate + precompute
     int64_t loaded_at_unix_s = 0;
 
-    // ---- per-item statistics (index = item)
-    std::vector<uint32_t> rating_count;     // training ratings of the item
-    std::vector<double> population_mean;    // mean of m_s(u,i) over all users u and kept samples s
-    std::vector<double> population_sd;      // sd of m_s(u,i) over the same (users x samples)
-    std::vector<float> factor_mean;         // [I][K] posterior mean of the item factor
-    std::vector<float> factor_sd;           // [I][K] posterior sd of each factor coordinate
-    std::vector<double> factor_spread;      // [I] root mean square of factor_sd over k
-    std::vector<float> item_norm;           // [S][I] Euclidean norm of each sample's item factor
-    std::vector<uint32_t> by_uncertainty;   // items by factor_spread, largest first
-    std::vector<uint32_t> by_popularity;    // items by rating_count, largest first
-    std::vector<uint32_t> by_mean;          // items by population_mean, largest first
-
-    // ---- hyperparameter covariances Lambda^-1 per sample (population fallback, fold-in)
-    std::vector<double> user_cov;           // [S][K][K]
-    std::vector<double> item_cov;           // [S][K][K]
+    // Per-item statistics, orderings and hyperparameter covariances of the
+    // posterior (item routes, population answers).
+    ItemStatistics statistics;
 
     uint32_t rank() const { return posterior->rank; }
     uint32_t num_samples() const { return posterior->num_samples; }
 };
 
 // Builds a LoadedModel from a validated posterior; `source_path` is recorded
-// as given. Throws credence::Error if a hyperparameter precision matrix is not
-// positive definite (the model cannot serve population answers).
+// as given. Throws NumericError (a credence::Error) if a hyperparameter
+// precision matrix is not positive definite (the model cannot serve
+// population answers).
 std::shared_ptr<const LoadedModel> build_loaded_model(std::shared_ptr<const Posterior> posterior,
                                                       std::string source_path);
 

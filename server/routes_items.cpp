@@ -2,14 +2,11 @@
 // factor spread. GET /v1/items?order=uncertainty|popularity|mean&n=20: ranked
 // lists for analysts. GET /v1/items/{item}/similar?n=10: nearest items.
 //
-// Similarity is the cosine of two items' factors computed within each kept
-// sample and averaged over samples. Averaging factors first would be wrong:
-// factors are identified only up to a rotation, which differs between chains.
+// The statistics and the similarity (per-sample cosine averaged over samples)
+// come from model/predict/item_statistics.hpp; this file parses and serializes.
 #include <algorithm>
-#include <numeric>
 
-#include <Eigen/Dense>
-
+#include "model/predict/item_statistics.hpp"
 #include "server/app.hpp"
 
 namespace credence::server {
@@ -17,54 +14,32 @@ namespace credence::server {
 namespace {
 
 nlohmann::json item_summary(const LoadedModel& m, uint32_t i) {
+    const ItemStatistics& st = m.statistics;
     return {{"item", m.items.name(i)},
-            {"rating_count", m.rating_count[i]},
-            {"mean", m.population_mean[i]},
-            {"sd", m.population_sd[i]},
-            {"factor_spread", m.factor_spread[i]}};
+            {"rating_count", st.rating_count[i]},
+            {"mean", st.population_mean[i]},
+            {"sd", st.population_sd[i]},
+            {"factor_spread", st.factor_spread[i]}};
 }
 
 void detail_handler(const LoadedModel& m, uint32_t i, httplib::Response& res) {
     const uint32_t K = m.rank();
+    const ItemStatistics& st = m.statistics;
     nlohmann::json body = item_summary(m, i);
     body["model"] = m.fingerprint;
-    body["factor_mean"] = std::vector<float>(m.factor_mean.begin() + static_cast<size_t>(i) * K,
-                                             m.factor_mean.begin() + static_cast<size_t>(i + 1) * K);
-    body["factor_sd"] = std::vector<float>(m.factor_sd.begin() + static_cast<size_t>(i) * K,
-                                           m.factor_sd.begin() + static_cast<size_t>(i + 1) * K);
+    body["factor_mean"] = std::vector<float>(st.factor_mean.begin() + static_cast<size_t>(i) * K,
+                                             st.factor_mean.begin() + static_cast<size_t>(i + 1) * K);
+    body["factor_sd"] = std::vector<float>(st.factor_sd.begin() + static_cast<size_t>(i) * K,
+                                           st.factor_sd.begin() + static_cast<size_t>(i + 1) * K);
     write_json(res, body, &m);
 }
 
 void similar_handler(const AppContext& ctx, const httplib::Request& req, const LoadedModel& m, uint32_t target,
                      httplib::Response& res) {
     const uint32_t n = query_count(req, "n", 10, ctx.options.max_n);
-    const Posterior& p = *m.posterior;
-    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
-    Eigen::VectorXd total = Eigen::VectorXd::Zero(I);
-    for (uint32_t s = 0; s < S; ++s) {
-        Eigen::Map<const Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>> block(p.item_block(s),
-                                                                                                      I, K);
-        Eigen::Map<const Eigen::VectorXf> v(p.item_factor(s, target).data(), K);
-        const Eigen::VectorXf dots = block * v;
-        const float* norms = m.item_norm.data() + static_cast<size_t>(s) * I;
-        const float own = norms[target];
-        for (uint32_t i = 0; i < I; ++i) {
-            const float denom = own * norms[i];
-            // A zero factor has no direction; it counts as dissimilar (cosine 0).
-            if (denom > 0.0f) total(i) += dots(i) / denom;
-        }
-    }
-    std::vector<uint32_t> order;
-    order.reserve(I);
-    for (uint32_t i = 0; i < I; ++i)
-        if (i != target) order.push_back(i);
-    const size_t take = std::min<size_t>(n, order.size());
-    std::partial_sort(order.begin(), order.begin() + take, order.end(), [&](uint32_t a, uint32_t b) {
-        return total(a) != total(b) ? total(a) > total(b) : a < b;
-    });
     nlohmann::json items = nlohmann::json::array();
-    for (size_t k = 0; k < take; ++k)
-        items.push_back({{"item", m.items.name(order[k])}, {"similarity", total(order[k]) / S}});
+    for (const SimilarItem& similar : similar_items(*m.posterior, m.statistics, target, n))
+        items.push_back({{"item", m.items.name(similar.item)}, {"similarity", similar.similarity}});
     write_json(res, {{"model", m.fingerprint}, {"item", m.items.name(target)}, {"items", std::move(items)}}, &m);
 }
 
@@ -73,9 +48,9 @@ void list_handler(const AppContext& ctx, const httplib::Request& req, httplib::R
     const std::string order = req.has_param("order") ? req.get_param_value("order") : "uncertainty";
     const auto model = ctx.model();
     const std::vector<uint32_t>* ranking = nullptr;
-    if (order == "uncertainty") ranking = &model->by_uncertainty;
-    else if (order == "popularity") ranking = &model->by_popularity;
-    else if (order == "mean") ranking = &model->by_mean;
+    if (order == "uncertainty") ranking = &model->statistics.by_uncertainty;
+    else if (order == "popularity") ranking = &model->statistics.by_popularity;
+    else if (order == "mean") ranking = &model->statistics.by_mean;
     else throw bad_request("order must be one of uncertainty, popularity, mean; got '" + order + "'");
     nlohmann::json items = nlohmann::json::array();
     for (size_t k = 0; k < std::min<size_t>(n, ranking->size()); ++k) items.push_back(item_summary(*model, (*ranking)[k]));

@@ -3,8 +3,8 @@
 // answer) unless the client asks for "fallback": "population".
 #include <optional>
 
+#include "model/predict/population.hpp"
 #include "server/app.hpp"
-#include "server/population.hpp"
 
 namespace credence::server {
 
@@ -58,7 +58,8 @@ void predict_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
             put_prediction(answer, model->engine.predict(*user, *item, level));
             answer["source"] = "model";
         } else if (population) {
-            put_prediction(answer, population_prediction(*model, user, item, level));
+            put_prediction(answer,
+                           population_prediction(*model->posterior, model->statistics.covariances, user, item, level));
             answer["source"] = "population";
         } else {
             answer["error"] = user ? pair_error("item", item_id) : pair_error("user", user_id);

@@ -1,13 +1,14 @@
 // GET /v1/users/{user}/recommendations: top-N for a known user.
-// POST /v1/recommendations: top-N for a visitor, by fold-in (server/foldin.hpp).
+// POST /v1/recommendations: top-N for a visitor, by fold-in (model/predict/foldin.hpp).
 // Both rank by mean, lower or upper interval bound, or one posterior draw,
 // and give mean, sd and interval for every item. Known users' requests that
 // arrive together share one pass over the item samples (server/topn_batcher.hpp).
 #include <algorithm>
-#include <set>
+#include <vector>
 
+#include "model/error.hpp"
+#include "model/predict/foldin.hpp"
 #include "server/app.hpp"
-#include "server/foldin.hpp"
 #include "server/topn_batcher.hpp"
 
 namespace credence::server {
@@ -132,26 +133,20 @@ void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
     }
 
     const auto model = ctx.model();
-    const Posterior& p = *model->posterior;
     std::vector<VisitorRating> ratings;
-    std::set<uint32_t> seen;
-    for (const auto& [id, value] : rated) {
-        const uint32_t item = item_index(*model, id);
-        if (!seen.insert(item).second)
-            throw bad_request("item '" + id + "' is rated twice; give each item once");
-        if (!(value >= p.scale.min && value <= p.scale.max))
-            throw bad_request("rating " + std::to_string(value) + " for item '" + id + "' is outside the scale [" +
-                              std::to_string(p.scale.min) + ", " + std::to_string(p.scale.max) + "]");
-        ratings.push_back({item, value});
+    ratings.reserve(rated.size());
+    for (const auto& [id, value] : rated) ratings.push_back({item_index(*model, id), value});
+    try {
+        check_visitor_ratings(*model->posterior, ratings);
+    } catch (const DataError& e) {
+        throw bad_request(e.what());  // an item rated twice, a rating outside the scale
     }
     if (!candidate_ids.empty()) {
         std::vector<uint32_t> candidates;
         for (const auto& id : candidate_ids) candidates.push_back(item_index(*model, id));
         options.candidates = std::move(candidates);
     }
-    const VisitorFactors visitor = fold_in_visitor(p, ratings, seed);
-    const std::vector<uint32_t> exclude(seen.begin(), seen.end());  // sorted
-    const auto recs = model->engine.recommend_for_factors(visitor.factors, visitor.bias, exclude, options);
+    const auto recs = recommend_for_visitor(model->engine, ratings, seed, options);
     write_json(res,
                {{"model", model->fingerprint},
                 {"seed", seed},

@@ -5,13 +5,20 @@
 
 #include <filesystem>
 #include <fstream>
+#include <memory>
+#include <optional>
 #include <string>
+#include <vector>
 
+#include <fmt/format.h>
 #include <nlohmann/json.hpp>
 
 #include "model/posterior/posterior_file.hpp"
+#include "model/predict/foldin.hpp"
+#include "model/predict/predict.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/run_command.hpp"
+#include "tests/support/server_process.hpp"
 
 using namespace credence::testing;
 namespace fs = std::filesystem;
@@ -39,6 +46,10 @@ const DemoFit& demo_fit() {
     }();
     return d;
 }
+
+// One shell word for a command line (quoted() takes paths; a plain string
+// would pick std::quoted).
+std::string word(const std::string& text) { return quoted(fs::path(text)); }
 
 size_t count_lines(const fs::path& p) {
     std::ifstream in(p);
@@ -106,6 +117,112 @@ TEST_CASE("inspect, predict and recommend answer from the file") {
     while (p.user_ids[u] != "c-00007") ++u;
     for (const auto& item : rj["items"])
         for (uint32_t i : p.rated_by(u)) CHECK(p.item_ids[i] != item["item"].get<std::string>());
+}
+
+TEST_CASE("recommend --rated folds in a visitor exactly as the server and the offline engine do") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    auto posterior = std::make_shared<const credence::Posterior>(credence::read_posterior(d.model.string()));
+    const auto& ids = posterior->item_ids;
+    // Three products the visitor rated, by index into the model and by id.
+    const std::vector<credence::VisitorRating> ratings = {{3, 5.0}, {17, 1.5}, {40, 4.0}};
+    std::string rated_flags;
+    json server_ratings = json::array();
+    for (const auto& r : ratings) {
+        rated_flags += " --rated " + word(ids[r.item] + "=" + fmt::format("{}", r.rating));
+        server_ratings.push_back({{"item", ids[r.item]}, {"rating", r.rating}});
+    }
+    const auto cli = run_credence("recommend --model " + quoted(d.model) + rated_flags +
+                                  " -n 6 --rank-by lower --seed 4242 --json");
+    INFO(cli.err);
+    REQUIRE(cli.exit_code == 0);
+    const auto got = json::parse(cli.out);
+    CHECK(got.at("rated") == 3);
+    CHECK(got.at("seed") == 4242);
+    const auto& items = got.at("items");
+    REQUIRE(items.size() == 6);
+
+    // Offline: the same model function on the same file, ratings and seed.
+    const credence::PredictionEngine engine(posterior);
+    const credence::RecommendOptions options{
+        .n = 6, .rank_by = credence::RankBy::lower, .candidates = std::nullopt, .draw_seed = 4242};
+    const auto want = credence::recommend_for_visitor(engine, ratings, 4242, options);
+    REQUIRE(want.size() == 6);
+    for (size_t k = 0; k < want.size(); ++k) {
+        INFO("position " << k);
+        CHECK(items[k].at("item") == ids[want[k].item]);
+        // JSON numbers round-trip doubles exactly, so equality is bitwise.
+        CHECK(items[k].at("score").get<double>() == want[k].score);
+        CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
+        CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
+        CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
+        CHECK(items[k].at("upper").get<double>() == want[k].prediction.upper);
+    }
+
+    // The server: POST /v1/recommendations with the same ratings and seed.
+    ServerProcess server(scratch_dir("cli-foldin-server"), d.model);
+    auto client = server.client();
+    const json request = {{"ratings", server_ratings}, {"n", 6}, {"rank_by", "lower"}, {"seed", 4242}};
+    const auto answer = client->Post("/v1/recommendations", request.dump(), "application/json");
+    REQUIRE(answer);
+    INFO(answer->body);
+    REQUIRE(answer->status == 200);
+    const auto served = json::parse(answer->body).at("items");
+    REQUIRE(served.size() == items.size());
+    for (size_t k = 0; k < served.size(); ++k) {
+        INFO("position " << k);
+        for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"}) CHECK(served[k].at(key) == items[k].at(key));
+    }
+
+    // The text form names the visitor and lists the same products in order.
+    const auto text = run_credence("recommend --model " + quoted(d.model) + rated_flags +
+                                   " -n 6 --rank-by lower --seed 4242");
+    REQUIRE(text.exit_code == 0);
+    CHECK(text.out.find("a visitor with 3 rating(s)") != std::string::npos);
+    size_t at = 0;
+    for (const auto& item : items) {
+        at = text.out.find(item.at("item").get<std::string>(), at);
+        CHECK(at != std::string::npos);
+    }
+}
+
+TEST_CASE("recommend needs exactly one of --user and --rated, and checks the ratings") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const std::string base = "recommend --model " + quoted(d.model);
+    const auto p = credence::read_posterior(d.model.string());
+    const std::string item = p.item_ids[0];
+    SECTION("neither is a usage error naming both") {
+        const auto r = run_credence(base);
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("--user") != std::string::npos);
+        CHECK(r.err.find("--rated") != std::string::npos);
+    }
+    SECTION("both is a usage error naming both") {
+        const auto r = run_credence(base + " --user " + word(p.user_ids[0]) + " --rated " + word(item + "=4"));
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("--user") != std::string::npos);
+        CHECK(r.err.find("--rated") != std::string::npos);
+    }
+    SECTION("a rating that is not PRODUCT=STARS is a usage error") {
+        for (const std::string& bad : std::vector<std::string>{item, item + "=", item + "=four", "=4"}) {
+            const auto r = run_credence(base + " --rated " + word(bad));
+            INFO(bad << ": " << r.err);
+            CHECK(r.exit_code == 2);
+            CHECK(r.err.find("--rated") != std::string::npos);
+        }
+    }
+    SECTION("an unknown product, a repeated product or stars off the scale are data errors") {
+        const auto ghost = run_credence(base + " --rated no-such-product=4");
+        CHECK(ghost.exit_code == 1);
+        CHECK(ghost.err.find("'no-such-product'") != std::string::npos);
+        const auto twice = run_credence(base + " --rated " + word(item + "=4") + " --rated " + word(item + "=2"));
+        CHECK(twice.exit_code == 1);
+        CHECK(twice.err.find("twice") != std::string::npos);
+        const auto high = run_credence(base + " --rated " + word(item + "=9"));
+        CHECK(high.exit_code == 1);
+        CHECK(high.err.find("scale") != std::string::npos);
+    }
 }
 
 TEST_CASE("evaluate --json carries the documented keys") {

@@ -12,10 +12,10 @@
 #include <sstream>
 
 #include "model/posterior/posterior_file.hpp"
+#include "model/predict/foldin.hpp"
 #include "model/predict/predict.hpp"
 #include "tests/support/simulate.hpp"
 #include "server/app.hpp"
-#include "server/foldin.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/server_http.hpp"
 #include "tests/support/server_process.hpp"
@@ -279,11 +279,11 @@ TEST_CASE("visitor fold-in matches the offline fold-in and engine") {
     auto& f = fixture();
     auto c = f.server->client();
     const Posterior& p = *f.posterior;
-    const std::vector<server::VisitorRating> ratings = {{10, 5.0}, {11, 1.5}, {5, 4.0}};
+    const std::vector<VisitorRating> ratings = {{10, 5.0}, {11, 1.5}, {5, 4.0}};
     RecommendOptions o;
     o.n = 6;
     o.rank_by = RankBy::lower;
-    const auto visitor = server::fold_in_visitor(p, ratings, 1234);
+    const auto visitor = fold_in_visitor(p, ratings, 1234);
     const auto want = f.engine->recommend_for_factors(visitor.factors, visitor.bias, std::vector<uint32_t>{5, 10, 11}, o);
     const json req = {{"ratings", json::array({{{"item", "sku-00010"}, {"rating", 5.0}},
                                                {{"item", "sku-00011"}, {"rating", 1.5}},

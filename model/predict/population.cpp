@@ -1,25 +1,47 @@
-#include "server/population.hpp"
+#include "model/predict/population.hpp"
 
 #include <algorithm>
+#include <stdexcept>
+#include <string>
 #include <vector>
 
 #include <Eigen/Dense>
 
-namespace credence::server {
+#include "model/predict/mixture.hpp"
+
+namespace credence {
 
 namespace {
+
 using MatrixXdR = Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+
+void check_arguments(const Posterior& p, const HyperparameterCovariances& cov, std::optional<uint32_t> user,
+                     std::optional<uint32_t> item, double level) {
+    const size_t matrices = static_cast<size_t>(p.num_samples) * p.rank * p.rank;
+    if (cov.rank != p.rank || cov.num_samples != p.num_samples || cov.user.size() != matrices ||
+        cov.item.size() != matrices)
+        throw std::invalid_argument("population_prediction: the covariances were computed from another posterior");
+    if (!(level > 0.0 && level < 1.0))
+        throw std::invalid_argument("population_prediction: level must lie in (0, 1), got " + std::to_string(level));
+    if (user && *user >= p.num_users)
+        throw std::out_of_range("population_prediction: user index " + std::to_string(*user) + " is not below " +
+                                std::to_string(p.num_users));
+    if (item && *item >= p.num_items)
+        throw std::out_of_range("population_prediction: item index " + std::to_string(*item) + " is not below " +
+                                std::to_string(p.num_items));
 }
 
-Prediction population_prediction(const LoadedModel& model, std::optional<uint32_t> user,
-                                 std::optional<uint32_t> item, double level) {
-    const Posterior& p = *model.posterior;
+}  // namespace
+
+Prediction population_prediction(const Posterior& p, const HyperparameterCovariances& covariances,
+                                 std::optional<uint32_t> user, std::optional<uint32_t> item, double level) {
+    check_arguments(p, covariances, user, item, level);
     const uint32_t S = p.num_samples, K = p.rank;
     std::vector<double> means(S);
     std::vector<float> precisions(S);
     for (uint32_t s = 0; s < S; ++s) {
-        Eigen::Map<const MatrixXdR> cov_u(model.user_cov.data() + static_cast<size_t>(s) * K * K, K, K);
-        Eigen::Map<const MatrixXdR> cov_v(model.item_cov.data() + static_cast<size_t>(s) * K * K, K, K);
+        Eigen::Map<const MatrixXdR> cov_u(covariances.user_of(s), K, K);
+        Eigen::Map<const MatrixXdR> cov_v(covariances.item_of(s), K, K);
         const Eigen::VectorXd mu_u =
             Eigen::Map<const Eigen::VectorXf>(p.user_mu.data() + static_cast<size_t>(s) * K, K).cast<double>();
         const Eigen::VectorXd mu_v =
@@ -48,6 +70,8 @@ Prediction population_prediction(const LoadedModel& model, std::optional<uint32_
         means[s] = mean;
         precisions[s] = static_cast<float>(1.0 / var);
     }
+    // The mean and bounds are clipped to the rating scale, as PredictionEngine
+    // does (model/predict/predict.hpp); the sd is the unclipped spread.
     const double lo = p.scale.min, hi = p.scale.max;
     Prediction out;
     out.mean = std::clamp(mixture_mean(means), lo, hi);
@@ -57,4 +81,4 @@ Prediction population_prediction(const LoadedModel& model, std::optional<uint32_
     return out;
 }
 
-}  // namespace credence::server
+}  // namespace credence

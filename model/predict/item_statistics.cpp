@@ -1,0 +1,215 @@
+#include "model/predict/item_statistics.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <numeric>
+#include <stdexcept>
+#include <string>
+
+#include <Eigen/Dense>
+
+#include "model/error.hpp"
+
+namespace credence {
+
+namespace {
+
+using MatrixXdR = Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+using MatrixXfR = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+
+// Lambda^-1 for each sample's K x K precision matrix.
+std::vector<double> invert_precisions(const std::vector<float>& lambda, uint32_t S, uint32_t K, const char* who) {
+    std::vector<double> cov(static_cast<size_t>(S) * K * K);
+    for (uint32_t s = 0; s < S; ++s) {
+        Eigen::Map<const MatrixXfR> L(lambda.data() + static_cast<size_t>(s) * K * K, K, K);
+        Eigen::LLT<Eigen::MatrixXd> llt(L.cast<double>());
+        if (llt.info() != Eigen::Success)
+            throw NumericError(std::string("model: the ") + who + " hyperparameter precision of sample " +
+                               std::to_string(s) + " is not positive definite; refit or check the file");
+        Eigen::MatrixXd inv = llt.solve(Eigen::MatrixXd::Identity(K, K));
+        Eigen::Map<MatrixXdR>(cov.data() + static_cast<size_t>(s) * K * K, K, K) = inv;
+    }
+    return cov;
+}
+
+std::vector<uint32_t> order_desc(const std::vector<double>& key) {
+    std::vector<uint32_t> order(key.size());
+    std::iota(order.begin(), order.end(), 0u);
+    // Ties break by item index so lists are stable across loads.
+    std::stable_sort(order.begin(), order.end(), [&](uint32_t a, uint32_t b) { return key[a] > key[b]; });
+    return order;
+}
+
+// The mean xbar_s and second-moment matrix M_s of x_u = [U_u,s, b_u,s, 1]
+// over users under sample s (see population_moments). With no users, the
+// exact moments of an unseen user drawn from the sample's hyperparameter prior.
+void user_moments(const Posterior& p, const HyperparameterCovariances& cov, uint32_t s, Eigen::MatrixXd& M,
+                  Eigen::VectorXd& xbar) {
+    const uint32_t U = p.num_users, K = p.rank;
+    const int D = static_cast<int>(K) + 2;
+    M = Eigen::MatrixXd::Zero(D, D);
+    xbar = Eigen::VectorXd::Zero(D);
+    if (U > 0) {
+        MatrixXdR X(U, D);
+        for (uint32_t u = 0; u < U; ++u) {
+            const auto f = p.user_factor(s, u);
+            for (uint32_t k = 0; k < K; ++k) X(u, k) = f[k];
+            X(u, K) = p.user_bias_of(s, u);
+            X(u, K + 1) = 1.0;
+        }
+        M.selfadjointView<Eigen::Lower>().rankUpdate(X.transpose(), 1.0 / U);
+        M = M.selfadjointView<Eigen::Lower>();
+        xbar = X.colwise().mean().transpose();
+        return;
+    }
+    Eigen::Map<const Eigen::VectorXf> mu(p.user_mu.data() + static_cast<size_t>(s) * K, K);
+    Eigen::Map<const MatrixXdR> sigma(cov.user_of(s), K, K);
+    xbar.head(K) = mu.cast<double>();
+    xbar(K + 1) = 1.0;
+    M.topLeftCorner(K, K) = sigma + xbar.head(K) * xbar.head(K).transpose();
+    M.block(0, K + 1, K, 1) = xbar.head(K);
+    M.block(K + 1, 0, 1, K) = xbar.head(K).transpose();
+    M(K, K) = p.has_biases ? 1.0 / p.user_bias_precision[s] : 0.0;
+    M(K + 1, K + 1) = 1.0;
+}
+
+// Mean and sd of m_s(u,i) = g + b_u + b_i + u.v over users and samples, for
+// every item, without touching U x I pairs: with x_u = [u, b_u, 1] and
+// y_i = [v_i, 1, g + b_i], m = x_u.y_i, so the mean over users is xbar_s.y_i
+// and the second moment is y_i' M_s y_i with M_s the users' second-moment
+// matrix of x.
+void population_moments(const Posterior& p, ItemStatistics& out) {
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    const int D = static_cast<int>(K) + 2;
+    std::vector<double> sum(I, 0.0), sum_sq(I, 0.0);
+    MatrixXdR Y(I, D);
+    Eigen::MatrixXd M;
+    Eigen::VectorXd xbar;
+    for (uint32_t s = 0; s < S; ++s) {
+        user_moments(p, out.covariances, s, M, xbar);
+        for (uint32_t i = 0; i < I; ++i) {
+            const auto v = p.item_factor(s, i);
+            for (uint32_t k = 0; k < K; ++k) Y(i, k) = v[k];
+            Y(i, K) = 1.0;
+            Y(i, K + 1) = static_cast<double>(p.global_mean) + p.item_bias_of(s, i);
+        }
+        const Eigen::VectorXd mean_s = Y * xbar;
+        const Eigen::VectorXd second_s = ((Y * M).cwiseProduct(Y)).rowwise().sum();
+        for (uint32_t i = 0; i < I; ++i) {
+            sum[i] += mean_s(i);
+            sum_sq[i] += second_s(i);
+        }
+    }
+    out.population_mean.resize(I);
+    out.population_sd.resize(I);
+    for (uint32_t i = 0; i < I; ++i) {
+        const double mean = sum[i] / S;
+        // Rounding can push a zero variance a hair below zero; that is not a
+        // clamp of a real value, the exact variance is >= 0.
+        out.population_mean[i] = mean;
+        out.population_sd[i] = std::sqrt(std::max(0.0, sum_sq[i] / S - mean * mean));
+    }
+}
+
+// Factor mean, sd and spread over samples, and each sample's item norms.
+void factor_moments(const Posterior& p, ItemStatistics& out) {
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    std::vector<double> sum(static_cast<size_t>(I) * K, 0.0), sum_sq(static_cast<size_t>(I) * K, 0.0);
+    out.item_norm.resize(static_cast<size_t>(S) * I);
+    for (uint32_t s = 0; s < S; ++s) {
+        const float* block = p.item_block(s);
+        for (uint32_t i = 0; i < I; ++i) {
+            double norm_sq = 0.0;
+            for (uint32_t k = 0; k < K; ++k) {
+                const double x = block[static_cast<size_t>(i) * K + k];
+                sum[static_cast<size_t>(i) * K + k] += x;
+                sum_sq[static_cast<size_t>(i) * K + k] += x * x;
+                norm_sq += x * x;
+            }
+            out.item_norm[static_cast<size_t>(s) * I + i] = static_cast<float>(std::sqrt(norm_sq));
+        }
+    }
+    out.factor_mean.resize(static_cast<size_t>(I) * K);
+    out.factor_sd.resize(static_cast<size_t>(I) * K);
+    out.factor_spread.resize(I);
+    for (uint32_t i = 0; i < I; ++i) {
+        double spread_sq = 0.0;
+        for (uint32_t k = 0; k < K; ++k) {
+            const size_t j = static_cast<size_t>(i) * K + k;
+            const double mean = sum[j] / S;
+            const double var = std::max(0.0, sum_sq[j] / S - mean * mean);  // rounding only, as above
+            out.factor_mean[j] = static_cast<float>(mean);
+            out.factor_sd[j] = static_cast<float>(std::sqrt(var));
+            spread_sq += var;
+        }
+        out.factor_spread[i] = std::sqrt(spread_sq / K);
+    }
+}
+
+}  // namespace
+
+HyperparameterCovariances hyperparameter_covariances(const Posterior& p) {
+    HyperparameterCovariances out;
+    out.rank = p.rank;
+    out.num_samples = p.num_samples;
+    out.user = invert_precisions(p.user_lambda, p.num_samples, p.rank, "user");
+    out.item = invert_precisions(p.item_lambda, p.num_samples, p.rank, "item");
+    return out;
+}
+
+ItemStatistics compute_item_statistics(const Posterior& p) {
+    ItemStatistics out;
+    out.num_items = p.num_items;
+    out.rank = p.rank;
+    out.num_samples = p.num_samples;
+    out.rating_count.assign(p.num_items, 0);
+    for (uint32_t i : p.rated_items) ++out.rating_count[i];
+
+    out.covariances = hyperparameter_covariances(p);
+    population_moments(p, out);
+    factor_moments(p, out);
+
+    out.by_uncertainty = order_desc(out.factor_spread);
+    out.by_popularity = order_desc(std::vector<double>(out.rating_count.begin(), out.rating_count.end()));
+    out.by_mean = order_desc(out.population_mean);
+    return out;
+}
+
+std::vector<SimilarItem> similar_items(const Posterior& p, const ItemStatistics& statistics, uint32_t target,
+                                       uint32_t n) {
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    if (statistics.num_items != I || statistics.rank != K || statistics.num_samples != S ||
+        statistics.item_norm.size() != static_cast<size_t>(S) * I)
+        throw std::invalid_argument("similar_items: the item statistics were computed from another posterior");
+    if (target >= I)
+        throw std::out_of_range("similar_items: item index " + std::to_string(target) + " is not below " +
+                                std::to_string(I));
+    // total(i): the sum over samples of the cosine; ranked by the sum, reported divided by S.
+    Eigen::VectorXd total = Eigen::VectorXd::Zero(I);
+    for (uint32_t s = 0; s < S; ++s) {
+        Eigen::Map<const MatrixXfR> block(p.item_block(s), I, K);
+        Eigen::Map<const Eigen::VectorXf> v(p.item_factor(s, target).data(), K);
+        const Eigen::VectorXf dots = block * v;
+        const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
+        const float own = norms[target];
+        for (uint32_t i = 0; i < I; ++i) {
+            const float denom = own * norms[i];
+            // A zero factor has no direction; it counts as dissimilar (cosine 0).
+            if (denom > 0.0f) total(i) += dots(i) / denom;
+        }
+    }
+    std::vector<uint32_t> order;
+    order.reserve(I);
+    for (uint32_t i = 0; i < I; ++i)
+        if (i != target) order.push_back(i);
+    const size_t take = std::min<size_t>(n, order.size());
+    std::partial_sort(order.begin(), order.begin() + take, order.end(), [&](uint32_t a, uint32_t b) {
+        return total(a) != total(b) ? total(a) > total(b) : a < b;
+    });
+    std::vector<SimilarItem> out;
+    out.reserve(take);
+    for (size_t k = 0; k < take; ++k) out.push_back({order[k], total(order[k]) / S});
+    return out;
+}
+
+}  // namespace credence
