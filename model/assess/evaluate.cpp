@@ -10,8 +10,8 @@
 #include <cmath>
 #include <limits>
 #include <optional>
-#include <stdexcept>
 
+#include "model/error.hpp"
 #include "model/math/random.hpp"
 
 namespace credence {
@@ -20,18 +20,21 @@ namespace {
 
 std::string level_key(double level) { return fmt::format("{}", level); }
 
+// The options come from the command line (evaluate, report): --k and
+// --relevance-threshold are named where they can be at fault.
 void check_options(const EvaluationOptions& options) {
     auto check_level = [](double level, const char* what) {
         if (!(level > 0.0 && level < 1.0))
-            throw std::invalid_argument(fmt::format("{} must be strictly between 0 and 1, got {}", what, level));
+            throw OptionError(fmt::format("evaluate: {} must be strictly between 0 and 1, got {}", what, level));
     };
     for (double level : options.coverage_levels) check_level(level, "coverage level");
     for (double level : options.curve_levels) check_level(level, "coverage curve level");
-    if (options.pit_bins == 0) throw std::invalid_argument("the PIT histogram needs at least 1 bin");
+    if (options.pit_bins == 0) throw OptionError("evaluate: the PIT histogram needs at least 1 bin");
     if (options.ranking) {
-        if (options.ranking_k == 0) throw std::invalid_argument("ranking k must be at least 1");
+        if (options.ranking_k == 0) throw OptionError("evaluate: --k (the ranking list length) must be at least 1");
         if (!std::isfinite(options.relevance_threshold))
-            throw std::invalid_argument("the relevance threshold must be a finite rating value");
+            throw OptionError(fmt::format("evaluate: --relevance-threshold must be a finite rating value, got {}",
+                                          options.relevance_threshold));
         check_level(options.ranking_level, "ranking interval level");
     }
 }

@@ -274,7 +274,7 @@ public:
         if (!file_) {
             file_ = std::fopen(path_.c_str(), "wb");
             if (!file_)
-                throw DataError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path",
+                throw FileError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path",
                                             path_, std::strerror(errno)));
             std::fputs("line\treason\trecord\n", file_);
         }
@@ -290,7 +290,7 @@ public:
     void close() {
         if (file_ && std::fclose(file_) != 0) {
             file_ = nullptr;
-            throw DataError(fmt::format("could not finish writing the rejects file {}; check the disk", path_));
+            throw FileError(fmt::format("could not finish writing the rejects file {}; check the disk", path_));
         }
         file_ = nullptr;
     }
@@ -412,14 +412,16 @@ private:
 };
 
 void Ingest::check_options() const {
-    if (options_.path.empty()) throw DataError("no ratings file given; pass a path, or - for standard input");
+    if (options_.path.empty()) throw OptionError("no ratings file given; pass a path, or - for standard input");
+    if (options_.delimiter && (*options_.delimiter == '"' || *options_.delimiter == '\r' || *options_.delimiter == '\n'))
+        throw OptionError("--delimiter cannot be a quote or a line break; pass one of , tab ; |");
     if (!(options_.max_reject_fraction >= 0.0 && options_.max_reject_fraction <= 1.0))
-        throw DataError(fmt::format("--max-reject-fraction must be between 0 and 1, got {}", options_.max_reject_fraction));
+        throw OptionError(fmt::format("--max-reject-fraction must be between 0 and 1, got {}", options_.max_reject_fraction));
     if (options_.scale) {
         const auto& s = *options_.scale;
         if (!std::isfinite(s.min) || !std::isfinite(s.max) || !(s.min < s.max))
-            throw DataError(fmt::format("the declared scale {} to {} is empty or not finite; pass --scale MIN,MAX with MIN < MAX",
-                                        s.min, s.max));
+            throw OptionError(fmt::format("the declared scale {} to {} is empty or not finite; pass --scale MIN:MAX with MIN < MAX",
+                                          s.min, s.max));
     }
 }
 
@@ -631,10 +633,10 @@ IngestResult Ingest::run() {
     const bool from_stdin = options_.path == "-";
     std::error_code ec;
     if (!from_stdin && std::filesystem::is_directory(options_.path, ec))
-        throw DataError(fmt::format("{} is a directory; pass the ratings file inside it", options_.path));
+        throw FileError(fmt::format("{} is a directory; pass the ratings file inside it", options_.path));
     std::FILE* file = from_stdin ? stdin : std::fopen(options_.path.c_str(), "rb");
     if (!file)
-        throw DataError(fmt::format("cannot open {}: {}; check the path", options_.path, std::strerror(errno)));
+        throw FileError(fmt::format("cannot open {}: {}; check the path", options_.path, std::strerror(errno)));
     std::unique_ptr<std::FILE, int (*)(std::FILE*)> owned(from_stdin ? nullptr : file, &std::fclose);
     uint64_t bytes_total = 0;
     if (!from_stdin) {
@@ -705,9 +707,10 @@ IngestResult Ingest::run() {
             }
             take_row(record.fields, record.raw, record.line, record.problem);
         }
-    } catch (const DataError& e) {
+    } catch (const FileError& e) {
+        // The reader does not know the file's name; everything else names it already.
         if (std::string_view(e.what()).starts_with("read failed"))
-            throw DataError(fmt::format("{}: {}; check the file", display_path(), e.what()));
+            throw FileError(fmt::format("{}: {}; check the file", display_path(), e.what()));
         throw;
     }
     rejects_.close();

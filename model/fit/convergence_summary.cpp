@@ -6,11 +6,11 @@
 #include <Eigen/Dense>
 #include <limits>
 #include <set>
+#include <stdexcept>
 #include <string>
 
 #include <fmt/format.h>
 
-#include "model/error.hpp"
 #include "model/math/random.hpp"
 
 namespace credence {
@@ -73,11 +73,11 @@ std::string QuantityConvergence::label() const {
 
 ConvergenceSummary summarize_convergence(const Posterior& posterior, const ConvergenceOptions& options) {
     if (!(options.max_rhat >= 1.0) || !std::isfinite(options.max_rhat))
-        throw DataError(fmt::format("convergence: R-hat threshold {} must be a finite number >= 1",
-                                    options.max_rhat));
+        throw std::invalid_argument(fmt::format("convergence: R-hat threshold {} must be a finite number >= 1",
+                                                options.max_rhat));
     if (!(options.min_ess_per_chain >= 0.0) || !std::isfinite(options.min_ess_per_chain))
-        throw DataError(fmt::format("convergence: ESS threshold {} must be a finite number >= 0",
-                                    options.min_ess_per_chain));
+        throw std::invalid_argument(fmt::format("convergence: ESS threshold {} must be a finite number >= 0",
+                                                options.min_ess_per_chain));
 
     ConvergenceSummary out;
     out.options = options;

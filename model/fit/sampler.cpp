@@ -15,29 +15,38 @@ namespace credence {
 
 namespace {
 
-void require(bool ok, const std::string& message) {
-    if (!ok) throw std::invalid_argument("fit: " + message);
+// An option value the sampler cannot work with: the user's to fix.
+void require_option(bool ok, const std::string& message) {
+    if (!ok) throw OptionError("fit: " + message);
+}
+
+// A broken promise of the caller (see fit_bpmf in model/fit/sampler.hpp).
+void require_input(bool ok, const std::string& message) {
+    if (!ok) throw std::invalid_argument("fit_bpmf: " + message);
 }
 
 bool positive_finite(double v) { return v > 0.0 && std::isfinite(v); }
 
+// Options come from the command line (fit, compare); the flag is named
+// where there is one.
 void validate_options(const FitOptions& o) {
-    require(o.rank > 0, "rank must be at least 1");
-    require(o.samples > 0, "samples must be at least 1");
-    require(o.thin > 0, "thin must be at least 1");
-    require(o.chains > 0, "chains must be at least 1");
-    require(uint64_t(o.burn_in) + uint64_t(o.samples) * o.thin < (uint64_t(1) << 32), "too many sweeps per chain");
-    require(o.threads >= 0, "threads must be 0 (default) or positive");
-    require(positive_finite(o.fixed_noise_precision), "the fixed noise precision must be positive and finite");
-    require(std::isfinite(o.init_scale), "init scale must be finite (negative: automatic)");
+    require_option(o.rank > 0, "--rank must be at least 1");
+    require_option(o.samples > 0, "--samples must be at least 1");
+    require_option(o.thin > 0, "--thin must be at least 1");
+    require_option(o.chains > 0, "--chains must be at least 1");
+    require_option(uint64_t(o.burn_in) + uint64_t(o.samples) * o.thin < (uint64_t(1) << 32),
+                   "--burn-in + --samples x --thin must stay below 2^32 sweeps per chain");
+    require_option(o.threads >= 0, "--threads must be 0 (all cores) or positive");
+    require_option(positive_finite(o.fixed_noise_precision), "--fixed-noise-precision must be positive and finite");
+    require_option(std::isfinite(o.init_scale), "the init scale must be finite (negative: automatic)");
     const auto& p = o.prior;
-    require(positive_finite(p.beta0), "beta0 must be positive and finite");
-    require(p.nu0_minus_rank > -1.0 && std::isfinite(p.nu0_minus_rank), "nu0 - rank must exceed -1");
-    require(positive_finite(p.w0_scale), "the W0 scale must be positive and finite");
-    require(positive_finite(p.noise_shape) && positive_finite(p.noise_rate),
-            "the noise prior's shape and rate must be positive and finite");
-    require(positive_finite(p.bias_shape) && positive_finite(p.bias_rate),
-            "the bias prior's shape and rate must be positive and finite");
+    require_option(positive_finite(p.beta0), "the prior's beta0 must be positive and finite");
+    require_option(p.nu0_minus_rank > -1.0 && std::isfinite(p.nu0_minus_rank), "the prior's nu0 - rank must exceed -1");
+    require_option(positive_finite(p.w0_scale), "the prior's W0 scale must be positive and finite");
+    require_option(positive_finite(p.noise_shape) && positive_finite(p.noise_rate),
+                   "the noise prior's shape and rate must be positive and finite");
+    require_option(positive_finite(p.bias_shape) && positive_finite(p.bias_rate),
+                   "the bias prior's shape and rate must be positive and finite");
 }
 
 nlohmann::json options_json(const FitOptions& o) {
@@ -116,15 +125,14 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
     const auto start = clock::now();
     validate_options(requested);
     const FitOptions options = resolve_init_scale(requested, train);
-    require(!train.ratings.empty(), "the training set is empty");
+    require_input(!train.ratings.empty(), "the training set is empty");
     const auto by_user = csr_by_user(train);
-    if (has_duplicates(by_user))
-        throw DataError("fit: the training set holds a (user, item) pair twice; ingest merges duplicates");
+    require_input(!has_duplicates(by_user), "the training set holds a (user, item) pair twice; ingest merges duplicates");
     const auto by_item = csr_by_item(train);
     if (validation)
         for (const auto& r : *validation)
-            require(r.user < train.users.size() && r.item < train.items.size(),
-                    "a validation rating refers to a user or item outside the training id maps");
+            require_input(r.user < train.users.size() && r.item < train.items.size(),
+                          "a validation rating refers to a user or item outside the training id maps");
     const double g = train.mean();
     const GibbsData data{&by_user, &by_item, g};
     const uint32_t U = by_user.num_rows, I = by_item.num_rows, K = options.rank;
@@ -221,7 +229,11 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
                      {"noise_precision", result.trace.noise_precision},
                      {"train_rmse", result.trace.train_rmse}};
     post.fit_metadata_json = meta.dump();
-    post.validate();
+    try {
+        post.validate();
+    } catch (const FormatError& e) {
+        throw std::logic_error(std::string("fit_bpmf built an inconsistent posterior: ") + e.what());
+    }
     return result;
 }
 

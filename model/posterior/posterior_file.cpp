@@ -18,6 +18,7 @@
 #include <filesystem>
 #include <limits>
 #include <optional>
+#include <stdexcept>
 #include <string_view>
 #include <unordered_set>
 #include <vector>
@@ -174,7 +175,7 @@ public:
             if (fd_ >= 0) return;
             if (errno != EEXIST) break;
         }
-        throw Error("cannot create a temporary file in " + dir.string() + ": " + errno_text(errno));
+        throw FileError("cannot create a temporary file in " + dir.string() + ": " + errno_text(errno));
     }
     TempFile(const TempFile&) = delete;
     TempFile& operator=(const TempFile&) = delete;
@@ -191,7 +192,7 @@ public:
             const ssize_t n = ::write(fd_, p, chunk);
             if (n < 0) {
                 if (errno == EINTR) continue;
-                throw Error("write to " + path_.string() + " failed: " + errno_text(errno));
+                throw FileError("write to " + path_.string() + " failed: " + errno_text(errno));
             }
             p += n;
             bytes -= static_cast<uint64_t>(n);
@@ -199,15 +200,15 @@ public:
     }
 
     void sync_and_close() {
-        if (::fsync(fd_) != 0) throw Error("fsync of " + path_.string() + " failed: " + errno_text(errno));
+        if (::fsync(fd_) != 0) throw FileError("fsync of " + path_.string() + " failed: " + errno_text(errno));
         const int fd = fd_;
         fd_ = -1;
-        if (::close(fd) != 0) throw Error("closing " + path_.string() + " failed: " + errno_text(errno));
+        if (::close(fd) != 0) throw FileError("closing " + path_.string() + " failed: " + errno_text(errno));
     }
 
     void rename_to(const std::filesystem::path& target) {
         if (::rename(path_.c_str(), target.c_str()) != 0)
-            throw Error("cannot rename the temporary file over it: " + errno_text(errno));
+            throw FileError("cannot rename the temporary file over it: " + errno_text(errno));
         committed_ = true;
     }
 
@@ -219,29 +220,37 @@ private:
 
 void sync_directory(const std::filesystem::path& dir) {
     const int fd = ::open(dir.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-    if (fd < 0) throw Error("cannot open directory " + dir.string() + " to sync it: " + errno_text(errno));
+    if (fd < 0) throw FileError("cannot open directory " + dir.string() + " to sync it: " + errno_text(errno));
     const int rc = ::fsync(fd);
     const int err = errno;
     ::close(fd);
     // EINVAL: the filesystem cannot sync directories; nothing more can be done.
     if (rc != 0 && err != EINVAL)
-        throw Error("the new file is in place but syncing directory " + dir.string() +
-                    " failed (" + errno_text(err) + "); it may not survive a crash");
+        throw FileError("the new file is in place but syncing directory " + dir.string() +
+                        " failed (" + errno_text(err) + "); it may not survive a crash");
 }
 
-uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
+// The posterior comes from the sampler (or a test), never from a user's
+// file, so an inconsistent one is a bug in the caller.
+void check_writable(const Posterior& p) {
+    const auto refuse = [](const std::string& what) {
+        throw std::invalid_argument("write_posterior: refusing to write an inconsistent posterior: " + what);
+    };
     try {
         p.validate();
     } catch (const FormatError& e) {
-        throw Error(std::string("refusing to write an inconsistent ") + e.what());
+        refuse(e.what());
     }
-    if (auto dup = first_duplicate(p.user_ids)) throw Error("user id '" + *dup + "' appears twice");
-    if (auto dup = first_duplicate(p.item_ids)) throw Error("item id '" + *dup + "' appears twice");
-    if (!nlohmann::json::accept(p.fit_metadata_json)) throw Error("fit metadata is not valid JSON");
-    if (!nlohmann::json::accept(p.diagnostics_json)) throw Error("diagnostics are not valid JSON");
+    if (auto dup = first_duplicate(p.user_ids)) refuse("user id '" + *dup + "' appears twice");
+    if (auto dup = first_duplicate(p.item_ids)) refuse("item id '" + *dup + "' appears twice");
+    if (!nlohmann::json::accept(p.fit_metadata_json)) refuse("fit metadata is not valid JSON");
+    if (!nlohmann::json::accept(p.diagnostics_json)) refuse("diagnostics are not valid JSON");
     for (const auto* ids : {&p.user_ids, &p.item_ids})
         for (const auto& id : *ids)
-            if (id.size() > std::numeric_limits<uint32_t>::max()) throw Error("an id is longer than 4 GiB");
+            if (id.size() > std::numeric_limits<uint32_t>::max()) refuse("an id is longer than 4 GiB");
+}
+
+uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
 
     const std::string metadata = encode_metadata(p);
     const std::string user_ids = encode_strings(p.user_ids);
@@ -311,7 +320,7 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
     std::filesystem::path dir = target.parent_path();
     if (dir.empty()) dir = ".";
     const std::string base = target.filename().string();
-    if (base.empty() || base == "." || base == "..") throw Error("the path does not name a file");
+    if (base.empty() || base == "." || base == "..") throw FileError("the path does not name a file");
 
     TempFile tmp(dir, base);
     tmp.write_all(head.data(), head.size());
@@ -343,10 +352,10 @@ class Reader {
 public:
     explicit Reader(std::string path) : path_(std::move(path)) {
         fd_ = ::open(path_.c_str(), O_RDONLY | O_CLOEXEC);
-        if (fd_ < 0) fail("cannot open: " + errno_text(errno));
+        if (fd_ < 0) unreadable("cannot open: " + errno_text(errno) + "; check the path");
         struct stat st {};
-        if (::fstat(fd_, &st) != 0) fail("cannot stat: " + errno_text(errno));
-        if (!S_ISREG(st.st_mode)) fail("not a regular file");
+        if (::fstat(fd_, &st) != 0) unreadable("cannot stat: " + errno_text(errno));
+        if (!S_ISREG(st.st_mode)) unreadable("not a regular file; pass a posterior file written by credence fit");
         size_bytes_ = static_cast<uint64_t>(st.st_size);
     }
     Reader(const Reader&) = delete;
@@ -357,7 +366,10 @@ public:
 
     uint64_t size_bytes() const { return size_bytes_; }
 
+    // The bytes are not a valid posterior file (FormatError).
     [[noreturn]] void fail(const std::string& problem) const { throw FormatError(path_ + ": " + problem); }
+    // The file cannot be opened or read at all (FileError).
+    [[noreturn]] void unreadable(const std::string& problem) const { throw FileError(path_ + ": " + problem); }
     [[noreturn]] void corrupt(const std::string& what) const {
         fail(what + ": file is corrupt; refit or restore it");
     }
@@ -375,9 +387,9 @@ public:
             const ssize_t n = ::pread(fd_, p, chunk, static_cast<off_t>(offset));
             if (n < 0) {
                 if (errno == EINTR) continue;
-                fail("read failed: " + errno_text(errno));
+                unreadable("read failed: " + errno_text(errno));
             }
-            if (n == 0) fail("file shrank while being read");
+            if (n == 0) unreadable("file shrank while being read; was it replaced? try again");
             p += n;
             offset += static_cast<uint64_t>(n);
             bytes -= static_cast<uint64_t>(n);
@@ -655,12 +667,13 @@ Posterior read_posterior_file(const std::string& path) {
 }  // namespace
 
 uint64_t write_posterior(const Posterior& posterior, const std::string& path) {
+    check_writable(posterior);
     try {
         return write_posterior_unchecked(posterior, path);
-    } catch (const Error& e) {
-        throw Error("cannot write " + path + ": " + e.what());
+    } catch (const FileError& e) {
+        throw FileError("cannot write " + path + ": " + e.what());
     } catch (const std::filesystem::filesystem_error& e) {
-        throw Error("cannot write " + path + ": " + e.what());
+        throw FileError("cannot write " + path + ": " + e.what());
     }
 }
 
