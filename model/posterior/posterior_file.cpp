@@ -507,11 +507,18 @@ void decode_strings(const Reader& r, const InEntry& e, std::vector<std::string>&
         r.corrupt(std::string("section ") + section_name(e.id) + " has bytes after its last string");
 }
 
-Posterior read_posterior_file(const std::string& path) {
-    Reader r(path);
-    const uint64_t size = r.size_bytes();
+// What the header tells: where the section table ends, the table's bytes
+// and the declared file size.
+struct HeaderInfo {
+    uint64_t table_end = 0;
+    uint64_t file_bytes = 0;
+    std::vector<unsigned char> table;
+};
 
-    // Magic and version first: they are the only bytes every version shares.
+// Magic and version first: they are the only bytes every version shares.
+// Then the section table, the header checksum and the declared size.
+HeaderInfo read_header(const Reader& r) {
+    const uint64_t size = r.size_bytes();
     unsigned char header[kHeaderBytes] = {};
     r.read_at(0, header, std::min<uint64_t>(size, kHeaderBytes));
     if (std::memcmp(header, kMagic, std::min<uint64_t>(size, 8)) != 0)
@@ -523,65 +530,80 @@ Posterior read_posterior_file(const std::string& path) {
                std::to_string(kPosteriorFormatVersion) + "); use a matching credence build or refit");
     if (size < kHeaderBytes) r.truncated(kHeaderBytes);
 
+    HeaderInfo h;
     const uint64_t section_count = get_u32(header + 12);
-    const uint64_t table_end = kHeaderBytes + kEntryBytes * section_count;
-    if (size < table_end) r.truncated(table_end);
-    std::vector<unsigned char> table(static_cast<size_t>(table_end - kHeaderBytes));
-    r.read_at(kHeaderBytes, table.data(), table.size());
-    if (header_checksum(header, table.data(), table.size()) != get_u64(header + 32))
+    h.table_end = kHeaderBytes + kEntryBytes * section_count;
+    if (size < h.table_end) r.truncated(h.table_end);
+    h.table.resize(static_cast<size_t>(h.table_end - kHeaderBytes));
+    r.read_at(kHeaderBytes, h.table.data(), h.table.size());
+    if (header_checksum(header, h.table.data(), h.table.size()) != get_u64(header + 32))
         r.corrupt("header checksum mismatch");
     if (get_u64(header + 24) != 0) r.corrupt("header reserved bytes are not zero");
-    const uint64_t file_bytes = get_u64(header + 16);
-    if (size < file_bytes) r.truncated(file_bytes);
-    if (size > file_bytes)
-        r.corrupt(std::to_string(size - file_bytes) + " unexpected bytes after the declared end of file");
+    h.file_bytes = get_u64(header + 16);
+    if (size < h.file_bytes) r.truncated(h.file_bytes);
+    if (size > h.file_bytes)
+        r.corrupt(std::to_string(size - h.file_bytes) + " unexpected bytes after the declared end of file");
+    return h;
+}
 
-    // Section table: canonical layout, each section at the next 64-byte
-    // boundary after the previous one, the last one ending the file.
-    std::vector<InEntry> entries(static_cast<size_t>(section_count));
+// The parsed section table. `known` points into `entries` (by section id),
+// so a SectionTable is filled in place and never copied or moved.
+struct SectionTable {
+    std::vector<InEntry> entries;
     const InEntry* known[kLastKnownSection + 1] = {};
-    uint64_t end = table_end;
-    for (size_t k = 0; k < entries.size(); ++k) {
-        const unsigned char* p = &table[k * kEntryBytes];
-        InEntry& e = entries[k];
+    SectionTable() = default;
+    SectionTable(const SectionTable&) = delete;
+    SectionTable& operator=(const SectionTable&) = delete;
+};
+
+// Section table: canonical layout, each section at the next 64-byte
+// boundary after the previous one, the last one ending the file.
+void read_section_table(const Reader& r, const HeaderInfo& h, SectionTable& t) {
+    t.entries.resize(h.table.size() / kEntryBytes);
+    uint64_t end = h.table_end;
+    for (size_t k = 0; k < t.entries.size(); ++k) {
+        const unsigned char* p = &h.table[k * kEntryBytes];
+        InEntry& e = t.entries[k];
         e = InEntry{get_u32(p), static_cast<ElementType>(get_u32(p + 4)), get_u64(p + 8), get_u64(p + 16),
                     get_u64(p + 24), get_u64(p + 32)};
         const std::string name = e.id >= 1 && e.id <= kLastKnownSection ? section_name(e.id) : std::to_string(e.id);
         if (e.offset != align_up(end)) r.corrupt("section " + name + " is not where the layout puts it");
-        if (e.offset > file_bytes || e.length_bytes > file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
+        if (e.offset > h.file_bytes || e.length_bytes > h.file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
         end = e.offset + e.length_bytes;
         if (e.id >= 1 && e.id <= kLastKnownSection) {
-            if (known[e.id]) r.corrupt("section " + name + " appears twice");
+            if (t.known[e.id]) r.corrupt("section " + name + " appears twice");
             if (e.type != expected_type(e.id)) r.corrupt("section " + name + " has the wrong element type");
             const uint64_t unit = element_bytes(e.type);
             uint64_t length = 0;
             if (unit != 0 && (mul_overflows(e.count, unit, length) || length != e.length_bytes))
                 r.corrupt("section " + name + " length does not match its element count");
-            known[e.id] = &e;
+            t.known[e.id] = &e;
         }
         // else: a section added by a later revision of version 1; skipped below.
     }
-    if (end != file_bytes) r.corrupt("sections do not end at the declared end of file");
+    if (end != h.file_bytes) r.corrupt("sections do not end at the declared end of file");
+}
 
-    // Padding between header, table and sections must be zero.
-    {
-        uint64_t at = table_end;
-        unsigned char pad[kSectionAlignBytes];
-        for (const auto& e : entries) {
-            const uint64_t gap = e.offset - at;
-            r.read_at(at, pad, gap);
-            for (uint64_t b = 0; b < gap; ++b)
-                if (pad[b] != 0) r.corrupt("padding before offset " + std::to_string(e.offset) + " is not zero");
-            at = e.offset + e.length_bytes;
-        }
+// Padding between header, table and sections must be zero.
+void check_padding(const Reader& r, const HeaderInfo& h, const SectionTable& t) {
+    uint64_t at = h.table_end;
+    unsigned char pad[kSectionAlignBytes];
+    for (const auto& e : t.entries) {
+        const uint64_t gap = e.offset - at;
+        r.read_at(at, pad, gap);
+        for (uint64_t b = 0; b < gap; ++b)
+            if (pad[b] != 0) r.corrupt("padding before offset " + std::to_string(e.offset) + " is not zero");
+        at = e.offset + e.length_bytes;
     }
+}
 
-    if (!known[kMetadata]) r.fail("required section metadata is missing; refit or restore it");
-    const InEntry& me = *known[kMetadata];
+// The metadata section: the shape, flags, scale and global mean.
+void read_metadata(const Reader& r, const SectionTable& t, Posterior& p) {
+    if (!t.known[kMetadata]) r.fail("required section metadata is missing; refit or restore it");
+    const InEntry& me = *t.known[kMetadata];
     if (me.length_bytes != kMetadataBytes) r.corrupt("section metadata has the wrong length");
     unsigned char meta[kMetadataBytes];
     r.read_section(me, meta);
-    Posterior p;
     p.rank = get_u32(meta + 0);
     p.num_users = get_u32(meta + 4);
     p.num_items = get_u32(meta + 8);
@@ -595,26 +617,32 @@ Posterior read_posterior_file(const std::string& path) {
     p.global_mean = get_f32(meta + 24);
     p.scale.min = get_f32(meta + 28);
     p.scale.max = get_f32(meta + 32);
+}
 
+// Every required section is present (bias sections exactly when the
+// metadata says so), and every typed array holds what the shape needs.
+void check_sections_against_shape(const Reader& r, const SectionTable& t, const Posterior& p) {
     const Shape shape{p.num_samples, p.num_users, p.num_items, p.rank};
     for (uint32_t id = 1; id <= kLastKnownSection; ++id) {
         const bool bias_section = id == kUserBias || id == kItemBias || id == kUserBiasPrecision ||
                                   id == kItemBiasPrecision;
         const bool required = !bias_section || p.has_biases;
-        if (required && !known[id])
+        if (required && !t.known[id])
             r.fail(std::string("required section ") + section_name(id) + " is missing; refit or restore it");
-        if (!required && known[id])
+        if (!required && t.known[id])
             r.corrupt(std::string("section ") + section_name(id) + " is present but metadata says no biases");
         uint64_t count = 0;
-        if (known[id] && expected_count(id, shape, count) && known[id]->count != count)
-            r.corrupt(std::string("section ") + section_name(id) + " holds " + std::to_string(known[id]->count) +
+        if (t.known[id] && expected_count(id, shape, count) && t.known[id]->count != count)
+            r.corrupt(std::string("section ") + section_name(id) + " holds " + std::to_string(t.known[id]->count) +
                       " values but the shape needs " + std::to_string(count));
     }
-    if (known[kUserIds]->count != p.num_users) r.corrupt("section user_ids count does not match the shape");
-    if (known[kItemIds]->count != p.num_items) r.corrupt("section item_ids count does not match the shape");
+    if (t.known[kUserIds]->count != p.num_users) r.corrupt("section user_ids count does not match the shape");
+    if (t.known[kItemIds]->count != p.num_items) r.corrupt("section item_ids count does not match the shape");
+}
 
-    // Bulk reads, in file order (the writer's order), straight into place.
-    for (const auto& e : entries) {
+// Bulk reads, in file order (the writer's order), straight into place.
+void read_contents(const Reader& r, const SectionTable& t, Posterior& p) {
+    for (const auto& e : t.entries) {
         switch (e.id) {
             case kMetadata: break;
             case kUserIds: decode_strings(r, e, p.user_ids); break;
@@ -644,7 +672,11 @@ Posterior read_posterior_file(const std::string& path) {
             default: r.verify_skipped(e); break;
         }
     }
+}
 
+// What the checksums cannot vouch for: valid JSON, unique ids, CSR rows
+// inside rated_items, and Posterior::validate().
+void check_contents(const Reader& r, const Posterior& p) {
     if (!nlohmann::json::accept(p.fit_metadata_json)) r.corrupt("section fit_metadata is not valid JSON");
     if (!nlohmann::json::accept(p.diagnostics_json)) r.corrupt("section diagnostics is not valid JSON");
     if (auto dup = first_duplicate(p.user_ids)) r.corrupt("user id '" + *dup + "' appears twice");
@@ -661,6 +693,19 @@ Posterior read_posterior_file(const std::string& path) {
         if (what.rfind("posterior: ", 0) == 0) what.erase(0, 11);
         r.corrupt("inconsistent contents (" + what + ")");
     }
+}
+
+Posterior read_posterior_file(const std::string& path) {
+    Reader r(path);
+    const HeaderInfo header = read_header(r);
+    SectionTable table;
+    read_section_table(r, header, table);
+    check_padding(r, header, table);
+    Posterior p;
+    read_metadata(r, table, p);
+    check_sections_against_shape(r, table, p);
+    read_contents(r, table, p);
+    check_contents(r, p);
     return p;
 }
 
