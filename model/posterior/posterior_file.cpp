@@ -250,12 +250,16 @@ void check_writable(const Posterior& p) {
             if (id.size() > std::numeric_limits<uint32_t>::max()) refuse("an id is longer than 4 GiB");
 }
 
-uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
+// The encoded sections the OutSections point into; must outlive them.
+struct Encoded {
+    std::string metadata, user_ids, item_ids;
+};
 
-    const std::string metadata = encode_metadata(p);
-    const std::string user_ids = encode_strings(p.user_ids);
-    const std::string item_ids = encode_strings(p.item_ids);
-
+// The sections of `p` in file order (the bias sections only with biases).
+std::vector<OutSection> sections_of(const Posterior& p, const Encoded& encoded) {
+    const std::string& metadata = encoded.metadata;
+    const std::string& user_ids = encoded.user_ids;
+    const std::string& item_ids = encoded.item_ids;
     std::vector<OutSection> sections;
     auto add_raw = [&](uint32_t id, ElementType type, uint64_t count, const void* data, uint64_t bytes) {
         sections.push_back(OutSection{id, type, count, data, bytes});
@@ -288,8 +292,13 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
             p.fit_metadata_json.size());
     add_raw(kDiagnostics, ElementType::bytes, p.diagnostics_json.size(), p.diagnostics_json.data(),
             p.diagnostics_json.size());
+    return sections;
+}
 
-    // Layout and checksums, all computed before the first byte is written.
+// Layout and checksums, all computed before the first byte is written: sets
+// each section's offset and checksum, and returns the header and section
+// table bytes. `file_bytes` receives the size of the whole file.
+std::vector<unsigned char> lay_out(std::vector<OutSection>& sections, uint64_t& file_bytes) {
     const uint64_t table_end = kHeaderBytes + kEntryBytes * sections.size();
     uint64_t end = table_end;
     for (auto& s : sections) {
@@ -297,7 +306,7 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
         s.checksum = XXH3_64bits(s.data, s.length_bytes);
         end = s.offset + s.length_bytes;
     }
-    const uint64_t file_bytes = end;
+    file_bytes = end;
 
     std::vector<unsigned char> head(table_end, 0);
     std::memcpy(head.data(), kMagic, 8);
@@ -315,7 +324,13 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
         put_u64(e + 32, sections[k].checksum);
     }
     put_u64(&head[32], header_checksum(head.data(), head.data() + kHeaderBytes, table_end - kHeaderBytes));
+    return head;
+}
 
+// Writes the header and the sections, zero-padded to their offsets, to a
+// temporary file beside `path`, syncs it and renames it over `path`.
+void write_atomically(const std::string& path, const std::vector<unsigned char>& head,
+                      const std::vector<OutSection>& sections) {
     const std::filesystem::path target(path);
     std::filesystem::path dir = target.parent_path();
     if (dir.empty()) dir = ".";
@@ -325,7 +340,7 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
     TempFile tmp(dir, base);
     tmp.write_all(head.data(), head.size());
     static constexpr unsigned char zeros[kSectionAlignBytes] = {};
-    uint64_t at = table_end;
+    uint64_t at = head.size();  // the end of the section table
     for (const auto& s : sections) {
         tmp.write_all(zeros, s.offset - at);
         tmp.write_all(s.data, s.length_bytes);
@@ -334,6 +349,14 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
     tmp.sync_and_close();
     tmp.rename_to(target);
     sync_directory(dir);
+}
+
+uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
+    const Encoded encoded{encode_metadata(p), encode_strings(p.user_ids), encode_strings(p.item_ids)};
+    std::vector<OutSection> sections = sections_of(p, encoded);
+    uint64_t file_bytes = 0;
+    const std::vector<unsigned char> head = lay_out(sections, file_bytes);
+    write_atomically(path, head, sections);
     return file_bytes;
 }
 
