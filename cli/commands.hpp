@@ -1,7 +1,9 @@
 // Subcommand registration. Each cli/<name>_command.cpp adds one subcommand to
 // the CLI11 app and returns the function that runs it once parsing succeeded.
-// Runners return the process exit code; they throw credence::Error for
-// failures a user can fix (main prints the message and exits 1).
+// Runners return the process exit code; they throw credence::OptionError for
+// an option value that cannot work (main exits 2), another credence::Error
+// for a data or file problem a user can fix (main exits 1), and
+// std::logic_error only for a bug (main exits 70). See cli/main.cpp.
 #pragma once
 #include <CLI/CLI.hpp>
 #include <functional>

@@ -1,16 +1,110 @@
 // credence: the one command-line program. Each subcommand lives in
 // cli/<name>_command.cpp; this file only dispatches and turns errors into
-// messages and exit codes (0 success, 1 failure a user can fix, 2 usage).
+// messages and exit codes, following the taxonomy in model/error.hpp.
+//
+// Exit codes (also in README.md, "Exit codes", and DEVELOPERS.md):
+//    0  success; also --help and --version.
+//    1  a problem with the data or a file: any credence::Error except
+//       OptionError (DataError, FileError, FormatError, NumericError). The
+//       message names the file or row and what to do.
+//    2  usage: every command-line parse error CLI11 reports (unknown flag or
+//       subcommand, missing or malformed value, a value outside its range;
+//       CLI11's message is printed, its own codes 105, 106, 109, ... are not
+//       used), and credence::OptionError (an option value that cannot work).
+//   70  internal error: std::logic_error and its children (a broken
+//       precondition between modules) and any other unexpected exception.
+//       This is a bug in credence, never the user's doing; the message says
+//       so and asks for a report. 70 is EX_SOFTWARE of BSD's sysexits.h.
 #include <iostream>
 #include <map>
+#include <stdexcept>
+#include <string>
+#include <string_view>
 
 #include "cli/commands.hpp"
 #include "model/error.hpp"
+
+namespace {
+
+constexpr int kExitOk = 0;
+constexpr int kExitDataOrFile = 1;
+constexpr int kExitUsage = 2;
+constexpr int kExitInternal = 70;
+
+std::string subcommand_list(const CLI::App& app) {
+    std::string out;
+    for (const CLI::App* sub : app.get_subcommands({})) out += (out.empty() ? "" : ", ") + sub->get_name();
+    return out;
+}
+
+// No arguments, or a first argument that is neither an option nor a
+// subcommand: CLI11 would only say that a subcommand is required.
+bool report_unknown_subcommand(const CLI::App& app, int argc, char** argv) {
+    if (argc < 2) {
+        std::cerr << "credence: give a subcommand, one of: " << subcommand_list(app)
+                  << "\nRun credence --help for what each does.\n";
+        return true;
+    }
+    const std::string_view first = argv[1];
+    if (first.empty() || first.front() == '-') return false;
+    for (const CLI::App* sub : app.get_subcommands({}))
+        if (sub->check_name(std::string(first))) return false;
+    std::cerr << "credence: '" << first << "' is not a subcommand; use one of: " << subcommand_list(app)
+              << "\nRun credence --help for what each does.\n";
+    return true;
+}
+
+// Prints CLI11's message (or the help and version text, which are not
+// errors) and maps the outcome onto the codes above.
+int parse_error_exit(CLI::App& app, const CLI::ParseError& e, int argc, char** argv) {
+    if (e.get_exit_code() != static_cast<int>(CLI::ExitCodes::Success) && report_unknown_subcommand(app, argc, argv))
+        return kExitUsage;
+    return app.exit(e) == static_cast<int>(CLI::ExitCodes::Success) ? kExitOk : kExitUsage;
+}
+
+int internal_error(const std::string& command, const char* what) {
+    std::cerr << "credence" << (command.empty() ? "" : " ") << command
+              << ": internal error (a bug in credence; please report it): " << what << "\n";
+    return kExitInternal;
+}
+
+// Runs one subcommand and maps what escapes it onto the codes above.
+int run_reporting_errors(const std::string& command, const credence::cli::Runner& runner) {
+    try {
+        return runner();
+    } catch (const credence::OptionError& e) {
+        std::cerr << "credence " << command << ": " << e.what() << "\nRun credence " << command
+                  << " --help for the options.\n";
+        return kExitUsage;
+    } catch (const credence::Error& e) {
+        std::cerr << "credence " << command << ": " << e.what() << "\n";
+        return kExitDataOrFile;
+    } catch (const std::invalid_argument& e) {
+        // TRANSITIONAL: cli/ingest_flags.cpp, cli/fit_command.cpp and
+        // cli/compare_command.cpp still throw std::invalid_argument for a bad
+        // flag value, always with a message that starts with the flag. Until
+        // they throw OptionError such a message is still a usage error;
+        // everything else is a bug. Remove this branch with the last of them.
+        const std::string_view what = e.what();
+        if (what.starts_with("--")) {
+            std::cerr << "credence " << command << ": " << what << "\n";
+            return kExitUsage;
+        }
+        return internal_error(command, e.what());
+    } catch (const std::exception& e) {
+        return internal_error(command, e.what());
+    } catch (...) {
+        return internal_error(command, "an exception that is not a std::exception");
+    }
+}
+
+}  // namespace
 
 int main(int argc, char** argv) {
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
     app.set_version_flag("--version", std::string("credence 0.1.0"));
+    app.footer("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).");
 
     std::map<CLI::App*, credence::cli::Runner> runners;
     auto add = [&](credence::cli::Runner (*adder)(CLI::App&)) {
@@ -32,25 +126,10 @@ int main(int argc, char** argv) {
     try {
         app.parse(argc, argv);
     } catch (const CLI::ParseError& e) {
-        return app.exit(e);
+        return parse_error_exit(app, e, argc, argv);
     }
-    for (auto& [sub, runner] : runners) {
-        if (!sub->parsed()) continue;
-        try {
-            return runner();
-        } catch (const credence::OptionError& e) {
-            std::cerr << "credence " << sub->get_name() << ": " << e.what() << "\n";
-            return 2;
-        } catch (const credence::Error& e) {
-            std::cerr << "credence " << sub->get_name() << ": " << e.what() << "\n";
-            return 1;
-        } catch (const std::invalid_argument& e) {
-            std::cerr << "credence " << sub->get_name() << ": " << e.what() << "\n";
-            return 2;
-        } catch (const std::exception& e) {
-            std::cerr << "credence " << sub->get_name() << ": unexpected failure: " << e.what() << "\n";
-            return 1;
-        }
-    }
-    return 2;
+    for (auto& [sub, runner] : runners)
+        if (sub->parsed()) return run_reporting_errors(sub->get_name(), runner);
+    // require_subcommand(1) makes the parse fail without one.
+    return internal_error("", "no subcommand ran after a successful parse");
 }

@@ -47,16 +47,20 @@ int run_report(const ReportFlags& f) {
     }
     if (!f.comparison.empty()) {
         std::ifstream file(f.comparison);
-        if (!file) throw DataError("cannot open comparison file " + f.comparison);
+        if (!file) throw FileError("cannot open comparison file " + f.comparison + "; check the path");
         const nlohmann::json j = nlohmann::json::parse(file, nullptr, false);
-        if (j.is_discarded()) throw DataError(f.comparison + " is not JSON; write it with credence compare --json");
-        in.comparison = comparison_from_json(j);
+        if (j.is_discarded()) throw FormatError(f.comparison + " is not JSON; write it with credence compare --json");
+        try {
+            in.comparison = comparison_from_json(j);
+        } catch (const FormatError& e) {
+            throw FormatError(f.comparison + ": " + e.what());
+        }
     }
     const std::string html = report::render_html_report(in);
     std::ofstream out(f.out, std::ios::binary | std::ios::trunc);
     out << html;
     out.close();
-    if (!out) throw Error("could not write " + f.out + " (check the directory exists and is writable)");
+    if (!out) throw FileError("could not write " + f.out + " (check the directory exists and is writable)");
     std::cout << fmt::format("wrote {} ({:.0f} KB)\n", f.out, html.size() / 1024.0);
     return 0;
 }

@@ -31,8 +31,9 @@ struct ReportInputs {
 };
 
 // Returns the whole HTML document. Throws std::invalid_argument when
-// posterior is null; a fit_metadata_json without a trace gives a section
-// that says so instead of a plot.
+// posterior is null (a bug in the caller; so is any error of the plot writer,
+// which is only given series the report built itself); a fit_metadata_json
+// without a trace gives a section that says so instead of a plot.
 std::string render_html_report(const ReportInputs& inputs);
 
 }  // namespace credence::report

@@ -79,8 +79,18 @@ std::string tick_label(double value) {
     return s;
 }
 
-std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) {
-    // ---- data ranges
+namespace {
+
+// The two axes of one plot and how many finite points it shows.
+struct Frame {
+    Axis x, y;
+    size_t points = 0;
+};
+
+// Data ranges: every finite point (with its error bar), bars down to 0, the
+// guides; padded by 4% (log axes: out to whole decades); the spec's explicit
+// ranges win. Checks the series on the way.
+Frame frame_for(const PlotSpec& spec, const std::vector<Series>& series) {
     double xmin = std::numeric_limits<double>::infinity(), xmax = -xmin, ymin = xmin, ymax = -xmin;
     bool any_bars = false;
     size_t points = 0;
@@ -125,11 +135,15 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
     const bool y_floor_zero = any_bars && ymin >= 0;
     pad(ymin, ymax, false);
     if (y_floor_zero) ymin = 0;
-    Axis xa{spec.x_min.value_or(xmin), spec.x_max.value_or(xmax), spec.log_x, kLeft, spec.width_px - kRight};
-    Axis ya{spec.y_min.value_or(ymin), spec.y_max.value_or(ymax), false, spec.height_px - kBottom, kTop};
+    return Frame{Axis{spec.x_min.value_or(xmin), spec.x_max.value_or(xmax), spec.log_x, kLeft, spec.width_px - kRight},
+                 Axis{spec.y_min.value_or(ymin), spec.y_max.value_or(ymax), false, spec.height_px - kBottom, kTop},
+                 points};
+}
 
+// The <svg> element's opening, the clip path, the frame, title and note.
+void write_header(std::string& o, const PlotSpec& spec) {
     const double W = spec.width_px, H = spec.height_px;
-    std::string o = fmt::format(
+    o += fmt::format(
         "<svg xmlns=\"http://www.w3.org/2000/svg\" class=\"plot\" data-plot=\"{}\" viewBox=\"0 0 {} {}\" "
         "width=\"{}\" height=\"{}\" role=\"img\" aria-label=\"{}\">\n",
         escape_xml(spec.id), W, H, W, H, escape_xml(spec.title));
@@ -144,8 +158,11 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
     if (!spec.note.empty())
         o += fmt::format("<text class=\"note\" x=\"{}\" y=\"42\" text-anchor=\"end\" font-size=\"11.5\" fill=\"#6f6a5f\">{}</text>\n",
                          num(W - kRight), escape_xml(spec.note));
+}
 
-    // ---- ticks and grid
+// Ticks and grid lines of both axes, then the axis labels.
+void write_ticks(std::string& o, const PlotSpec& spec, const Axis& xa, const Axis& ya) {
+    const double W = spec.width_px, H = spec.height_px;
     auto in_range = [](double v, const Axis& a) { return v >= std::min(a.lo, a.hi) - 1e-12 && v <= std::max(a.lo, a.hi) + 1e-12; };
     std::vector<double> xticks;
     if (spec.log_x) {
@@ -175,9 +192,10 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
     o += fmt::format("<text class=\"axis-label\" transform=\"translate(16 {}) rotate(-90)\" text-anchor=\"middle\" "
                      "font-size=\"12\" fill=\"#333\">{}</text>\n",
                      num(kTop + (H - kTop - kBottom) / 2), escape_xml(spec.y_label));
+}
 
-    // ---- guides, then data, clipped to the frame
-    o += fmt::format("<g clip-path=\"url(#clip-{})\">\n", escape_xml(spec.id));
+// Reference guides: dashed lines with an optional label at their end.
+void write_guides(std::string& o, const PlotSpec& spec, const Axis& xa, const Axis& ya) {
     for (const Guide& g : spec.guides) {
         o += fmt::format("<line class=\"guide\" x1=\"{}\" y1=\"{}\" x2=\"{}\" y2=\"{}\" stroke=\"#8a8578\" "
                          "stroke-dasharray=\"5 4\" stroke-width=\"1.2\"/>\n",
@@ -186,72 +204,89 @@ std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) 
             o += fmt::format("<text class=\"guide-label\" x=\"{}\" y=\"{}\" font-size=\"10.5\" fill=\"#6f6a5f\">{}</text>\n",
                              num(xa.map(g.x2) + 4), num(ya.map(g.y2) + 12), escape_xml(g.label));
     }
-    for (size_t si = 0; si < series.size(); ++si) {
-        const Series& s = series[si];
-        const std::string color = s.color.empty() ? palette()[si % palette().size()] : s.color;
-        const std::string common = fmt::format("data-series=\"{}\" opacity=\"{}\"", si, s.opacity);
-        if (s.kind == SeriesKind::line) {
-            std::string d;
-            for (size_t j = 0; j < s.x.size(); ++j) {
-                if (!std::isfinite(s.x[j]) || !std::isfinite(s.y[j])) continue;
-                d += fmt::format("{}{} {}", d.empty() ? "M" : " L", num(xa.map(s.x[j])), num(ya.map(s.y[j])));
-            }
-            if (!d.empty())
-                o += fmt::format("<path class=\"data\" {} d=\"{}\" fill=\"none\" stroke=\"{}\" stroke-width=\"1.6\" "
-                                 "stroke-linejoin=\"round\"/>\n", common, d, color);
-        }
-        double bar_w = s.bar_width;
-        if (s.kind == SeriesKind::bars && bar_w <= 0) {
-            std::vector<double> xs(s.x);
-            std::sort(xs.begin(), xs.end());
-            double gap = std::numeric_limits<double>::infinity();
-            for (size_t j = 1; j < xs.size(); ++j)
-                if (xs[j] > xs[j - 1]) gap = std::min(gap, xs[j] - xs[j - 1]);
-            bar_w = std::isfinite(gap) ? 0.8 * gap : 1.0;
-        }
+}
+
+std::string series_color(const Series& s, size_t si) { return s.color.empty() ? palette()[si % palette().size()] : s.color; }
+
+// One series' marks: its line, points or bars, and whiskers.
+void write_series(std::string& o, const Series& s, size_t si, const Axis& xa, const Axis& ya) {
+    const std::string color = series_color(s, si);
+    const std::string common = fmt::format("data-series=\"{}\" opacity=\"{}\"", si, s.opacity);
+    if (s.kind == SeriesKind::line) {
+        std::string d;
         for (size_t j = 0; j < s.x.size(); ++j) {
             if (!std::isfinite(s.x[j]) || !std::isfinite(s.y[j])) continue;
-            const double px = xa.map(s.x[j]), py = ya.map(s.y[j]);
-            if (s.kind == SeriesKind::points)
-                o += fmt::format("<circle class=\"data\" {} cx=\"{}\" cy=\"{}\" r=\"{}\" fill=\"{}\"/>\n", common,
-                                 num(px), num(py), s.point_radius, color);
-            if (s.kind == SeriesKind::bars) {
-                const double x0 = xa.map(s.x[j] - bar_w / 2), x1 = xa.map(s.x[j] + bar_w / 2);
-                const double base = ya.map(std::clamp(0.0, std::min(ya.lo, ya.hi), std::max(ya.lo, ya.hi)));
-                o += fmt::format("<rect class=\"data\" {} x=\"{}\" y=\"{}\" width=\"{}\" height=\"{}\" fill=\"{}\"/>\n",
-                                 common, num(std::min(x0, x1)), num(std::min(py, base)), num(std::abs(x1 - x0)),
-                                 num(std::abs(base - py)), color);
-            }
-            if (!s.y_error.empty() && std::isfinite(s.y_error[j]) && s.y_error[j] > 0) {
-                const double a = ya.map(s.y[j] - s.y_error[j]), b = ya.map(s.y[j] + s.y_error[j]);
-                o += fmt::format("<path class=\"whisker\" d=\"M{0} {1} L{0} {2} M{3} {1} L{4} {1} M{3} {2} L{4} {2}\" "
-                                 "stroke=\"{5}\" stroke-width=\"1.2\" fill=\"none\"/>\n",
-                                 num(px), num(a), num(b), num(px - 4), num(px + 4), color);
-            }
+            d += fmt::format("{}{} {}", d.empty() ? "M" : " L", num(xa.map(s.x[j])), num(ya.map(s.y[j])));
+        }
+        if (!d.empty())
+            o += fmt::format("<path class=\"data\" {} d=\"{}\" fill=\"none\" stroke=\"{}\" stroke-width=\"1.6\" "
+                             "stroke-linejoin=\"round\"/>\n", common, d, color);
+    }
+    double bar_w = s.bar_width;
+    if (s.kind == SeriesKind::bars && bar_w <= 0) {
+        std::vector<double> xs(s.x);
+        std::sort(xs.begin(), xs.end());
+        double gap = std::numeric_limits<double>::infinity();
+        for (size_t j = 1; j < xs.size(); ++j)
+            if (xs[j] > xs[j - 1]) gap = std::min(gap, xs[j] - xs[j - 1]);
+        bar_w = std::isfinite(gap) ? 0.8 * gap : 1.0;
+    }
+    for (size_t j = 0; j < s.x.size(); ++j) {
+        if (!std::isfinite(s.x[j]) || !std::isfinite(s.y[j])) continue;
+        const double px = xa.map(s.x[j]), py = ya.map(s.y[j]);
+        if (s.kind == SeriesKind::points)
+            o += fmt::format("<circle class=\"data\" {} cx=\"{}\" cy=\"{}\" r=\"{}\" fill=\"{}\"/>\n", common,
+                             num(px), num(py), s.point_radius, color);
+        if (s.kind == SeriesKind::bars) {
+            const double x0 = xa.map(s.x[j] - bar_w / 2), x1 = xa.map(s.x[j] + bar_w / 2);
+            const double base = ya.map(std::clamp(0.0, std::min(ya.lo, ya.hi), std::max(ya.lo, ya.hi)));
+            o += fmt::format("<rect class=\"data\" {} x=\"{}\" y=\"{}\" width=\"{}\" height=\"{}\" fill=\"{}\"/>\n",
+                             common, num(std::min(x0, x1)), num(std::min(py, base)), num(std::abs(x1 - x0)),
+                             num(std::abs(base - py)), color);
+        }
+        if (!s.y_error.empty() && std::isfinite(s.y_error[j]) && s.y_error[j] > 0) {
+            const double a = ya.map(s.y[j] - s.y_error[j]), b = ya.map(s.y[j] + s.y_error[j]);
+            o += fmt::format("<path class=\"whisker\" d=\"M{0} {1} L{0} {2} M{3} {1} L{4} {1} M{3} {2} L{4} {2}\" "
+                             "stroke=\"{5}\" stroke-width=\"1.2\" fill=\"none\"/>\n",
+                             num(px), num(a), num(b), num(px - 4), num(px + 4), color);
         }
     }
-    o += "</g>\n";
-    if (points == 0)
-        o += fmt::format("<text class=\"no-data\" x=\"{}\" y=\"{}\" text-anchor=\"middle\" font-size=\"13\" fill=\"#8a8578\">no data</text>\n",
-                         num(W / 2), num(H / 2));
+}
 
-    // ---- legend: one row under the title
-    if (spec.legend) {
-        double lx = kLeft;
-        for (size_t si = 0; si < series.size(); ++si) {
-            const Series& s = series[si];
-            if (s.label.empty()) continue;
-            const std::string color = s.color.empty() ? palette()[si % palette().size()] : s.color;
-            if (s.kind == SeriesKind::line)
-                o += fmt::format("<line x1=\"{}\" x2=\"{}\" y1=\"38\" y2=\"38\" stroke=\"{}\" stroke-width=\"2.5\"/>",
-                                 num(lx), num(lx + 16), color);
-            else
-                o += fmt::format("<rect x=\"{}\" y=\"33\" width=\"12\" height=\"10\" rx=\"2\" fill=\"{}\"/>", num(lx + 2), color);
-            o += fmt::format("<text class=\"legend\" x=\"{}\" y=\"42\" font-size=\"11\" fill=\"#333\">{}</text>\n",
-                             num(lx + 21), escape_xml(s.label));
-            lx += 21 + 6.3 * static_cast<double>(s.label.size()) + 16;
-        }
+// The legend: one row under the title, labelled series only.
+void write_legend(std::string& o, const std::vector<Series>& series) {
+    double lx = kLeft;
+    for (size_t si = 0; si < series.size(); ++si) {
+        const Series& s = series[si];
+        if (s.label.empty()) continue;
+        const std::string color = series_color(s, si);
+        if (s.kind == SeriesKind::line)
+            o += fmt::format("<line x1=\"{}\" x2=\"{}\" y1=\"38\" y2=\"38\" stroke=\"{}\" stroke-width=\"2.5\"/>",
+                             num(lx), num(lx + 16), color);
+        else
+            o += fmt::format("<rect x=\"{}\" y=\"33\" width=\"12\" height=\"10\" rx=\"2\" fill=\"{}\"/>", num(lx + 2), color);
+        o += fmt::format("<text class=\"legend\" x=\"{}\" y=\"42\" font-size=\"11\" fill=\"#333\">{}</text>\n",
+                         num(lx + 21), escape_xml(s.label));
+        lx += 21 + 6.3 * static_cast<double>(s.label.size()) + 16;
     }
+}
+
+}  // namespace
+
+std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series) {
+    const Frame frame = frame_for(spec, series);
+    std::string o;
+    write_header(o, spec);
+    write_ticks(o, spec, frame.x, frame.y);
+    // Guides, then data, clipped to the frame.
+    o += fmt::format("<g clip-path=\"url(#clip-{})\">\n", escape_xml(spec.id));
+    write_guides(o, spec, frame.x, frame.y);
+    for (size_t si = 0; si < series.size(); ++si) write_series(o, series[si], si, frame.x, frame.y);
+    o += "</g>\n";
+    if (frame.points == 0)
+        o += fmt::format("<text class=\"no-data\" x=\"{}\" y=\"{}\" text-anchor=\"middle\" font-size=\"13\" fill=\"#8a8578\">no data</text>\n",
+                         num(spec.width_px / 2), num(spec.height_px / 2));
+    if (spec.legend) write_legend(o, series);
     o += "</svg>\n";
     return o;
 }

@@ -51,7 +51,8 @@ struct PlotSpec {
 };
 
 // Picks tick positions at 1, 2 or 5 times a power of ten covering [lo, hi],
-// about `target` of them. Needs lo < hi, both finite.
+// about `target` of them. Needs lo < hi, both finite; throws
+// std::invalid_argument otherwise.
 std::vector<double> nice_ticks(double lo, double hi, int target = 5);
 
 // Formats a tick value compactly ("0.25", "1e+04", "120").
@@ -61,7 +62,8 @@ std::string tick_label(double value);
 std::string escape_xml(const std::string& text);
 
 // Renders the plot. Needs equal x/y sizes (and y_error size 0 or equal), and
-// x > 0 on a log axis; throws std::invalid_argument otherwise. A plot with no
+// x > 0 on a log axis; throws std::invalid_argument otherwise (the report
+// builds every series itself, so that is a bug in the caller). A plot with no
 // finite point renders axes and a "no data" note.
 std::string render_svg(const PlotSpec& spec, const std::vector<Series>& series);
 

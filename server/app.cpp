@@ -79,6 +79,54 @@ uint64_t AppContext::next_seed() {
     return t ^ (seed_counter.fetch_add(1) * 0x9E3779B97F4A7C15ull);
 }
 
+namespace {
+
+void write_internal_problem(httplib::Response& res, const httplib::Request& req) {
+    write_problem(res, 500, "internal", "Internal Server Error",
+                  "the server failed to answer this request; the log has the details", req.target);
+}
+
+// The taxonomy of model/error.hpp in HTTP terms. Request values and request
+// data the handler did not catch itself are the client's to fix (400, the
+// message as detail: it names the parameter or rating, never a file). The
+// other credence::Errors are the server's: their messages may name files on
+// the server, so only the log gets them.
+void write_error_problem(httplib::Response& res, const httplib::Request& req, const std::string& route) {
+    try {
+        throw;
+    } catch (const OptionError& e) {
+        write_problem(res, 400, "bad-parameter", "Bad parameter", e.what(), req.target);
+    } catch (const DataError& e) {
+        write_problem(res, 400, "bad-data", "Unusable data", e.what(), req.target);
+    } catch (const NumericError& e) {
+        server_log().error("{} {}: numeric failure: {}", req.method, route, e.what());
+        write_problem(res, 500, "numeric-failure", "Numeric failure",
+                      "the model could not compute an answer for this request (a matrix that is not positive "
+                      "definite); the log has the details",
+                      req.target);
+    } catch (const FileError& e) {
+        server_log().error("{} {}: file error: {}", req.method, route, e.what());
+        write_problem(res, 503, "file-unavailable", "Service Unavailable",
+                      "the server could not read or write a file it needs; retry later, the log has the details",
+                      req.target);
+    } catch (const Error& e) {  // FormatError, or a plain Error
+        server_log().error("{} {}: {}", req.method, route, e.what());
+        write_internal_problem(res, req);
+    } catch (const std::logic_error& e) {
+        server_log().error("{} {}: internal error (a bug in credence; please report it): {}", req.method, route,
+                           e.what());
+        write_internal_problem(res, req);
+    } catch (const std::exception& e) {
+        server_log().error("{} {}: unexpected error: {}", req.method, route, e.what());
+        write_internal_problem(res, req);
+    } catch (...) {
+        server_log().error("{} {}: unexpected error that is not a std::exception", req.method, route);
+        write_internal_problem(res, req);
+    }
+}
+
+}  // namespace
+
 httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHandler handler) {
     return [&ctx, route = std::move(route), handler = std::move(handler)](const httplib::Request& req,
                                                                           httplib::Response& res) {
@@ -88,13 +136,8 @@ httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHan
             handler(req, res);
         } catch (const HttpProblem& p) {
             write_problem(res, p, req.target);
-        } catch (const std::exception& e) {
-            server_log().error("{} {}: unexpected error: {}", req.method, route, e.what());
-            write_problem(res, 500, "internal", "Internal Server Error",
-                          "the server failed to answer this request; the log has the details", req.target);
         } catch (...) {
-            write_problem(res, 500, "internal", "Internal Server Error",
-                          "the server failed to answer this request", req.target);
+            write_error_problem(res, req, route);
         }
         const double latency_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
         const int status = res.status == -1 ? 200 : res.status;

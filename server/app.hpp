@@ -45,9 +45,17 @@ spdlog::logger& server_log();
 
 using RouteHandler = std::function<void(const httplib::Request&, httplib::Response&)>;
 
-// Wraps a handler with metrics, the access log and error mapping: an
-// HttpProblem becomes its problem response, any other exception a 500
-// problem with no internals. `route` is the pattern logged and counted.
+// Wraps a handler with metrics, the access log and error mapping
+// (model/error.hpp's taxonomy in HTTP terms):
+//   HttpProblem            its own problem response;
+//   credence::OptionError  400 bad-parameter, the message as detail;
+//   credence::DataError    400 bad-data, the message as detail;
+//   credence::NumericError 500 numeric-failure;
+//   credence::FileError    503 file-unavailable;
+//   other credence::Error, std::logic_error (a bug) and anything else:
+//                          500 internal.
+// The 500 and 503 answers carry no internals (no message, no path); the
+// service log gets the message. `route` is the pattern logged and counted.
 httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHandler handler);
 
 // Route groups (one file each).

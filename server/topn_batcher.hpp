@@ -22,7 +22,8 @@ namespace credence::server {
 class TopNBatcher {
 public:
     // lanes: passes that may run at once (0: one per hardware thread);
-    // max_batch: requests per pass (>= 1).
+    // max_batch: requests per pass (>= 1; the config check in
+    // server/config.hpp refuses 0 first, so std::invalid_argument here is a bug).
     explicit TopNBatcher(unsigned lanes = 0, size_t max_batch = 16);
 
     // The same answer as engine.recommend(user, options), or rethrows what it

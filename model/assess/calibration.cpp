@@ -2,11 +2,10 @@
 
 #include <cmath>
 #include <limits>
+#include <stdexcept>
 #include <string>
 
 #include <fmt/format.h>
-
-#include "model/error.hpp"
 
 namespace credence {
 
@@ -18,14 +17,14 @@ void check_pit(std::span<const double> pit_values) {
     for (size_t j = 0; j < pit_values.size(); ++j) {
         const double v = pit_values[j];
         if (!(v >= 0.0 && v <= 1.0))
-            throw DataError(fmt::format("calibration: PIT value {} of pair {} is not a probability in [0, 1]; "
+            throw std::invalid_argument(fmt::format("calibration: PIT value {} of pair {} is not a probability in [0, 1]; "
                                         "the predictive CDF was evaluated wrongly", v, j));
     }
 }
 
 void check_level(double level) {
     if (!(level > 0.0 && level < 1.0))
-        throw DataError(fmt::format("calibration: interval level {} must lie strictly between 0 and 1", level));
+        throw std::invalid_argument(fmt::format("calibration: interval level {} must lie strictly between 0 and 1", level));
 }
 
 CoveragePoint make_point(double level, uint64_t inside, uint64_t total) {
@@ -53,7 +52,7 @@ std::vector<double> default_coverage_levels() {
 }
 
 PitHistogram pit_histogram(std::span<const double> pit_values, uint32_t bins) {
-    if (bins == 0) throw DataError("calibration: a PIT histogram needs at least one bin");
+    if (bins == 0) throw std::invalid_argument("calibration: a PIT histogram needs at least one bin");
     check_pit(pit_values);
     PitHistogram h;
     h.counts.assign(bins, 0);

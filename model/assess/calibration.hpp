@@ -42,15 +42,18 @@ struct CoveragePoint {
     double standard_error = 0.0;  // sqrt(level (1 - level) / total); NaN when total is 0
 };
 
-// Needs bins >= 1 and every PIT value finite in [0, 1]; throws DataError
-// otherwise (a value outside means the CDF was computed wrongly: no clamping).
+// Needs bins >= 1 and every PIT value finite in [0, 1]; throws
+// std::invalid_argument otherwise: a value outside means the CDF was computed
+// wrongly (no clamping), and evaluate() checks the bin count first, so both
+// are bugs in the caller.
 PitHistogram pit_histogram(std::span<const double> pit_values, uint32_t bins = 10);
 
-// Needs each level in (0, 1) and PIT values as above; throws DataError.
+// Needs each level in (0, 1) and PIT values as above; throws
+// std::invalid_argument otherwise (callers check levels first).
 std::vector<CoveragePoint> coverage_from_pit(std::span<const double> pit_values, std::span<const double> levels);
 
 // inside[j] says whether pair j's rating fell in its level-L interval.
-// Needs level in (0, 1); throws DataError.
+// Needs level in (0, 1); throws std::invalid_argument otherwise.
 CoveragePoint coverage_from_membership(double level, const std::vector<bool>& inside);
 
 // snake_case JSON; NaN figures are written as null.

@@ -11,7 +11,6 @@
 #include <memory>
 #include <numeric>
 #include <set>
-#include <stdexcept>
 
 #include "model/error.hpp"
 #include "model/predict/predict.hpp"
@@ -56,9 +55,9 @@ std::vector<Split> make_splits(const RatingSet& all, const CompareOptions& o) {
             else s.train.ratings.push_back(all.ratings[j]);
         }
         if (s.test.empty() || s.train.ratings.empty())
-            throw std::invalid_argument(fmt::format(
-                "split {} of {} has {} training and {} held-out ratings; both must be non-empty "
-                "(use more ratings, fewer folds or another holdout fraction)",
+            throw DataError(fmt::format(
+                "compare: split {} of {} has {} training and {} held-out ratings; both must be non-empty "
+                "(use more ratings, fewer --folds or another --holdout fraction)",
                 k + 1, K, s.train.size(), s.test.size()));
     }
     return splits;
@@ -188,25 +187,31 @@ double difference_se(const std::vector<SplitScore>& a, const std::vector<SplitSc
 
 nlohmann::json number(double v) { return std::isfinite(v) ? nlohmann::json(v) : nlohmann::json(nullptr); }
 
+// The options come from the command line (credence compare); the flags are
+// named. Checked before any fit so a typo costs nothing.
+void check_options(const RatingSet& ratings, const CompareOptions& options) {
+    if (options.ranks.empty()) throw OptionError("compare: --ranks must list at least one rank");
+    std::set<uint32_t> seen;
+    for (uint32_t r : options.ranks) {
+        if (r == 0) throw OptionError("compare: --ranks must all be at least 1");
+        if (!seen.insert(r).second) throw OptionError(fmt::format("compare: rank {} is listed twice in --ranks", r));
+    }
+    if (!(options.coverage_level > 0.0 && options.coverage_level < 1.0))
+        throw OptionError(fmt::format("compare: coverage level {} must be strictly between 0 and 1",
+                                      options.coverage_level));
+    if (options.folds < 2 && !(options.holdout_fraction > 0.0 && options.holdout_fraction < 1.0))
+        throw OptionError(fmt::format("compare: --holdout {} must be strictly between 0 and 1 (or give --folds 2 or more)",
+                                      options.holdout_fraction));
+    if (options.folds > ratings.size())
+        throw DataError(fmt::format("compare: --folds {} but only {} ratings; give fewer folds or more ratings",
+                                    options.folds, ratings.size()));
+}
+
 }  // namespace
 
 ComparisonResult compare_models(const RatingSet& ratings, const CompareOptions& options,
                                 const std::function<void(const std::string&)>& log) {
-    if (options.ranks.empty()) throw std::invalid_argument("compare: give at least one rank");
-    std::set<uint32_t> seen;
-    for (uint32_t r : options.ranks) {
-        if (r == 0) throw std::invalid_argument("compare: ranks must be at least 1");
-        if (!seen.insert(r).second) throw std::invalid_argument(fmt::format("compare: rank {} is listed twice", r));
-    }
-    if (!(options.coverage_level > 0.0 && options.coverage_level < 1.0))
-        throw std::invalid_argument(fmt::format("compare: coverage level {} must be strictly between 0 and 1",
-                                                options.coverage_level));
-    if (options.folds < 2 && !(options.holdout_fraction > 0.0 && options.holdout_fraction < 1.0))
-        throw std::invalid_argument(fmt::format("compare: holdout fraction {} must be strictly between 0 and 1",
-                                                options.holdout_fraction));
-    if (options.folds > ratings.size())
-        throw std::invalid_argument(fmt::format("compare: {} folds but only {} ratings", options.folds, ratings.size()));
-
+    check_options(ratings, options);
     const std::vector<Split> splits = make_splits(ratings, options);
     std::vector<uint32_t> ranks(options.ranks);
     std::sort(ranks.begin(), ranks.end());
@@ -315,13 +320,13 @@ nlohmann::json to_json(const ComparisonResult& result) {
 ComparisonResult comparison_from_json(const nlohmann::json& j) {
     auto get = [](const nlohmann::json& o, const char* key) -> const nlohmann::json& {
         if (!o.is_object() || !o.contains(key))
-            throw DataError(fmt::format("comparison file: missing key \"{}\"; write it with credence compare --json", key));
+            throw FormatError(fmt::format("comparison file: missing key \"{}\"; write it with credence compare --json", key));
         return o.at(key);
     };
     auto num = [&](const nlohmann::json& o, const char* key) {
         const auto& v = get(o, key);
         if (v.is_null()) return kNaN;
-        if (!v.is_number()) throw DataError(fmt::format("comparison file: \"{}\" is not a number", key));
+        if (!v.is_number()) throw FormatError(fmt::format("comparison file: \"{}\" is not a number", key));
         return v.get<double>();
     };
     ComparisonResult r;
@@ -355,10 +360,10 @@ ComparisonResult comparison_from_json(const nlohmann::json& j) {
             r.configs.push_back(s);
         }
     } catch (const nlohmann::json::exception& e) {
-        throw DataError(std::string("comparison file: a key has the wrong type: ") + e.what());
+        throw FormatError(std::string("comparison file: a key has the wrong type: ") + e.what());
     }
     if (r.configs.empty() || r.best >= r.configs.size() || r.recommended >= r.configs.size())
-        throw DataError("comparison file: \"best\" or \"recommended\" does not index a configuration");
+        throw FormatError("comparison file: \"best\" or \"recommended\" does not index a configuration");
     return r;
 }
 

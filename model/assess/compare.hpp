@@ -91,11 +91,12 @@ struct ComparisonResult {
 };
 
 // Needs ratings sorted by (user, item) without duplicate pairs (as ingest
-// returns) and enough of them that every split keeps at least one training
-// and one held-out rating. Throws std::invalid_argument for empty or repeated
-// ranks, a level or fraction outside (0, 1), folds larger than the rating
-// count; propagates fit_bpmf's errors. `log` (may be empty) receives one line
-// per configuration and split.
+// returns). Throws OptionError for empty or repeated ranks (or a rank of 0),
+// a level or holdout fraction outside (0, 1); DataError when there are fewer
+// ratings than folds or a split would leave no training or no held-out
+// rating; propagates fit_bpmf's errors. All option checks happen before the
+// first fit. `log` (may be empty) receives one line per configuration and
+// split.
 ComparisonResult compare_models(const RatingSet& ratings, const CompareOptions& options,
                                 const std::function<void(const std::string&)>& log = {});
 
@@ -107,8 +108,8 @@ ComparisonResult compare_models(const RatingSet& ratings, const CompareOptions& 
 // Non-finite figures are null.
 nlohmann::json to_json(const ComparisonResult& result);
 
-// Reads what to_json wrote (for the report). Throws DataError naming the
-// first missing or mistyped key.
+// Reads what to_json wrote (for the report). Throws FormatError naming the
+// first missing or mistyped key, or a best/recommended index out of range.
 ComparisonResult comparison_from_json(const nlohmann::json& j);
 
 // A fixed-width text table with one row per configuration, the best and

@@ -10,8 +10,8 @@
 #include <cmath>
 #include <limits>
 #include <optional>
-#include <stdexcept>
 
+#include "model/error.hpp"
 #include "model/math/random.hpp"
 
 namespace credence {
@@ -20,18 +20,21 @@ namespace {
 
 std::string level_key(double level) { return fmt::format("{}", level); }
 
+// The options come from the command line (evaluate, report): --k and
+// --relevance-threshold are named where they can be at fault.
 void check_options(const EvaluationOptions& options) {
     auto check_level = [](double level, const char* what) {
         if (!(level > 0.0 && level < 1.0))
-            throw std::invalid_argument(fmt::format("{} must be strictly between 0 and 1, got {}", what, level));
+            throw OptionError(fmt::format("evaluate: {} must be strictly between 0 and 1, got {}", what, level));
     };
     for (double level : options.coverage_levels) check_level(level, "coverage level");
     for (double level : options.curve_levels) check_level(level, "coverage curve level");
-    if (options.pit_bins == 0) throw std::invalid_argument("the PIT histogram needs at least 1 bin");
+    if (options.pit_bins == 0) throw OptionError("evaluate: the PIT histogram needs at least 1 bin");
     if (options.ranking) {
-        if (options.ranking_k == 0) throw std::invalid_argument("ranking k must be at least 1");
+        if (options.ranking_k == 0) throw OptionError("evaluate: --k (the ranking list length) must be at least 1");
         if (!std::isfinite(options.relevance_threshold))
-            throw std::invalid_argument("the relevance threshold must be a finite rating value");
+            throw OptionError(fmt::format("evaluate: --relevance-threshold must be a finite rating value, got {}",
+                                          options.relevance_threshold));
         check_level(options.ranking_level, "ranking interval level");
     }
 }
@@ -71,34 +74,37 @@ std::vector<RankingByMode> rank_users(const PredictionEngine& engine, const std:
     return out;
 }
 
-}  // namespace
-
-std::vector<double> EvaluationOptions::default_curve_levels() {
-    std::vector<double> levels;
-    for (int percent = 10; percent <= 95; percent += 5) levels.push_back(percent / 100.0);
-    return levels;
+// Test-set id -> posterior index, resolved once per distinct id.
+std::vector<std::optional<uint32_t>> translate(const IdMap& from, const IdMap& to) {
+    std::vector<std::optional<uint32_t>> out(from.size());
+    for (uint32_t i = 0; i < from.size(); ++i) out[i] = to.find(from.name(i));
+    return out;
 }
 
-EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options) {
-    check_options(options);
+enum PairStatus : uint8_t { rated, unknown_user, unknown_item };
+
+// Per-pair results of the parallel pass, each in its own slot.
+struct PairScores {
+    std::vector<uint8_t> status;     // PairStatus
+    std::vector<double> abs_error;   // |clipped mean - rating|
+    std::vector<double> log_density;
+    std::vector<double> pit;
+    std::vector<uint8_t> inside;     // [pair][coverage level]: rating inside the clipped interval
+};
+
+// Scores every test pair whose user and item the model knows. Parallel over
+// pairs; each pair writes only its own slots.
+PairScores score_pairs(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options,
+                       const std::vector<std::optional<uint32_t>>& user_of,
+                       const std::vector<std::optional<uint32_t>>& item_of) {
     const Posterior& p = engine.posterior();
-    const IdMap users = IdMap::from_names(p.user_ids);
-    const IdMap items = IdMap::from_names(p.item_ids);
-
-    // Test-set id -> posterior index, resolved once per distinct id.
-    auto translate = [](const IdMap& from, const IdMap& to) {
-        std::vector<std::optional<uint32_t>> out(from.size());
-        for (uint32_t i = 0; i < from.size(); ++i) out[i] = to.find(from.name(i));
-        return out;
-    };
-    const auto user_of = translate(test.users, users);
-    const auto item_of = translate(test.items, items);
-
     const size_t N = test.ratings.size(), L = options.coverage_levels.size();
-    enum : uint8_t { rated, unknown_user, unknown_item };
-    std::vector<uint8_t> status(N);
-    std::vector<double> abs_error(N, 0.0), log_density(N, 0.0), pit(N, 0.0);
-    std::vector<uint8_t> inside(N * L, 0);
+    PairScores out;
+    out.status.resize(N);
+    out.abs_error.assign(N, 0.0);
+    out.log_density.assign(N, 0.0);
+    out.pit.assign(N, 0.0);
+    out.inside.assign(N * L, 0);
     const std::span<const float> tau(p.noise_precision);
     const double lo_scale = p.scale.min, hi_scale = p.scale.max;
 
@@ -111,28 +117,48 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
             const auto u = user_of[r.user];
             const auto i = item_of[r.item];
             if (!u) {
-                status[k] = unknown_user;
+                out.status[k] = unknown_user;
                 continue;
             }
             if (!i) {
-                status[k] = unknown_item;
+                out.status[k] = unknown_item;
                 continue;
             }
-            status[k] = rated;
+            out.status[k] = rated;
             engine.sample_means(*u, *i, m);
             const double x = r.value;
-            abs_error[k] = std::abs(std::clamp(mixture_mean(m), lo_scale, hi_scale) - x);
-            log_density[k] = mixture_log_density(m, tau, x);
-            pit[k] = mixture_cdf(m, tau, x);
+            out.abs_error[k] = std::abs(std::clamp(mixture_mean(m), lo_scale, hi_scale) - x);
+            out.log_density[k] = mixture_log_density(m, tau, x);
+            out.pit[k] = mixture_cdf(m, tau, x);
             for (size_t l = 0; l < L; ++l) {
                 const double level = options.coverage_levels[l];
                 const double lower = std::clamp(mixture_quantile(m, tau, 0.5 * (1.0 - level)), lo_scale, hi_scale);
                 const double upper = std::clamp(mixture_quantile(m, tau, 0.5 * (1.0 + level)), lo_scale, hi_scale);
-                inside[k * L + l] = lower <= x && x <= upper;
+                out.inside[k * L + l] = lower <= x && x <= upper;
             }
         }
     }
+    return out;
+}
 
+}  // namespace
+
+std::vector<double> EvaluationOptions::default_curve_levels() {
+    std::vector<double> levels;
+    for (int percent = 10; percent <= 95; percent += 5) levels.push_back(percent / 100.0);
+    return levels;
+}
+
+EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options) {
+    check_options(options);
+    const Posterior& p = engine.posterior();
+    const auto user_of = translate(test.users, IdMap::from_names(p.user_ids));
+    const auto item_of = translate(test.items, IdMap::from_names(p.item_ids));
+    const PairScores scores = score_pairs(engine, test, options, user_of, item_of);
+    const auto& [status, abs_error, log_density, pit, inside] = scores;
+    const size_t N = test.ratings.size(), L = options.coverage_levels.size();
+
+    // Sums in test-set order, so the report does not depend on the thread count.
     EvaluationReport report;
     std::map<uint32_t, HeldOutRatings> held_out_by_user;  // posterior user -> held-out ratings
     double sq = 0.0, abs = 0.0, lpd = 0.0;

@@ -80,9 +80,9 @@ struct EvaluationReport {
 
 // Needs: test ids are external strings, mapped by name to the posterior's
 // users and items. Parallel over pairs (OpenMP); the result does not depend
-// on the thread count. Throws std::invalid_argument for a coverage or curve
-// level outside (0, 1), pit_bins or ranking_k of 0, a non-finite relevance
-// threshold or a ranking level outside (0, 1).
+// on the thread count. Throws OptionError for a coverage or curve level
+// outside (0, 1), pit_bins or ranking_k of 0, a non-finite relevance
+// threshold or a ranking level outside (0, 1), before any work.
 EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options);
 
 // Keys: rmse, mae, mean_log_predictive_density, coverage {"0.5": ...},

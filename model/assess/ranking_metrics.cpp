@@ -4,12 +4,11 @@
 #include <cmath>
 #include <functional>
 #include <limits>
+#include <stdexcept>
 #include <string>
 #include <unordered_set>
 
 #include <fmt/format.h>
-
-#include "model/error.hpp"
 
 namespace credence {
 
@@ -26,15 +25,15 @@ double gain_of(double rating, double threshold, GainKind kind) {
 
 UserRankingScores score_user(std::span<const uint32_t> ranked, const HeldOutRatings& held_out, uint32_t k,
                              double relevance_threshold, GainKind gain) {
-    if (k == 0) throw DataError("ranking metrics: k must be at least 1");
+    if (k == 0) throw std::invalid_argument("ranking metrics: k must be at least 1");
     if (!std::isfinite(relevance_threshold))
-        throw DataError("ranking metrics: the relevance threshold must be a finite rating");
+        throw std::invalid_argument("ranking metrics: the relevance threshold must be a finite rating");
 
     UserRankingScores out;
     std::vector<double> gains;  // held-out gains, for the ideal ordering
     for (const auto& [item, rating] : held_out) {
         if (!std::isfinite(rating))
-            throw DataError(fmt::format("ranking metrics: held-out rating of item {} is not finite", item));
+            throw std::invalid_argument(fmt::format("ranking metrics: held-out rating of item {} is not finite", item));
         if (rating >= relevance_threshold) {
             ++out.relevant;
             gains.push_back(gain_of(rating, relevance_threshold, gain));
@@ -46,7 +45,7 @@ UserRankingScores score_user(std::span<const uint32_t> ranked, const HeldOutRati
     double dcg = 0.0;
     for (size_t i = 0; i < depth; ++i) {
         if (!seen.insert(ranked[i]).second)
-            throw DataError(fmt::format("ranking metrics: item {} appears twice in one ranked list", ranked[i]));
+            throw std::invalid_argument(fmt::format("ranking metrics: item {} appears twice in one ranked list", ranked[i]));
         const auto it = held_out.find(ranked[i]);
         if (it == held_out.end() || it->second < relevance_threshold) continue;
         ++out.hits;
@@ -72,10 +71,10 @@ RankingMetrics ranking_metrics(const std::vector<std::vector<uint32_t>>& ranked_
                                const std::vector<HeldOutRatings>& held_out_by_user, uint32_t num_items,
                                uint32_t k, double relevance_threshold, GainKind gain) {
     if (ranked_by_user.size() != held_out_by_user.size())
-        throw DataError(fmt::format("ranking metrics: {} ranked lists but {} held-out sets; give one of each per user",
+        throw std::invalid_argument(fmt::format("ranking metrics: {} ranked lists but {} held-out sets; give one of each per user",
                                     ranked_by_user.size(), held_out_by_user.size()));
-    if (num_items == 0) throw DataError("ranking metrics: the catalogue has no items");
-    if (k == 0) throw DataError("ranking metrics: k must be at least 1");
+    if (num_items == 0) throw std::invalid_argument("ranking metrics: the catalogue has no items");
+    if (k == 0) throw std::invalid_argument("ranking metrics: k must be at least 1");
 
     RankingMetrics out;
     out.k = k;
@@ -88,11 +87,11 @@ RankingMetrics ranking_metrics(const std::vector<std::vector<uint32_t>>& ranked_
         const auto& ranked = ranked_by_user[u];
         for (uint32_t item : ranked)
             if (item >= num_items)
-                throw DataError(fmt::format("ranking metrics: user {} is recommended item {} beyond the {} catalogue items",
+                throw std::invalid_argument(fmt::format("ranking metrics: user {} is recommended item {} beyond the {} catalogue items",
                                             u, item, num_items));
         for (const auto& entry : held_out_by_user[u])
             if (entry.first >= num_items)
-                throw DataError(fmt::format("ranking metrics: user {} has held-out item {} beyond the {} catalogue items",
+                throw std::invalid_argument(fmt::format("ranking metrics: user {} has held-out item {} beyond the {} catalogue items",
                                             u, entry.first, num_items));
         const auto scores = score_user(ranked, held_out_by_user[u], k, relevance_threshold, gain);
         for (size_t i = 0; i < std::min<size_t>(k, ranked.size()); ++i) recommended[ranked[i]] = 1;

@@ -56,13 +56,16 @@ struct RankingMetrics {
 };
 
 // One user. Needs k >= 1, a finite threshold, a ranking without repeated
-// items among its first k, finite held-out ratings. Throws DataError otherwise.
+// items among its first k, finite held-out ratings. Throws
+// std::invalid_argument otherwise: evaluate() checks k and the threshold
+// before ranking, so a failure here is a bug in the caller.
 UserRankingScores score_user(std::span<const uint32_t> ranked, const HeldOutRatings& held_out, uint32_t k,
                              double relevance_threshold, GainKind gain = GainKind::graded);
 
 // All users: ranked_by_user[u] and held_out_by_user[u] belong to the same user.
 // Needs equal list counts, num_items >= 1 and every item index < num_items,
-// plus score_user's needs. Throws DataError naming the user otherwise.
+// plus score_user's needs. Throws std::invalid_argument naming the user
+// otherwise (a bug in the caller).
 RankingMetrics ranking_metrics(const std::vector<std::vector<uint32_t>>& ranked_by_user,
                                const std::vector<HeldOutRatings>& held_out_by_user, uint32_t num_items,
                                uint32_t k, double relevance_threshold, GainKind gain = GainKind::graded);

@@ -4,6 +4,7 @@
 #include <array>
 #include <cerrno>
 #include <cstring>
+#include <stdexcept>
 
 #include "model/error.hpp"
 
@@ -42,7 +43,7 @@ CsvReader::CsvReader(std::FILE* file, std::function<void(std::string_view)> on_b
 
 void CsvReader::set_delimiter(char delimiter) {
     if (delimiter == '"' || delimiter == '\r' || delimiter == '\n')
-        throw DataError(std::string("the delimiter cannot be a quote or a line break; pass one of , tab ; |"));
+        throw std::invalid_argument("CsvReader: the delimiter cannot be a quote or a line break");
     delimiter_ = delimiter;
 }
 
@@ -56,7 +57,7 @@ bool CsvReader::fill() {
     const size_t want = buffer_.size() - end_;
     const size_t got = std::fread(buffer_.data() + end_, 1, want, file_);
     if (got < want) {
-        if (std::ferror(file_)) throw DataError(std::string("read failed: ") + std::strerror(errno));
+        if (std::ferror(file_)) throw FileError(std::string("read failed: ") + std::strerror(errno));
         eof_ = true;
     }
     if (got > 0) {

@@ -59,16 +59,20 @@ public:
 
     // Returns the start of the input (after any BOM) without consuming it, up
     // to max_bytes or whatever the first buffer fill holds. For delimiter
-    // detection; call before the first next().
+    // detection; call before the first next(). Throws FileError (message
+    // starting "read failed") if the file cannot be read.
     std::string_view peek(size_t max_bytes = 64 * 1024);
 
-    // The field separator; ',' until set. Any byte except '"', '\r', '\n'.
+    // The field separator; ',' until set. Any byte except '"', '\r', '\n';
+    // throws std::invalid_argument for those (ingest checks a user's
+    // delimiter first, so that is a bug in the caller).
     void set_delimiter(char delimiter);
     char delimiter() const { return delimiter_; }
 
     // Reads the next record into `record`; false at end of input. A blank
     // line comes back as a record with one empty field and an empty raw.
-    // Throws DataError if the file cannot be read.
+    // Throws FileError (message starting "read failed") if the file cannot
+    // be read.
     bool next(CsvRecord& record);
 
     uint64_t bytes_read() const { return bytes_read_; }

@@ -274,7 +274,7 @@ public:
         if (!file_) {
             file_ = std::fopen(path_.c_str(), "wb");
             if (!file_)
-                throw DataError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path",
+                throw FileError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path",
                                             path_, std::strerror(errno)));
             std::fputs("line\treason\trecord\n", file_);
         }
@@ -290,7 +290,7 @@ public:
     void close() {
         if (file_ && std::fclose(file_) != 0) {
             file_ = nullptr;
-            throw DataError(fmt::format("could not finish writing the rejects file {}; check the disk", path_));
+            throw FileError(fmt::format("could not finish writing the rejects file {}; check the disk", path_));
         }
         file_ = nullptr;
     }
@@ -389,6 +389,12 @@ private:
     std::string display_path() const { return options_.path == "-" ? std::string("standard input") : options_.path; }
 
     void check_options() const;
+    std::FILE* open_input(uint64_t& bytes_total) const;
+    void choose_delimiter(CsvReader& reader);
+    bool detect_header(const std::vector<std::string>& first) const;
+    void read_rows(CsvReader& reader);
+    void check_outcome() const;
+    IngestResult finish();
     Columns resolve_columns(const std::vector<std::string>& first, bool has_header, uint64_t line) const;
     std::optional<size_t> resolve(const std::string& spec, const ColumnRole& role, const std::vector<std::string>& first,
                                   bool has_header, size_t fallback_index, std::vector<size_t>& taken,
@@ -412,14 +418,16 @@ private:
 };
 
 void Ingest::check_options() const {
-    if (options_.path.empty()) throw DataError("no ratings file given; pass a path, or - for standard input");
+    if (options_.path.empty()) throw OptionError("no ratings file given; pass a path, or - for standard input");
+    if (options_.delimiter && (*options_.delimiter == '"' || *options_.delimiter == '\r' || *options_.delimiter == '\n'))
+        throw OptionError("--delimiter cannot be a quote or a line break; pass one of , tab ; |");
     if (!(options_.max_reject_fraction >= 0.0 && options_.max_reject_fraction <= 1.0))
-        throw DataError(fmt::format("--max-reject-fraction must be between 0 and 1, got {}", options_.max_reject_fraction));
+        throw OptionError(fmt::format("--max-reject-fraction must be between 0 and 1, got {}", options_.max_reject_fraction));
     if (options_.scale) {
         const auto& s = *options_.scale;
         if (!std::isfinite(s.min) || !std::isfinite(s.max) || !(s.min < s.max))
-            throw DataError(fmt::format("the declared scale {} to {} is empty or not finite; pass --scale MIN,MAX with MIN < MAX",
-                                        s.min, s.max));
+            throw OptionError(fmt::format("the declared scale {} to {} is empty or not finite; pass --scale MIN:MAX with MIN < MAX",
+                                          s.min, s.max));
     }
 }
 
@@ -626,97 +634,87 @@ void Ingest::merge_and_sort(std::vector<Rating>& ratings, std::vector<double> ti
     }
 }
 
-IngestResult Ingest::run() {
-    check_options();
+// Opens the ratings file (standard input for "-"); sets bytes_total to its
+// size when known (0 otherwise) for progress.
+std::FILE* Ingest::open_input(uint64_t& bytes_total) const {
     const bool from_stdin = options_.path == "-";
     std::error_code ec;
     if (!from_stdin && std::filesystem::is_directory(options_.path, ec))
-        throw DataError(fmt::format("{} is a directory; pass the ratings file inside it", options_.path));
+        throw FileError(fmt::format("{} is a directory; pass the ratings file inside it", options_.path));
     std::FILE* file = from_stdin ? stdin : std::fopen(options_.path.c_str(), "rb");
     if (!file)
-        throw DataError(fmt::format("cannot open {}: {}; check the path", options_.path, std::strerror(errno)));
-    std::unique_ptr<std::FILE, int (*)(std::FILE*)> owned(from_stdin ? nullptr : file, &std::fclose);
-    uint64_t bytes_total = 0;
+        throw FileError(fmt::format("cannot open {}: {}; check the path", options_.path, std::strerror(errno)));
+    bytes_total = 0;
     if (!from_stdin) {
         const auto size = std::filesystem::file_size(options_.path, ec);
         if (!ec) bytes_total = size;
     }
+    return file;
+}
 
-    std::unique_ptr<XXH3_state_t, XXH_errorcode (*)(XXH3_state_t*)> hash(XXH3_createState(), &XXH3_freeState);
-    if (!hash) throw std::bad_alloc();
-    XXH3_64bits_reset(hash.get());
-    uint64_t bytes_done = 0;
-    CsvReader reader(file, [&](std::string_view chunk) {
-        XXH3_64bits_update(hash.get(), chunk.data(), chunk.size());
-        bytes_done += chunk.size();
-        if (options_.progress) options_.progress(bytes_done, bytes_total);
-    });
-
-    try {
-        if (options_.delimiter) {
-            reader.set_delimiter(*options_.delimiter);
-        } else {
-            const auto sample = reader.peek();
-            const auto detected = detect_delimiter(sample);
-            if (!detected && sample.find_first_not_of(" \t\r\n") == std::string_view::npos)
-                throw DataError(fmt::format("{} has no rows; check the path", display_path()));
-            if (!detected)
-                throw DataError(fmt::format("{}: cannot tell the delimiter: the first line has no ',', tab, ';' or '|'; "
-                                            "pass --delimiter",
-                                            where(1)));
-            reader.set_delimiter(*detected);
-        }
-        summary_.delimiter = reader.delimiter();
-
-        CsvRecord record;
-        auto blank = [](const CsvRecord& r) { return r.problem == CsvProblem::none && trim(r.raw).empty(); };
-        bool got = false;
-        while ((got = reader.next(record)) && blank(record)) ++summary_.blank_lines;
-        if (!got) throw DataError(fmt::format("{} has no rows; check the path", display_path()));
-        if (record.problem != CsvProblem::none)
-            throw DataError(fmt::format("{}: {}; the first row must be readable to find the columns; fix that line",
-                                        where(record.line), describe(record.problem)));
-
-        std::vector<std::string> first;
-        for (auto f : record.fields) first.emplace_back(trim(f));
-        bool has_header = false;
-        if (options_.has_header) {
-            has_header = *options_.has_header;
-        } else {
-            const auto named = [](const std::string& s) { return !s.empty() && !all_digits(s); };
-            if (named(options_.user_column) || named(options_.item_column) || named(options_.rating_column) ||
-                named(options_.timestamp_column)) {
-                has_header = true;
-            } else {
-                const size_t rating_index = options_.rating_column.empty() ? 2 : column_index(options_.rating_column);
-                has_header = rating_index < first.size() && !parse_number(first[rating_index]).has_value();
-            }
-        }
-        summary_.had_header = has_header;
-        columns_ = resolve_columns(first, has_header, record.line);
-        expected_fields_ = first.size();
-        keep_timestamps_ = columns_.timestamp.has_value() && options_.duplicates == DuplicatePolicy::latest;
-
-        if (!has_header) take_row(record.fields, record.raw, record.line, record.problem);
-        while (reader.next(record)) {
-            if (blank(record)) {
-                ++summary_.blank_lines;
-                continue;
-            }
-            take_row(record.fields, record.raw, record.line, record.problem);
-        }
-    } catch (const DataError& e) {
-        if (std::string_view(e.what()).starts_with("read failed"))
-            throw DataError(fmt::format("{}: {}; check the file", display_path(), e.what()));
-        throw;
+// The delimiter given, or the one detected from the first lines.
+void Ingest::choose_delimiter(CsvReader& reader) {
+    if (options_.delimiter) {
+        reader.set_delimiter(*options_.delimiter);
+    } else {
+        const auto sample = reader.peek();
+        const auto detected = detect_delimiter(sample);
+        if (!detected && sample.find_first_not_of(" \t\r\n") == std::string_view::npos)
+            throw DataError(fmt::format("{} has no rows; check the path", display_path()));
+        if (!detected)
+            throw DataError(fmt::format("{}: cannot tell the delimiter: the first line has no ',', tab, ';' or '|'; "
+                                        "pass --delimiter",
+                                        where(1)));
+        reader.set_delimiter(*detected);
     }
-    rejects_.close();
-    if (summary_.rejected > 0) summary_.rejects_path = rejects_.path();
+    summary_.delimiter = reader.delimiter();
+}
 
-    char hex[17];
-    std::snprintf(hex, sizeof hex, "%016llx", static_cast<unsigned long long>(XXH3_64bits_digest(hash.get())));
-    summary_.fingerprint = hex;
+// Whether the first row is a header: as declared; yes when a column is
+// named; otherwise yes when its rating field is not a number.
+bool Ingest::detect_header(const std::vector<std::string>& first) const {
+    if (options_.has_header) return *options_.has_header;
+    const auto named = [](const std::string& s) { return !s.empty() && !all_digits(s); };
+    if (named(options_.user_column) || named(options_.item_column) || named(options_.rating_column) ||
+        named(options_.timestamp_column))
+        return true;
+    const size_t rating_index = options_.rating_column.empty() ? 2 : column_index(options_.rating_column);
+    return rating_index < first.size() && !parse_number(first[rating_index]).has_value();
+}
 
+// The first non-blank row fixes the columns (and is data unless it is a
+// header); every later row is kept, rejected or merged.
+void Ingest::read_rows(CsvReader& reader) {
+    choose_delimiter(reader);
+    CsvRecord record;
+    auto blank = [](const CsvRecord& r) { return r.problem == CsvProblem::none && trim(r.raw).empty(); };
+    bool got = false;
+    while ((got = reader.next(record)) && blank(record)) ++summary_.blank_lines;
+    if (!got) throw DataError(fmt::format("{} has no rows; check the path", display_path()));
+    if (record.problem != CsvProblem::none)
+        throw DataError(fmt::format("{}: {}; the first row must be readable to find the columns; fix that line",
+                                    where(record.line), describe(record.problem)));
+
+    std::vector<std::string> first;
+    for (auto f : record.fields) first.emplace_back(trim(f));
+    const bool has_header = detect_header(first);
+    summary_.had_header = has_header;
+    columns_ = resolve_columns(first, has_header, record.line);
+    expected_fields_ = first.size();
+    keep_timestamps_ = columns_.timestamp.has_value() && options_.duplicates == DuplicatePolicy::latest;
+
+    if (!has_header) take_row(record.fields, record.raw, record.line, record.problem);
+    while (reader.next(record)) {
+        if (blank(record)) {
+            ++summary_.blank_lines;
+            continue;
+        }
+        take_row(record.fields, record.raw, record.line, record.problem);
+    }
+}
+
+// After the last row: too many rejects, nothing kept, or too many ratings.
+void Ingest::check_outcome() const {
     const double fraction = summary_.rows_read ? double(summary_.rejected) / double(summary_.rows_read) : 0.0;
     if (fraction > options_.max_reject_fraction)
         throw DataError(fmt::format(
@@ -731,7 +729,10 @@ IngestResult Ingest::run() {
                                     display_path(), summary_.rows_read));
     if (ratings_.size() >= UINT32_MAX)
         throw DataError(fmt::format("{}: more than 4 billion ratings; split the file", display_path()));
+}
 
+// Sorted, merged ratings and their scale: the declared one or the observed range.
+IngestResult Ingest::finish() {
     auto ratings = ratings_.drain();
     merge_and_sort(ratings, timestamps_.drain());
     summary_.kept = ratings.size();
@@ -745,6 +746,41 @@ IngestResult Ingest::run() {
     }
     set_.ratings = std::move(ratings);
     return IngestResult{std::move(set_), summary_};
+}
+
+IngestResult Ingest::run() {
+    check_options();
+    uint64_t bytes_total = 0;
+    std::FILE* file = open_input(bytes_total);
+    std::unique_ptr<std::FILE, int (*)(std::FILE*)> owned(options_.path == "-" ? nullptr : file, &std::fclose);
+
+    std::unique_ptr<XXH3_state_t, XXH_errorcode (*)(XXH3_state_t*)> hash(XXH3_createState(), &XXH3_freeState);
+    if (!hash) throw std::bad_alloc();
+    XXH3_64bits_reset(hash.get());
+    uint64_t bytes_done = 0;
+    CsvReader reader(file, [&](std::string_view chunk) {
+        XXH3_64bits_update(hash.get(), chunk.data(), chunk.size());
+        bytes_done += chunk.size();
+        if (options_.progress) options_.progress(bytes_done, bytes_total);
+    });
+
+    try {
+        read_rows(reader);
+    } catch (const FileError& e) {
+        // The reader does not know the file's name; everything else names it already.
+        if (std::string_view(e.what()).starts_with("read failed"))
+            throw FileError(fmt::format("{}: {}; check the file", display_path(), e.what()));
+        throw;
+    }
+    rejects_.close();
+    if (summary_.rejected > 0) summary_.rejects_path = rejects_.path();
+
+    char hex[17];
+    std::snprintf(hex, sizeof hex, "%016llx", static_cast<unsigned long long>(XXH3_64bits_digest(hash.get())));
+    summary_.fingerprint = hex;
+
+    check_outcome();
+    return finish();
 }
 
 }  // namespace

@@ -55,7 +55,7 @@ struct IngestOptions {
     std::string timestamp_column;
     std::optional<RatingScale> scale;   // declared scale: ratings outside are rejected
     DuplicatePolicy duplicates = DuplicatePolicy::latest;
-    // Above this the ingest throws DataError. Below 0.5, a file whose first
+    // In [0, 1]. Above this the ingest throws DataError. Below 0.5, a file whose first
     // 1000+ rows are mostly rejected stops early (a wrong delimiter or column).
     double max_reject_fraction = 0.01;
     std::string rejects_path;           // empty: "<path>.rejects.tsv" when any row is rejected ("-" input: none)
@@ -81,10 +81,18 @@ struct IngestResult {
     IngestSummary summary;
 };
 
-// Reads the file in a streaming pass. Throws DataError when the file cannot be
-// read, a named column does not exist, nothing is kept, or the reject fraction
-// exceeds max_reject_fraction (the message gives counts, the first reject and
-// the rejects path). Ratings in the result are sorted by (user, item) and
+// Reads the file in a streaming pass. Throws
+//   OptionError  for options that cannot work: no path, a quote or line break
+//                as delimiter, max_reject_fraction outside [0, 1], a declared
+//                scale that is empty or not finite;
+//   FileError    when the file is a directory or cannot be opened or read, or
+//                the rejects file cannot be written;
+//   DataError    when the columns cannot be found in the file (a named column
+//                is absent, an index is out of range, no default matches),
+//                nothing is kept, more than 2^32 - 1 ratings or ids, or the
+//                reject fraction exceeds max_reject_fraction (the message
+//                gives counts, the first reject and the rejects path).
+// Every message names the file and the option to change. Ratings in the result are sorted by (user, item) and
 // unique; ids are interned in order of first appearance among kept rows.
 // The scale is the declared one (declared = true) or the observed min/max.
 IngestResult ingest_ratings(const IngestOptions& options);

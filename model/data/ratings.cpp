@@ -2,12 +2,15 @@
 
 #include <stdexcept>
 
+#include "model/error.hpp"
+
 namespace credence {
 
 uint32_t IdMap::intern(std::string_view id) {
     auto it = index_.find(id);
     if (it != index_.end()) return it->second;
-    if (names_.size() >= UINT32_MAX) throw std::length_error("more than 4 billion distinct ids");
+    if (names_.size() >= UINT32_MAX)
+        throw DataError("more than 4 billion distinct user or item ids; split the ratings file");
     const auto index = static_cast<uint32_t>(names_.size());
     names_.emplace_back(id);
     index_.emplace(names_.back(), index);

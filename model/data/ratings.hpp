@@ -15,14 +15,17 @@ namespace credence {
 // 0..size()-1 in order of first appearance. Owns copies of the strings.
 class IdMap {
 public:
-    // Returns the index of `id`, adding it if new.
+    // Returns the index of `id`, adding it if new. Throws DataError when
+    // the map already holds 2^32 - 1 ids (the data must be split).
     uint32_t intern(std::string_view id);
     // Returns the index of `id` or nullopt; never adds.
     std::optional<uint32_t> find(std::string_view id) const;
     const std::string& name(uint32_t index) const { return names_[index]; }
     const std::vector<std::string>& names() const { return names_; }
     size_t size() const { return names_.size(); }
-    // Rebuilds a map from a list of unique names (e.g. read from a posterior file).
+    // Rebuilds a map from a list of unique names (e.g. read from a posterior
+    // file, whose reader refuses repeated ids). Throws std::invalid_argument
+    // for a repeated name: a bug in the caller.
     static IdMap from_names(std::vector<std::string> names);
 
 private:

@@ -6,11 +6,11 @@
 #include <Eigen/Dense>
 #include <limits>
 #include <set>
+#include <stdexcept>
 #include <string>
 
 #include <fmt/format.h>
 
-#include "model/error.hpp"
 #include "model/math/random.hpp"
 
 namespace credence {
@@ -71,44 +71,29 @@ std::string QuantityConvergence::label() const {
     return quantity;
 }
 
-ConvergenceSummary summarize_convergence(const Posterior& posterior, const ConvergenceOptions& options) {
+namespace {
+
+void check_thresholds(const ConvergenceOptions& options) {
     if (!(options.max_rhat >= 1.0) || !std::isfinite(options.max_rhat))
-        throw DataError(fmt::format("convergence: R-hat threshold {} must be a finite number >= 1",
-                                    options.max_rhat));
+        throw std::invalid_argument(fmt::format("convergence: R-hat threshold {} must be a finite number >= 1",
+                                                options.max_rhat));
     if (!(options.min_ess_per_chain >= 0.0) || !std::isfinite(options.min_ess_per_chain))
-        throw DataError(fmt::format("convergence: ESS threshold {} must be a finite number >= 0",
-                                    options.min_ess_per_chain));
+        throw std::invalid_argument(fmt::format("convergence: ESS threshold {} must be a finite number >= 0",
+                                                options.min_ess_per_chain));
+}
 
-    ConvergenceSummary out;
-    out.options = options;
-    out.max_rhat = out.min_ess_bulk_per_chain = out.min_ess_tail_per_chain = kNaN;
-
-    const auto ranges = chain_ranges(posterior);
-    out.num_chains = static_cast<uint32_t>(ranges.size());
-    if (out.num_chains < posterior.num_chains)
-        out.warnings.push_back(fmt::format("{} of {} chains kept no samples; they are left out",
-                                           posterior.num_chains - out.num_chains, posterior.num_chains));
-    uint32_t n = std::numeric_limits<uint32_t>::max();
-    for (const auto& r : ranges) n = std::min(n, r.end - r.begin);
-    if (ranges.empty()) n = 0;
-    out.draws_per_chain = n;
-    if (std::any_of(ranges.begin(), ranges.end(), [&](const ChainRange& r) { return r.end - r.begin != n; }))
-        out.warnings.push_back(fmt::format(
-            "chains kept different numbers of samples; each is assessed on its last {} draws", n));
-    if (n < 4) {
-        out.verdict = "not_assessable";
-        out.warnings.push_back(fmt::format(
-            "only {} kept draw(s) per chain; convergence needs at least 4 (keep more samples)", n));
-        return out;
-    }
-
+// The quantities listed in the header, each assessed on the last n draws of
+// every chain.
+std::vector<QuantityConvergence> assess_quantities(const Posterior& posterior, const ConvergenceOptions& options,
+                                                   const std::vector<ChainRange>& ranges, uint32_t n) {
+    std::vector<QuantityConvergence> quantities;
     // Gathers one quantity's draws (last n of each chain) and assesses it.
     auto assess = [&](QuantityConvergence q, auto value_of_sample) {
         ChainDraws draws(ranges.size(), std::vector<double>(n));
         for (size_t m = 0; m < ranges.size(); ++m)
             for (uint32_t j = 0; j < n; ++j) draws[m][j] = value_of_sample(ranges[m].end - n + j);
         q.stats = convergence(draws);
-        out.quantities.push_back(std::move(q));
+        quantities.push_back(std::move(q));
     };
 
     const uint32_t K = posterior.rank;
@@ -144,8 +129,13 @@ ConvergenceSummary summarize_convergence(const Posterior& posterior, const Conve
         assess(named("prediction", -1, posterior.user_ids[user], posterior.item_ids[item]),
                [&](uint32_t s) { return double(posterior.sample_prediction(s, user, item)); });
     }
+    return quantities;
+}
 
-    // Aggregate over defined figures; collect the ones that fail.
+// Aggregates over defined figures, warns about the ones that fail the
+// thresholds in out.options, and sets the verdict.
+void aggregate(ConvergenceSummary& out) {
+    const ConvergenceOptions& options = out.options;
     const double chains = out.num_chains;
     std::vector<std::string> undefined, high_rhat, low_ess;
     const QuantityConvergence* worst_rhat = nullptr;
@@ -194,6 +184,38 @@ ConvergenceSummary summarize_convergence(const Posterior& posterior, const Conve
         out.verdict = "not_assessable";
     else
         out.verdict = high_rhat.empty() && low_ess.empty() ? "converged" : "not_converged";
+}
+
+}  // namespace
+
+ConvergenceSummary summarize_convergence(const Posterior& posterior, const ConvergenceOptions& options) {
+    check_thresholds(options);
+    ConvergenceSummary out;
+    out.options = options;
+    out.max_rhat = out.min_ess_bulk_per_chain = out.min_ess_tail_per_chain = kNaN;
+
+    // Chains, and the draws each contributes: its last n, n the shortest chain's length.
+    const auto ranges = chain_ranges(posterior);
+    out.num_chains = static_cast<uint32_t>(ranges.size());
+    if (out.num_chains < posterior.num_chains)
+        out.warnings.push_back(fmt::format("{} of {} chains kept no samples; they are left out",
+                                           posterior.num_chains - out.num_chains, posterior.num_chains));
+    uint32_t n = std::numeric_limits<uint32_t>::max();
+    for (const auto& r : ranges) n = std::min(n, r.end - r.begin);
+    if (ranges.empty()) n = 0;
+    out.draws_per_chain = n;
+    if (std::any_of(ranges.begin(), ranges.end(), [&](const ChainRange& r) { return r.end - r.begin != n; }))
+        out.warnings.push_back(fmt::format(
+            "chains kept different numbers of samples; each is assessed on its last {} draws", n));
+    if (n < 4) {
+        out.verdict = "not_assessable";
+        out.warnings.push_back(fmt::format(
+            "only {} kept draw(s) per chain; convergence needs at least 4 (keep more samples)", n));
+        return out;
+    }
+
+    out.quantities = assess_quantities(posterior, options, ranges, n);
+    aggregate(out);
     return out;
 }
 

@@ -63,8 +63,10 @@ struct ConvergenceSummary {
     ConvergenceOptions options;
 };
 
-// Needs a posterior that passes Posterior::validate(). Throws DataError for
-// options out of range (max_probe_pairs is allowed to be 0).
+// Needs a posterior that passes Posterior::validate() and thresholds in
+// range (max_rhat finite and >= 1, min_ess_per_chain finite and >= 0;
+// max_probe_pairs may be 0). Throws std::invalid_argument for a threshold out
+// of range: no user input reaches them (fit and report use the defaults).
 ConvergenceSummary summarize_convergence(const Posterior& posterior, const ConvergenceOptions& options = {});
 
 // snake_case JSON; undefined (NaN) and infinite figures are written as null

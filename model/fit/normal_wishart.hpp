@@ -36,7 +36,8 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
 //   mu_n   = (beta0 mu0 + n xbar) / beta_n,
 //   W_n^-1 = W0^-1 + scatter + (beta0 n / beta_n) (xbar - mu0)(xbar - mu0)^T.
 // W_n is symmetrized. Throws NumericError if W0 or the result is not
-// positive definite.
+// positive definite, std::invalid_argument if the dimensions of the prior
+// and the statistics disagree (a bug in the caller).
 NormalWishart normal_wishart_posterior(const NormalWishart& prior, const FactorStatistics& stats);
 
 struct MeanPrecision {

@@ -15,29 +15,38 @@ namespace credence {
 
 namespace {
 
-void require(bool ok, const std::string& message) {
-    if (!ok) throw std::invalid_argument("fit: " + message);
+// An option value the sampler cannot work with: the user's to fix.
+void require_option(bool ok, const std::string& message) {
+    if (!ok) throw OptionError("fit: " + message);
+}
+
+// A broken promise of the caller (see fit_bpmf in model/fit/sampler.hpp).
+void require_input(bool ok, const std::string& message) {
+    if (!ok) throw std::invalid_argument("fit_bpmf: " + message);
 }
 
 bool positive_finite(double v) { return v > 0.0 && std::isfinite(v); }
 
+// Options come from the command line (fit, compare); the flag is named
+// where there is one.
 void validate_options(const FitOptions& o) {
-    require(o.rank > 0, "rank must be at least 1");
-    require(o.samples > 0, "samples must be at least 1");
-    require(o.thin > 0, "thin must be at least 1");
-    require(o.chains > 0, "chains must be at least 1");
-    require(uint64_t(o.burn_in) + uint64_t(o.samples) * o.thin < (uint64_t(1) << 32), "too many sweeps per chain");
-    require(o.threads >= 0, "threads must be 0 (default) or positive");
-    require(positive_finite(o.fixed_noise_precision), "the fixed noise precision must be positive and finite");
-    require(std::isfinite(o.init_scale), "init scale must be finite (negative: automatic)");
+    require_option(o.rank > 0, "--rank must be at least 1");
+    require_option(o.samples > 0, "--samples must be at least 1");
+    require_option(o.thin > 0, "--thin must be at least 1");
+    require_option(o.chains > 0, "--chains must be at least 1");
+    require_option(uint64_t(o.burn_in) + uint64_t(o.samples) * o.thin < (uint64_t(1) << 32),
+                   "--burn-in + --samples x --thin must stay below 2^32 sweeps per chain");
+    require_option(o.threads >= 0, "--threads must be 0 (all cores) or positive");
+    require_option(positive_finite(o.fixed_noise_precision), "--fixed-noise-precision must be positive and finite");
+    require_option(std::isfinite(o.init_scale), "the init scale must be finite (negative: automatic)");
     const auto& p = o.prior;
-    require(positive_finite(p.beta0), "beta0 must be positive and finite");
-    require(p.nu0_minus_rank > -1.0 && std::isfinite(p.nu0_minus_rank), "nu0 - rank must exceed -1");
-    require(positive_finite(p.w0_scale), "the W0 scale must be positive and finite");
-    require(positive_finite(p.noise_shape) && positive_finite(p.noise_rate),
-            "the noise prior's shape and rate must be positive and finite");
-    require(positive_finite(p.bias_shape) && positive_finite(p.bias_rate),
-            "the bias prior's shape and rate must be positive and finite");
+    require_option(positive_finite(p.beta0), "the prior's beta0 must be positive and finite");
+    require_option(p.nu0_minus_rank > -1.0 && std::isfinite(p.nu0_minus_rank), "the prior's nu0 - rank must exceed -1");
+    require_option(positive_finite(p.w0_scale), "the prior's W0 scale must be positive and finite");
+    require_option(positive_finite(p.noise_shape) && positive_finite(p.noise_rate),
+                   "the noise prior's shape and rate must be positive and finite");
+    require_option(positive_finite(p.bias_shape) && positive_finite(p.bias_rate),
+                   "the bias prior's shape and rate must be positive and finite");
 }
 
 nlohmann::json options_json(const FitOptions& o) {
@@ -108,30 +117,11 @@ FitOptions resolve_init_scale(const FitOptions& o, const RatingSet& train) {
     return r;
 }
 
-}  // namespace
-
-FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const std::vector<Rating>* validation,
-                   const std::function<void(const SweepReport&)>& on_sweep) {
-    using clock = std::chrono::steady_clock;
-    const auto start = clock::now();
-    validate_options(requested);
-    const FitOptions options = resolve_init_scale(requested, train);
-    require(!train.ratings.empty(), "the training set is empty");
-    const auto by_user = csr_by_user(train);
-    if (has_duplicates(by_user))
-        throw DataError("fit: the training set holds a (user, item) pair twice; ingest merges duplicates");
-    const auto by_item = csr_by_item(train);
-    if (validation)
-        for (const auto& r : *validation)
-            require(r.user < train.users.size() && r.item < train.items.size(),
-                    "a validation rating refers to a user or item outside the training id maps");
-    const double g = train.mean();
-    const GibbsData data{&by_user, &by_item, g};
+// An empty posterior of the fit's shape: ids, scale, the rated-items lists,
+// and every per-sample array sized for keep_sample to fill.
+void shape_posterior(const RatingSet& train, const FitOptions& options, const CsrMatrix& by_user,
+                     const CsrMatrix& by_item, double g, Posterior& post) {
     const uint32_t U = by_user.num_rows, I = by_item.num_rows, K = options.rank;
-    const uint32_t sweeps = options.burn_in + options.samples * options.thin;
-
-    FitResult result;
-    Posterior& post = result.posterior;
     post.rank = K;
     post.num_users = U;
     post.num_items = I;
@@ -159,12 +149,81 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
     post.item_lambda.resize(S * K * K);
     post.rated_offsets = by_user.offsets;
     post.rated_items = by_user.index;
+}
+
+// RMSE on the validation set of the running posterior mean: the mean of the
+// kept states so far (`kept_total` of them, summed in `validation_sum`), or
+// this sweep's state before the first one is kept. Adds this sweep's
+// predictions to the sums when it is kept.
+double running_validation_rmse(const GibbsState& st, double g, const std::vector<Rating>& validation, bool kept,
+                               uint32_t kept_total, std::vector<double>& validation_sum) {
+    double se = 0.0;
+    for (size_t v = 0; v < validation.size(); ++v) {
+        const Rating& r = validation[v];
+        const double pred = state_prediction(st, g, r.user, r.item);
+        if (kept) validation_sum[v] += pred;
+        const double m = kept_total > 0 ? validation_sum[v] / kept_total : pred;
+        se += (r.value - m) * (r.value - m);
+    }
+    return std::sqrt(se / double(validation.size()));
+}
+
+struct FitTimings {
+    double setup_s = 0.0;
+    nlohmann::json chain_s = nlohmann::json::array();
+    double sweeps_s = 0.0;  // all chains' sweeps
+};
+
+// Posterior::fit_metadata_json: options, data shape, timings and the
+// per-sweep trace.
+nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user, const Posterior& post, double g,
+                            uint32_t sweeps, const FitResult& result, const FitTimings& timings) {
+    const size_t S = post.num_samples;
+    nlohmann::json meta;
+    meta["options"] = options_json(options);
+    meta["seed"] = options.seed;
+    meta["data"] = {{"ratings", by_user.nnz()}, {"users", post.num_users}, {"items", post.num_items}, {"global_mean", g}};
+    meta["sweeps_per_chain"] = sweeps;
+    meta["kept_samples"] = S;
+    meta["timings"] = {{"setup_s", timings.setup_s},
+                       {"chain_s", timings.chain_s},
+                       {"seconds_per_sweep", timings.sweeps_s / (double(sweeps) * options.chains)},
+                       {"total_s", result.seconds}};
+    meta["trace"] = {{"chain", result.trace.chain},
+                     {"sweep", result.trace.sweep},
+                     {"noise_precision", result.trace.noise_precision},
+                     {"train_rmse", result.trace.train_rmse}};
+    return meta;
+}
+
+}  // namespace
+
+FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const std::vector<Rating>* validation,
+                   const std::function<void(const SweepReport&)>& on_sweep) {
+    using clock = std::chrono::steady_clock;
+    const auto start = clock::now();
+    validate_options(requested);
+    const FitOptions options = resolve_init_scale(requested, train);
+    require_input(!train.ratings.empty(), "the training set is empty");
+    const auto by_user = csr_by_user(train);
+    require_input(!has_duplicates(by_user), "the training set holds a (user, item) pair twice; ingest merges duplicates");
+    const auto by_item = csr_by_item(train);
+    if (validation)
+        for (const auto& r : *validation)
+            require_input(r.user < train.users.size() && r.item < train.items.size(),
+                          "a validation rating refers to a user or item outside the training id maps");
+    const double g = train.mean();
+    const GibbsData data{&by_user, &by_item, g};
+    const uint32_t sweeps = options.burn_in + options.samples * options.thin;
+
+    FitResult result;
+    Posterior& post = result.posterior;
+    shape_posterior(train, options, by_user, by_item, g, post);
 
     std::vector<double> validation_sum(validation ? validation->size() : 0, 0.0);
     uint32_t kept_total = 0;
-    nlohmann::json chain_seconds = nlohmann::json::array();
-    const double setup_s = std::chrono::duration<double>(clock::now() - start).count();
-    double sweep_seconds = 0.0;
+    FitTimings timings;
+    timings.setup_s = std::chrono::duration<double>(clock::now() - start).count();
 
     for (uint32_t chain = 0; chain < options.chains; ++chain) {
         const auto chain_start = clock::now();
@@ -186,42 +245,23 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
             report.kept = kept;
             report.noise_precision = st.noise_precision;
             report.train_rmse = train_rmse;
-            if (validation && !validation->empty()) {
-                double se = 0.0;
-                for (size_t v = 0; v < validation->size(); ++v) {
-                    const Rating& r = (*validation)[v];
-                    const double pred = state_prediction(st, g, r.user, r.item);
-                    if (kept) validation_sum[v] += pred;
-                    const double m = kept_total > 0 ? validation_sum[v] / kept_total : pred;
-                    se += (r.value - m) * (r.value - m);
-                }
-                report.validation_rmse = std::sqrt(se / double(validation->size()));
-            }
+            if (validation && !validation->empty())
+                report.validation_rmse = running_validation_rmse(st, g, *validation, kept, kept_total, validation_sum);
             report.elapsed_s = std::chrono::duration<double>(clock::now() - start).count();
             if (on_sweep) on_sweep(report);
         }
         const double cs = std::chrono::duration<double>(clock::now() - chain_start).count();
-        sweep_seconds += cs;
-        chain_seconds.push_back(cs);
+        timings.sweeps_s += cs;
+        timings.chain_s.push_back(cs);
     }
     result.seconds = std::chrono::duration<double>(clock::now() - start).count();
 
-    nlohmann::json meta;
-    meta["options"] = options_json(options);
-    meta["seed"] = options.seed;
-    meta["data"] = {{"ratings", by_user.nnz()}, {"users", U}, {"items", I}, {"global_mean", g}};
-    meta["sweeps_per_chain"] = sweeps;
-    meta["kept_samples"] = S;
-    meta["timings"] = {{"setup_s", setup_s},
-                       {"chain_s", chain_seconds},
-                       {"seconds_per_sweep", sweep_seconds / (double(sweeps) * options.chains)},
-                       {"total_s", result.seconds}};
-    meta["trace"] = {{"chain", result.trace.chain},
-                     {"sweep", result.trace.sweep},
-                     {"noise_precision", result.trace.noise_precision},
-                     {"train_rmse", result.trace.train_rmse}};
-    post.fit_metadata_json = meta.dump();
-    post.validate();
+    post.fit_metadata_json = fit_metadata(options, by_user, post, g, sweeps, result, timings).dump();
+    try {
+        post.validate();
+    } catch (const FormatError& e) {
+        throw std::logic_error(std::string("fit_bpmf built an inconsistent posterior: ") + e.what());
+    }
     return result;
 }
 

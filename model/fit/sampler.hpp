@@ -51,7 +51,7 @@ struct FitOptions {
     double fixed_noise_precision = 2.0;  // used when !sample_noise (the paper's alpha = 2)
     double init_scale = -1.0;        // sd of the random initial factors; negative: automatic,
                                      // (rating variance / 2K)^(1/4), so u.v starts with half the variance
-    HyperpriorOptions prior;
+    HyperpriorOptions prior{};
 };
 
 // What the sampler reports after each sweep (for progress lines and traces).
@@ -83,9 +83,16 @@ struct FitResult {
 // Fits the model. `train` must be non-empty with sorted unique (user, item)
 // pairs (as ingest returns). `validation` may be null; its ratings use the
 // indices of `train` (callers drop pairs with unknown ids first).
-// `on_sweep` may be empty. Throws NumericError (with chain, sweep, row) if a
-// conditional precision is not positive definite, std::invalid_argument for
-// impossible options (rank 0, samples 0, ...).
+// `on_sweep` may be empty. Throws:
+//   OptionError           impossible options (rank 0, samples 0, a prior
+//                         parameter that is not positive, ...), naming the flag;
+//   NumericError          a conditional precision that is not positive
+//                         definite (with chain, sweep, row);
+//   std::invalid_argument `train` empty or holding a pair twice, or a
+//                         validation rating outside train's id maps (a bug in
+//                         the caller);
+//   std::logic_error      the posterior it built fails Posterior::validate()
+//                         (a bug in the sampler).
 FitResult fit_bpmf(const RatingSet& train, const FitOptions& options,
                    const std::vector<Rating>* validation = nullptr,
                    const std::function<void(const SweepReport&)>& on_sweep = {});

@@ -6,9 +6,9 @@
 #include <limits>
 #include <numbers>
 #include <numeric>
+#include <stdexcept>
 #include <string>
 
-#include "model/error.hpp"
 #include "model/math/standard_normal.hpp"
 
 namespace credence {
@@ -45,16 +45,16 @@ void fft(std::vector<std::complex<double>>& a, bool inverse) {
 
 void check_shape(const ChainDraws& chains, size_t min_chains, size_t min_length, const char* who) {
     if (chains.size() < min_chains)
-        throw DataError(std::string(who) + ": needs at least " + std::to_string(min_chains) +
+        throw std::invalid_argument(std::string(who) + ": needs at least " + std::to_string(min_chains) +
                         " chain(s), got " + std::to_string(chains.size()));
     const size_t n = chains.front().size();
     for (size_t m = 0; m < chains.size(); ++m)
         if (chains[m].size() != n)
-            throw DataError(std::string(who) + ": chain " + std::to_string(m) + " has " +
+            throw std::invalid_argument(std::string(who) + ": chain " + std::to_string(m) + " has " +
                             std::to_string(chains[m].size()) + " draws but chain 0 has " +
                             std::to_string(n) + "; all chains must be the same length");
     if (n < min_length)
-        throw DataError(std::string(who) + ": needs at least " + std::to_string(min_length) +
+        throw std::invalid_argument(std::string(who) + ": needs at least " + std::to_string(min_length) +
                         " draws per chain, got " + std::to_string(n) +
                         "; keep more samples per chain");
 }
@@ -118,7 +118,7 @@ ChainDraws map_draws(const ChainDraws& chains, auto f) {
 
 std::vector<double> autocovariance(std::span<const double> x) {
     const size_t n = x.size();
-    if (n == 0) throw DataError("autocovariance: needs at least one value");
+    if (n == 0) throw std::invalid_argument("autocovariance: needs at least one value");
     double mean = 0.0;
     for (double v : x) mean += v;
     mean /= static_cast<double>(n);
@@ -137,9 +137,9 @@ std::vector<double> autocovariance(std::span<const double> x) {
 }
 
 double quantile_linear(std::vector<double> values, double p) {
-    if (values.empty()) throw DataError("quantile_linear: needs at least one value");
+    if (values.empty()) throw std::invalid_argument("quantile_linear: needs at least one value");
     if (!(p >= 0.0 && p <= 1.0))
-        throw DataError("quantile_linear: probability " + std::to_string(p) + " is outside [0, 1]");
+        throw std::invalid_argument("quantile_linear: probability " + std::to_string(p) + " is outside [0, 1]");
     const double h = static_cast<double>(values.size() - 1) * p;
     const size_t lo = static_cast<size_t>(std::floor(h));
     std::nth_element(values.begin(), values.begin() + static_cast<std::ptrdiff_t>(lo), values.end());

@@ -45,8 +45,10 @@
 //   - an indicator for tail-ESS is constant (one value holds more than 95% of
 //     the draws): tail-ESS is the ESS of the other indicator, NaN if both are.
 // Draws are given per chain: draws[chain][iteration], every chain the same
-// length. Throws DataError for no chains, chains of unequal length, or fewer
-// than 4 draws per chain (a split half needs 2 draws for a variance).
+// length. Throws std::invalid_argument for no chains, chains of unequal
+// length, or fewer than 4 draws per chain (a split half needs 2 draws for a
+// variance): callers (model/fit/convergence_summary.hpp) check the shape
+// first, so these are bugs, never a user's doing.
 #pragma once
 #include <span>
 #include <vector>
@@ -68,7 +70,7 @@ ConvergenceStats convergence(const ChainDraws& draws_by_chain);
 // ---- building blocks (public so tests and callers can check each step)
 
 // Halves every chain (dropping the middle draw of an odd-length chain).
-// Throws DataError on the shape problems listed above.
+// Throws std::invalid_argument on the shape problems listed above.
 ChainDraws split_chains(const ChainDraws& draws_by_chain);
 
 // Pooled fractional ranks mapped through the inverse normal CDF; same shape
@@ -82,11 +84,13 @@ double rhat_basic(const ChainDraws& chains);
 double ess_basic(const ChainDraws& chains);
 
 // Biased autocovariance gamma_t = (1/n) sum_{i<n-t} (x_i - xbar)(x_{i+t} - xbar)
-// for t = 0..n-1, by zero-padded FFT. Needs n >= 1.
+// for t = 0..n-1, by zero-padded FFT. Needs n >= 1; throws
+// std::invalid_argument otherwise.
 std::vector<double> autocovariance(std::span<const double> x);
 
 // The p-quantile (0 <= p <= 1) of the values by linear interpolation between
-// order statistics (definition above). Needs a non-empty input.
+// order statistics (definition above). Needs a non-empty input; throws
+// std::invalid_argument for an empty input or p outside [0, 1].
 double quantile_linear(std::vector<double> values, double p);
 
 }  // namespace credence

@@ -10,7 +10,8 @@
 namespace credence {
 
 // Gamma(shape, rate): density proportional to x^(shape-1) exp(-rate x), mean shape/rate.
-// Needs shape > 0 and rate > 0, both finite; throws std::invalid_argument otherwise.
+// Needs shape > 0 and rate > 0, both finite; throws std::invalid_argument
+// otherwise (a bug: fit_bpmf validates the prior before sampling).
 double draw_gamma(Rng& rng, double shape, double rate);
 
 // Wishart(W, nu) with scale matrix W (K x K, symmetric positive definite) and

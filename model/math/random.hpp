@@ -38,9 +38,11 @@ public:
     // Standard normal (Marsaglia polar method; caches the second variate).
     double normal();
     // Gamma(shape, rate=1) for shape > 0 (Marsaglia & Tsang 2000; shape < 1
-    // via the boost U^(1/shape)). Caller scales by 1/rate.
+    // via the boost U^(1/shape)). Caller scales by 1/rate. Throws
+    // std::invalid_argument for a shape that is not positive and finite.
     double gamma(double shape);
     // Uniform integer in [0, n), n > 0 (Lemire's nearly-divisionless method).
+    // Throws std::invalid_argument for n == 0.
     uint64_t below(uint64_t n);
 
 private:

@@ -10,8 +10,10 @@
 namespace credence {
 
 // Needs 0 < p < 1. Returns x with Phi(x) = p.
-// Throws std::domain_error for p outside (0, 1) or NaN: the callers only pass
-// probabilities built as (r - 3/8) / (S + 1/4), which are always inside.
+// Throws std::domain_error for p outside (0, 1) or NaN, which is a bug: the
+// callers pass rank probabilities (r - 3/8) / (S + 1/4), always inside, or
+// probabilities built from an interval level the prediction engine has
+// already checked to lie in (0, 1).
 double normal_quantile(double p);
 
 // Standard normal CDF, Phi(x) = 0.5 * erfc(-x / sqrt 2).

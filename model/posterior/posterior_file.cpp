@@ -18,6 +18,7 @@
 #include <filesystem>
 #include <limits>
 #include <optional>
+#include <stdexcept>
 #include <string_view>
 #include <unordered_set>
 #include <vector>
@@ -174,7 +175,7 @@ public:
             if (fd_ >= 0) return;
             if (errno != EEXIST) break;
         }
-        throw Error("cannot create a temporary file in " + dir.string() + ": " + errno_text(errno));
+        throw FileError("cannot create a temporary file in " + dir.string() + ": " + errno_text(errno));
     }
     TempFile(const TempFile&) = delete;
     TempFile& operator=(const TempFile&) = delete;
@@ -191,7 +192,7 @@ public:
             const ssize_t n = ::write(fd_, p, chunk);
             if (n < 0) {
                 if (errno == EINTR) continue;
-                throw Error("write to " + path_.string() + " failed: " + errno_text(errno));
+                throw FileError("write to " + path_.string() + " failed: " + errno_text(errno));
             }
             p += n;
             bytes -= static_cast<uint64_t>(n);
@@ -199,15 +200,15 @@ public:
     }
 
     void sync_and_close() {
-        if (::fsync(fd_) != 0) throw Error("fsync of " + path_.string() + " failed: " + errno_text(errno));
+        if (::fsync(fd_) != 0) throw FileError("fsync of " + path_.string() + " failed: " + errno_text(errno));
         const int fd = fd_;
         fd_ = -1;
-        if (::close(fd) != 0) throw Error("closing " + path_.string() + " failed: " + errno_text(errno));
+        if (::close(fd) != 0) throw FileError("closing " + path_.string() + " failed: " + errno_text(errno));
     }
 
     void rename_to(const std::filesystem::path& target) {
         if (::rename(path_.c_str(), target.c_str()) != 0)
-            throw Error("cannot rename the temporary file over it: " + errno_text(errno));
+            throw FileError("cannot rename the temporary file over it: " + errno_text(errno));
         committed_ = true;
     }
 
@@ -219,34 +220,46 @@ private:
 
 void sync_directory(const std::filesystem::path& dir) {
     const int fd = ::open(dir.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-    if (fd < 0) throw Error("cannot open directory " + dir.string() + " to sync it: " + errno_text(errno));
+    if (fd < 0) throw FileError("cannot open directory " + dir.string() + " to sync it: " + errno_text(errno));
     const int rc = ::fsync(fd);
     const int err = errno;
     ::close(fd);
     // EINVAL: the filesystem cannot sync directories; nothing more can be done.
     if (rc != 0 && err != EINVAL)
-        throw Error("the new file is in place but syncing directory " + dir.string() +
-                    " failed (" + errno_text(err) + "); it may not survive a crash");
+        throw FileError("the new file is in place but syncing directory " + dir.string() +
+                        " failed (" + errno_text(err) + "); it may not survive a crash");
 }
 
-uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
+// The posterior comes from the sampler (or a test), never from a user's
+// file, so an inconsistent one is a bug in the caller.
+void check_writable(const Posterior& p) {
+    const auto refuse = [](const std::string& what) {
+        throw std::invalid_argument("write_posterior: refusing to write an inconsistent posterior: " + what);
+    };
     try {
         p.validate();
     } catch (const FormatError& e) {
-        throw Error(std::string("refusing to write an inconsistent ") + e.what());
+        refuse(e.what());
     }
-    if (auto dup = first_duplicate(p.user_ids)) throw Error("user id '" + *dup + "' appears twice");
-    if (auto dup = first_duplicate(p.item_ids)) throw Error("item id '" + *dup + "' appears twice");
-    if (!nlohmann::json::accept(p.fit_metadata_json)) throw Error("fit metadata is not valid JSON");
-    if (!nlohmann::json::accept(p.diagnostics_json)) throw Error("diagnostics are not valid JSON");
+    if (auto dup = first_duplicate(p.user_ids)) refuse("user id '" + *dup + "' appears twice");
+    if (auto dup = first_duplicate(p.item_ids)) refuse("item id '" + *dup + "' appears twice");
+    if (!nlohmann::json::accept(p.fit_metadata_json)) refuse("fit metadata is not valid JSON");
+    if (!nlohmann::json::accept(p.diagnostics_json)) refuse("diagnostics are not valid JSON");
     for (const auto* ids : {&p.user_ids, &p.item_ids})
         for (const auto& id : *ids)
-            if (id.size() > std::numeric_limits<uint32_t>::max()) throw Error("an id is longer than 4 GiB");
+            if (id.size() > std::numeric_limits<uint32_t>::max()) refuse("an id is longer than 4 GiB");
+}
 
-    const std::string metadata = encode_metadata(p);
-    const std::string user_ids = encode_strings(p.user_ids);
-    const std::string item_ids = encode_strings(p.item_ids);
+// The encoded sections the OutSections point into; must outlive them.
+struct Encoded {
+    std::string metadata, user_ids, item_ids;
+};
 
+// The sections of `p` in file order (the bias sections only with biases).
+std::vector<OutSection> sections_of(const Posterior& p, const Encoded& encoded) {
+    const std::string& metadata = encoded.metadata;
+    const std::string& user_ids = encoded.user_ids;
+    const std::string& item_ids = encoded.item_ids;
     std::vector<OutSection> sections;
     auto add_raw = [&](uint32_t id, ElementType type, uint64_t count, const void* data, uint64_t bytes) {
         sections.push_back(OutSection{id, type, count, data, bytes});
@@ -279,8 +292,13 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
             p.fit_metadata_json.size());
     add_raw(kDiagnostics, ElementType::bytes, p.diagnostics_json.size(), p.diagnostics_json.data(),
             p.diagnostics_json.size());
+    return sections;
+}
 
-    // Layout and checksums, all computed before the first byte is written.
+// Layout and checksums, all computed before the first byte is written: sets
+// each section's offset and checksum, and returns the header and section
+// table bytes. `file_bytes` receives the size of the whole file.
+std::vector<unsigned char> lay_out(std::vector<OutSection>& sections, uint64_t& file_bytes) {
     const uint64_t table_end = kHeaderBytes + kEntryBytes * sections.size();
     uint64_t end = table_end;
     for (auto& s : sections) {
@@ -288,7 +306,7 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
         s.checksum = XXH3_64bits(s.data, s.length_bytes);
         end = s.offset + s.length_bytes;
     }
-    const uint64_t file_bytes = end;
+    file_bytes = end;
 
     std::vector<unsigned char> head(table_end, 0);
     std::memcpy(head.data(), kMagic, 8);
@@ -306,17 +324,23 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
         put_u64(e + 32, sections[k].checksum);
     }
     put_u64(&head[32], header_checksum(head.data(), head.data() + kHeaderBytes, table_end - kHeaderBytes));
+    return head;
+}
 
+// Writes the header and the sections, zero-padded to their offsets, to a
+// temporary file beside `path`, syncs it and renames it over `path`.
+void write_atomically(const std::string& path, const std::vector<unsigned char>& head,
+                      const std::vector<OutSection>& sections) {
     const std::filesystem::path target(path);
     std::filesystem::path dir = target.parent_path();
     if (dir.empty()) dir = ".";
     const std::string base = target.filename().string();
-    if (base.empty() || base == "." || base == "..") throw Error("the path does not name a file");
+    if (base.empty() || base == "." || base == "..") throw FileError("the path does not name a file");
 
     TempFile tmp(dir, base);
     tmp.write_all(head.data(), head.size());
     static constexpr unsigned char zeros[kSectionAlignBytes] = {};
-    uint64_t at = table_end;
+    uint64_t at = head.size();  // the end of the section table
     for (const auto& s : sections) {
         tmp.write_all(zeros, s.offset - at);
         tmp.write_all(s.data, s.length_bytes);
@@ -325,6 +349,14 @@ uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) 
     tmp.sync_and_close();
     tmp.rename_to(target);
     sync_directory(dir);
+}
+
+uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
+    const Encoded encoded{encode_metadata(p), encode_strings(p.user_ids), encode_strings(p.item_ids)};
+    std::vector<OutSection> sections = sections_of(p, encoded);
+    uint64_t file_bytes = 0;
+    const std::vector<unsigned char> head = lay_out(sections, file_bytes);
+    write_atomically(path, head, sections);
     return file_bytes;
 }
 
@@ -343,10 +375,10 @@ class Reader {
 public:
     explicit Reader(std::string path) : path_(std::move(path)) {
         fd_ = ::open(path_.c_str(), O_RDONLY | O_CLOEXEC);
-        if (fd_ < 0) fail("cannot open: " + errno_text(errno));
+        if (fd_ < 0) unreadable("cannot open: " + errno_text(errno) + "; check the path");
         struct stat st {};
-        if (::fstat(fd_, &st) != 0) fail("cannot stat: " + errno_text(errno));
-        if (!S_ISREG(st.st_mode)) fail("not a regular file");
+        if (::fstat(fd_, &st) != 0) unreadable("cannot stat: " + errno_text(errno));
+        if (!S_ISREG(st.st_mode)) unreadable("not a regular file; pass a posterior file written by credence fit");
         size_bytes_ = static_cast<uint64_t>(st.st_size);
     }
     Reader(const Reader&) = delete;
@@ -357,7 +389,10 @@ public:
 
     uint64_t size_bytes() const { return size_bytes_; }
 
+    // The bytes are not a valid posterior file (FormatError).
     [[noreturn]] void fail(const std::string& problem) const { throw FormatError(path_ + ": " + problem); }
+    // The file cannot be opened or read at all (FileError).
+    [[noreturn]] void unreadable(const std::string& problem) const { throw FileError(path_ + ": " + problem); }
     [[noreturn]] void corrupt(const std::string& what) const {
         fail(what + ": file is corrupt; refit or restore it");
     }
@@ -375,9 +410,9 @@ public:
             const ssize_t n = ::pread(fd_, p, chunk, static_cast<off_t>(offset));
             if (n < 0) {
                 if (errno == EINTR) continue;
-                fail("read failed: " + errno_text(errno));
+                unreadable("read failed: " + errno_text(errno));
             }
-            if (n == 0) fail("file shrank while being read");
+            if (n == 0) unreadable("file shrank while being read; was it replaced? try again");
             p += n;
             offset += static_cast<uint64_t>(n);
             bytes -= static_cast<uint64_t>(n);
@@ -495,11 +530,18 @@ void decode_strings(const Reader& r, const InEntry& e, std::vector<std::string>&
         r.corrupt(std::string("section ") + section_name(e.id) + " has bytes after its last string");
 }
 
-Posterior read_posterior_file(const std::string& path) {
-    Reader r(path);
-    const uint64_t size = r.size_bytes();
+// What the header tells: where the section table ends, the table's bytes
+// and the declared file size.
+struct HeaderInfo {
+    uint64_t table_end = 0;
+    uint64_t file_bytes = 0;
+    std::vector<unsigned char> table;
+};
 
-    // Magic and version first: they are the only bytes every version shares.
+// Magic and version first: they are the only bytes every version shares.
+// Then the section table, the header checksum and the declared size.
+HeaderInfo read_header(const Reader& r) {
+    const uint64_t size = r.size_bytes();
     unsigned char header[kHeaderBytes] = {};
     r.read_at(0, header, std::min<uint64_t>(size, kHeaderBytes));
     if (std::memcmp(header, kMagic, std::min<uint64_t>(size, 8)) != 0)
@@ -511,65 +553,80 @@ Posterior read_posterior_file(const std::string& path) {
                std::to_string(kPosteriorFormatVersion) + "); use a matching credence build or refit");
     if (size < kHeaderBytes) r.truncated(kHeaderBytes);
 
+    HeaderInfo h;
     const uint64_t section_count = get_u32(header + 12);
-    const uint64_t table_end = kHeaderBytes + kEntryBytes * section_count;
-    if (size < table_end) r.truncated(table_end);
-    std::vector<unsigned char> table(static_cast<size_t>(table_end - kHeaderBytes));
-    r.read_at(kHeaderBytes, table.data(), table.size());
-    if (header_checksum(header, table.data(), table.size()) != get_u64(header + 32))
+    h.table_end = kHeaderBytes + kEntryBytes * section_count;
+    if (size < h.table_end) r.truncated(h.table_end);
+    h.table.resize(static_cast<size_t>(h.table_end - kHeaderBytes));
+    r.read_at(kHeaderBytes, h.table.data(), h.table.size());
+    if (header_checksum(header, h.table.data(), h.table.size()) != get_u64(header + 32))
         r.corrupt("header checksum mismatch");
     if (get_u64(header + 24) != 0) r.corrupt("header reserved bytes are not zero");
-    const uint64_t file_bytes = get_u64(header + 16);
-    if (size < file_bytes) r.truncated(file_bytes);
-    if (size > file_bytes)
-        r.corrupt(std::to_string(size - file_bytes) + " unexpected bytes after the declared end of file");
+    h.file_bytes = get_u64(header + 16);
+    if (size < h.file_bytes) r.truncated(h.file_bytes);
+    if (size > h.file_bytes)
+        r.corrupt(std::to_string(size - h.file_bytes) + " unexpected bytes after the declared end of file");
+    return h;
+}
 
-    // Section table: canonical layout, each section at the next 64-byte
-    // boundary after the previous one, the last one ending the file.
-    std::vector<InEntry> entries(static_cast<size_t>(section_count));
+// The parsed section table. `known` points into `entries` (by section id),
+// so a SectionTable is filled in place and never copied or moved.
+struct SectionTable {
+    std::vector<InEntry> entries;
     const InEntry* known[kLastKnownSection + 1] = {};
-    uint64_t end = table_end;
-    for (size_t k = 0; k < entries.size(); ++k) {
-        const unsigned char* p = &table[k * kEntryBytes];
-        InEntry& e = entries[k];
+    SectionTable() = default;
+    SectionTable(const SectionTable&) = delete;
+    SectionTable& operator=(const SectionTable&) = delete;
+};
+
+// Section table: canonical layout, each section at the next 64-byte
+// boundary after the previous one, the last one ending the file.
+void read_section_table(const Reader& r, const HeaderInfo& h, SectionTable& t) {
+    t.entries.resize(h.table.size() / kEntryBytes);
+    uint64_t end = h.table_end;
+    for (size_t k = 0; k < t.entries.size(); ++k) {
+        const unsigned char* p = &h.table[k * kEntryBytes];
+        InEntry& e = t.entries[k];
         e = InEntry{get_u32(p), static_cast<ElementType>(get_u32(p + 4)), get_u64(p + 8), get_u64(p + 16),
                     get_u64(p + 24), get_u64(p + 32)};
         const std::string name = e.id >= 1 && e.id <= kLastKnownSection ? section_name(e.id) : std::to_string(e.id);
         if (e.offset != align_up(end)) r.corrupt("section " + name + " is not where the layout puts it");
-        if (e.offset > file_bytes || e.length_bytes > file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
+        if (e.offset > h.file_bytes || e.length_bytes > h.file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
         end = e.offset + e.length_bytes;
         if (e.id >= 1 && e.id <= kLastKnownSection) {
-            if (known[e.id]) r.corrupt("section " + name + " appears twice");
+            if (t.known[e.id]) r.corrupt("section " + name + " appears twice");
             if (e.type != expected_type(e.id)) r.corrupt("section " + name + " has the wrong element type");
             const uint64_t unit = element_bytes(e.type);
             uint64_t length = 0;
             if (unit != 0 && (mul_overflows(e.count, unit, length) || length != e.length_bytes))
                 r.corrupt("section " + name + " length does not match its element count");
-            known[e.id] = &e;
+            t.known[e.id] = &e;
         }
         // else: a section added by a later revision of version 1; skipped below.
     }
-    if (end != file_bytes) r.corrupt("sections do not end at the declared end of file");
+    if (end != h.file_bytes) r.corrupt("sections do not end at the declared end of file");
+}
 
-    // Padding between header, table and sections must be zero.
-    {
-        uint64_t at = table_end;
-        unsigned char pad[kSectionAlignBytes];
-        for (const auto& e : entries) {
-            const uint64_t gap = e.offset - at;
-            r.read_at(at, pad, gap);
-            for (uint64_t b = 0; b < gap; ++b)
-                if (pad[b] != 0) r.corrupt("padding before offset " + std::to_string(e.offset) + " is not zero");
-            at = e.offset + e.length_bytes;
-        }
+// Padding between header, table and sections must be zero.
+void check_padding(const Reader& r, const HeaderInfo& h, const SectionTable& t) {
+    uint64_t at = h.table_end;
+    unsigned char pad[kSectionAlignBytes];
+    for (const auto& e : t.entries) {
+        const uint64_t gap = e.offset - at;
+        r.read_at(at, pad, gap);
+        for (uint64_t b = 0; b < gap; ++b)
+            if (pad[b] != 0) r.corrupt("padding before offset " + std::to_string(e.offset) + " is not zero");
+        at = e.offset + e.length_bytes;
     }
+}
 
-    if (!known[kMetadata]) r.fail("required section metadata is missing; refit or restore it");
-    const InEntry& me = *known[kMetadata];
+// The metadata section: the shape, flags, scale and global mean.
+void read_metadata(const Reader& r, const SectionTable& t, Posterior& p) {
+    if (!t.known[kMetadata]) r.fail("required section metadata is missing; refit or restore it");
+    const InEntry& me = *t.known[kMetadata];
     if (me.length_bytes != kMetadataBytes) r.corrupt("section metadata has the wrong length");
     unsigned char meta[kMetadataBytes];
     r.read_section(me, meta);
-    Posterior p;
     p.rank = get_u32(meta + 0);
     p.num_users = get_u32(meta + 4);
     p.num_items = get_u32(meta + 8);
@@ -583,26 +640,32 @@ Posterior read_posterior_file(const std::string& path) {
     p.global_mean = get_f32(meta + 24);
     p.scale.min = get_f32(meta + 28);
     p.scale.max = get_f32(meta + 32);
+}
 
+// Every required section is present (bias sections exactly when the
+// metadata says so), and every typed array holds what the shape needs.
+void check_sections_against_shape(const Reader& r, const SectionTable& t, const Posterior& p) {
     const Shape shape{p.num_samples, p.num_users, p.num_items, p.rank};
     for (uint32_t id = 1; id <= kLastKnownSection; ++id) {
         const bool bias_section = id == kUserBias || id == kItemBias || id == kUserBiasPrecision ||
                                   id == kItemBiasPrecision;
         const bool required = !bias_section || p.has_biases;
-        if (required && !known[id])
+        if (required && !t.known[id])
             r.fail(std::string("required section ") + section_name(id) + " is missing; refit or restore it");
-        if (!required && known[id])
+        if (!required && t.known[id])
             r.corrupt(std::string("section ") + section_name(id) + " is present but metadata says no biases");
         uint64_t count = 0;
-        if (known[id] && expected_count(id, shape, count) && known[id]->count != count)
-            r.corrupt(std::string("section ") + section_name(id) + " holds " + std::to_string(known[id]->count) +
+        if (t.known[id] && expected_count(id, shape, count) && t.known[id]->count != count)
+            r.corrupt(std::string("section ") + section_name(id) + " holds " + std::to_string(t.known[id]->count) +
                       " values but the shape needs " + std::to_string(count));
     }
-    if (known[kUserIds]->count != p.num_users) r.corrupt("section user_ids count does not match the shape");
-    if (known[kItemIds]->count != p.num_items) r.corrupt("section item_ids count does not match the shape");
+    if (t.known[kUserIds]->count != p.num_users) r.corrupt("section user_ids count does not match the shape");
+    if (t.known[kItemIds]->count != p.num_items) r.corrupt("section item_ids count does not match the shape");
+}
 
-    // Bulk reads, in file order (the writer's order), straight into place.
-    for (const auto& e : entries) {
+// Bulk reads, in file order (the writer's order), straight into place.
+void read_contents(const Reader& r, const SectionTable& t, Posterior& p) {
+    for (const auto& e : t.entries) {
         switch (e.id) {
             case kMetadata: break;
             case kUserIds: decode_strings(r, e, p.user_ids); break;
@@ -632,7 +695,11 @@ Posterior read_posterior_file(const std::string& path) {
             default: r.verify_skipped(e); break;
         }
     }
+}
 
+// What the checksums cannot vouch for: valid JSON, unique ids, CSR rows
+// inside rated_items, and Posterior::validate().
+void check_contents(const Reader& r, const Posterior& p) {
     if (!nlohmann::json::accept(p.fit_metadata_json)) r.corrupt("section fit_metadata is not valid JSON");
     if (!nlohmann::json::accept(p.diagnostics_json)) r.corrupt("section diagnostics is not valid JSON");
     if (auto dup = first_duplicate(p.user_ids)) r.corrupt("user id '" + *dup + "' appears twice");
@@ -649,18 +716,32 @@ Posterior read_posterior_file(const std::string& path) {
         if (what.rfind("posterior: ", 0) == 0) what.erase(0, 11);
         r.corrupt("inconsistent contents (" + what + ")");
     }
+}
+
+Posterior read_posterior_file(const std::string& path) {
+    Reader r(path);
+    const HeaderInfo header = read_header(r);
+    SectionTable table;
+    read_section_table(r, header, table);
+    check_padding(r, header, table);
+    Posterior p;
+    read_metadata(r, table, p);
+    check_sections_against_shape(r, table, p);
+    read_contents(r, table, p);
+    check_contents(r, p);
     return p;
 }
 
 }  // namespace
 
 uint64_t write_posterior(const Posterior& posterior, const std::string& path) {
+    check_writable(posterior);
     try {
         return write_posterior_unchecked(posterior, path);
-    } catch (const Error& e) {
-        throw Error("cannot write " + path + ": " + e.what());
+    } catch (const FileError& e) {
+        throw FileError("cannot write " + path + ": " + e.what());
     } catch (const std::filesystem::filesystem_error& e) {
-        throw Error("cannot write " + path + ": " + e.what());
+        throw FileError("cannot write " + path + ": " + e.what());
     }
 }
 

@@ -14,15 +14,21 @@ inline constexpr uint32_t kPosteriorFormatVersion = 1;
 // Writes `posterior` to `path` atomically: bytes go to a temporary file in
 // the same directory, which is flushed, fsync'd and renamed over `path` (and
 // the directory fsync'd). On any failure the temporary file is removed, the
-// previous file under `path` (if any) is untouched, and Error is thrown.
-// Returns the number of bytes written.
+// previous file under `path` (if any) is untouched, and FileError is thrown
+// ("cannot write <path>: <reason>"). A posterior that fails
+// Posterior::validate(), repeats an id or carries invalid JSON is refused
+// with std::invalid_argument before anything is created (a bug in the
+// caller: the sampler builds consistent posteriors). Returns the number of
+// bytes written.
 uint64_t write_posterior(const Posterior& posterior, const std::string& path);
 
 // Reads and fully validates a posterior file: magic, version, section table,
 // every section's checksum and size, and Posterior::validate(). Throws
-// FormatError with a message naming the file and what is wrong (truncated,
-// wrong version, checksum mismatch in section X, ...). Never crashes or
-// allocates beyond the file's size on a corrupt file.
+// FileError when the file cannot be opened or read (missing, not a regular
+// file, an I/O error) and FormatError when its bytes are not a valid
+// posterior file (truncated, wrong version, checksum mismatch in section X,
+// ...); both messages start with the path. Never crashes or allocates beyond
+// the file's size on a corrupt file.
 Posterior read_posterior(const std::string& path);
 
 }  // namespace credence

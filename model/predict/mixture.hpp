@@ -8,7 +8,10 @@
 namespace credence {
 
 // Mixture helpers over per-sample means m[s] and noise precisions tau[s].
-// All need m.size() == tau.size() > 0.
+// All need m.size() == tau.size() > 0 (mixture_mean: m non-empty), and
+// mixture_quantile needs 0 < p < 1. They throw std::invalid_argument
+// otherwise: callers pass a posterior's samples and probabilities built from
+// a level already checked (PredictionEngine, evaluate), so a failure is a bug.
 double mixture_mean(std::span<const double> m);
 double mixture_sd(std::span<const double> m, std::span<const float> tau);
 double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x);

@@ -29,6 +29,7 @@
 #include <stdexcept>
 #include <string>
 
+#include "model/error.hpp"
 #include "model/math/standard_normal.hpp"
 #include "model/math/random.hpp"
 #include "model/predict/screening.hpp"
@@ -38,10 +39,11 @@ namespace credence {
 
 namespace {
 
+// The level and n are request values (a flag, a query parameter): a bad one
+// is the user's to fix.
 void check_level(double level) {
     if (!(level > 0.0 && level < 1.0))
-        throw std::invalid_argument("interval level must be strictly between 0 and 1 (e.g. 0.9), got " +
-                                    std::to_string(level));
+        throw OptionError("interval level must be strictly between 0 and 1 (e.g. 0.9), got " + std::to_string(level));
 }
 
 double clip(const Posterior& p, double x) {
@@ -109,7 +111,7 @@ struct Plan {
 // Validates the options and fills `plan` (reusing its buffers). Throws like recommend().
 void make_plan(const Posterior& p, const Viewer& viewer, std::span<const uint32_t> exclude,
                const RecommendOptions& options, Plan& plan) {
-    if (options.n == 0) throw std::invalid_argument("number of recommendations n must be at least 1");
+    if (options.n == 0) throw OptionError("the number of recommendations n must be at least 1");
     check_level(options.level);
     plan.viewer = viewer;
     plan.options = &options;

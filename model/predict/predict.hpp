@@ -66,18 +66,25 @@ struct RecommendAnswer {
 
 class PredictionEngine {
 public:
+    // Needs a non-null posterior that passes Posterior::validate(); throws
+    // std::invalid_argument for a null one.
     explicit PredictionEngine(std::shared_ptr<const Posterior> posterior);
 
     const Posterior& posterior() const { return *posterior_; }
 
-    // Per-sample means m_s for a known (user, item) pair; size S.
+    // Per-sample means m_s for a known (user, item) pair; size S. Needs valid
+    // indices (unchecked).
     void sample_means(uint32_t user, uint32_t item, std::vector<double>& out) const;
 
-    // level in (0, 1). Indices must be valid (callers map ids first).
+    // Throws OptionError for a level outside (0, 1); std::out_of_range for a
+    // user or item index beyond the model (callers map ids first, so that is
+    // a bug).
     Prediction predict(uint32_t user, uint32_t item, double level) const;
 
     // Top-n items for a known user. Ties break by item index. Throws
-    // std::invalid_argument for level outside (0,1) or n == 0.
+    // OptionError for a level outside (0, 1) or n == 0; std::out_of_range for
+    // a user index beyond the model and std::invalid_argument for a candidate
+    // index beyond it (callers map ids first: both are bugs).
     std::vector<Recommendation> recommend(uint32_t user, const RecommendOptions& options) const;
 
     // Several requests at once: answer k equals recommend(requests[k].user,
@@ -89,7 +96,9 @@ public:
 
     // Top-n for a visitor described by per-sample factors and biases (fold-in):
     // visitor_factors is [S][K], visitor_bias is [S] (zeros without biases),
-    // `exclude` lists item indices the visitor has rated (sorted).
+    // `exclude` lists item indices the visitor has rated (sorted). Throws like
+    // recommend(), and std::invalid_argument when the spans' sizes do not
+    // match the model or an excluded index is beyond it (bugs in the caller).
     std::vector<Recommendation> recommend_for_factors(std::span<const float> visitor_factors,
                                                       std::span<const float> visitor_bias,
                                                       std::span<const uint32_t> exclude,

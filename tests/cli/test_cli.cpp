@@ -279,6 +279,90 @@ TEST_CASE("bad input gives an actionable message and a failing exit code") {
     }
 }
 
+TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage") {
+    // The codes are listed in cli/main.cpp. 70 (internal error) is only ever
+    // the result of a bug, so no well-formed command line can reach it.
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto dir = scratch_dir("cli-exit-codes");
+    const std::string model = quoted(d.model), ratings = quoted(d.ratings);
+
+    SECTION("an unknown flag is a usage error for every subcommand, and CLI11's message names it") {
+        // Each command line is otherwise complete, so the unknown flag is the only problem.
+        const std::vector<std::string> commands = {
+            "fit --ratings " + ratings + " --out " + quoted(dir / "never.posterior"),
+            "evaluate --model " + model + " --ratings " + ratings,
+            "predict --model " + model + " --user c-00007 --item tea-0001",
+            "recommend --model " + model + " --user c-00007",
+            "inspect " + model,
+            "serve --model " + model,
+            "demo-data --out-dir " + quoted(dir / "never"),
+            "compare --ratings " + ratings,
+            "report " + model + " --out " + quoted(dir / "never.html"),
+        };
+        for (const auto& command : commands) {
+            const auto r = run_credence(command + " --no-such-flag");
+            INFO(command << "\n" << r.err);
+            CHECK(r.exit_code == 2);
+            CHECK(r.err.find("--no-such-flag") != std::string::npos);
+        }
+        CHECK_FALSE(fs::exists(dir / "never.posterior"));
+        CHECK_FALSE(fs::exists(dir / "never"));
+        CHECK_FALSE(fs::exists(dir / "never.html"));
+    }
+    SECTION("a word that is not a subcommand is named, with the list of subcommands") {
+        const auto r = run_credence("bogus --ratings x.csv");
+        INFO(r.err);
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("'bogus' is not a subcommand") != std::string::npos);
+        for (const char* sub : {"fit", "evaluate", "predict", "recommend", "inspect", "serve", "demo-data", "compare",
+                                "report"})
+            CHECK(r.err.find(sub) != std::string::npos);
+        const auto none = run_credence("");
+        CHECK(none.exit_code == 2);
+        CHECK(none.err.find("give a subcommand") != std::string::npos);
+    }
+    SECTION("an impossible option value is a usage error naming the option") {
+        const auto r = run_credence("fit --ratings " + ratings + " --out " + quoted(dir / "never.posterior") + " --rank 0");
+        INFO(r.err);
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("--rank") != std::string::npos);
+        CHECK_FALSE(fs::exists(dir / "never.posterior"));
+        // Past the parser: the library's OptionError is a usage error too.
+        const auto t = run_credence("evaluate --model " + model + " --ratings " + ratings +
+                                    " --scale 1:5 --relevance-threshold nan --rejects-path " +
+                                    quoted(dir / "rejects.tsv"));
+        INFO(t.err);
+        CHECK(t.exit_code == 2);
+        CHECK(t.err.find("--relevance-threshold must be a finite rating value") != std::string::npos);
+    }
+    SECTION("a data or file problem exits 1 and names the file") {
+        const auto missing = run_credence("fit --ratings " + quoted(dir / "absent.csv") + " --out " +
+                                          quoted(dir / "never.posterior"));
+        INFO(missing.err);
+        CHECK(missing.exit_code == 1);
+        CHECK(missing.err.find("cannot open") != std::string::npos);
+        CHECK(missing.err.find("absent.csv") != std::string::npos);
+        const auto unwritable = run_credence("report " + model + " --out " + quoted(dir / "no-such-dir" / "r.html"));
+        INFO(unwritable.err);
+        CHECK(unwritable.exit_code == 1);
+        CHECK(unwritable.err.find("could not write") != std::string::npos);
+        CHECK(unwritable.err.find("r.html") != std::string::npos);
+    }
+    SECTION("--help and --version exit 0 and print to stdout") {
+        const auto help = run_credence("--help");
+        CHECK(help.exit_code == 0);
+        CHECK(help.out.find("recommend") != std::string::npos);
+        CHECK(help.out.find("Exit codes") != std::string::npos);
+        const auto sub_help = run_credence("fit --help");
+        CHECK(sub_help.exit_code == 0);
+        CHECK(sub_help.out.find("--rank") != std::string::npos);
+        const auto version = run_credence("--version");
+        CHECK(version.exit_code == 0);
+        CHECK(version.out.find("credence 0.1.0") != std::string::npos);
+    }
+}
+
 TEST_CASE("the same seed gives the same samples with one thread or two") {
     const auto& d = demo_fit();
     REQUIRE(d.fit.exit_code == 0);

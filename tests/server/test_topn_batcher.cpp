@@ -8,6 +8,7 @@
 #include <thread>
 #include <vector>
 
+#include "model/error.hpp"
 #include "model/predict/predict.hpp"
 #include "server/topn_batcher.hpp"
 #include "tests/support/simulate.hpp"
@@ -82,7 +83,7 @@ TEST_CASE("a bad request fails alone and the others still get their answers") {
                     try {
                         batcher.recommend(engine, 1, o);
                         ++wrong;  // should have thrown
-                    } catch (const std::invalid_argument&) {
+                    } catch (const OptionError&) {
                     }
                     continue;
                 }

@@ -3,10 +3,10 @@
 #include <catch2/catch.hpp>
 
 #include <cmath>
+#include <stdexcept>
 #include <vector>
 
 #include "model/assess/calibration.hpp"
-#include "model/error.hpp"
 #include "model/math/standard_normal.hpp"
 #include "model/math/random.hpp"
 
@@ -129,12 +129,12 @@ TEST_CASE("calibration inputs out of range are rejected") {
     const std::vector<double> bad = {0.2, 1.2};
     const std::vector<double> nan = {std::nan("")};
     const std::vector<double> ok = {0.2, 0.7};
-    CHECK_THROWS_AS(pit_histogram(bad), DataError);
-    CHECK_THROWS_AS(pit_histogram(nan), DataError);
-    CHECK_THROWS_AS(pit_histogram(ok, 0), DataError);
+    CHECK_THROWS_AS(pit_histogram(bad), std::invalid_argument);
+    CHECK_THROWS_AS(pit_histogram(nan), std::invalid_argument);
+    CHECK_THROWS_AS(pit_histogram(ok, 0), std::invalid_argument);
     const double level_one[] = {1.0};
-    CHECK_THROWS_AS(coverage_from_pit(ok, level_one), DataError);
-    CHECK_THROWS_AS(coverage_from_membership(0.0, {true}), DataError);
+    CHECK_THROWS_AS(coverage_from_pit(ok, level_one), std::invalid_argument);
+    CHECK_THROWS_AS(coverage_from_membership(0.0, {true}), std::invalid_argument);
     // No pairs: the figures are undefined, written as null.
     const auto empty = coverage_from_membership(0.5, {});
     CHECK(std::isnan(empty.coverage));

@@ -125,15 +125,20 @@ TEST_CASE("K-fold: every rating is held out once; both bias settings; SEs across
 
     CompareOptions bad = o;
     bad.ranks = {2, 2};
-    CHECK_THROWS_AS(compare_models(data.ratings, bad), std::invalid_argument);
+    CHECK_THROWS_AS(compare_models(data.ratings, bad), OptionError);
+    CHECK_THROWS_WITH(compare_models(data.ratings, bad), Catch::Contains("--ranks"));
     bad = o;
     bad.ranks = {};
-    CHECK_THROWS_AS(compare_models(data.ratings, bad), std::invalid_argument);
+    CHECK_THROWS_AS(compare_models(data.ratings, bad), OptionError);
     bad = o;
     bad.folds = 1;
     bad.holdout_fraction = 1.0;
-    CHECK_THROWS_AS(compare_models(data.ratings, bad), std::invalid_argument);
-    CHECK_THROWS_AS(comparison_from_json(nlohmann::json{{"folds", 1}}), DataError);
+    CHECK_THROWS_AS(compare_models(data.ratings, bad), OptionError);
+    CHECK_THROWS_WITH(compare_models(data.ratings, bad), Catch::Contains("--holdout"));
+    bad = o;
+    bad.folds = static_cast<uint32_t>(data.ratings.size() + 1);
+    CHECK_THROWS_AS(compare_models(data.ratings, bad), DataError);
+    CHECK_THROWS_AS(comparison_from_json(nlohmann::json{{"folds", 1}}), FormatError);
 }
 
 TEST_CASE("open dataset: the comparison table is produced and the chosen rank beats rank 2") {

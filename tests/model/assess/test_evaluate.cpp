@@ -7,10 +7,10 @@
 #include <cmath>
 #include <memory>
 #include <numbers>
-#include <stdexcept>
 #include <vector>
 
 #include "model/assess/evaluate.hpp"
+#include "model/error.hpp"
 #include "model/math/random.hpp"
 #include "tests/support/simulate.hpp"
 
@@ -190,9 +190,7 @@ TEST_CASE("report serializes to JSON and rejects bad levels") {
     CHECK(json["rmse"].is_null());
     CHECK(json["coverage"]["0.9"].is_null());
     CHECK(json["rated"] == 0);
-    EvaluationOptions bad;
-    bad.coverage_levels = {0.9, 1.0};
-    CHECK_THROWS_AS(evaluate(engine, test, bad), std::invalid_argument);
+    CHECK_THROWS_AS(evaluate(engine, test, EvaluationOptions{.coverage_levels = {0.9, 1.0}}), OptionError);
 }
 
 TEST_CASE("coverage curve and PIT histogram are calibrated on ratings simulated from the model") {
@@ -334,5 +332,9 @@ TEST_CASE("ranking metrics per rank_by mode match a hand-worked example") {
     CHECK_FALSE(to_json(evaluate(PredictionEngine(post), test, options)).contains("ranking"));
     options.ranking = true;
     options.ranking_k = 0;
-    CHECK_THROWS_AS(evaluate(PredictionEngine(post), test, options), std::invalid_argument);
+    CHECK_THROWS_AS(evaluate(PredictionEngine(post), test, options), OptionError);
+    CHECK_THROWS_WITH(evaluate(PredictionEngine(post), test, options), Catch::Contains("--k"));
+    options.ranking_k = 10;
+    options.relevance_threshold = std::nan("");
+    CHECK_THROWS_WITH(evaluate(PredictionEngine(post), test, options), Catch::Contains("--relevance-threshold"));
 }

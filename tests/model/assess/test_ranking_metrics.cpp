@@ -4,9 +4,9 @@
 #include <catch2/catch.hpp>
 
 #include <cmath>
+#include <stdexcept>
 #include <vector>
 
-#include "model/error.hpp"
 #include "model/assess/ranking_metrics.hpp"
 
 using namespace credence;
@@ -103,13 +103,13 @@ TEST_CASE("a perfect ranking scores 1 and short lists count missing slots as mis
     CHECK(none.catalogue_coverage == Approx(0.5));
 }
 
-TEST_CASE("malformed inputs are rejected with DataError") {
-    CHECK_THROWS_AS(score_user(std::vector<uint32_t>{1, 1}, {}, 2, 4.0), DataError);
-    CHECK_THROWS_AS(score_user(std::vector<uint32_t>{1}, {}, 0, 4.0), DataError);
-    CHECK_THROWS_AS(score_user(std::vector<uint32_t>{1}, {{1, std::nan("")}}, 1, 4.0), DataError);
-    CHECK_THROWS_AS(ranking_metrics({{1}}, {}, 4, 1, 4.0), DataError);
-    CHECK_THROWS_AS(ranking_metrics({{7}}, {{}}, 4, 1, 4.0), DataError);
-    CHECK_THROWS_AS(ranking_metrics({{1}}, {{{9, 5.0}}}, 4, 1, 4.0), DataError);
+TEST_CASE("malformed inputs are rejected as a caller's bug") {
+    CHECK_THROWS_AS(score_user(std::vector<uint32_t>{1, 1}, {}, 2, 4.0), std::invalid_argument);
+    CHECK_THROWS_AS(score_user(std::vector<uint32_t>{1}, {}, 0, 4.0), std::invalid_argument);
+    CHECK_THROWS_AS(score_user(std::vector<uint32_t>{1}, {{1, std::nan("")}}, 1, 4.0), std::invalid_argument);
+    CHECK_THROWS_AS(ranking_metrics({{1}}, {}, 4, 1, 4.0), std::invalid_argument);
+    CHECK_THROWS_AS(ranking_metrics({{7}}, {{}}, 4, 1, 4.0), std::invalid_argument);
+    CHECK_THROWS_AS(ranking_metrics({{1}}, {{{9, 5.0}}}, 4, 1, 4.0), std::invalid_argument);
     // A repeat beyond the first k is outside the evaluated list and allowed.
     CHECK_NOTHROW(score_user(std::vector<uint32_t>{1, 2, 1}, {}, 2, 4.0));
 }

@@ -503,14 +503,41 @@ TEST_CASE("unreadable or empty input fails with the file named") {
     const auto dir = testing::scratch_dir("ingest_missing");
     CHECK_THROWS_WITH(ingest_ratings(options_for(dir / "absent.csv")),
                       Catch::Contains("cannot open") && Catch::Contains("absent.csv"));
+    CHECK_THROWS_AS(ingest_ratings(options_for(dir / "absent.csv")), FileError);
     CHECK_THROWS_WITH(ingest_ratings(options_for(dir)), Catch::Contains("is a directory"));
-    CHECK_THROWS_WITH(ingest_ratings(options_for(write_file(dir, "empty.csv", "\n\n"))),
-                      Catch::Contains("empty.csv has no rows"));
-    CHECK_THROWS_WITH(ingest_ratings(options_for(write_file(dir, "header_only.csv", "user,item,rating\n"))),
-                      Catch::Contains("no ratings kept"));
-    auto o = options_for(write_file(dir, "ok.csv", "1,2,3\n"));
+    CHECK_THROWS_AS(ingest_ratings(options_for(dir)), FileError);
+    const auto empty = write_file(dir, "empty.csv", "\n\n");
+    CHECK_THROWS_WITH(ingest_ratings(options_for(empty)), Catch::Contains("empty.csv has no rows"));
+    CHECK_THROWS_AS(ingest_ratings(options_for(empty)), DataError);
+    const auto header_only = write_file(dir, "header_only.csv", "user,item,rating\n");
+    CHECK_THROWS_WITH(ingest_ratings(options_for(header_only)), Catch::Contains("no ratings kept"));
+    CHECK_THROWS_AS(ingest_ratings(options_for(header_only)), DataError);
+}
+
+TEST_CASE("options that cannot work are OptionError naming the flag, before the file is opened") {
+    const auto dir = testing::scratch_dir("ingest_options");
+    // The file does not exist: an option error must win over the file error.
+    auto o = options_for(dir / "absent.csv");
     o.scale = RatingScale{5.0f, 1.0f, true};
+    CHECK_THROWS_AS(ingest_ratings(o), OptionError);
     CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("--scale"));
+    o = options_for(dir / "absent.csv");
+    o.max_reject_fraction = 1.5;
+    CHECK_THROWS_AS(ingest_ratings(o), OptionError);
+    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("--max-reject-fraction"));
+    o = options_for(dir / "absent.csv");
+    o.delimiter = '"';
+    CHECK_THROWS_AS(ingest_ratings(o), OptionError);
+    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("--delimiter"));
+}
+
+TEST_CASE("an unwritable rejects file is a FileError naming --rejects-path") {
+    const auto dir = testing::scratch_dir("ingest_rejects_unwritable");
+    auto o = options_for(write_file(dir, "one_bad.csv", "user,item,rating\nc1,a,5\nc2,b,x\n"));
+    o.max_reject_fraction = 1.0;
+    o.rejects_path = (dir / "no-such-dir" / "rejects.tsv").string();
+    CHECK_THROWS_AS(ingest_ratings(o), FileError);
+    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("--rejects-path"));
 }
 
 TEST_CASE("the open ratings dataset ingests completely") {

@@ -5,10 +5,10 @@
 
 #include <cmath>
 #include <set>
+#include <stdexcept>
 #include <string>
 
 #include "model/fit/convergence_summary.hpp"
-#include "model/error.hpp"
 #include "model/math/random.hpp"
 
 using namespace credence;
@@ -164,9 +164,8 @@ TEST_CASE("short, uneven or constant chains are reported, not fatal") {
     const auto j = nlohmann::json::parse(to_json(f).dump());
     CHECK(j["quantities"][0]["rhat"].is_null());
 
-    ConvergenceOptions bad;
-    bad.max_rhat = 0.9;
-    CHECK_THROWS_AS(summarize_convergence(fixed, bad), DataError);
+    CHECK_THROWS_AS(summarize_convergence(fixed, ConvergenceOptions{.max_rhat = 0.9}), std::invalid_argument);
+    CHECK_THROWS_AS(summarize_convergence(fixed, ConvergenceOptions{.min_ess_per_chain = -1.0}), std::invalid_argument);
 }
 
 TEST_CASE("JSON form carries every figure in snake_case") {

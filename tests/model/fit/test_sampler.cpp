@@ -365,25 +365,31 @@ TEST_CASE("fit fills every posterior field, the trace and the metadata") {
     CHECK_NOTHROW(nb.validate());
 }
 
-TEST_CASE("impossible options are rejected before any work") {
+TEST_CASE("impossible options are rejected before any work, naming the flag") {
     SimulationOptions so;
     so.users = 10;
     so.items = 10;
     const SimulatedData d = simulate_ratings(so);
-    FitOptions o;
-    o.rank = 0;
-    CHECK_THROWS_AS(fit_bpmf(d.ratings, o), std::invalid_argument);
-    o = FitOptions{};
-    o.samples = 0;
-    CHECK_THROWS_AS(fit_bpmf(d.ratings, o), std::invalid_argument);
-    o = FitOptions{};
-    o.prior.nu0_minus_rank = -1.0;
-    CHECK_THROWS_AS(fit_bpmf(d.ratings, o), std::invalid_argument);
+    CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.rank = 0}), OptionError);
+    CHECK_THROWS_WITH(fit_bpmf(d.ratings, FitOptions{.rank = 0}), Catch::Contains("--rank"));
+    CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.samples = 0}), OptionError);
+    CHECK_THROWS_WITH(fit_bpmf(d.ratings, FitOptions{.samples = 0}), Catch::Contains("--samples"));
+    CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.burn_in = 4'000'000'000u, .samples = 100'000, .thin = 10'000}),
+                    OptionError);
+    CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.prior = {.nu0_minus_rank = -1.0}}), OptionError);
+}
+
+TEST_CASE("a training set that breaks fit_bpmf's promises is a bug, not a user's error") {
+    SimulationOptions so;
+    so.users = 10;
+    so.items = 10;
+    const SimulatedData d = simulate_ratings(so);
     RatingSet dup = d.ratings;
     dup.ratings.push_back(dup.ratings.front());
     std::sort(dup.ratings.begin(), dup.ratings.end(),
               [](auto& a, auto& b) { return std::tie(a.user, a.item) < std::tie(b.user, b.item); });
-    CHECK_THROWS_AS(fit_bpmf(dup, FitOptions{}), DataError);
+    CHECK_THROWS_AS(fit_bpmf(dup, FitOptions{}), std::invalid_argument);
+    CHECK_THROWS_AS(fit_bpmf(RatingSet{}, FitOptions{}), std::invalid_argument);
 }
 
 TEST_CASE("a conditional precision that is not positive definite raises NumericError, never NaN") {

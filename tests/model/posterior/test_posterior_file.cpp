@@ -17,6 +17,7 @@
 #include <cstring>
 #include <filesystem>
 #include <fstream>
+#include <stdexcept>
 #include <string>
 #include <vector>
 
@@ -27,7 +28,7 @@
 #include "tests/support/paths.hpp"
 
 namespace fs = std::filesystem;
-using credence::Error;
+using credence::FileError;
 using credence::FormatError;
 using credence::Posterior;
 using credence::read_posterior;
@@ -99,6 +100,21 @@ std::string require_format_error(const fs::path& path, const std::string& fragme
     }
     FAIL("read_posterior accepted " << path);
     return {};
+}
+
+// Expects read_posterior(path) to throw FileError (the file cannot be opened
+// or read) naming the file and containing `fragment`.
+void require_file_error(const fs::path& path, const std::string& fragment) {
+    try {
+        (void)read_posterior(path.string());
+    } catch (const FileError& e) {
+        const std::string what = e.what();
+        INFO(what);
+        CHECK(what.rfind(path.string() + ": ", 0) == 0);
+        CHECK(what.find(fragment) != std::string::npos);
+        return;
+    }
+    FAIL("read_posterior did not report " << path << " as unreadable");
 }
 
 // ---- an independent reading of the layout in model/posterior/FORMAT.md
@@ -318,8 +334,8 @@ TEST_CASE("wrong magic, other files and missing files are refused") {
     require_format_error(path, "wrong magic bytes");
     spit(path, Bytes{'u', 's', 'e', 'r', ',', 'i', 't', 'e', 'm', ',', 'r', 'a', 't', 'i', 'n', 'g', '\n'});
     require_format_error(path, "not a Credence posterior file");
-    require_format_error(dir / "absent.posterior", "cannot open");
-    require_format_error(dir, "not a regular file");
+    require_file_error(dir / "absent.posterior", "cannot open");
+    require_file_error(dir, "not a regular file");
 }
 
 TEST_CASE("other format versions are refused with a version message") {
@@ -471,7 +487,7 @@ TEST_CASE("writing replaces the file atomically and cleans up after failures") {
         std::string message;
         try {
             write_posterior(big, path.string());
-        } catch (const Error& e) {
+        } catch (const FileError& e) {
             message = e.what();
         }
         REQUIRE(setrlimit(RLIMIT_FSIZE, &old_limit) == 0);
@@ -486,18 +502,18 @@ TEST_CASE("writing replaces the file atomically and cleans up after failures") {
         const auto blocker = dir / "model.posterior" ;
         fs::remove(blocker);
         fs::create_directories(blocker / "occupied");  // a non-empty directory cannot be renamed over
-        CHECK_THROWS_AS(write_posterior(small, blocker.string()), Error);
+        CHECK_THROWS_AS(write_posterior(small, blocker.string()), FileError);
         CHECK(fs::is_directory(blocker / "occupied"));
         only_target_left();
     }
 
     SECTION("an unwritable directory is reported and nothing changes") {
-        CHECK_THROWS_AS(write_posterior(small, (dir / "no-such-dir" / "m.posterior").string()), Error);
+        CHECK_THROWS_AS(write_posterior(small, (dir / "no-such-dir" / "m.posterior").string()), FileError);
         if (geteuid() == 0) {
             WARN("NOTICE: running as root; the read-only directory check cannot fail here and is skipped");
         } else {
             fs::permissions(dir, fs::perms::owner_read | fs::perms::owner_exec);
-            CHECK_THROWS_AS(write_posterior(big, path.string()), Error);
+            CHECK_THROWS_AS(write_posterior(big, path.string()), FileError);
             fs::permissions(dir, fs::perms::owner_all);
             CHECK(slurp(path) == before);
         }
@@ -510,9 +526,11 @@ TEST_CASE("the writer refuses an inconsistent posterior and creates nothing") {
     const auto path = dir / "model.posterior";
     Posterior p = make_posterior({.users = 3, .items = 4, .rank = 2, .samples = 2, .chains = 1});
     p.item_factors.pop_back();
+    CHECK_THROWS_AS(write_posterior(p, path.string()), std::invalid_argument);
     CHECK_THROWS_WITH(write_posterior(p, path.string()), Catch::Contains("item_factors"));
     p = make_posterior({.users = 3, .items = 4, .rank = 2, .samples = 2, .chains = 1});
     p.item_ids[2] = p.item_ids[0];
+    CHECK_THROWS_AS(write_posterior(p, path.string()), std::invalid_argument);
     CHECK_THROWS_WITH(write_posterior(p, path.string()), Catch::Contains("appears twice"));
     p = make_posterior({.users = 3, .items = 4, .rank = 2, .samples = 2, .chains = 1});
     p.diagnostics_json = "verdict: fine";
