@@ -10,6 +10,7 @@
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
 #include "cli/progress.hpp"
+#include "generated/credence_version.hpp"
 #include "model/fit/convergence_summary.hpp"
 #include "model/error.hpp"
 #include "model/data/holdout.hpp"
@@ -126,7 +127,7 @@ int run_fit(FitFlags& f) {
     nlohmann::json meta = nlohmann::json::parse(result.posterior.fit_metadata_json, nullptr, false);
     if (meta.is_discarded() || !meta.is_object()) meta = nlohmann::json::object();
     meta["data_fingerprint"] = data.summary.fingerprint;
-    meta["credence_version"] = "0.1.0";
+    meta["credence_version"] = kCredenceVersion;
     meta["created_at"] = utc_now_iso8601();
     meta["data"].update(nlohmann::json{{"source", f.ingest.path},
                                        {"rows_read", data.summary.rows_read},

@@ -5,12 +5,13 @@
 #include <map>
 
 #include "cli/commands.hpp"
+#include "generated/credence_version.hpp"
 #include "model/error.hpp"
 
 int main(int argc, char** argv) {
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
-    app.set_version_flag("--version", std::string("credence 0.1.0"));
+    app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion);
 
     std::map<CLI::App*, credence::cli::Runner> runners;
     auto add = [&](credence::cli::Runner (*adder)(CLI::App&)) {

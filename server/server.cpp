@@ -14,6 +14,7 @@
 #include <pthread.h>
 #include <spdlog/spdlog.h>
 
+#include "generated/credence_version.hpp"
 #include "model/error.hpp"
 #include "server/app.hpp"
 
@@ -132,6 +133,7 @@ int run_server(const ServeOptions& options) {
         return 1;
     }
     std::cout << "listening on http://" << options.host << ":" << port << std::endl;
+    server_log().info("credence {} serving on http://{}:{}", kCredenceVersion, options.host, port);
 
     // Only the signal thread calls server.stop(), and only once the server
     // runs: httplib ignores a stop() that comes before listen starts.

@@ -74,6 +74,14 @@ TEST_CASE("fit turns a demo export into a posterior file and accounts for every 
     const auto meta = json::parse(p.fit_metadata_json);
     CHECK(meta.at("data_fingerprint").get<std::string>().size() == 16);
     CHECK(meta.at("data").at("rejected") == 3);
+    // CREDENCE_PROJECT_VERSION comes from CMake's project(VERSION), not from the program.
+    CHECK(meta.at("credence_version") == CREDENCE_PROJECT_VERSION);
+}
+
+TEST_CASE("--version prints exactly the version that CMakeLists.txt declares") {
+    const auto r = run_credence("--version");
+    CHECK(r.exit_code == 0);
+    CHECK(r.out == std::string("credence ") + CREDENCE_PROJECT_VERSION + "\n");
 }
 
 TEST_CASE("inspect, predict and recommend answer from the file") {
