@@ -10,6 +10,7 @@
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
 #include "cli/progress.hpp"
+#include "cli/sampler_flags.hpp"
 #include "generated/credence_version.hpp"
 #include "model/fit/convergence_summary.hpp"
 #include "model/error.hpp"
@@ -25,9 +26,7 @@ namespace {
 struct FitFlags {
     IngestFlags ingest;
     std::string out;
-    FitOptions fit;
-    bool no_biases = false;
-    std::optional<double> fixed_noise;
+    SamplerFlags sampler;
     std::optional<double> holdout;
     std::string validation_path;
     bool quiet = false;
@@ -68,12 +67,7 @@ int run_fit(FitFlags& f) {
         throw std::invalid_argument("--holdout must be strictly between 0 and 1");
     if (f.holdout && !f.validation_path.empty())
         throw std::invalid_argument("--holdout and --validation are alternatives; give one");
-    FitOptions options = f.fit;
-    options.biases = !f.no_biases;
-    if (f.fixed_noise) {
-        options.sample_noise = false;
-        options.fixed_noise_precision = *f.fixed_noise;
-    }
+    const FitOptions options = to_fit_options(f.sampler);
 
     auto log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
     ProgressLine progress(f.quiet);
@@ -159,15 +153,7 @@ Runner add_fit_command(CLI::App& app) {
     CLI::App* cmd = app.add_subcommand("fit", "Fit the model to a ratings export by Gibbs sampling and write a posterior file");
     add_ingest_flags(*cmd, f->ingest);
     cmd->add_option("--out,-o", f->out, "Posterior file to write (replaced atomically)")->required();
-    cmd->add_option("--rank", f->fit.rank, "Number of latent factors K")->check(CLI::Range(1u, 512u))->capture_default_str();
-    cmd->add_option("--burn-in", f->fit.burn_in, "Sweeps discarded at the start of each chain")->capture_default_str();
-    cmd->add_option("--samples", f->fit.samples, "Samples kept per chain")->check(CLI::Range(1u, 100000u))->capture_default_str();
-    cmd->add_option("--thin", f->fit.thin, "Sweeps between kept samples")->check(CLI::Range(1u, 10000u))->capture_default_str();
-    cmd->add_option("--chains", f->fit.chains, "Independent chains (at least 2 for convergence checks)")->check(CLI::Range(1u, 64u))->capture_default_str();
-    cmd->add_option("--seed", f->fit.seed, "Random seed: the same seed gives the same samples on any thread count")->capture_default_str();
-    cmd->add_option("--threads", f->fit.threads, "Worker threads (0: all cores)")->check(CLI::Range(0, 1024))->capture_default_str();
-    cmd->add_flag("--no-biases", f->no_biases, "Leave out the user and item bias terms");
-    cmd->add_option("--fixed-noise-precision", f->fixed_noise, "Fix the noise precision instead of sampling it")->check(CLI::PositiveNumber);
+    add_sampler_flags(*cmd, f->sampler, RankFlag::one);
     cmd->add_option("--holdout", f->holdout, "Hold out this share of ratings to report validation RMSE while fitting")->check(CLI::Range(0.0, 1.0));
     cmd->add_option("--validation", f->validation_path, "Ratings file scored by the running posterior mean while fitting");
     cmd->add_flag("--quiet,-q", f->quiet, "No progress or summary on stderr");
