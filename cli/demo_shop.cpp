@@ -23,20 +23,21 @@ struct Category {
     std::array<const char*, 10> second;
 };
 
-// Invented product names: two word lists per category, combined.
+// Invented product names: two word lists per category, combined. Plain
+// descriptive or invented words; none is, or resembles, a brand or trademark.
 const std::array<Category, 4> kCategories = {{
     {"tea", "loose-leaf tea",
-     {"Harbor Fog", "Quince Blossom", "Ember Roast", "Lantern", "Mossbank", "Saltmarsh", "Copper Kettle",
+     {"Harbor Fog", "Quince Blossom", "Slow Roast", "Lantern", "Mossbank", "Saltmarsh", "Wrenholt",
       "Winter Orchard", "Hollow Hill", "River Stone", "Cinder", "Fieldfare"},
      {"Oolong", "Green", "Black", "White", "Rooibos", "Chai", "Breakfast Blend", "Herbal", "Smoked Black", "Jasmine"}},
     {"paper", "paper goods",
-     {"Thistle", "Quarry", "Inkwell", "Marsh Wren", "Slate", "Beacon", "Foxglove", "Tidewater", "Kestrel",
-      "Juniper", "Larch", "Pebble"},
+     {"Thistle", "Quarry", "Ink Pot", "Marsh Wren", "Slate", "Beacon", "Foxglove", "Tidewater", "Stonechat",
+      "Sloe", "Larch", "Shingle"},
      {"Notebook A5", "Sketchbook", "Pocket Journal", "Letter Set", "Weekly Planner", "Index Cards",
-      "Field Notes", "Dot Grid Pad", "Recipe Book", "Postcard Pack"}},
+      "Ruled Jotter", "Dot Grid Pad", "Recipe Book", "Postcard Pack"}},
     {"candle", "candles",
-     {"Bonfire", "Sea Lavender", "Cedar Loft", "Rain on Slate", "Orchard Smoke", "Wool Blanket", "Night Garden",
-      "Fig Leaf", "Hearth", "Meadowsweet", "Tallow Lane", "Dune Grass"},
+     {"Bonfire", "Sea Lavender", "Cedar Loft", "Rain on Slate", "Orchard Smoke", "Wool Blanket", "Evening Stock",
+      "Green Fig", "Peat Fire", "Meadowsweet", "Tallow Lane", "Marram Grass"},
      {"Jar Candle", "Tin Candle", "Taper Pair", "Pillar", "Tealights", "Wax Melt", "Travel Tin", "Votive",
       "Wick Trio", "Reed Diffuser"}},
     {"kitchen", "kitchenware",
