@@ -3,12 +3,14 @@
 // bad input handled by clear messages and exit codes.
 #include <catch2/catch.hpp>
 
+#include <algorithm>
 #include <filesystem>
 #include <fstream>
 #include <map>
 #include <sstream>
 #include <string>
 #include <tuple>
+#include <utility>
 #include <vector>
 
 #include <nlohmann/json.hpp>
@@ -322,6 +324,41 @@ TEST_CASE("bad input gives an actionable message and a failing exit code") {
                                     " --holdout 0.1 --validation " + quoted(d.ratings));
         CHECK(r.exit_code == 2);
         CHECK(r.err.find("--holdout") != std::string::npos);
+    }
+}
+
+TEST_CASE("columns are chosen with --customer-column and --product-column") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto dir = scratch_dir("cli-columns");
+    // Roles swapped on purpose: the products become the "customers" of this model.
+    const auto model = dir / "swapped.posterior";
+    const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 -q --rejects-path " +
+                                quoted(dir / "rejects.tsv") + " --out " + quoted(model) +
+                                " --customer-column product_sku --product-column 0 --rating-column stars"
+                                " --timestamp-column rated_at --rank 2 --burn-in 4 --samples 4 --chains 2");
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    const auto p = credence::read_posterior(model.string());
+    CHECK(std::find(p.user_ids.begin(), p.user_ids.end(), "tea-0001") != p.user_ids.end());
+    CHECK(std::find(p.item_ids.begin(), p.item_ids.end(), "c-00007") != p.item_ids.end());
+}
+
+TEST_CASE("the old column flags are refused as usage errors that name the new ones") {
+    const auto dir = scratch_dir("cli-renamed");
+    const std::string file = quoted(dir / "ratings.csv");
+    std::ofstream(dir / "m.posterior") << "";  // evaluate checks that --model exists while parsing
+    for (const std::string& command : {"fit --out " + quoted(dir / "m.posterior"),
+                                      "evaluate --model " + quoted(dir / "m.posterior"), std::string("compare")}) {
+        for (const auto& [old_flag, new_flag] : {std::pair{"--user-column", "--customer-column"},
+                                                 std::pair{"--item-column", "--product-column"}}) {
+            for (const char* value : {" 0", "=customer_id", ""}) {
+                const auto r = run_credence(command + " --ratings " + file + " " + old_flag + value);
+                INFO(command << " " << old_flag << value << "\n" << r.err);
+                CHECK(r.exit_code == 2);
+                CHECK(r.err.find(std::string(old_flag) + " is now " + new_flag) != std::string::npos);
+            }
+        }
     }
 }
 
