@@ -241,6 +241,15 @@ TEST_CASE("sampler flags outside their range are refused before any work") {
     }
 }
 
+TEST_CASE("compare refuses to fit both bias settings and none at once") {
+    const auto dir = scratch_dir("cli-compare-biases");
+    const auto r = run_credence("compare --ratings " + quoted(dir / "missing.csv") + " --with-without-biases --no-biases");
+    // A usage error, neither success nor a data problem (1), found before the file is opened.
+    CHECK(r.exit_code != 0);
+    CHECK(r.exit_code != 1);
+    CHECK(r.err.find("--with-without-biases excludes --no-biases") != std::string::npos);
+}
+
 TEST_CASE("inspect, predict and recommend answer from the file") {
     const auto& d = demo_fit();
     REQUIRE(d.fit.exit_code == 0);
