@@ -8,6 +8,7 @@
 
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
+#include "cli/sampler_flags.hpp"
 #include "model/assess/compare.hpp"
 #include "model/error.hpp"
 #include "model/data/ingest.hpp"
@@ -16,16 +17,23 @@ namespace credence::cli {
 
 namespace {
 
+std::string join_ranks(const std::vector<uint32_t>& ranks) {
+    std::string text;
+    for (uint32_t r : ranks) text += (text.empty() ? "" : ",") + std::to_string(r);
+    return text;
+}
+
+// Starts from CompareOptions{}: its values are the defaults --help shows.
 struct CompareFlags {
     IngestFlags ingest;
-    std::string ranks = "2,4,8,16,32";
-    uint32_t folds = 1;
-    double holdout = 0.1;
-    bool both_bias_settings = false;
-    bool no_biases = false;
+    CompareOptions defaults;
+    std::string ranks = join_ranks(defaults.ranks);
+    uint32_t folds = defaults.folds;
+    double holdout = defaults.holdout_fraction;
+    bool both_bias_settings = defaults.both_bias_settings;
     bool json = false;
     bool quiet = false;
-    FitOptions fit;
+    SamplerFlags sampler{defaults.fit};
 };
 
 std::vector<uint32_t> parse_ranks(const std::string& text) {
@@ -40,21 +48,20 @@ std::vector<uint32_t> parse_ranks(const std::string& text) {
             used = 0;
         }
         if (used == 0 || used != part.size() || r == 0 || r > 512)
-            throw std::invalid_argument("--ranks: '" + part + "' is not a rank between 1 and 512 (give e.g. 2,4,8)");
+            throw OptionError("--ranks: '" + part + "' is not a rank between 1 and 512 (give e.g. 2,4,8)");
         ranks.push_back(static_cast<uint32_t>(r));
     }
     return ranks;
 }
 
 int run_compare(const CompareFlags& f) {
-    CompareOptions o;
+    CompareOptions o = f.defaults;
     o.ranks = parse_ranks(f.ranks);
     o.folds = f.folds;
     o.holdout_fraction = f.holdout;
     o.both_bias_settings = f.both_bias_settings;
-    o.fit = f.fit;
-    o.fit.biases = !f.no_biases;
-    o.split_seed = f.fit.seed;
+    o.fit = to_fit_options(f.sampler);
+    o.split_seed = o.fit.seed;
     const IngestResult data = ingest_ratings(to_ingest_options(f.ingest));
     if (!f.quiet) std::cerr << describe(data.summary) << "\n";
     if (data.ratings.size() == 0) throw DataError("no ratings left to compare models on");
@@ -69,8 +76,6 @@ int run_compare(const CompareFlags& f) {
 
 Runner add_compare_command(CLI::App& app) {
     auto f = std::make_shared<CompareFlags>();
-    f->fit.burn_in = 100;
-    f->fit.samples = 40;
     CLI::App* cmd = app.add_subcommand(
         "compare", "Fit several ranks on held-out splits and recommend the simplest within one SE of the best");
     add_ingest_flags(*cmd, f->ingest);
@@ -80,15 +85,16 @@ Runner add_compare_command(CLI::App& app) {
     cmd->add_option("--holdout", f->holdout, "Share of ratings held out when --folds is below 2")
         ->check(CLI::Range(0.0, 1.0))->capture_default_str();
     cmd->add_flag("--with-without-biases", f->both_bias_settings, "Fit every rank both with and without bias terms");
-    cmd->add_flag("--no-biases", f->no_biases, "Fit without bias terms (ignored with --with-without-biases)");
-    cmd->add_option("--burn-in", f->fit.burn_in, "Sweeps discarded at the start of each chain")->capture_default_str();
-    cmd->add_option("--samples", f->fit.samples, "Samples kept per chain")->check(CLI::Range(1u, 100000u))->capture_default_str();
-    cmd->add_option("--thin", f->fit.thin, "Sweeps between kept samples")->check(CLI::Range(1u, 10000u))->capture_default_str();
-    cmd->add_option("--chains", f->fit.chains, "Independent chains per fit")->check(CLI::Range(1u, 64u))->capture_default_str();
-    cmd->add_option("--seed", f->fit.seed, "Random seed for the splits and the fits")->capture_default_str();
-    cmd->add_option("--threads", f->fit.threads, "Worker threads (0: all cores)")->check(CLI::Range(0, 1024))->capture_default_str();
     cmd->add_flag("--json", f->json, "Print one JSON object (readable by credence report --comparison) instead of a table");
     cmd->add_flag("--quiet,-q", f->quiet, "No progress lines on stderr");
+    add_sampler_flags(*cmd, f->sampler, RankFlag::chosen_elsewhere);
+    // Fitting both bias settings and leaving biases out contradict each other.
+    // Checked here rather than with Option::excludes, which would also mark
+    // --no-biases in the Sampler help section that fit and compare share.
+    cmd->parse_complete_callback([f] {
+        if (f->both_bias_settings && f->sampler.no_biases)
+            throw CLI::ExcludesError("--with-without-biases", "--no-biases");
+    });
     return [f] { return run_compare(*f); };
 }
 

@@ -23,20 +23,21 @@ struct Category {
     std::array<const char*, 10> second;
 };
 
-// Invented product names: two word lists per category, combined.
+// Invented product names: two word lists per category, combined. Plain
+// descriptive or invented words; none is, or resembles, a brand or trademark.
 const std::array<Category, 4> kCategories = {{
     {"tea", "loose-leaf tea",
-     {"Harbor Fog", "Quince Blossom", "Ember Roast", "Lantern", "Mossbank", "Saltmarsh", "Copper Kettle",
+     {"Harbor Fog", "Quince Blossom", "Slow Roast", "Lantern", "Mossbank", "Saltmarsh", "Wrenholt",
       "Winter Orchard", "Hollow Hill", "River Stone", "Cinder", "Fieldfare"},
      {"Oolong", "Green", "Black", "White", "Rooibos", "Chai", "Breakfast Blend", "Herbal", "Smoked Black", "Jasmine"}},
     {"paper", "paper goods",
-     {"Thistle", "Quarry", "Inkwell", "Marsh Wren", "Slate", "Beacon", "Foxglove", "Tidewater", "Kestrel",
-      "Juniper", "Larch", "Pebble"},
+     {"Thistle", "Quarry", "Ink Pot", "Marsh Wren", "Slate", "Beacon", "Foxglove", "Tidewater", "Stonechat",
+      "Sloe", "Larch", "Shingle"},
      {"Notebook A5", "Sketchbook", "Pocket Journal", "Letter Set", "Weekly Planner", "Index Cards",
-      "Field Notes", "Dot Grid Pad", "Recipe Book", "Postcard Pack"}},
+      "Ruled Jotter", "Dot Grid Pad", "Recipe Book", "Postcard Pack"}},
     {"candle", "candles",
-     {"Bonfire", "Sea Lavender", "Cedar Loft", "Rain on Slate", "Orchard Smoke", "Wool Blanket", "Night Garden",
-      "Fig Leaf", "Hearth", "Meadowsweet", "Tallow Lane", "Dune Grass"},
+     {"Bonfire", "Sea Lavender", "Cedar Loft", "Rain on Slate", "Orchard Smoke", "Wool Blanket", "Evening Stock",
+      "Green Fig", "Peat Fire", "Meadowsweet", "Tallow Lane", "Marram Grass"},
      {"Jar Candle", "Tin Candle", "Taper Pair", "Pillar", "Tealights", "Wax Melt", "Travel Tin", "Votive",
       "Wick Trio", "Reed Diffuser"}},
     {"kitchen", "kitchenware",
@@ -97,7 +98,7 @@ DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOption
         std::ofstream cat(files.catalogue_path);
         cat << "product_sku,name,category\n";
         for (const auto& p : products) cat << p.sku << ',' << csv_field(p.name) << ',' << kCategories[p.category].label << '\n';
-        if (!cat) throw Error("could not write " + files.catalogue_path);
+        if (!cat) throw FileError("could not write " + files.catalogue_path);
     }
 
     std::ofstream out(files.ratings_path);
@@ -143,7 +144,7 @@ DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOption
             files.ratings_written += 3;
         }
     }
-    if (!out) throw Error("could not write " + files.ratings_path);
+    if (!out) throw FileError("could not write " + files.ratings_path);
     return files;
 }
 

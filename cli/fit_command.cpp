@@ -1,6 +1,7 @@
 // credence fit: ratings export in, posterior file out.
 #include <cmath>
 #include <ctime>
+#include <functional>
 #include <iostream>
 #include <optional>
 
@@ -10,6 +11,8 @@
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
 #include "cli/progress.hpp"
+#include "cli/sampler_flags.hpp"
+#include "generated/credence_version.hpp"
 #include "model/fit/convergence_summary.hpp"
 #include "model/error.hpp"
 #include "model/data/holdout.hpp"
@@ -24,9 +27,7 @@ namespace {
 struct FitFlags {
     IngestFlags ingest;
     std::string out;
-    FitOptions fit;
-    bool no_biases = false;
-    std::optional<double> fixed_noise;
+    SamplerFlags sampler;
     std::optional<double> holdout;
     std::string validation_path;
     bool quiet = false;
@@ -62,21 +63,11 @@ std::string sweep_line(const SweepReport& r, uint32_t chains) {
     return line;
 }
 
-int run_fit(FitFlags& f) {
-    if (f.holdout && !(*f.holdout > 0.0 && *f.holdout < 1.0))
-        throw std::invalid_argument("--holdout must be strictly between 0 and 1");
-    if (f.holdout && !f.validation_path.empty())
-        throw std::invalid_argument("--holdout and --validation are alternatives; give one");
-    FitOptions options = f.fit;
-    options.biases = !f.no_biases;
-    if (f.fixed_noise) {
-        options.sample_noise = false;
-        options.fixed_noise_precision = *f.fixed_noise;
-    }
+// Prints one line on stderr unless --quiet.
+using Log = std::function<void(const std::string&)>;
 
-    auto log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
-    ProgressLine progress(f.quiet);
-
+// ---- 1. The ratings export, read with a progress line.
+IngestResult read_ratings(const FitFlags& f, ProgressLine& progress, const Log& log) {
     IngestOptions ingest_options = to_ingest_options(f.ingest);
     ingest_options.progress = [&](uint64_t done, uint64_t total) {
         if (total > 0) progress.update(fmt::format("reading {}: {:.0f}%", f.ingest.path, 100.0 * done / total));
@@ -84,70 +75,112 @@ int run_fit(FitFlags& f) {
     IngestResult data = ingest_ratings(ingest_options);
     progress.finish();
     log(describe(data.summary));
+    return data;
+}
 
+// ---- 2. Training ratings and the ratings scored while fitting: a seeded
+// holdout of the export, a separate file (--validation) or none.
+struct TrainingData {
     RatingSet train;
-    std::vector<Rating> validation;
-    nlohmann::json validation_meta = nullptr;
-    if (f.holdout) {
-        HoldoutSplit split = split_holdout(std::move(data.ratings), *f.holdout, options.seed);
-        train = std::move(split.train);
-        validation = std::move(split.test);
-        validation_meta = {{"kind", "holdout"}, {"fraction", *f.holdout}, {"ratings", validation.size()}};
-        log(fmt::format("holding out {} ratings ({:.1f}%) for validation", validation.size(), 100 * *f.holdout));
-    } else {
-        train = std::move(data.ratings);
-        if (!f.validation_path.empty()) {
-            IngestFlags vflags = f.ingest;
-            vflags.path = f.validation_path;
-            vflags.rejects_path.clear();
-            IngestResult v = ingest_ratings(to_ingest_options(vflags));
-            MappedRatings mapped = map_onto(v.ratings, train.users, train.items);
-            validation = std::move(mapped.ratings);
-            validation_meta = {{"kind", "file"}, {"ratings", validation.size()},
-                               {"unknown_user_pairs", mapped.unknown_user_pairs},
-                               {"unknown_item_pairs", mapped.unknown_item_pairs},
-                               {"fingerprint", v.summary.fingerprint}};
-            log(fmt::format("validation: {} ratings with known ids ({} with unknown user, {} with unknown item skipped)",
-                            validation.size(), mapped.unknown_user_pairs, mapped.unknown_item_pairs));
-        }
-    }
-    if (train.size() == 0) throw DataError("no training ratings left to fit");
+    std::vector<Rating> validation;          // indices of `train`; empty: none
+    nlohmann::json validation_meta = nullptr;  // recorded in the fit metadata
+};
 
+// The --validation file, mapped onto the training ids; pairs with an
+// unknown customer or product are counted and skipped.
+void read_validation_file(const FitFlags& f, TrainingData& d, const Log& log) {
+    IngestFlags vflags = f.ingest;
+    vflags.path = f.validation_path;
+    vflags.rejects_path.clear();
+    IngestResult v = ingest_ratings(to_ingest_options(vflags));
+    MappedRatings mapped = map_onto(v.ratings, d.train.users, d.train.items);
+    d.validation = std::move(mapped.ratings);
+    d.validation_meta = {{"kind", "file"}, {"ratings", d.validation.size()},
+                         {"unknown_user_pairs", mapped.unknown_user_pairs},
+                         {"unknown_item_pairs", mapped.unknown_item_pairs},
+                         {"fingerprint", v.summary.fingerprint}};
+    log(fmt::format("validation: {} ratings with known ids ({} with unknown user, {} with unknown item skipped)",
+                    d.validation.size(), mapped.unknown_user_pairs, mapped.unknown_item_pairs));
+}
+
+TrainingData split_for_validation(const FitFlags& f, RatingSet&& ratings, uint64_t seed, const Log& log) {
+    TrainingData d;
+    if (f.holdout) {
+        HoldoutSplit split = split_holdout(std::move(ratings), *f.holdout, seed);
+        d.train = std::move(split.train);
+        d.validation = std::move(split.test);
+        d.validation_meta = {{"kind", "holdout"}, {"fraction", *f.holdout}, {"ratings", d.validation.size()}};
+        log(fmt::format("holding out {} ratings ({:.1f}%) for validation", d.validation.size(), 100 * *f.holdout));
+    } else {
+        d.train = std::move(ratings);
+        if (!f.validation_path.empty()) read_validation_file(f, d, log);
+    }
+    if (d.train.size() == 0) throw DataError("no training ratings left to fit");
+    return d;
+}
+
+// ---- 3. The Gibbs sampler, one progress line per sweep.
+FitResult sample_posterior(const TrainingData& d, const FitOptions& options, ProgressLine& progress, const Log& log) {
     log(fmt::format("fitting rank {} on {} ratings ({} users, {} items): {} chains x ({} burn-in + {} kept x thin {}) sweeps",
-                    options.rank, train.size(), train.users.size(), train.items.size(), options.chains,
+                    options.rank, d.train.size(), d.train.users.size(), d.train.items.size(), options.chains,
                     options.burn_in, options.samples, options.thin));
-    FitResult result = fit_bpmf(train, options, validation.empty() ? nullptr : &validation,
+    FitResult result = fit_bpmf(d.train, options, d.validation.empty() ? nullptr : &d.validation,
                                 [&](const SweepReport& r) {
                                     const bool last = r.chain + 1 == options.chains && r.sweep + 1 == r.sweeps_per_chain;
                                     progress.update(sweep_line(r, options.chains), last);
                                 });
     progress.finish();
+    return result;
+}
 
-    nlohmann::json meta = nlohmann::json::parse(result.posterior.fit_metadata_json, nullptr, false);
+// ---- 4. What the file records about its making, beside the sampler's own
+// metadata: data fingerprint and counts, version, time, validation.
+void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSummary& summary, const TrainingData& d) {
+    nlohmann::json meta = nlohmann::json::parse(posterior.fit_metadata_json, nullptr, false);
     if (meta.is_discarded() || !meta.is_object()) meta = nlohmann::json::object();
-    meta["data_fingerprint"] = data.summary.fingerprint;
-    meta["credence_version"] = "0.1.0";
+    meta["data_fingerprint"] = summary.fingerprint;
+    meta["credence_version"] = kCredenceVersion;
     meta["created_at"] = utc_now_iso8601();
     meta["data"].update(nlohmann::json{{"source", f.ingest.path},
-                                       {"rows_read", data.summary.rows_read},
-                                       {"kept", data.summary.kept},
-                                       {"rejected", data.summary.rejected},
-                                       {"merged_duplicates", data.summary.merged_duplicates},
-                                       {"training_ratings", train.size()}});
-    meta["validation"] = validation_meta;
-    result.posterior.fit_metadata_json = meta.dump();
+                                       {"rows_read", summary.rows_read},
+                                       {"kept", summary.kept},
+                                       {"rejected", summary.rejected},
+                                       {"merged_duplicates", summary.merged_duplicates},
+                                       {"training_ratings", d.train.size()}});
+    meta["validation"] = d.validation_meta;
+    posterior.fit_metadata_json = meta.dump();
+}
 
-    // Convergence figures travel with the model (inspect, /v1/model, report).
+// ---- 5. Convergence figures, then the file. The figures travel with the
+// model (inspect, /v1/model, report).
+void write_model(FitResult& result, const std::string& out) {
     const ConvergenceSummary convergence = summarize_convergence(result.posterior);
     result.posterior.diagnostics_json = to_json(convergence).dump();
     std::cerr << describe_verdict(convergence);
 
-    const uint64_t bytes = write_posterior(result.posterior, f.out);
+    const uint64_t bytes = write_posterior(result.posterior, out);
     const auto& trace = result.trace;
     std::cout << fmt::format("wrote {} ({:.1f} MB): {} kept samples from {} chains in {}; final train RMSE {:.4f}\n",
-                             f.out, bytes / 1e6, result.posterior.num_samples, result.posterior.num_chains,
+                             out, bytes / 1e6, result.posterior.num_samples, result.posterior.num_chains,
                              format_duration(result.seconds),
                              trace.train_rmse.empty() ? NAN : trace.train_rmse.back());
+}
+
+int run_fit(FitFlags& f) {
+    if (f.holdout && !(*f.holdout > 0.0 && *f.holdout < 1.0))
+        throw OptionError("--holdout must be strictly between 0 and 1");
+    if (f.holdout && !f.validation_path.empty())
+        throw OptionError("--holdout and --validation are alternatives; give one");
+    const FitOptions options = to_fit_options(f.sampler);
+
+    const Log log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
+    ProgressLine progress(f.quiet);
+
+    IngestResult data = read_ratings(f, progress, log);
+    const TrainingData d = split_for_validation(f, std::move(data.ratings), options.seed, log);
+    FitResult result = sample_posterior(d, options, progress, log);
+    add_fit_metadata(result.posterior, f, data.summary, d);
+    write_model(result, f.out);
     return 0;
 }
 
@@ -158,15 +191,7 @@ Runner add_fit_command(CLI::App& app) {
     CLI::App* cmd = app.add_subcommand("fit", "Fit the model to a ratings export by Gibbs sampling and write a posterior file");
     add_ingest_flags(*cmd, f->ingest);
     cmd->add_option("--out,-o", f->out, "Posterior file to write (replaced atomically)")->required();
-    cmd->add_option("--rank", f->fit.rank, "Number of latent factors K")->check(CLI::Range(1u, 512u))->capture_default_str();
-    cmd->add_option("--burn-in", f->fit.burn_in, "Sweeps discarded at the start of each chain")->capture_default_str();
-    cmd->add_option("--samples", f->fit.samples, "Samples kept per chain")->check(CLI::Range(1u, 100000u))->capture_default_str();
-    cmd->add_option("--thin", f->fit.thin, "Sweeps between kept samples")->check(CLI::Range(1u, 10000u))->capture_default_str();
-    cmd->add_option("--chains", f->fit.chains, "Independent chains (at least 2 for convergence checks)")->check(CLI::Range(1u, 64u))->capture_default_str();
-    cmd->add_option("--seed", f->fit.seed, "Random seed: the same seed gives the same samples on any thread count")->capture_default_str();
-    cmd->add_option("--threads", f->fit.threads, "Worker threads (0: all cores)")->check(CLI::Range(0, 1024))->capture_default_str();
-    cmd->add_flag("--no-biases", f->no_biases, "Leave out the user and item bias terms");
-    cmd->add_option("--fixed-noise-precision", f->fixed_noise, "Fix the noise precision instead of sampling it")->check(CLI::PositiveNumber);
+    add_sampler_flags(*cmd, f->sampler, RankFlag::one);
     cmd->add_option("--holdout", f->holdout, "Hold out this share of ratings to report validation RMSE while fitting")->check(CLI::Range(0.0, 1.0));
     cmd->add_option("--validation", f->validation_path, "Ratings file scored by the running posterior mean while fitting");
     cmd->add_flag("--quiet,-q", f->quiet, "No progress or summary on stderr");

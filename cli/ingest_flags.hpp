@@ -1,5 +1,8 @@
 // The rating-file flags shared by every subcommand that reads ratings
-// (fit, evaluate): delimiter, header, columns, scale, duplicates, rejects.
+// (fit, evaluate, compare): delimiter, header, columns, scale, duplicates,
+// rejects. Column flags use the shop's words (--customer-column,
+// --product-column); the earlier --user-column and --item-column are refused
+// with a usage error that names the new flag.
 #pragma once
 #include <CLI/CLI.hpp>
 #include <string>
@@ -13,7 +16,7 @@ struct IngestFlags {
     std::string delimiter;   // "", ",", "tab", ";", "|"
     bool no_header = false;
     bool header = false;
-    std::string user_column, item_column, rating_column, timestamp_column;
+    std::string customer_column, product_column, rating_column, timestamp_column;
     std::string scale;       // "MIN:MAX"
     std::string duplicates = "latest";
     double max_reject_fraction = 0.01;
@@ -21,9 +24,11 @@ struct IngestFlags {
 };
 
 // Adds the flags to `cmd`; `ratings_flag` is the long name of the file flag.
+// Parsing a renamed flag throws CLI::ParseError with exit code 2 and the
+// message "--user-column is now --customer-column" (or the --item-column one).
 void add_ingest_flags(CLI::App& cmd, IngestFlags& flags, const std::string& ratings_flag = "--ratings");
 
-// Turns parsed flags into options; throws std::invalid_argument on a bad
+// Turns parsed flags into options; throws OptionError on a bad
 // --scale or --delimiter with a message saying what is accepted.
 IngestOptions to_ingest_options(const IngestFlags& flags);
 

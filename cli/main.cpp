@@ -22,6 +22,7 @@
 #include <string_view>
 
 #include "cli/commands.hpp"
+#include "generated/credence_version.hpp"
 #include "model/error.hpp"
 
 namespace {
@@ -79,18 +80,6 @@ int run_reporting_errors(const std::string& command, const credence::cli::Runner
     } catch (const credence::Error& e) {
         std::cerr << "credence " << command << ": " << e.what() << "\n";
         return kExitDataOrFile;
-    } catch (const std::invalid_argument& e) {
-        // TRANSITIONAL: cli/ingest_flags.cpp, cli/fit_command.cpp and
-        // cli/compare_command.cpp still throw std::invalid_argument for a bad
-        // flag value, always with a message that starts with the flag. Until
-        // they throw OptionError such a message is still a usage error;
-        // everything else is a bug. Remove this branch with the last of them.
-        const std::string_view what = e.what();
-        if (what.starts_with("--")) {
-            std::cerr << "credence " << command << ": " << what << "\n";
-            return kExitUsage;
-        }
-        return internal_error(command, e.what());
     } catch (const std::exception& e) {
         return internal_error(command, e.what());
     } catch (...) {
@@ -103,7 +92,7 @@ int run_reporting_errors(const std::string& command, const credence::cli::Runner
 int main(int argc, char** argv) {
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
-    app.set_version_flag("--version", std::string("credence 0.1.0"));
+    app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion);
     app.footer("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).");
 
     std::map<CLI::App*, credence::cli::Runner> runners;

@@ -1,20 +1,38 @@
 // credence serve: the HTTP service. Options come from the config file first
 // (--config), then from flags; the admin token never comes from a flag.
+#include <cctype>
 #include <memory>
 #include <optional>
+#include <string_view>
 
 #include "cli/commands.hpp"
+#include "server/config.hpp"
 #include "server/server.hpp"
 
 namespace credence::cli {
 
 namespace {
+
 struct ServeFlags {
     std::string config;
     std::optional<std::string> model, host, model_dir;
     std::optional<uint16_t> port;
     std::optional<uint32_t> threads;
 };
+
+// A flag that overrides the [serve] key `name`: its help is the key's line
+// in the config table and its default the built-in one (server/config.hpp).
+template <typename T>
+void add_key_flag(CLI::App& cmd, const std::string& flag, std::optional<T>& value, std::string_view name) {
+    const auto& key = server::serve_config_key(name);
+    std::string help(key.doc);
+    help[0] = static_cast<char>(std::toupper(static_cast<unsigned char>(help[0])));
+    help += " (config key " + std::string(name) + ")";
+    auto* option = cmd.add_option(flag, value, help);
+    if (const std::string shown = server::serve_config_value(key, server::ServeOptions{}); !shown.empty())
+        option->default_str(shown);
+}
+
 }  // namespace
 
 Runner add_serve_command(CLI::App& app) {
@@ -22,13 +40,15 @@ Runner add_serve_command(CLI::App& app) {
     CLI::App* cmd = app.add_subcommand("serve", "Serve a posterior file over HTTP (JSON under /v1, metrics at /metrics)");
     cmd->add_option("--config,-c", f->config, "TOML config file (see config/credence.toml); flags override it")
         ->check(CLI::ExistingFile);
-    cmd->add_option("--model,-m", f->model, "Posterior file to serve");
-    cmd->add_option("--host", f->host, "Address to bind (default 127.0.0.1)");
-    cmd->add_option("--port,-p", f->port, "Port to bind (default 8080; 0 picks a free port)");
-    cmd->add_option("--threads", f->threads, "Worker threads (default: max(16, 4 x cores))");
-    cmd->add_option("--model-dir", f->model_dir, "Directory that admin reloads may name files in");
-    cmd->footer("The admin bearer token is read from the file named by admin_token_file in the config, "
-                "or from the CREDENCE_ADMIN_TOKEN environment variable; never from the command line.");
+    add_key_flag(*cmd, "--model,-m", f->model, "model");
+    add_key_flag(*cmd, "--host", f->host, "host");
+    add_key_flag(*cmd, "--port,-p", f->port, "port");
+    add_key_flag(*cmd, "--threads", f->threads, "threads");
+    add_key_flag(*cmd, "--model-dir", f->model_dir, "model_dir");
+    cmd->footer("The admin bearer token is read from the file named by admin_token_file in the config, or from "
+                "the environment variable named by admin_token_env (default " +
+                server::serve_config_value(server::serve_config_key("admin_token_env"), server::ServeOptions{}) +
+                "); never from the command line.");
     return [f] {
         server::ServeOptions o;
         if (!f->config.empty()) o = server::load_serve_config(f->config, o);

@@ -1,10 +1,14 @@
 #include "server/config.hpp"
 
+#include <algorithm>
+#include <array>
 #include <cstdlib>
 #include <fstream>
 #include <limits>
-#include <set>
+#include <stdexcept>
+#include <type_traits>
 
+#include <fmt/format.h>
 #include <toml++/toml.h>
 
 #include "model/error.hpp"
@@ -13,93 +17,166 @@ namespace credence::server {
 
 namespace {
 
-[[noreturn]] void config_error(const std::string& path, const std::string& key, const std::string& why) {
-    throw Error("config " + path + ": [serve] " + key + " " + why);
-}
+constexpr uint64_t kU16 = std::numeric_limits<uint16_t>::max();
+constexpr uint64_t kU32 = std::numeric_limits<uint32_t>::max();
+// TOML integers are signed 64-bit, so no file can say more than this.
+constexpr uint64_t kTomlMax = static_cast<uint64_t>(std::numeric_limits<int64_t>::max());
 
-void read_string(const toml::table& t, const std::string& path, const char* key, std::string& out) {
-    const auto* node = t.get(key);
-    if (!node) return;
-    if (!node->is_string()) config_error(path, key, "must be a string");
-    out = node->as_string()->get();
-}
+using O = ServeOptions;
 
-void read_bool(const toml::table& t, const std::string& path, const char* key, bool& out) {
-    const auto* node = t.get(key);
-    if (!node) return;
-    if (!node->is_boolean()) config_error(path, key, "must be true or false");
-    out = node->as_boolean()->get();
+// Table rows by kind (every member spelled out: GCC warns on designated
+// initializers that leave members to their defaults).
+ServeConfigKey text_key(std::string_view name, std::string O::*field, std::string_view doc,
+                        std::string_view if_empty = {}) {
+    return ServeConfigKey{name, field, 0, 0, doc, if_empty};
 }
-
+ServeConfigKey switch_key(std::string_view name, bool O::*field, std::string_view doc) {
+    return ServeConfigKey{name, field, 0, 0, doc, {}};
+}
 template <typename T>
-void read_uint(const toml::table& t, const std::string& path, const char* key, T& out, int64_t min_value) {
-    const auto* node = t.get(key);
-    if (!node) return;
-    if (!node->is_integer()) config_error(path, key, "must be an integer");
-    const int64_t v = node->as_integer()->get();
-    if (v < min_value || static_cast<uint64_t>(v) > std::numeric_limits<T>::max())
-        config_error(path, key, "is " + std::to_string(v) + ", outside [" + std::to_string(min_value) + ", " +
-                                    std::to_string(std::numeric_limits<T>::max()) + "]");
-    out = static_cast<T>(v);
+ServeConfigKey number_key(std::string_view name, T O::*field, uint64_t min, uint64_t max, std::string_view doc) {
+    return ServeConfigKey{name, field, min, max, doc, {}};
+}
+
+// The one table of [serve] keys (order as in config/credence.toml).
+const std::array<ServeConfigKey, 16> kKeys = {
+    text_key("model", &O::model_path, "posterior file to serve (written by credence fit)",
+             "pass --model FILE or set [serve] model"),
+    text_key("host", &O::host, "address to bind; loopback unless told otherwise", "use 127.0.0.1 for loopback"),
+    number_key("port", &O::port, 0, kU16, "TCP port to bind; 0 picks a free port"),
+    number_key("threads", &O::threads, 0, kU32,
+               "worker threads, one per open connection; 0: max(16, 4 x hardware threads)"),
+    number_key("body_limit_bytes", &O::body_limit_bytes, 1, kTomlMax,
+               "largest accepted request body in bytes; larger bodies get 413"),
+    number_key("read_timeout_ms", &O::read_timeout_ms, 1, kU32, "how long to wait for a client to send a request, in ms"),
+    number_key("write_timeout_ms", &O::write_timeout_ms, 1, kU32,
+               "how long to wait for a client to accept a response, in ms"),
+    text_key("admin_token_file", &O::admin_token_file,
+             "file holding the bearer token for /v1/admin/*; empty: the variable admin_token_env names"),
+    text_key("admin_token_env", &O::admin_token_env, "environment variable holding the admin token when no file is set"),
+    text_key("model_dir", &O::model_dir,
+             "directory that admin reloads may load files from; empty: only the file being served"),
+    switch_key("access_log", &O::access_log, "one access-log line per request on stderr"),
+    switch_key("log_ids", &O::log_ids, "access-log lines include the request target, so user and item ids"),
+    number_key("max_n", &O::max_n, 1, kU32, "largest n for top-N lists, similar items and item lists"),
+    number_key("max_batch", &O::max_batch, 1, kU32, "largest prediction batch, fold-in rating list and candidate list"),
+    number_key("topn_lanes", &O::topn_lanes, 0, kU32,
+               "top-N passes over the item samples running at once; 0: one per hardware thread"),
+    number_key("topn_batch_max", &O::topn_batch_max, 1, kU32, "most top-N requests one pass over the item samples serves"),
+};
+
+std::string range_text(const ServeConfigKey& key) {
+    return fmt::format("[{}, {}]", key.min, key.max);
+}
+
+// Sets `key` in `options` from a TOML node; returns why it cannot (empty: done).
+std::string assign(const ServeConfigKey& key, const toml::node& node, ServeOptions& options) {
+    return std::visit(
+        [&](auto member) -> std::string {
+            using T = std::remove_cvref_t<decltype(options.*member)>;
+            if constexpr (std::is_same_v<T, std::string>) {
+                if (!node.is_string()) return "must be a string";
+                options.*member = node.as_string()->get();
+            } else if constexpr (std::is_same_v<T, bool>) {
+                if (!node.is_boolean()) return "must be true or false";
+                options.*member = node.as_boolean()->get();
+            } else {
+                if (!node.is_integer()) return "must be an integer in " + range_text(key);
+                const int64_t v = node.as_integer()->get();
+                if (v < 0 || static_cast<uint64_t>(v) < key.min || static_cast<uint64_t>(v) > key.max)
+                    return "is " + std::to_string(v) + ", outside " + range_text(key);
+                options.*member = static_cast<T>(v);
+            }
+            return {};
+        },
+        key.field);
+}
+
+// Why the value of `key` in `options` cannot work (empty: it can).
+std::string check(const ServeConfigKey& key, const ServeOptions& options) {
+    return std::visit(
+        [&](auto member) -> std::string {
+            using T = std::remove_cvref_t<decltype(options.*member)>;
+            const T& value = options.*member;
+            if constexpr (std::is_same_v<T, std::string>) {
+                if (value.empty() && !key.if_empty.empty()) return "is empty; " + std::string(key.if_empty);
+            } else if constexpr (!std::is_same_v<T, bool>) {
+                if (value < key.min || value > key.max)
+                    return "is " + std::to_string(value) + ", outside " + range_text(key);
+            }
+            return {};
+        },
+        key.field);
+}
+
+std::string known_names() {
+    std::string names;
+    for (const auto& key : kKeys) {
+        if (!names.empty()) names.append(", ");
+        names.append(key.name);
+    }
+    return names;
 }
 
 }  // namespace
+
+std::span<const ServeConfigKey> serve_config_keys() { return kKeys; }
+
+const ServeConfigKey& serve_config_key(std::string_view name) {
+    for (const auto& key : kKeys)
+        if (key.name == name) return key;
+    throw std::out_of_range("serve_config_key: no [serve] key named " + std::string(name));
+}
+
+std::string serve_config_value(const ServeConfigKey& key, const ServeOptions& options) {
+    return std::visit(
+        [&](auto member) -> std::string {
+            const auto& value = options.*member;
+            using T = std::remove_cvref_t<decltype(value)>;
+            if constexpr (std::is_same_v<T, std::string>) return value;
+            else if constexpr (std::is_same_v<T, bool>) return value ? "true" : "false";
+            else return std::to_string(value);
+        },
+        key.field);
+}
 
 ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base) {
     toml::table root;
     try {
         root = toml::parse_file(toml_path);
     } catch (const toml::parse_error& e) {
-        throw Error("config " + toml_path + ": " + std::string(e.description()) + " at line " +
+        throw OptionError("config " + toml_path + ": " + std::string(e.description()) + " at line " +
                     std::to_string(e.source().begin.line));
     }
     const auto* serve_node = root.get("serve");
     if (!serve_node) return base;  // the file may configure other commands only
     const auto* t = serve_node->as_table();
-    if (!t) throw Error("config " + toml_path + ": serve must be a table ([serve])");
+    if (!t) throw OptionError("config " + toml_path + ": serve must be a table ([serve])");
 
-    static const std::set<std::string> known = {
-        "model", "host", "port", "threads", "body_limit_bytes", "read_timeout_ms", "write_timeout_ms",
-        "admin_token_file", "admin_token_env", "model_dir", "log_ids", "access_log", "max_n", "max_batch",
-        "topn_lanes", "topn_batch_max"};
-    for (const auto& [key, value] : *t)
-        if (!known.count(std::string(key.str())))
-            config_error(toml_path, std::string(key.str()), "is not a known option (see config/credence.toml)");
-
-    read_string(*t, toml_path, "model", base.model_path);
-    read_string(*t, toml_path, "host", base.host);
-    read_uint(*t, toml_path, "port", base.port, 0);
-    read_uint(*t, toml_path, "threads", base.threads, 0);
-    read_uint(*t, toml_path, "body_limit_bytes", base.body_limit_bytes, 1);
-    read_uint(*t, toml_path, "read_timeout_ms", base.read_timeout_ms, 1);
-    read_uint(*t, toml_path, "write_timeout_ms", base.write_timeout_ms, 1);
-    read_string(*t, toml_path, "admin_token_file", base.admin_token_file);
-    read_string(*t, toml_path, "admin_token_env", base.admin_token_env);
-    read_string(*t, toml_path, "model_dir", base.model_dir);
-    read_bool(*t, toml_path, "log_ids", base.log_ids);
-    read_bool(*t, toml_path, "access_log", base.access_log);
-    read_uint(*t, toml_path, "max_n", base.max_n, 1);
-    read_uint(*t, toml_path, "max_batch", base.max_batch, 1);
-    read_uint(*t, toml_path, "topn_lanes", base.topn_lanes, 0);
-    read_uint(*t, toml_path, "topn_batch_max", base.topn_batch_max, 1);
+    for (const auto& [name, node] : *t) {
+        const auto* key = std::find_if(kKeys.begin(), kKeys.end(), [&](const auto& k) { return k.name == name.str(); });
+        if (key == kKeys.end())
+            throw OptionError("config " + toml_path + ": [serve] " + std::string(name.str()) +
+                        " is not a known option; the options are " + known_names() +
+                        " (config/credence.toml documents each)");
+        if (const std::string why = assign(*key, node, base); !why.empty())
+            throw OptionError("config " + toml_path + ": [serve] " + std::string(key->name) + " " + why + " (" +
+                        std::string(key->doc) + ")");
+    }
     return base;
 }
 
 void validate_serve_options(const ServeOptions& o) {
-    if (o.model_path.empty()) throw Error("serve: no model given; pass --model FILE or set [serve] model");
-    if (o.host.empty()) throw Error("serve: host is empty; use 127.0.0.1 for loopback");
-    if (o.body_limit_bytes == 0) throw Error("serve: body_limit_bytes must be at least 1");
-    if (o.read_timeout_ms == 0 || o.write_timeout_ms == 0) throw Error("serve: timeouts must be at least 1 ms");
-    if (o.max_n == 0) throw Error("serve: max_n must be at least 1");
-    if (o.max_batch == 0) throw Error("serve: max_batch must be at least 1");
-    if (o.topn_batch_max == 0) throw Error("serve: topn_batch_max must be at least 1");
+    for (const auto& key : kKeys)
+        if (const std::string why = check(key, o); !why.empty())
+            throw OptionError("serve: " + std::string(key.name) + " " + why + " (" + std::string(key.doc) + ")");
 }
 
 std::string resolve_admin_token(const ServeOptions& o) {
     std::string token;
     if (!o.admin_token_file.empty()) {
         std::ifstream in(o.admin_token_file);
-        if (!in) throw Error("serve: cannot read admin token file " + o.admin_token_file);
+        if (!in) throw FileError("serve: cannot read admin token file " + o.admin_token_file);
         std::getline(in, token);
     } else if (!o.admin_token_env.empty()) {
         if (const char* env = std::getenv(o.admin_token_env.c_str())) token = env;
@@ -111,7 +188,7 @@ std::string resolve_admin_token(const ServeOptions& o) {
     const auto last = token.find_last_not_of(" \t\r\n");
     token = first == std::string::npos ? std::string() : token.substr(first, last - first + 1);
     if (token.empty())
-        throw Error("serve: the admin token " +
+        throw OptionError("serve: the admin token " +
                     (o.admin_token_file.empty() ? "variable " + o.admin_token_env : "file " + o.admin_token_file) +
                     " is empty; put a long random string in it or unset it");
     return token;

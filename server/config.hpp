@@ -1,9 +1,14 @@
 // The server's options: defaults, the [serve] table of the TOML config file
 // (config/credence.toml documents every key), validation and the admin token.
 // Used by `credence serve` (cli/serve_command.cpp) and the server itself.
+// serve_config_keys() is the one list of [serve] keys: reading, the check for
+// unknown keys, validation and every message about a key come from it.
 #pragma once
 #include <cstdint>
+#include <span>
 #include <string>
+#include <string_view>
+#include <variant>
 
 namespace credence::server {
 
@@ -26,19 +31,47 @@ struct ServeOptions {
     uint32_t topn_batch_max = 16;                // most top-N requests sharing one pass over the item samples
 };
 
+// One [serve] key: its name in the file, the ServeOptions field it sets (the
+// field's type is the key's type: string, true/false or integer), the range
+// an integer must lie in, and one line saying what it sets.
+struct ServeConfigKey {
+    using Field = std::variant<std::string ServeOptions::*, bool ServeOptions::*, uint16_t ServeOptions::*,
+                               uint32_t ServeOptions::*, uint64_t ServeOptions::*>;
+    std::string_view name;
+    Field field;
+    uint64_t min = 0;             // integers only: accepted values are [min, max]
+    uint64_t max = 0;
+    std::string_view doc;
+    std::string_view if_empty;    // strings only: when set, an empty value is refused with this advice
+};
+
+// Every [serve] key, in the order config/credence.toml documents them. The
+// table is static; the span stays valid for the life of the program.
+std::span<const ServeConfigKey> serve_config_keys();
+
+// The key called `name`; throws std::out_of_range for a name not in the table
+// (a programming error: callers name keys they know).
+const ServeConfigKey& serve_config_key(std::string_view name);
+
+// The key's value in `options` as the config file would spell it: a string
+// unquoted, true/false, or decimal digits.
+std::string serve_config_value(const ServeConfigKey& key, const ServeOptions& options);
+
 // Reads the [serve] table of a TOML file over `base` (keys absent from the
-// file keep base's values). Throws credence::Error naming the file and key
-// for an unknown key, a wrong type or an out-of-range value.
+// file keep base's values). Throws OptionError naming the file and key for a
+// TOML syntax error, an unknown key, a wrong type or an out-of-range value.
 ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base = {});
 
-// Checks option values that no file or flag may break (port range, limits > 0,
-// model path set); throws credence::Error with an actionable message.
+// Checks every key's value against the table, whether it came from the file,
+// a flag or the defaults: integers within their range, required strings
+// (model, host) not empty. Throws OptionError naming the key, its range and
+// what it sets.
 void validate_serve_options(const ServeOptions& options);
 
 // Resolves the admin token: the file's first line (trimmed) when
 // admin_token_file is set, else the environment variable admin_token_env.
-// Empty when neither is set (admin routes then answer 403). Throws
-// credence::Error if the file is set but unreadable or empty.
+// Empty when neither is set (admin routes then answer 403). Throws FileError
+// if the file is set but unreadable, OptionError if the token is empty.
 std::string resolve_admin_token(const ServeOptions& options);
 
 }  // namespace credence::server

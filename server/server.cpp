@@ -6,30 +6,19 @@
 
 #include <csignal>
 #include <cstdio>
-#include <fstream>
 #include <iostream>
-#include <sstream>
+#include <string_view>
 #include <thread>
 
 #include <pthread.h>
 #include <spdlog/spdlog.h>
 
+#include "generated/credence_version.hpp"
+#include "generated/openapi_json.hpp"
 #include "model/error.hpp"
 #include "server/app.hpp"
 
 namespace credence::server {
-
-namespace {
-
-std::string read_openapi() {
-    std::ifstream in(CREDENCE_OPENAPI_PATH);
-    if (!in) return {};
-    std::ostringstream text;
-    text << in.rdbuf();
-    return text.str();
-}
-
-}  // namespace
 
 void install_all_routes(httplib::Server& server, AppContext& ctx) {
     install_health_routes(server, ctx);
@@ -43,14 +32,11 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
                    res.set_content(ctx.metrics.render(model.get()), "text/plain; version=0.0.4; charset=utf-8");
                }));
 
-    // Read once at start: the document is part of the build, not of the model.
-    auto openapi = std::make_shared<const std::string>(read_openapi());
-    server.Get("/v1/openapi.json",
-               wrap_route(ctx, "/v1/openapi.json", [openapi](const httplib::Request&, httplib::Response& res) {
-                   if (openapi->empty())
-                       throw HttpProblem(500, "internal", "Internal Server Error",
-                                         "the OpenAPI document was not found at " CREDENCE_OPENAPI_PATH);
-                   res.set_content(*openapi, "application/json");
+    // Compiled in (generated/openapi_json.hpp): the document is part of the
+    // build, not of the model, and an installed binary has no source tree.
+    server.Get("/v1/openapi.json", wrap_route(ctx, "/v1/openapi.json", [](const httplib::Request&, httplib::Response& res) {
+                   const std::string_view document = embedded::openapi_json();
+                   res.set_content(document.data(), document.size(), "application/json");
                }));
 
     // Requests no handler answered (unknown route, 413 from the body limit,
@@ -85,16 +71,14 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
 }
 
 int run_server(const ServeOptions& options) {
-    try {
-        validate_serve_options(options);
-    } catch (const Error& e) {
-        server_log().error("{}", e.what());
-        return 1;
-    }
     AppContext ctx;
     ctx.options = options;
     try {
+        validate_serve_options(options);
         ctx.admin_token = resolve_admin_token(options);
+    } catch (const OptionError& e) {
+        server_log().error("{}", e.what());
+        return 2;  // usage, as the CLI's exit codes (cli/main.cpp)
     } catch (const Error& e) {
         server_log().error("{}", e.what());
         return 1;
@@ -132,6 +116,7 @@ int run_server(const ServeOptions& options) {
         return 1;
     }
     std::cout << "listening on http://" << options.host << ":" << port << std::endl;
+    server_log().info("credence {} serving on http://{}:{}", kCredenceVersion, options.host, port);
 
     // Only the signal thread calls server.stop(), and only once the server
     // runs: httplib ignores a stop() that comes before listen starts.

@@ -10,8 +10,9 @@ namespace credence::server {
 
 // Serves until SIGINT or SIGTERM. Prints "listening on http://HOST:PORT" on
 // stdout (flushed) once bound, with the real port when options.port == 0.
-// Returns a process exit code: 0 after a clean stop, 1 if binding or the
-// first model load failed (the reason goes to the log on stderr).
+// Returns a process exit code (cli/main.cpp): 0 after a clean stop, 1 if
+// binding, the admin token file or the first model load failed, 2 for an
+// option value that cannot work (the reason goes to the log on stderr).
 int run_server(const ServeOptions& options);
 
 }  // namespace credence::server

@@ -57,7 +57,14 @@ struct CompareOptions {
     bool both_bias_settings = false;   // fit every rank with biases on and off; else fit.biases only
     double coverage_level = 0.9;       // in (0, 1)
     uint64_t split_seed = 1;           // which ratings are held out
-    FitOptions fit;                    // rank and biases are set per configuration
+    // Rank and biases are set per configuration. A comparison runs ranks x
+    // folds fits, so its default chains are shorter than a single fit's.
+    FitOptions fit = [] {
+        FitOptions f;
+        f.burn_in = 100;
+        f.samples = 40;
+        return f;
+    }();
 };
 
 struct ConfigScore {

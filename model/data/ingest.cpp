@@ -321,11 +321,11 @@ struct ColumnRole {
     std::vector<std::string_view> contains;  // normalized fragments that match otherwise
 };
 
-const ColumnRole kUserRole{"user", "--user-column",
+const ColumnRole kUserRole{"user", "--customer-column",
                            {"user", "userid", "customer", "customerid", "client", "clientid", "buyer", "buyerid",
                             "shopper", "shopperid", "member", "memberid", "account", "accountid", "uid"},
                            {"user", "customer"}};
-const ColumnRole kItemRole{"item", "--item-column",
+const ColumnRole kItemRole{"item", "--product-column",
                            {"item", "itemid", "product", "productid", "sku", "article", "articleid", "movie",
                             "movieid", "book", "bookid", "iid"},
                            {"item", "product", "sku"}};
@@ -470,7 +470,7 @@ std::optional<size_t> Ingest::resolve(const std::string& spec, const ColumnRole&
     if (index) {
         if (std::find(taken.begin(), taken.end(), *index) != taken.end())
             throw DataError(fmt::format("{}: column {} ('{}') is chosen for two roles; pass distinct columns with "
-                                        "--user-column, --item-column, --rating-column, --timestamp-column",
+                                        "--customer-column, --product-column, --rating-column, --timestamp-column",
                                         where(line), *index, first[*index]));
         taken.push_back(*index);
     }

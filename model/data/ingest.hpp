@@ -17,7 +17,7 @@
 // Memory: the input streams through one 4 MiB buffer; each kept row costs
 // 12 bytes while reading (+8 for its timestamp under the latest policy) and
 // 4 more while sorting, plus the id maps. Error messages refer to the
-// command-line options --user-column, --item-column, --rating-column,
+// command-line options --customer-column, --product-column, --rating-column,
 // --timestamp-column, --delimiter, --header/--no-header, --scale,
 // --max-reject-fraction and --rejects-path.
 #pragma once
@@ -45,9 +45,9 @@ struct IngestOptions {
     // header name that matches user/customer/buyer/..., item/product/sku/...,
     // rating/score/stars/... (a header with no match is a DataError naming the
     // option to pass, never a guess); without a header, indices 0, 1, 2.
-    std::string user_column;
-    std::string item_column;
-    std::string rating_column;
+    std::string user_column;     // --customer-column
+    std::string item_column;     // --product-column
+    std::string rating_column;   // --rating-column
     // Empty: none, unless the header has "timestamp"/"time"/"date"/... .
     // Values: epoch seconds (any finite number) or ISO-8601 YYYY-MM-DD with an
     // optional [T ]hh:mm[:ss[.fff]] and Z/+hh:mm offset (a date alone is

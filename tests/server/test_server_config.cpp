@@ -4,6 +4,14 @@
 
 #include <cstdlib>
 #include <fstream>
+#include <limits>
+#include <set>
+#include <stdexcept>
+#include <string>
+#include <type_traits>
+#include <variant>
+
+#include <toml++/toml.h>
 
 #include "model/error.hpp"
 #include "server/config.hpp"
@@ -25,25 +33,15 @@ TEST_CASE("the shipped config documents every option with the built-in defaults"
     const ServeOptions defaults;
     const ServeOptions loaded = load_serve_config(path.string());
     CHECK(loaded.model_path == "shop.posterior");
-    CHECK(loaded.host == defaults.host);
-    CHECK(loaded.port == defaults.port);
-    CHECK(loaded.threads == defaults.threads);
-    CHECK(loaded.body_limit_bytes == defaults.body_limit_bytes);
-    CHECK(loaded.read_timeout_ms == defaults.read_timeout_ms);
-    CHECK(loaded.write_timeout_ms == defaults.write_timeout_ms);
-    CHECK(loaded.admin_token_file == defaults.admin_token_file);
-    CHECK(loaded.admin_token_env == defaults.admin_token_env);
-    CHECK(loaded.model_dir == defaults.model_dir);
-    CHECK(loaded.access_log == defaults.access_log);
-    CHECK(loaded.log_ids == defaults.log_ids);
-    CHECK(loaded.max_n == defaults.max_n);
-    CHECK(loaded.max_batch == defaults.max_batch);
-    CHECK(loaded.topn_lanes == defaults.topn_lanes);
-    CHECK(loaded.topn_batch_max == defaults.topn_batch_max);
+    for (const auto& key : serve_config_keys()) {
+        if (key.name == "model") continue;
+        INFO(key.name);
+        CHECK(serve_config_value(key, loaded) == serve_config_value(key, defaults));
+    }
     // Every key is preceded by a comment line.
     std::ifstream in(path);
     std::string line, previous;
-    int keys = 0;
+    size_t keys = 0;
     while (std::getline(in, line)) {
         if (!line.empty() && line[0] != '#' && line[0] != '[') {
             INFO(line);
@@ -52,7 +50,102 @@ TEST_CASE("the shipped config documents every option with the built-in defaults"
         }
         previous = line;
     }
-    CHECK(keys == 16);  // one per ServeOptions field
+    CHECK(keys == serve_config_keys().size());
+}
+
+TEST_CASE("the key table and config/credence.toml name the same keys") {
+    const auto path = credence::testing::source_dir() / "config" / "credence.toml";
+    const toml::table root = toml::parse_file(path.string());
+    const auto* serve = root["serve"].as_table();
+    REQUIRE(serve);
+    std::set<std::string> documented;
+    for (const auto& [name, value] : *serve) documented.insert(std::string(name.str()));
+    std::set<std::string> table;
+    for (const auto& key : serve_config_keys()) {
+        INFO(key.name);
+        CHECK(table.insert(std::string(key.name)).second);  // no key twice
+        CHECK_FALSE(key.doc.empty());
+        CHECK(documented.count(std::string(key.name)) == 1);
+    }
+    for (const auto& name : documented) {
+        INFO(name);
+        CHECK(table.count(name) == 1);
+    }
+    // Each key also works through serve_config_key by its name.
+    for (const auto& name : documented) CHECK(serve_config_key(name).name == name);
+    CHECK_THROWS_AS(serve_config_key("no_such_key"), std::out_of_range);
+}
+
+TEST_CASE("every key refuses a wrong type and an out-of-range value by name, with its range") {
+    const auto dir = credence::testing::scratch_dir("server_config_table");
+    auto message = [&](const std::string& text) -> std::string {
+        try {
+            load_serve_config(write_file(dir, "bad.toml", "[serve]\n" + text + "\n").string());
+        } catch (const Error& e) {
+            return e.what();
+        }
+        return "accepted";
+    };
+    size_t integers = 0;
+    for (const auto& key : serve_config_keys()) {
+        const std::string name(key.name);
+        INFO(name);
+        const bool text = std::holds_alternative<std::string ServeOptions::*>(key.field);
+        const bool boolean = std::holds_alternative<bool ServeOptions::*>(key.field);
+        // A wrong type: strings get a number, everything else a string.
+        const auto wrong = message(name + (text ? " = 12" : " = \"12\""));
+        CHECK(wrong.find("[serve] " + name + " must be") != std::string::npos);
+        if (text || boolean) continue;
+        ++integers;
+        const std::string range = "[" + std::to_string(key.min) + ", " + std::to_string(key.max) + "]";
+        // The ends of the range are accepted ...
+        for (const uint64_t end : {key.min, key.max}) {
+            const auto path = write_file(dir, "ok.toml", "[serve]\n" + name + " = " + std::to_string(end) + "\n");
+            CHECK(serve_config_value(key, load_serve_config(path.string())) == std::to_string(end));
+        }
+        // ... and one step outside is refused with the value and the range in the message.
+        auto refused = [&](const std::string& value) {
+            INFO(value);
+            CHECK(message(name + " = " + value).find(name + " is " + value + ", outside " + range) != std::string::npos);
+        };
+        refused("-1");
+        if (key.min > 0) refused(std::to_string(key.min - 1));
+        if (key.max < uint64_t(std::numeric_limits<int64_t>::max())) refused(std::to_string(key.max + 1));
+    }
+    CHECK(integers > 0);  // the loop above met the integer keys
+    // An unknown key names itself and the keys that exist.
+    const auto unknown = message("prot = 80");
+    CHECK(unknown.find("[serve] prot is not a known option") != std::string::npos);
+    CHECK(unknown.find("port") != std::string::npos);
+}
+
+TEST_CASE("validation checks values from flags and defaults against the same table") {
+    ServeOptions ok;
+    ok.model_path = "shop.posterior";
+    CHECK_NOTHROW(validate_serve_options(ok));
+    // The model is required and its absence says how to give one.
+    CHECK_THROWS_WITH(validate_serve_options(ServeOptions{}),
+                      Catch::Contains("model is empty") && Catch::Contains("--model"));
+    for (const auto& key : serve_config_keys()) {
+        INFO(key.name);
+        ServeOptions o = ok;
+        if (const auto* text = std::get_if<std::string ServeOptions::*>(&key.field)) {
+            o.*(*text) = "";
+            if (key.if_empty.empty()) CHECK_NOTHROW(validate_serve_options(o));
+            else CHECK_THROWS_WITH(validate_serve_options(o), Catch::Contains(std::string(key.name) + " is empty"));
+        } else if (key.min > 0) {
+            // Every integer with a lower bound above 0: 0 is refused by name.
+            std::visit(
+                [&](auto member) {
+                    if constexpr (!std::is_same_v<decltype(member), std::string ServeOptions::*> &&
+                                  !std::is_same_v<decltype(member), bool ServeOptions::*>)
+                        o.*member = 0;
+                },
+                key.field);
+            CHECK_THROWS_WITH(validate_serve_options(o),
+                              Catch::Contains("serve: " + std::string(key.name) + " is 0, outside"));
+        }
+    }
 }
 
 TEST_CASE("config values override defaults; mistakes name the key") {

@@ -33,9 +33,10 @@ namespace credence::testing {
 class ServerProcess {
 public:
     // `settings`: extra [serve] keys as TOML lines ("max_batch = 50"); the
-    // model, host 127.0.0.1 and port 0 are always set.
+    // model, host 127.0.0.1 and port 0 are always set. `binary`: the program
+    // to run, the built one unless a test runs a copy elsewhere.
     ServerProcess(const std::filesystem::path& dir, const std::filesystem::path& model,
-                  const std::string& settings = "") {
+                  const std::string& settings = "", const std::filesystem::path& binary = credence_binary()) {
         config_ = dir / "credence.toml";
         log_ = dir / "server.log";
         {
@@ -53,7 +54,7 @@ public:
             if (log_fd >= 0) dup2(log_fd, STDERR_FILENO);
             close(out[0]);
             close(out[1]);
-            const std::string bin = credence_binary().string(), cfg = config_.string();
+            const std::string bin = binary.string(), cfg = config_.string();
             execl(bin.c_str(), bin.c_str(), "serve", "--config", cfg.c_str(), static_cast<char*>(nullptr));
             _exit(127);
         }

@@ -203,14 +203,14 @@ TEST_CASE("columns by name and by 0-based index") {
 
     o = options_for(path);
     o.item_column = "9";
-    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("index 9 is out of range") && Catch::Contains("--item-column"));
+    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("index 9 is out of range") && Catch::Contains("--product-column"));
 
     // Without a header, names cannot be used.
     const auto bare = write_file(dir, "bare.csv", "1,2,3\n");
     o = options_for(bare);
     o.has_header = false;
     o.user_column = "user";
-    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("no header") && Catch::Contains("--user-column"));
+    CHECK_THROWS_WITH(ingest_ratings(o), Catch::Contains("no header") && Catch::Contains("--customer-column"));
 
     // Unrecognised header names: say so and name the option.
     const auto odd = write_file(dir, "odd.csv", "a,b,c\nx,y,z\n");
