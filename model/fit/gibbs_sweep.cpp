@@ -10,6 +10,7 @@
 
 #include "model/math/distributions.hpp"
 #include "model/error.hpp"
+#include "model/fit/group_moves.hpp"
 #include "model/fit/normal_wishart.hpp"
 
 namespace credence {
@@ -288,6 +289,7 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key
         throw NumericError("sampler: chain " + std::to_string(key.chain) + ", sweep " + std::to_string(key.sweep) +
                            ": the noise precision draw is not a positive finite number (training error " +
                            std::to_string(st.sse) + ")");
+    if (o.group_moves) apply_group_moves(o, key, st);
 }
 
 }  // namespace credence

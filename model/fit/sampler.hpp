@@ -52,6 +52,9 @@ struct FitOptions {
     double init_scale = -1.0;        // sd of the random initial factors; negative: automatic,
                                      // (rating variance / 2K)^(1/4), so u.v starts with half the variance
     HyperpriorOptions prior{};
+    // Joint moves after each sweep (model/fit/group_moves.hpp); each leaves
+    // the posterior exactly invariant. Off only to measure what they buy.
+    bool group_moves = true;
 };
 
 // What the sampler reports after each sweep (for progress lines and traces).

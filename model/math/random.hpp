@@ -24,6 +24,7 @@ enum class StreamBlock : uint32_t {
     simulate = 8,  // synthetic data
     serve = 9,     // per-request draws in the server
     foldin = 10,
+    group_moves = 11,  // joint moves along directions the likelihood leaves flat
 };
 
 class Rng {

@@ -1,0 +1,166 @@
+// Mixing benchmark (not a test; scripts/bench-mixing drives it).
+//
+//   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank 10]
+//                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
+//                [--seed 1] [--threads 0] [--moves off,on]
+//
+// Fits the same data once per sampler variant and prints, for the quantities
+// the convergence check monitors (model/fit/convergence_summary.hpp), the
+// bulk- and tail-ESS (Vehtari et al. 2021) per sweep and per second of
+// sampling, and R-hat. "sweeps" counts every sweep after burn-in over all
+// chains; seconds are the fit's wall time including burn-in, so ESS per
+// second is what a user gets for the whole run.
+#include <algorithm>
+#include <cmath>
+#include <cstdlib>
+#include <cstdio>
+#include <sstream>
+#include <string>
+#include <vector>
+
+#include <CLI/CLI.hpp>
+#include <Eigen/Dense>
+
+#include "model/data/holdout.hpp"
+#include "model/data/ingest.hpp"
+#include "model/fit/convergence_summary.hpp"
+#include "model/fit/sampler.hpp"
+
+namespace {
+
+using namespace credence;
+
+struct Row {
+    std::string label;
+    double rhat, ess_bulk, ess_tail;
+};
+
+void print_variant(const std::string& name, const FitOptions& o, const FitResult& fit, const ConvergenceSummary& c) {
+    const double sweeps = double(o.samples) * o.thin * o.chains;
+    std::printf("\n== %s: %u chains x (%u burn-in + %u x thin %u), %.1f s, %.2f ms/sweep\n", name.c_str(), o.chains,
+                o.burn_in, o.samples, o.thin, fit.seconds,
+                1000.0 * fit.seconds / (double(o.burn_in + o.samples * o.thin) * o.chains));
+    std::printf("%-34s %8s %10s %10s %12s %12s\n", "quantity", "R-hat", "bulk ESS", "tail ESS", "ESS/sweep",
+                "ESS/s");
+    std::vector<double> pred_ess;
+    for (const auto& q : c.quantities) {
+        const double ess = std::min(q.stats.ess_bulk, q.stats.ess_tail);
+        if (q.quantity == "prediction") {
+            pred_ess.push_back(ess);
+            if (!std::getenv("MIXING_ALL")) continue;
+        }
+        std::printf("%-34s %8.3f %10.1f %10.1f %12.4f %12.2f\n", q.label().c_str(), q.stats.rhat, q.stats.ess_bulk,
+                    q.stats.ess_tail, ess / sweeps, ess / fit.seconds);
+    }
+    if (!pred_ess.empty()) {
+        std::sort(pred_ess.begin(), pred_ess.end());
+        const double lo = pred_ess.front(), mid = pred_ess[pred_ess.size() / 2];
+        std::printf("%-34s %8s %10s %10s %12.4f %12.2f\n", "predictions (min of 20)", "", "", "", lo / sweeps,
+                    lo / fit.seconds);
+        std::printf("%-34s %8s %10s %10s %12.4f %12.2f\n", "predictions (median of 20)", "", "", "", mid / sweeps,
+                    mid / fit.seconds);
+    }
+    std::printf("verdict %s: max R-hat %.3f, min bulk ESS/chain %.1f, min tail ESS/chain %.1f\n", c.verdict.c_str(),
+                c.max_rhat, c.min_ess_bulk_per_chain, c.min_ess_tail_per_chain);
+}
+
+// Per kept sample: chain, tau, bias precisions, traces of the factor
+// covariances, mu_U . mu_V, mean biases, mean squared factor norms.
+void write_trace(const Posterior& p, const std::string& path) {
+    std::FILE* f = std::fopen(path.c_str(), "w");
+    std::fprintf(f, "chain\ttau\tlambda_b\tlambda_c\ttr_cov_u\ttr_cov_v\tmu_dot\tmean_b\tmean_c\tnorm_u\tnorm_v\tmu_u_norm\tmu_v_norm");
+    for (uint32_t k = 0; k < p.rank; ++k) std::fprintf(f, "\tsv%u", k);
+    std::fprintf(f, "\n");
+    const uint32_t K = p.rank;
+    for (uint32_t s = 0; s < p.num_samples; ++s) {
+        auto mat = [&](const std::vector<float>& v) {
+            Eigen::MatrixXd m(K, K);
+            for (uint32_t a = 0; a < K; ++a)
+                for (uint32_t b = 0; b < K; ++b) m(a, b) = v[(size_t(s) * K + a) * K + b];
+            return m;
+        };
+        const double tu = mat(p.user_lambda).inverse().trace(), tv = mat(p.item_lambda).inverse().trace();
+        double dot = 0, nu = 0, nv = 0, mb = 0, mc = 0, mun = 0, mvn = 0;
+        for (uint32_t k = 0; k < K; ++k) {
+            dot += double(p.user_mu[s * K + k]) * p.item_mu[s * K + k];
+            mun += double(p.user_mu[s * K + k]) * p.user_mu[s * K + k];
+            mvn += double(p.item_mu[s * K + k]) * p.item_mu[s * K + k];
+        }
+        for (uint32_t u = 0; u < p.num_users; ++u) {
+            for (float x : p.user_factor(s, u)) nu += double(x) * x;
+            mb += p.user_bias_of(s, u);
+        }
+        for (uint32_t i = 0; i < p.num_items; ++i) {
+            for (float x : p.item_factor(s, i)) nv += double(x) * x;
+            mc += p.item_bias_of(s, i);
+        }
+        std::fprintf(f, "%u\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g", p.sample_chain[s], p.noise_precision[s],
+                     p.has_biases ? p.user_bias_precision[s] : 0.f, p.has_biases ? p.item_bias_precision[s] : 0.f, tu, tv,
+                     dot, mb / p.num_users, mc / p.num_items, nu / p.num_users, nv / p.num_items, std::sqrt(mun), std::sqrt(mvn));
+        using RM = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+        const Eigen::MatrixXd U = Eigen::Map<const RM>(p.user_factors.data() + size_t(s) * p.num_users * K, p.num_users, K).cast<double>();
+        const Eigen::MatrixXd V = Eigen::Map<const RM>(p.item_factors.data() + size_t(s) * p.num_items * K, p.num_items, K).cast<double>();
+        Eigen::HouseholderQR<Eigen::MatrixXd> qu(U), qv(V);
+        const Eigen::MatrixXd ru = qu.matrixQR().topRows(K).triangularView<Eigen::Upper>();
+        const Eigen::MatrixXd rv = qv.matrixQR().topRows(K).triangularView<Eigen::Upper>();
+        Eigen::JacobiSVD<Eigen::MatrixXd> svd(ru * rv.transpose());
+        for (uint32_t k = 0; k < K; ++k) std::fprintf(f, "\t%g", svd.singularValues()[k]);
+        std::fprintf(f, "\n");
+    }
+    std::fclose(f);
+}
+
+}  // namespace
+
+int main(int argc, char** argv) {
+    CLI::App app{"mixing_bench: ESS per sweep and per second of the monitored quantities"};
+    std::string ratings, scale, moves = "off,on";
+    double holdout = 0.0;
+    FitOptions o;
+    o.samples = 400;
+    o.thin = 1;
+    app.add_option("--ratings", ratings)->required();
+    app.add_option("--scale", scale);
+    app.add_option("--holdout", holdout);
+    app.add_option("--rank", o.rank);
+    app.add_option("--chains", o.chains);
+    app.add_option("--burn-in", o.burn_in);
+    app.add_option("--samples", o.samples);
+    app.add_option("--thin", o.thin);
+    app.add_option("--seed", o.seed);
+    app.add_option("--threads", o.threads);
+    double fixed_noise = 0.0;
+    app.add_option("--fixed-noise-precision", fixed_noise);
+    std::string trace_path;
+    app.add_option("--trace", trace_path, "write per-sample scalars (TSV) of the last variant here");
+    app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
+    CLI11_PARSE(app, argc, argv);
+
+    if (fixed_noise > 0.0) {
+        o.sample_noise = false;
+        o.fixed_noise_precision = fixed_noise;
+    }
+    IngestOptions in;
+    in.path = ratings;
+    in.rejects_path = "/dev/null";
+    if (!scale.empty()) {
+        const auto colon = scale.find(':');
+        in.scale = RatingScale{std::stof(scale.substr(0, colon)), std::stof(scale.substr(colon + 1)), true};
+    }
+    auto data = ingest_ratings(in);
+    RatingSet train = std::move(data.ratings);
+    if (holdout > 0.0) train = split_holdout(std::move(train), holdout, o.seed).train;
+    std::printf("data: %zu ratings, %zu users, %zu items; rank %u\n", train.ratings.size(), train.users.size(),
+                train.items.size(), o.rank);
+
+    std::stringstream list(moves);
+    for (std::string variant; std::getline(list, variant, ',');) {
+        FitOptions v = o;
+        v.group_moves = variant == "on";
+        const FitResult fit = fit_bpmf(train, v);
+        print_variant(variant, v, fit, summarize_convergence(fit.posterior));
+        if (!trace_path.empty()) write_trace(fit.posterior, trace_path);
+        std::fflush(stdout);
+    }
+    return 0;
+}
