@@ -117,6 +117,7 @@ int main(int argc, char** argv) {
     std::string ratings, scale, moves = "off,on";
     double holdout = 0.0;
     FitOptions o;
+    o.run_length = RunLength::fixed;
     o.samples = 400;
     o.thin = 1;
     app.add_option("--ratings", ratings)->required();
@@ -160,6 +161,20 @@ int main(int argc, char** argv) {
         const FitResult fit = fit_bpmf(train, v);
         print_variant(variant, v, fit, summarize_convergence(fit.posterior));
         if (!trace_path.empty()) write_trace(fit.posterior, trace_path);
+        if (const char* probe = std::getenv("MIXING_PROBE")) {
+            std::string ps(probe);
+            const auto comma = ps.find(',');
+            const auto u = train.users.find(ps.substr(0, comma)), i = train.items.find(ps.substr(comma + 1));
+            std::FILE* f = std::fopen("/tmp/exp/probe.tsv", "w");
+            std::fprintf(f, "chain\tm\tbu\tci\tdot\n");
+            for (uint32_t smp = 0; smp < fit.posterior.num_samples; ++smp) {
+                const auto& P = fit.posterior;
+                double dot = 0;
+                for (uint32_t k = 0; k < P.rank; ++k) dot += double(P.user_factor(smp, *u)[k]) * P.item_factor(smp, *i)[k];
+                std::fprintf(f, "%u\t%g\t%g\t%g\t%g\n", P.sample_chain[smp], P.sample_prediction(smp, *u, *i), P.user_bias_of(smp, *u), P.item_bias_of(smp, *i), dot);
+            }
+            std::fclose(f);
+        }
         std::fflush(stdout);
     }
     return 0;
