@@ -49,7 +49,7 @@ void validate_options(const FitOptions& o) {
                    "--burn-in + --samples x --thin must stay below 2^32 sweeps per chain");
     if (o.run_length == RunLength::converged) {
         require_option(uint64_t(o.max_sweeps) >= 2 * uint64_t(o.samples),
-                       "--max-sweeps must be at least 2 x --samples (the first half of each chain is burn-in)");
+                       "--max-sweeps must be at least 2 x --samples (the first checkpoint)");
         require_option(o.max_seconds >= 0.0 && std::isfinite(o.max_seconds),
                        "--time-limit must be a finite number of seconds (0: none)");
     }
@@ -197,21 +197,30 @@ struct KeepRule {
     bool keeps(uint32_t j) const { return j >= begin && (j + 1 - offset) % spacing == 0; }
 };
 
-// Sweeps j in [n/2, n) with (j + 1) a multiple of t.
-uint32_t kept_in_window(uint32_t n, uint32_t t) { return n / t - (n / 2) / t; }
+// The burn-in of a converged run that has reached n sweeps per chain: its
+// first quarter. The rest, [n/4, n), is the window assessed and kept from. A
+// start that is still drifting in the window shows in the split R-hat (each
+// chain's halves disagree), so the run goes on rather than stops early; a
+// shorter burn-in than the common first half means fewer sweeps for the
+// same window.
+uint32_t window_begin(uint32_t n) { return n / 4; }
 
-// The keep rule for a converged-run checkpoint at n sweeps: the window is the
-// second half, [n/2, n); the spacing is the largest power of two that still
-// leaves `samples` draws in it (so between samples and 2 x samples + 1 are held).
+// Sweeps j in [n/4, n) with (j + 1) a multiple of t.
+uint32_t kept_in_window(uint32_t n, uint32_t t) { return n / t - window_begin(n) / t; }
+
+// The keep rule for a converged-run checkpoint at n sweeps: the window is
+// [n/4, n); the spacing is the largest power of two that still leaves
+// `samples` draws in it (so between samples and 2 x samples + 1 are held).
 KeepRule window_rule(uint32_t n, uint32_t samples) {
     uint32_t t = 1;
     while (kept_in_window(n, 2 * t) >= samples) t *= 2;
-    return {n / 2, t, 0};
+    return {window_begin(n), t, 0};
 }
 
-// The next checkpoint after n: 1.5 times further, within the budget.
+// The next checkpoint after n: a quarter further (rounded up), within the
+// budget, so a run overshoots the sweeps it needed by at most a quarter.
 uint32_t next_checkpoint(uint32_t n, uint32_t max_sweeps) {
-    const uint64_t next = std::max<uint64_t>(uint64_t(n) + 1, (uint64_t(n) * 3 + 1) / 2);
+    const uint64_t next = std::max<uint64_t>(uint64_t(n) + 1, (uint64_t(n) * 5 + 3) / 4);
     return static_cast<uint32_t>(std::min<uint64_t>(next, max_sweeps));
 }
 
@@ -324,8 +333,8 @@ void describe_worst(const ConvergenceSummary& c, FitProgress& p) {
 }
 
 // Sweeps per chain a run would need for every quantity of `c` (assessed on
-// the window [n/2, n)) to reach the ESS target, if ESS grows in proportion
-// to the window: 2 x window x target / ESS, at least 1.5 x n when only R-hat
+// the window [n/4, n)) to reach the ESS target, if ESS grows in proportion
+// to the window: 4/3 x window x target / ESS, at least 1.5 x n when only R-hat
 // fails. A planning figure, rounded up to a hundred, not a promise.
 uint64_t sweeps_needed(const ConvergenceSummary& c, uint32_t n) {
     const double window = double(c.draws_per_chain);
@@ -333,7 +342,7 @@ uint64_t sweeps_needed(const ConvergenceSummary& c, uint32_t n) {
     for (const auto& q : c.quantities) {
         const double ess = std::min(q.stats.ess_bulk, q.stats.ess_tail) / std::max(1u, c.num_chains);
         if (ess < c.options.min_ess_per_chain && ess > 0.0)
-            needed = std::max(needed, 2.0 * window * c.options.min_ess_per_chain / ess);
+            needed = std::max(needed, 4.0 / 3.0 * window * c.options.min_ess_per_chain / ess);
         if (q.stats.rhat > c.options.max_rhat) needed = std::max(needed, 1.5 * n);
     }
     return static_cast<uint64_t>(std::ceil(1.2 * needed / 100.0) * 100.0);
@@ -404,7 +413,7 @@ nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user,
     meta["run_length"] = {{"mode", run.mode == RunLength::converged ? "converged" : "fixed"},
                           {"stop_reason", stop_reason_name(run.stop)},
                           {"sweeps_per_chain", run.sweeps},
-                          {"burn_in", run.mode == RunLength::converged ? run.sweeps / 2 : options.burn_in},
+                          {"burn_in", run.mode == RunLength::converged ? window_begin(run.sweeps) : options.burn_in},
                           {"checkpoints", run.checkpoints},
                           {"parallel_chains", run.parallel_chains}};
     meta["timings"] = {{"setup_s", timings.setup_s},
@@ -460,13 +469,13 @@ RunRecord run_chains(RunContext& run, std::vector<std::unique_ptr<Chain>>& chain
     for (;;) {
         rec.rule = window_rule(n, o.samples);
         for (auto& c : chains) std::erase_if(c->draws, [&](const Draw& d) { return !rec.rule.keeps(d.sweep); });
-        run.monitor.drop_before(n / 2);
+        run.monitor.drop_before(window_begin(n));
         progress.next_checkpoint = n;
         progress.max_sweeps = o.max_sweeps;
         progress.checkpoint = false;
         run_segment(run, chains, from, n, rec.rule, parallel, report, progress);
         rec.checkpoints.push_back(n);
-        summary = run.monitor.assess(n / 2, n);
+        summary = run.monitor.assess(window_begin(n), n);
         if (report) {
             FitProgress p = progress;
             p.sweeps_done = n;

@@ -16,11 +16,12 @@
 // Run length. By default (RunLength::converged) every chain runs until the
 // quantities of model/fit/convergence_summary.hpp reach the targets (R-hat
 // <= 1.01, bulk- and tail-ESS >= 100 per chain; Vehtari et al. 2021) on the
-// second half of its sweeps, or a budget (max_sweeps per chain, max_seconds
-// of wall clock) runs out. Checks happen at checkpoints n = 2S, then each
-// 1.5 times the last (S = samples per chain); the first half of each chain
-// is burn-in, and `samples` draws evenly spaced over the second half are
-// kept. RunLength::fixed runs burn_in + samples * thin sweeps instead. In
+// last three quarters of its sweeps, or a budget (max_sweeps per chain,
+// max_seconds of wall clock) runs out. Checks happen at checkpoints n = 2S,
+// then each 1.25 times the last (S = samples per chain); the first quarter of
+// each chain is burn-in (a start still drifting after it shows in the split
+// R-hat and keeps the run going), and `samples` draws evenly spaced over the
+// rest are kept. RunLength::fixed runs burn_in + samples * thin sweeps instead. In
 // both, the convergence figures come from every sweep after burn-in (not
 // only the kept draws), and chains run at the same time when there are
 // threads for them; samples are bit-identical whatever the thread count and

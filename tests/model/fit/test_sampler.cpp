@@ -283,15 +283,16 @@ TEST_CASE("a converged run stops at the first checkpoint that meets the targets,
     CHECK(parallel.posterior.noise_precision == serial.posterior.noise_precision);
     CHECK(parallel.trace.noise_precision == serial.trace.noise_precision);
 
-    // Checkpoints at 40, 60, 90, ...: the run ends on one, and its window is
-    // the second half. Each chain keeps exactly `samples` draws, all from the
+    // Checkpoints at 40, 50, 63, ... (a quarter further each time, rounded
+    // up): the run ends on one, and its window is
+    // the last three quarters. Each chain keeps exactly `samples` draws, all from the
     // window, in sweep order.
     const uint32_t n = serial.sweeps_per_chain;
     std::vector<uint32_t> checkpoints{40};
-    while (checkpoints.back() < n) checkpoints.push_back((checkpoints.back() * 3 + 1) / 2);
+    while (checkpoints.back() < n) checkpoints.push_back((checkpoints.back() * 5 + 3) / 4);
     CHECK(checkpoints.back() == n);
-    CHECK(serial.convergence.first_sweep == n / 2);
-    CHECK(serial.convergence.draws_per_chain == n - n / 2);
+    CHECK(serial.convergence.first_sweep == n / 4);
+    CHECK(serial.convergence.draws_per_chain == n - n / 4);
     const Posterior& p = serial.posterior;
     REQUIRE(p.num_samples == 3 * 20);
     for (uint32_t c = 0; c < 3; ++c) {
@@ -300,7 +301,7 @@ TEST_CASE("a converged run stops at the first checkpoint that meets the targets,
             const float tau = p.noise_precision[c * 20 + k];
             // The sweep it came from: the trace holds every sweep of chain c.
             int64_t found = -1;
-            for (uint32_t j = n / 2; j < n; ++j)
+            for (uint32_t j = n / 4; j < n; ++j)
                 if (serial.trace.noise_precision[size_t(c) * n + j] == tau) found = j;
             INFO("chain " << c << " draw " << k);
             CHECK(found > last);
