@@ -24,6 +24,7 @@
 #include "model/math/convergence_diagnostics.hpp"
 #include "model/math/distributions.hpp"
 #include "model/error.hpp"
+#include "model/fit/convergence_summary.hpp"
 #include "model/fit/gibbs_sweep.hpp"
 #include "model/fit/group_moves.hpp"
 #include "model/fit/normal_wishart.hpp"
@@ -128,11 +129,6 @@ double sum_of(const std::vector<float>& x) {
     return s;
 }
 
-// tr(Lambda_U^-1 Lambda_V^-1): the factor covariance product, unchanged by
-// every map of the factor space (model/fit/group_moves.hpp).
-double factor_cov_product(const Eigen::MatrixXd& user_lambda, const Eigen::MatrixXd& item_lambda) {
-    return (user_lambda.inverse() * item_lambda.inverse()).trace();
-}
 
 // Test functions g(theta, r): first and second moments of parameters at
 // every level of the hierarchy, a prediction, and a scaled residual; then
@@ -406,6 +402,7 @@ FitOptions sbc_options() {
     o.prior.nu0_minus_rank = 2.0;
     o.prior.w0_scale = 0.5;
     o.init_scale = 0.5;  // fixed, so a chain driven sweep by sweep starts where fit_bpmf's does
+    o.run_length = RunLength::fixed;
     return o;
 }
 
@@ -812,8 +809,9 @@ TEST_CASE("90% credible intervals of the noise sd and of tr(Lambda_U^-1 Lambda_V
         const SimulatedData d = simulate_ratings({.users = 100, .items = 80, .rank = K, .density = 0.25,
                                                   .noise_sd = noise_sd, .factor_sd = factor_sd, .bias_sd = 0.3,
                                                   .seed = 19000 + uint64_t(rep)});
-        const FitResult fit = fit_bpmf(d.ratings, FitOptions{.rank = K, .burn_in = 60, .samples = kept, .thin = 2,
-                                                             .chains = 1, .seed = 700 + uint64_t(rep), .threads = 1});
+        const FitOptions o{.rank = K, .run_length = RunLength::fixed, .samples = kept, .burn_in = 60, .thin = 2,
+                           .chains = 1, .seed = 700 + uint64_t(rep), .threads = 1};
+        const FitResult fit = fit_bpmf(d.ratings, o);
         seconds += fit.seconds;
         const Posterior& p = fit.posterior;
         std::vector<double> noise, product, user_trace;
