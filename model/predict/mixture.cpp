@@ -16,15 +16,14 @@
 #include <string>
 #include <vector>
 
-#include "model/predict/mixture.hpp"
-
 #include "model/math/standard_normal.hpp"
 
 namespace credence {
 
 namespace {
 
-void check_sizes(std::span<const double> m, std::span<const float> tau) {
+template <class Precision>
+void check_sizes(std::span<const double> m, std::span<const Precision> tau) {
     if (m.empty() || m.size() != tau.size())
         throw std::invalid_argument("mixture needs as many noise precisions as means, and at least one (got " +
                                     std::to_string(m.size()) + " means, " + std::to_string(tau.size()) +
@@ -34,7 +33,8 @@ void check_sizes(std::span<const double> m, std::span<const float> tau) {
 // Solves mean_s Phi(sqrt(tau_s) * (y - sign * m_s)) = target for y. With
 // sign = -1 this is the mirrored mixture, whose CDF at -x is the survival
 // function of the original at x.
-double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, double sign, double target) {
+template <class Precision>
+double solve_mixture_cdf(std::span<const double> m, std::span<const Precision> tau, double sign, double target) {
     const size_t S = m.size();
     const double inv_S = 1.0 / static_cast<double>(S);
     const double z = normal_quantile(target);
@@ -87,16 +87,8 @@ double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, 
     return y;
 }
 
-}  // namespace
-
-double mixture_mean(std::span<const double> m) {
-    if (m.empty()) throw std::invalid_argument("mixture needs at least one component");
-    double sum = 0.0;
-    for (double v : m) sum += v;
-    return sum / static_cast<double>(m.size());
-}
-
-double mixture_sd(std::span<const double> m, std::span<const float> tau) {
+template <class Precision>
+double sd_of(std::span<const double> m, std::span<const Precision> tau) {
     check_sizes(m, tau);
     // Law of total variance: mean noise variance + spread of the means
     // (two-pass, so no cancellation).
@@ -109,7 +101,8 @@ double mixture_sd(std::span<const double> m, std::span<const float> tau) {
     return std::sqrt((spread + noise) / static_cast<double>(m.size()));
 }
 
-double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x) {
+template <class Precision>
+double cdf_of(std::span<const double> m, std::span<const Precision> tau, double x) {
     check_sizes(m, tau);
     double sum = 0.0;
     for (size_t s = 0; s < m.size(); ++s)
@@ -117,13 +110,36 @@ double mixture_cdf(std::span<const double> m, std::span<const float> tau, double
     return sum / static_cast<double>(m.size());
 }
 
-double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p) {
+template <class Precision>
+double quantile_of(std::span<const double> m, std::span<const Precision> tau, double p) {
     check_sizes(m, tau);
     if (!(p > 0.0 && p < 1.0))
         throw std::invalid_argument("mixture quantile needs a probability strictly between 0 and 1, got " +
                                     std::to_string(p));
     if (p <= 0.5) return solve_mixture_cdf(m, tau, 1.0, p);
     return -solve_mixture_cdf(m, tau, -1.0, 1.0 - p);
+}
+
+}  // namespace
+
+double mixture_mean(std::span<const double> m) {
+    if (m.empty()) throw std::invalid_argument("mixture needs at least one component");
+    double sum = 0.0;
+    for (double v : m) sum += v;
+    return sum / static_cast<double>(m.size());
+}
+
+double mixture_sd(std::span<const double> m, std::span<const float> tau) { return sd_of(m, tau); }
+double mixture_sd(std::span<const double> m, std::span<const double> precision) { return sd_of(m, precision); }
+double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x) { return cdf_of(m, tau, x); }
+double mixture_cdf(std::span<const double> m, std::span<const double> precision, double x) {
+    return cdf_of(m, precision, x);
+}
+double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p) {
+    return quantile_of(m, tau, p);
+}
+double mixture_quantile(std::span<const double> m, std::span<const double> precision, double p) {
+    return quantile_of(m, precision, p);
 }
 
 double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x) {

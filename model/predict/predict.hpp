@@ -64,6 +64,18 @@ struct RecommendAnswer {
     std::exception_ptr error;  // null on success
 };
 
+// The candidate items of one request, ascending and unique: the request's
+// candidates (or every item) minus `exclude` when options.exclude_rated.
+// Used by the engine and by the visitor fold-in. Throws OptionError for
+// n == 0 or a level outside (0, 1); std::invalid_argument for a candidate or
+// excluded index beyond the model (callers map ids first: a bug).
+std::vector<uint32_t> request_candidates(const Posterior& posterior, std::span<const uint32_t> exclude,
+                                         const RecommendOptions& options);
+
+// The kept sample a RankBy::draw request ranks by: uniform over the S > 0
+// samples, keyed by the draw seed (Rng::keyed(seed, 0, 0, StreamBlock::serve, 0)).
+uint32_t drawn_sample(uint64_t draw_seed, uint32_t samples);
+
 class PredictionEngine {
 public:
     // Needs a non-null posterior that passes Posterior::validate(); throws

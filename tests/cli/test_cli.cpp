@@ -311,55 +311,76 @@ TEST_CASE("recommend --rated folds in a visitor exactly as the server and the of
         rated_flags += " --rated " + word(ids[r.item] + "=" + fmt::format("{}", r.rating));
         server_ratings.push_back({{"item", ids[r.item]}, {"rating", r.rating}});
     }
-    const auto cli = run_credence("recommend --model " + quoted(d.model) + rated_flags +
-                                  " -n 6 --rank-by lower --seed 4242 --json");
-    INFO(cli.err);
-    REQUIRE(cli.exit_code == 0);
-    const auto got = json::parse(cli.out);
-    CHECK(got.at("rated") == 3);
-    CHECK(got.at("seed") == 4242);
-    const auto& items = got.at("items");
-    REQUIRE(items.size() == 6);
-
-    // Offline: the same model function on the same file, ratings and seed.
     const credence::PredictionEngine engine(posterior);
-    const credence::RecommendOptions options{
-        .n = 6, .rank_by = credence::RankBy::lower, .candidates = std::nullopt, .draw_seed = 4242};
-    const auto want = credence::recommend_for_visitor(engine, ratings, 4242, options);
-    REQUIRE(want.size() == 6);
-    for (size_t k = 0; k < want.size(); ++k) {
-        INFO("position " << k);
-        CHECK(items[k].at("item") == ids[want[k].item]);
-        // JSON numbers round-trip doubles exactly, so equality is bitwise.
-        CHECK(items[k].at("score").get<double>() == want[k].score);
-        CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
-        CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
-        CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
-        CHECK(items[k].at("upper").get<double>() == want[k].prediction.upper);
-    }
-
-    // The server: POST /v1/recommendations with the same ratings and seed.
     ServerProcess server(scratch_dir("cli-foldin-server"), d.model);
     auto client = server.client();
-    const json request = {{"ratings", server_ratings}, {"n", 6}, {"rank_by", "lower"}, {"seed", 4242}};
-    const auto answer = client->Post("/v1/recommendations", request.dump(), "application/json");
-    REQUIRE(answer);
-    INFO(answer->body);
-    REQUIRE(answer->status == 200);
-    const auto served = json::parse(answer->body).at("items");
-    REQUIRE(served.size() == items.size());
-    for (size_t k = 0; k < served.size(); ++k) {
-        INFO("position " << k);
-        for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"}) CHECK(served[k].at(key) == items[k].at(key));
+    for (const char* rank_by : {"lower", "draw"}) {
+        INFO("--rank-by " << rank_by);
+        const auto cli = run_credence("recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by " +
+                                      rank_by + " --seed 4242 --json");
+        INFO(cli.err);
+        REQUIRE(cli.exit_code == 0);
+        const auto got = json::parse(cli.out);
+        CHECK(got.at("rated") == 3);
+        // As the server: only a draw ranking carries its seed, as a string.
+        if (std::string(rank_by) == "draw") {
+            CHECK(got.at("seed") == "4242");
+        } else {
+            CHECK_FALSE(got.contains("seed"));
+        }
+        const auto& items = got.at("items");
+        REQUIRE(items.size() == 6);
+
+        // Offline: the same model function on the same file, ratings and seed.
+        const credence::RecommendOptions options{
+            .n = 6,
+            .rank_by = std::string(rank_by) == "draw" ? credence::RankBy::draw : credence::RankBy::lower,
+            .candidates = std::nullopt,
+            .draw_seed = 4242};
+        const auto want = credence::recommend_for_visitor(engine, ratings, options);
+        REQUIRE(want.size() == 6);
+        for (size_t k = 0; k < want.size(); ++k) {
+            INFO("position " << k);
+            CHECK(items[k].at("item") == ids[want[k].item]);
+            // JSON numbers round-trip doubles exactly, so equality is bitwise.
+            CHECK(items[k].at("score").get<double>() == want[k].score);
+            CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
+            CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
+            CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
+            CHECK(items[k].at("upper").get<double>() == want[k].prediction.upper);
+        }
+
+        // The server: POST /v1/recommendations with the same ratings and seed.
+        const json request = {{"ratings", server_ratings}, {"n", 6}, {"rank_by", rank_by}, {"seed", "4242"}};
+        const auto answer = client->Post("/v1/recommendations", request.dump(), "application/json");
+        REQUIRE(answer);
+        INFO(answer->body);
+        REQUIRE(answer->status == 200);
+        const auto served = json::parse(answer->body);
+        REQUIRE(served.at("items").size() == items.size());
+        for (size_t k = 0; k < items.size(); ++k) {
+            INFO("position " << k);
+            for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"})
+                CHECK(served.at("items")[k].at(key) == items[k].at(key));
+        }
+        CHECK(served.contains("seed") == got.contains("seed"));
+        if (got.contains("seed")) CHECK(served.at("seed") == got.at("seed"));
     }
 
+    // Deterministic: without --seed, two runs print the same bytes.
+    const std::string plain = "recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by upper --json";
+    const auto first = run_credence(plain), second = run_credence(plain);
+    REQUIRE(first.exit_code == 0);
+    CHECK(first.out == second.out);
+
     // The text form names the visitor and lists the same products in order.
-    const auto text = run_credence("recommend --model " + quoted(d.model) + rated_flags +
-                                   " -n 6 --rank-by lower --seed 4242");
+    const auto text = run_credence("recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by lower");
     REQUIRE(text.exit_code == 0);
     CHECK(text.out.find("a visitor with 3 rating(s)") != std::string::npos);
+    const auto listed = json::parse(
+        run_credence("recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by lower --json").out);
     size_t at = 0;
-    for (const auto& item : items) {
+    for (const auto& item : listed.at("items")) {
         at = text.out.find(item.at("item").get<std::string>(), at);
         CHECK(at != std::string::npos);
     }
