@@ -64,6 +64,11 @@ struct RecommendAnswer {
     std::exception_ptr error;  // null on success
 };
 
+// Checks an interval level: strictly between 0 and 1, with (1 - level)/2 and
+// (1 + level)/2 strictly inside (0, 1) in double precision (so a level within
+// about 1e-16 of 1 is refused). Throws OptionError quoting the level.
+void check_interval_level(double level);
+
 class PredictionEngine {
 public:
     // Needs a non-null posterior that passes Posterior::validate(); throws
