@@ -29,6 +29,8 @@
 #include <stdexcept>
 #include <string>
 
+#include <fmt/format.h>
+
 #include "model/error.hpp"
 #include "model/math/standard_normal.hpp"
 #include "model/math/random.hpp"
@@ -37,14 +39,20 @@
 
 namespace credence {
 
+// The level is a request value (a flag, a query parameter): a bad one is the
+// user's to fix. Both tail probabilities must be strictly inside (0, 1) as
+// doubles: a level within about 1e-16 of 1 makes (1 + level)/2 round to 1,
+// whose quantile is infinite.
+void check_interval_level(double level) {
+    if (!(level > 0.0 && level < 1.0 && 0.5 * (1.0 + level) < 1.0 && 0.5 * (1.0 - level) > 0.0))
+        throw OptionError(fmt::format("interval level must be strictly between 0 and 1 (e.g. 0.9) and "
+                                      "(1 + level)/2 must be below 1 in double precision; got {:.17g}",
+                                      level));
+}
+
 namespace {
 
-// The level and n are request values (a flag, a query parameter): a bad one
-// is the user's to fix.
-void check_level(double level) {
-    if (!(level > 0.0 && level < 1.0))
-        throw OptionError("interval level must be strictly between 0 and 1 (e.g. 0.9), got " + std::to_string(level));
-}
+void check_level(double level) { check_interval_level(level); }
 
 double clip(const Posterior& p, double x) {
     return std::clamp(x, static_cast<double>(p.scale.min), static_cast<double>(p.scale.max));

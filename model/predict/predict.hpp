@@ -76,6 +76,11 @@ std::vector<uint32_t> request_candidates(const Posterior& posterior, std::span<c
 // samples, keyed by the draw seed (Rng::keyed(seed, 0, 0, StreamBlock::serve, 0)).
 uint32_t drawn_sample(uint64_t draw_seed, uint32_t samples);
 
+// Checks an interval level: strictly between 0 and 1, with (1 - level)/2 and
+// (1 + level)/2 strictly inside (0, 1) in double precision (so a level within
+// about 1e-16 of 1 is refused). Throws OptionError quoting the level.
+void check_interval_level(double level);
+
 class PredictionEngine {
 public:
     // Needs a non-null posterior that passes Posterior::validate(); throws

@@ -3,7 +3,11 @@
 // bad input handled by clear messages and exit codes.
 #include <catch2/catch.hpp>
 
+#include <sys/wait.h>
+#include <unistd.h>
+
 #include <algorithm>
+#include <chrono>
 #include <filesystem>
 #include <fstream>
 #include <map>
@@ -477,6 +481,33 @@ TEST_CASE("bad input gives an actionable message and a failing exit code") {
         CHECK(r.exit_code == 2);
         CHECK(r.err.find("--holdout") != std::string::npos);
     }
+}
+
+TEST_CASE("fit learns it cannot write --out before sampling, and cleans up after a killed fit") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto dir = scratch_dir("cli-fit-out");
+    // A burn-in that would take minutes: the answer must come before it.
+    const auto start = std::chrono::steady_clock::now();
+    const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --run-length fixed --burn-in 1000000 --out " +
+                                quoted(dir / "missing-dir" / "shop.posterior"));
+    const double seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+    CHECK(r.exit_code == 1);
+    CHECK(r.err.find("missing-dir") != std::string::npos);
+    CHECK(r.err.find("choose another --out") != std::string::npos);
+    CHECK(seconds < 10.0);
+
+    // A temporary file that a killed fit left (its process is gone) is removed and reported.
+    const pid_t child = fork();
+    if (child == 0) _exit(0);
+    waitpid(child, nullptr, 0);
+    const auto stale = dir / (".shop.posterior.tmp-" + std::to_string(child) + "-0");
+    std::ofstream(stale) << std::string(4096, 'x');
+    const auto fit = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --out " +
+                                  quoted(dir / "shop.posterior") + " --rank 2 --run-length fixed --burn-in 4 --samples 4 --chains 1");
+    CHECK(fit.exit_code == 0);
+    CHECK_FALSE(fs::exists(stale));
+    CHECK(fit.err.find("removed " + stale.string() + " (4096 bytes)") != std::string::npos);
 }
 
 TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage") {
