@@ -25,15 +25,18 @@ namespace {
 // Native vector of doubles for the level; a panel is 8 doubles at every level.
 #if CREDENCE_KERNEL_LEVEL == 2
 constexpr int kLanes = 8;
-constexpr int kTileRows = 16;  // accumulators per tile: 16 zmm of 32
+constexpr int kTileRows = 16;       // accumulators per tile: 16 zmm of 32
+constexpr int kFirstTileRows = 16;  // and 2 more for s and t
 const char* const kLevelName = "x86-64-v4";
 #elif CREDENCE_KERNEL_LEVEL == 1
 constexpr int kLanes = 4;
-constexpr int kTileRows = 6;   // 12 ymm of 16
+constexpr int kTileRows = 6;        // 12 ymm of 16
+constexpr int kFirstTileRows = 4;   // 8, and 4 for s and t
 const char* const kLevelName = "x86-64-v3";
 #else
 constexpr int kLanes = 2;
-constexpr int kTileRows = 3;   // 12 xmm of 16
+constexpr int kTileRows = 3;        // 12 xmm of 16
+constexpr int kFirstTileRows = 1;   // 4, and 8 for s and t
 const char* const kLevelName = "x86-64";
 #endif
 constexpr int kPanel = 8;
@@ -45,7 +48,16 @@ typedef double Vec __attribute__((vector_size(kLanes * sizeof(double)), __may_al
 
 CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>(p); }
 CREDENCE_INLINE void store(double* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
-CREDENCE_INLINE Vec splat(double x) { return Vec{} + x; }
+// Every lane x (not Vec{} + x, which must compute 0 + x for x = -0).
+CREDENCE_INLINE Vec splat(double x) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    return reinterpret_cast<Vec>(_mm512_set1_pd(x));
+#elif CREDENCE_KERNEL_LEVEL == 1
+    return reinterpret_cast<Vec>(_mm256_set1_pd(x));
+#else
+    return Vec{x, x};
+#endif
+}
 
 // c + a b where a b is exact in double (both factors float32 values or 1):
 // one rounding, so fused and unfused agree bit for bit.
@@ -70,8 +82,8 @@ struct Scratch {
     double* gram;   // [rank][p] F, lower triangle by panels
     double* s;      // [p] sum x
     double* t;      // [p] sum y x
-    double* a;      // [d][ld] precision, then L in its lower triangle
-    double* u;      // [d][ld] L^T: row j is column j of L
+    double* a;      // [d][ld] precision, then its Cholesky factor U, upper triangles
+    double* u;      // [d][ld] (the first ld hold 1 / U[j][j])
     double* rhs;    // [ld]
     double* c;      // [ld]
     double* w;      // [ld] the stored draw, widened
@@ -98,16 +110,25 @@ Scratch layout(double* base, uint32_t rank) {
 }
 
 // How far ahead the gather prefetches the other side's rows (ratings).
-constexpr uint64_t kPrefetchAhead = 12;
+constexpr uint64_t kPrefetchAhead = 16;
+
+// The row's rank, fixed at compile time for the common ranks (KK > 0) so
+// loops unroll and vectorize without remainders; KK == 0 reads it at run time.
+template <uint32_t KK>
+CREDENCE_INLINE uint32_t rank_of(const SideData& side) {
+    return KK > 0 ? KK : side.rank;
+}
 
 // Gathers ratings [first, first + n) into x (rows of p doubles; columns past
-// rank stay zero) and y.
-void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s) {
-    const uint32_t K = side.rank;
+// rank stay zero) and y; adds the targets to sum_y in rating order.
+template <uint32_t KK>
+void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, double& sum_y) {
+    const uint32_t K = rank_of<KK>(side);
     const float* factors = side.other_factors;
+    const uint64_t prefetch_end = side.nnz > kPrefetchAhead ? side.nnz - kPrefetchAhead : 0;
     for (uint32_t r = 0; r < n; ++r) {
         const uint64_t at = first + r;
-        if (at + kPrefetchAhead < side.nnz) {
+        if (at < prefetch_end) {
             const uint32_t ahead = side.index[at + kPrefetchAhead];
             const float* f = factors + size_t(ahead) * K;
             __builtin_prefetch(f);
@@ -121,158 +142,182 @@ void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s) 
         double target = static_cast<double>(side.value[at]) - side.global_mean;
         if (side.other_bias) target -= static_cast<double>(side.other_bias[other]);
         s.y[r] = target;
+        sum_y += target;
     }
 }
 
-// gram rows [k0, k0 + M) of panel col0 += sum over the n gathered rows of
-// x[k] x[col0 .. col0 + 8), each entry summed in rating order.
-template <int M>
-void tile(const double* x, size_t p, uint32_t n, uint32_t k0, uint32_t col0, double* gram) {
-    Vec acc[M][kPerPanel];
+// gram rows [k0, k0 + M) of the panel at col0 += sum over the n gathered rows
+// of x[k] x[col0 .. col0 + 8), each entry summed in rating order (from zero
+// when `first`). The first tile of a panel (EXTRAS) also sums s += x and
+// t += y x for the panel's columns, t with a separate multiply and add.
+template <int M, bool EXTRAS>
+void tile(const Scratch& s, const double* x, const double* y, uint32_t n, uint32_t k0, uint32_t col0, bool first) {
+    const size_t p = s.p;
+    Vec acc[M][kPerPanel], sums[kPerPanel], cross[kPerPanel];
     for (int i = 0; i < M; ++i)
-        for (int q = 0; q < kPerPanel; ++q) acc[i][q] = load(gram + (k0 + i) * p + col0 + q * kLanes);
+        for (int q = 0; q < kPerPanel; ++q)
+            acc[i][q] = first ? Vec{} : load(s.gram + (k0 + i) * p + col0 + q * kLanes);
+    if constexpr (EXTRAS)
+        for (int q = 0; q < kPerPanel; ++q) {
+            sums[q] = first ? Vec{} : load(s.s + col0 + q * kLanes);
+            cross[q] = first ? Vec{} : load(s.t + col0 + q * kLanes);
+        }
     for (uint32_t r = 0; r < n; ++r) {
         const double* row = x + size_t(r) * p;
+        const double* rows_k = row + k0;
         Vec v[kPerPanel];
         for (int q = 0; q < kPerPanel; ++q) v[q] = load(row + col0 + q * kLanes);
         for (int i = 0; i < M; ++i) {
-            const Vec b = splat(row[k0 + i]);
+            const Vec b = splat(rows_k[i]);
             for (int q = 0; q < kPerPanel; ++q) acc[i][q] = add_exact_product(b, v[q], acc[i][q]);
+        }
+        if constexpr (EXTRAS) {
+            const Vec target = splat(y[r]);
+            for (int q = 0; q < kPerPanel; ++q) {
+                sums[q] = sums[q] + v[q];
+                const Vec product = target * v[q];
+                cross[q] = cross[q] + product;
+            }
         }
     }
     for (int i = 0; i < M; ++i)
-        for (int q = 0; q < kPerPanel; ++q) store(gram + (k0 + i) * p + col0 + q * kLanes, acc[i][q]);
+        for (int q = 0; q < kPerPanel; ++q) store(s.gram + (k0 + i) * p + col0 + q * kLanes, acc[i][q]);
+    if constexpr (EXTRAS)
+        for (int q = 0; q < kPerPanel; ++q) {
+            store(s.s + col0 + q * kLanes, sums[q]);
+            store(s.t + col0 + q * kLanes, cross[q]);
+        }
 }
 
-template <int M>
-void tile_upto(int m, const double* x, size_t p, uint32_t n, uint32_t k0, uint32_t col0, double* gram) {
+template <int M, bool EXTRAS>
+void tile_upto(int m, const Scratch& s, const double* x, const double* y, uint32_t n, uint32_t k0, uint32_t col0,
+               bool first) {
     if constexpr (M > 0) {
-        if (m == M) return tile<M>(x, p, n, k0, col0, gram);
-        return tile_upto<M - 1>(m, x, p, n, k0, col0, gram);
+        if (m == M) return tile<M, EXTRAS>(s, x, y, n, k0, col0, first);
+        return tile_upto<M - 1, EXTRAS>(m, s, x, y, n, k0, col0, first);
     }
 }
 
-// Rows of a tile block that stay in L1 while every tile of it is summed.
+// Rows of a block that stay in L1 while every tile of it is summed.
 constexpr size_t kBlockDoubles = 2048;  // 16 KiB
 
-// Adds n gathered ratings to F (by panels), s, t, sum y.
-void accumulate(const Scratch& s, uint32_t K, uint32_t n, double& sum_y) {
+// Adds n gathered ratings (the first of the row when `first`) to F (by
+// panels), s and t.
+template <uint32_t KK>
+void accumulate(const SideData& side, const Scratch& s, uint32_t n, bool first) {
+    const uint32_t K = rank_of<KK>(side);
     const size_t p = s.p;
     const uint32_t block = static_cast<uint32_t>(kBlockDoubles / p > 8 ? kBlockDoubles / p : 8);
     for (uint32_t r0 = 0; r0 < n; r0 += block) {
         const uint32_t len = n - r0 < block ? n - r0 : block;
         const double* x = s.x + size_t(r0) * p;
-        for (uint32_t col0 = 0; col0 < K; col0 += kPanel)
-            for (uint32_t k0 = col0; k0 < K; k0 += kTileRows) {
+        const double* y = s.y + r0;
+        const bool zero = first && r0 == 0;
+        for (uint32_t col0 = 0; col0 < K; col0 += kPanel) {
+            const int m0 = static_cast<int>(K - col0 < uint32_t(kFirstTileRows) ? K - col0 : kFirstTileRows);
+            tile_upto<kFirstTileRows, true>(m0, s, x, y, len, col0, col0, zero);
+            for (uint32_t k0 = col0 + m0; k0 < K; k0 += kTileRows) {
                 const int m = static_cast<int>(K - k0 < uint32_t(kTileRows) ? K - k0 : kTileRows);
-                tile_upto<kTileRows>(m, x, p, len, k0, col0, s.gram);
+                tile_upto<kTileRows, false>(m, s, x, y, len, k0, col0, zero);
             }
-        // s += x (exact terms, as the bias slot's products with 1); t += y x
-        // with a separate multiply and add (y is a double).
-        for (size_t q = 0; q < p; q += kLanes) {
-            Vec sq = load(s.s + q), tq = load(s.t + q);
-            for (uint32_t r = 0; r < len; ++r) {
-                const Vec v = load(x + size_t(r) * p + q);
-                sq = sq + v;
-                const Vec product = splat(s.y[r0 + r]) * v;
-                tq = tq + product;
-            }
-            store(s.s + q, sq);
-            store(s.t + q, tq);
         }
-        for (uint32_t r = 0; r < len; ++r) sum_y += s.y[r0 + r];
     }
 }
 
-// Sums the row's statistics and forms P (lower triangle into s.a, both
-// triangles into `precision` when given) and rhs. Returns P's smallest diagonal.
-double form_conditional(const SideData& side, uint64_t row, const Scratch& s, double* precision) {
-    const uint32_t K = side.rank, d = K + (side.biases ? 1 : 0);
+// Sums the row's statistics and forms P's upper triangle in s.a (row-major,
+// ld) and rhs. Returns P's smallest diagonal entry.
+template <uint32_t KK, bool BIASES>
+double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
+    const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
     const size_t p = s.p, ld = s.ld;
-    for (size_t i = 0; i < size_t(K) * p; ++i) s.gram[i] = 0.0;
-    for (size_t i = 0; i < p; ++i) s.s[i] = s.t[i] = 0.0;
     double sum_y = 0.0;
     const uint64_t begin = side.offsets[row], end = side.offsets[row + 1];
+    if (begin == end) {  // no ratings: the prior alone (F, s, t are zero)
+        for (size_t i = 0; i < size_t(K) * p; ++i) s.gram[i] = 0.0;
+        for (size_t i = 0; i < p; ++i) s.s[i] = s.t[i] = 0.0;
+    }
     for (uint64_t at = begin; at < end; at += kGatherRows) {
         const uint32_t n = static_cast<uint32_t>(end - at < kGatherRows ? end - at : kGatherRows);
-        gather(side, at, n, s);
-        accumulate(s, K, n, sum_y);
+        gather<KK>(side, at, n, s, sum_y);
+        accumulate<KK>(side, s, n, at == begin);
     }
     const double tau = side.tau, count = static_cast<double>(end - begin);
     double smallest = 0.0;
     for (uint32_t i = 0; i < d; ++i) {
         double* a = s.a + i * ld;
         const double* prior = side.prior_precision + size_t(i) * d;
-        for (uint32_t j = 0; j <= i; ++j) {
-            double data;
-            if (i < K) data = s.gram[size_t(i) * p + j];
-            else data = j < K ? s.s[j] : count;  // the bias row: sum x, then n
-            a[j] = prior[j] + tau * data;
-        }
+        for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * s.gram[size_t(k) * p + i];
+        if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
         s.rhs[i] = side.prior_pm[i] + tau * (i < K ? s.t[i] : sum_y);
         if (i == 0 || a[i] < smallest) smallest = a[i];
     }
-    if (precision)
-        for (uint32_t i = 0; i < d; ++i)
-            for (uint32_t j = 0; j <= i; ++j) precision[size_t(i) * d + j] = precision[size_t(j) * d + i] = s.a[i * ld + j];
     return smallest;
 }
 
 CREDENCE_INLINE bool finite(double v) { return v - v == 0.0; }
 
-// Right-looking Cholesky of the lower triangle of a (row-major, ld): L into
-// a's lower triangle, L^T into u. Every entry is updated in the order of j,
-// as the textbook left-looking sums would (Golub & Van Loan, Matrix
-// Computations, 4th ed., section 4.2). False if a pivot is not positive and finite.
-bool cholesky(double* a, double* u, uint32_t d, size_t ld) {
+// Cholesky P = U^T U of the upper triangle of a (row-major, ld), in place;
+// inv[j] = 1 / U[j][j]. Symmetric elimination first (a[i][k] -= a[j][i]
+// a[j][k] / a[j][j], right-looking, every entry updated in the order of j as
+// the textbook sums would be: Golub & Van Loan, Matrix Computations, 4th
+// ed., sections 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square
+// roots stay off the chain of dependent pivots. Rows are contiguous, so the
+// updates vectorize across entries. False if a pivot is not positive and finite.
+template <uint32_t DD>
+bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
+    const uint32_t d = DD > 0 ? DD : d_runtime;
     for (uint32_t j = 0; j < d; ++j) {
-        const double pivot = a[j * ld + j];
+        const double* uj = a + j * ld;
+        const double pivot = uj[j];
         if (!(pivot > 0.0) || !finite(pivot)) return false;
-        const double l = __builtin_sqrt(pivot);
-        a[j * ld + j] = l;
-        double* uj = u + j * ld;
-        uj[j] = l;
+        const double r = 1.0 / pivot;
         for (uint32_t i = j + 1; i < d; ++i) {
-            const double lij = a[i * ld + j] / l;
-            a[i * ld + j] = lij;
-            uj[i] = lij;
-        }
-        for (uint32_t i = j + 1; i < d; ++i) {
-            const double lij = uj[i];
+            const double f = uj[i] * r;
             double* ai = a + i * ld;
-            for (uint32_t k = j + 1; k <= i; ++k) ai[k] = ai[k] - lij * uj[k];
+            for (uint32_t k = i; k < d; ++k) ai[k] = ai[k] - f * uj[k];
         }
+    }
+    for (uint32_t j = 0; j < d; ++j) {
+        double* uj = a + j * ld;
+        const double l = __builtin_sqrt(uj[j]);
+        const double q = 1.0 / l;
+        inv[j] = q;
+        uj[j] = l;
+        for (uint32_t k = j + 1; k < d; ++k) uj[k] = uj[k] * q;
     }
     return true;
 }
 
-// out = L^-T (L^-1 rhs + z): mean + L^-T z with mean = P^-1 rhs.
-void solve_and_draw(const Scratch& s, uint32_t d, const double* z, double* out) {
+// out = U^-1 (U^-T rhs + z): the mean P^-1 rhs plus U^-1 z, whose covariance
+// is (U^T U)^-1 = P^-1.
+template <uint32_t DD>
+void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* inv, const double* z, double* out) {
+    const uint32_t d = DD > 0 ? DD : d_runtime;
     const size_t ld = s.ld;
     double* c = s.c;
     for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
-    for (uint32_t j = 0; j < d; ++j) {  // L c = rhs, by columns of L (rows of u)
-        const double cj = c[j] / s.u[j * ld + j];
+    for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
+        const double cj = c[j] * inv[j];
         c[j] = cj;
-        const double* uj = s.u + j * ld;
+        const double* uj = s.a + j * ld;
         for (uint32_t i = j + 1; i < d; ++i) c[i] = c[i] - uj[i] * cj;
     }
     for (uint32_t i = 0; i < d; ++i) c[i] = c[i] + z[i];
-    for (uint32_t i = d; i-- > 0;) {  // L^T x = c, by rows of L
-        const double xi = c[i] / s.a[i * ld + i];
+    for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
+        const double xi = c[i] * inv[i];
         out[i] = xi;
-        const double* ai = s.a + i * ld;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - ai[k] * xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - s.a[k * ld + i] * xi;
     }
 }
 
-// Squared residuals of ratings [first, first + n) (gathered in s) with the
-// stored row w (bias in w[K]).
-double residuals(const Scratch& s, uint32_t K, bool biases, uint32_t n) {
+// Squared residuals of n gathered ratings with the stored row w (bias in w[K]).
+template <uint32_t KK, bool BIASES>
+double residuals(const SideData& side, const Scratch& s, uint32_t n) {
+    const uint32_t K = rank_of<KK>(side);
     double sse = 0.0;
     for (uint32_t r = 0; r < n; ++r) {
         const double* x = s.x + size_t(r) * s.p;
-        double prediction = biases ? s.w[K] : 0.0;
+        double prediction = BIASES ? s.w[K] : 0.0;
         for (uint32_t k = 0; k < K; ++k) prediction = prediction + x[k] * s.w[k];
         const double e = s.y[r] - prediction;
         sse = sse + e * e;
@@ -280,22 +325,29 @@ double residuals(const Scratch& s, uint32_t K, bool biases, uint32_t n) {
     return sse;
 }
 
-void conditional(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs) {
+template <uint32_t KK, bool BIASES>
+void conditional_for(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs) {
     const Scratch s = layout(scratch, side.rank);
-    form_conditional(side, row, s, precision);
-    const uint32_t d = side.rank + (side.biases ? 1 : 0);
-    for (uint32_t i = 0; i < d; ++i) rhs[i] = s.rhs[i];
+    form_conditional<KK, BIASES>(side, row, s);
+    const uint32_t d = side.rank + (BIASES ? 1 : 0);
+    for (uint32_t i = 0; i < d; ++i) {
+        rhs[i] = s.rhs[i];
+        for (uint32_t k = i; k < d; ++k) precision[size_t(i) * d + k] = precision[size_t(k) * d + i] = s.a[i * s.ld + k];
+    }
 }
 
-bool draw_row(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor, float* bias,
-              double* sse, double* smallest_diagonal) {
-    const uint32_t K = side.rank, d = K + (side.biases ? 1 : 0);
+template <uint32_t KK, bool BIASES>
+bool draw_row_for(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
+                  float* bias, double* sse, double* smallest_diagonal) {
+    constexpr uint32_t DD = KK > 0 ? KK + (BIASES ? 1 : 0) : 0;
+    const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
     const Scratch s = layout(scratch, K);
-    const double smallest = form_conditional(side, row, s, nullptr);
+    const double smallest = form_conditional<KK, BIASES>(side, row, s);
     double* out = s.spare;
-    bool ok = cholesky(s.a, s.u, d, s.ld);
+    double* inv = s.u;
+    bool ok = cholesky<DD>(s.a, inv, d, s.ld);
     if (ok) {
-        solve_and_draw(s, d, normals, out);
+        solve_and_draw<DD>(s, d, inv, normals, out);
         for (uint32_t i = 0; i < d; ++i) ok = ok && finite(out[i]);
     }
     if (!ok) {
@@ -306,7 +358,7 @@ bool draw_row(const SideData& side, uint64_t row, const double* normals, double*
         factor[k] = static_cast<float>(out[k]);
         s.w[k] = static_cast<double>(factor[k]);
     }
-    if (side.biases) {
+    if (BIASES) {
         *bias = static_cast<float>(out[K]);
         s.w[K] = static_cast<double>(*bias);
     }
@@ -316,17 +368,41 @@ bool draw_row(const SideData& side, uint64_t row, const double* normals, double*
         const uint64_t begin = side.offsets[row], end = side.offsets[row + 1];
         double total = 0.0;
         if (end - begin <= kGatherRows) {
-            total = residuals(s, K, side.biases, static_cast<uint32_t>(end - begin));
+            total = residuals<KK, BIASES>(side, s, static_cast<uint32_t>(end - begin));
         } else {
+            double unused = 0.0;
             for (uint64_t at = begin; at < end; at += kGatherRows) {
                 const uint32_t n = static_cast<uint32_t>(end - at < kGatherRows ? end - at : kGatherRows);
-                gather(side, at, n, s);
-                total = total + residuals(s, K, side.biases, n);
+                gather<KK>(side, at, n, s, unused);
+                total = total + residuals<KK, BIASES>(side, s, n);
             }
         }
         *sse = total;
     }
     return true;
+}
+
+template <uint32_t KK>
+bool draw_row_rank(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
+                   float* bias, double* sse, double* smallest_diagonal) {
+    return side.biases ? draw_row_for<KK, true>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal)
+                       : draw_row_for<KK, false>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+}
+
+bool draw_row(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor, float* bias,
+              double* sse, double* smallest_diagonal) {
+    switch (side.rank) {
+        case 8: return draw_row_rank<8>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        case 16: return draw_row_rank<16>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        case 32: return draw_row_rank<32>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        default: return draw_row_rank<0>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+    }
+}
+
+// The conditional alone (tests compare it between levels): one generic path.
+void conditional(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs) {
+    if (side.biases) conditional_for<0, true>(side, row, scratch, precision, rhs);
+    else conditional_for<0, false>(side, row, scratch, precision, rhs);
 }
 
 }  // namespace
