@@ -79,7 +79,7 @@ constexpr size_t pad8(size_t n) { return (n + 7) / 8 * 8; }
 struct Scratch {
     double* x;      // [kGatherRows][p] gathered factor rows, widened
     double* y;      // [kGatherRows] targets r - g - other bias
-    double* gram;   // [rank][p] F, lower triangle by panels
+    double* gram;   // [rank][p] F, upper triangle by panels
     double* s;      // [p] sum x
     double* t;      // [p] sum y x
     double* a;      // [d][ld] precision, then its Cholesky factor U, upper triangles
@@ -213,11 +213,13 @@ void accumulate(const SideData& side, const Scratch& s, uint32_t n, bool first) 
         const double* x = s.x + size_t(r0) * p;
         const double* y = s.y + r0;
         const bool zero = first && r0 == 0;
+        // The upper triangle: rows [0, min(col0 + 8, K)) of each panel.
         for (uint32_t col0 = 0; col0 < K; col0 += kPanel) {
-            const int m0 = static_cast<int>(K - col0 < uint32_t(kFirstTileRows) ? K - col0 : kFirstTileRows);
-            tile_upto<kFirstTileRows, true>(m0, s, x, y, len, col0, col0, zero);
-            for (uint32_t k0 = col0 + m0; k0 < K; k0 += kTileRows) {
-                const int m = static_cast<int>(K - k0 < uint32_t(kTileRows) ? K - k0 : kTileRows);
+            const uint32_t rows = col0 + kPanel < K ? col0 + kPanel : K;
+            const int m0 = static_cast<int>(rows < uint32_t(kFirstTileRows) ? rows : kFirstTileRows);
+            tile_upto<kFirstTileRows, true>(m0, s, x, y, len, 0, col0, zero);
+            for (uint32_t k0 = m0; k0 < rows; k0 += kTileRows) {
+                const int m = static_cast<int>(rows - k0 < uint32_t(kTileRows) ? rows - k0 : kTileRows);
                 tile_upto<kTileRows, false>(m, s, x, y, len, k0, col0, zero);
             }
         }
@@ -246,7 +248,8 @@ double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
     for (uint32_t i = 0; i < d; ++i) {
         double* a = s.a + i * ld;
         const double* prior = side.prior_precision + size_t(i) * d;
-        for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * s.gram[size_t(k) * p + i];
+        const double* gram = s.gram + size_t(i) * p;
+        for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * gram[k];
         if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
         s.rhs[i] = side.prior_pm[i] + tau * (i < K ? s.t[i] : sum_y);
         if (i == 0 || a[i] < smallest) smallest = a[i];
