@@ -304,7 +304,8 @@ std::vector<Recommendation> PredictionEngine::recommend(uint32_t user, const Rec
     return rank_for_viewer(p, max_item_norm_, known_user(p, user), p.rated_by(user), options);
 }
 
-std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests) const {
+std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests,
+                                                               int threads) const {
     const Posterior& p = *posterior_;
     const size_t count = requests.size();
     std::vector<RecommendAnswer> answers(count);
@@ -337,7 +338,7 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
             screen_alone(p, max_item_norm_, s.plans[k], s.jobs[k]);
         }
     }
-    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared);
+    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads);
     for (size_t k = 0; k < count; ++k) {
         if (!planned[k]) continue;
         try {
