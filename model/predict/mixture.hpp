@@ -1,7 +1,7 @@
 // The posterior predictive mixture of one rating: the equal-weight mixture
 // over kept samples s of Normal(m[s], 1/tau[s]). Used by the prediction
 // engine, population answers, evaluation, comparison and the report.
-// Quantiles are exact (bracket and Newton/bisection; see mixture.cpp).
+// Quantiles are exact (bracket and Halley/Newton/bisection; see mixture.cpp).
 #pragma once
 #include <span>
 

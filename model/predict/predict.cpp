@@ -232,7 +232,11 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
 // server has many threads, so each keeps only a few jobs' buffers, and no
 // large quantile rows ([I][S] floats) between requests.
 struct Scratch {
-    static constexpr size_t kKeptJobs = 4;
+    // Jobs kept between requests: as many as a batch holds (server/config.hpp's
+    // default batch is 16) while their summaries stay small, so a busy lane
+    // does not allocate and fault in fresh pages for every pass.
+    static constexpr size_t kKeptJobs = 16;
+    static constexpr size_t kKeptJobBytes = size_t(4) << 20;
     static constexpr size_t kKeptRowBytes = size_t(8) << 20;
 
     std::vector<Plan> plans;
@@ -242,7 +246,12 @@ struct Scratch {
         if (jobs.size() < n) jobs.resize(n);
     }
     void trim() {
-        if (jobs.size() > kKeptJobs) jobs.resize(kKeptJobs);
+        size_t keep = 0, bytes = 0;
+        for (; keep < jobs.size() && keep < kKeptJobs; ++keep) {
+            bytes += (jobs[keep].sum.capacity() + jobs[keep].magnitude.capacity()) * sizeof(double);
+            if (bytes > kKeptJobBytes) break;
+        }
+        if (jobs.size() > keep) jobs.resize(std::max<size_t>(keep, 1));
         if (plans.size() > kKeptJobs) plans.resize(kKeptJobs);
         for (ScreenJob& job : jobs)
             if (job.rows.capacity() * sizeof(float) > kKeptRowBytes) std::vector<float>().swap(job.rows);

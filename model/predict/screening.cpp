@@ -58,9 +58,12 @@ double job_dot_slack(const Posterior& p, std::span<const double> max_item_norm, 
     return dot;
 }
 
-void reset(ScreenJob& job, size_t count) {
+// Sizes a job's summaries for `count` items; `magnitude` only where the
+// per-sample slack needs it (the grouped path's slack does not).
+void reset(ScreenJob& job, size_t count, bool magnitude = true) {
     job.sum.assign(count, 0.0);
-    job.magnitude.assign(count, 0.0);
+    if (magnitude) job.magnitude.assign(count, 0.0);
+    else job.magnitude.clear();
     if (job.quantiles()) {
         job.sum_sq.assign(count, 0.0);
         job.lo.assign(count, std::numeric_limits<double>::infinity());
@@ -182,7 +185,8 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
     // samples); the rest need every m_s.
     std::vector<ScreenJob*> grouped, per_sample;
     for (ScreenJob* job : jobs) (!job->quantiles() ? grouped : per_sample).push_back(job);
-    for (ScreenJob* job : jobs) reset(*job, I);
+    for (ScreenJob* job : per_sample) reset(*job, I);
+    for (ScreenJob* job : grouped) reset(*job, I, false);
     for (ScreenJob* job : grouped) {
         double user_part = 0.0;  // sum_s (g + b_u,s): the same for every item
         for (uint32_t s = 0; s < S; ++s) user_part += static_cast<double>(p.global_mean) + job->viewer.bias_of(s);
