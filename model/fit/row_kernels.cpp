@@ -249,7 +249,9 @@ double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
         double* a = s.a + i * ld;
         const double* prior = side.prior_precision + size_t(i) * d;
         const double* gram = s.gram + size_t(i) * p;
+        for (uint32_t k = 0; k < i; ++k) a[k] = 0.0;  // the lower part: never a result
         for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * gram[k];
+        for (size_t k = d; k < ld; ++k) a[k] = 0.0;  // padding
         if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
         s.rhs[i] = side.prior_pm[i] + tau * (i < K ? s.t[i] : sum_y);
         if (i == 0 || a[i] < smallest) smallest = a[i];
@@ -269,15 +271,20 @@ CREDENCE_INLINE bool finite(double v) { return v - v == 0.0; }
 template <uint32_t DD>
 bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
     const uint32_t d = DD > 0 ? DD : d_runtime;
+    // Each row update runs over whole 8-double blocks from the one holding
+    // column j + 1 to ld: the extra entries are row i's lower part and
+    // padding, which are never read as results (form_conditional zeroes
+    // them, so they stay finite), and the loops need no remainders.
     for (uint32_t j = 0; j < d; ++j) {
         const double* uj = a + j * ld;
         const double pivot = uj[j];
         if (!(pivot > 0.0) || !finite(pivot)) return false;
         const double r = 1.0 / pivot;
+        const size_t from = (j + 1) / 8 * 8;
         for (uint32_t i = j + 1; i < d; ++i) {
             const double f = uj[i] * r;
             double* ai = a + i * ld;
-            for (uint32_t k = i; k < d; ++k) ai[k] = ai[k] - f * uj[k];
+            for (size_t k = from; k < ld; ++k) ai[k] = ai[k] - f * uj[k];
         }
     }
     for (uint32_t j = 0; j < d; ++j) {
@@ -285,8 +292,8 @@ bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
         const double l = __builtin_sqrt(uj[j]);
         const double q = 1.0 / l;
         inv[j] = q;
+        for (size_t k = j / 8 * 8; k < ld; ++k) uj[k] = uj[k] * q;
         uj[j] = l;
-        for (uint32_t k = j + 1; k < d; ++k) uj[k] = uj[k] * q;
     }
     return true;
 }
