@@ -1,7 +1,8 @@
 // Helper for scripts/bench-serve (not part of the product):
 //   serve_bench_tool model OUT [items rank samples users]  writes a synthetic posterior
-//   serve_bench_tool topn MODEL [requests]                 in-process top-10 timings: one request alone
-//                                                          (p50, p99 ms) and batches of 8 and 16 (ms per pass)
+//   serve_bench_tool topn MODEL [requests [batches]]       in-process top-10 timings: one request alone
+//                                                          (p50, p99 ms) and batches of 8 and 16 (ms per
+//                                                          pass); "batches": batches of 16 only
 //   serve_bench_tool serve CONFIG                          runs the server (when `credence serve` is absent)
 #include <time.h>
 
@@ -34,7 +35,7 @@ double percentile(std::vector<double> v, double q) {
 }
 
 // In-process top-10 by mean: the engine alone, without HTTP.
-int topn(const std::string& path, int requests) {
+int topn(const std::string& path, int requests, bool batch_only) {
     auto posterior = std::make_shared<const credence::Posterior>(credence::read_posterior(path));
     const credence::PredictionEngine engine(posterior);
     const uint32_t users = posterior->num_users;
@@ -42,17 +43,18 @@ int topn(const std::string& path, int requests) {
     options.n = 10;
     std::vector<double> alone_ms;
     const double cpu0 = thread_cpu_ms();
-    for (int r = 0; r < requests; ++r) {
+    for (int r = 0; r < (batch_only ? 1 : requests); ++r) {
         const auto start = std::chrono::steady_clock::now();
         const auto items = engine.recommend(static_cast<uint32_t>(r) % users, options);
         alone_ms.push_back(std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start).count());
         if (items.size() != 10) std::printf("?");
     }
-    const double cpu_per_request = (thread_cpu_ms() - cpu0) / requests;
+    const double cpu_per_request = (thread_cpu_ms() - cpu0) / (batch_only ? 1 : requests);
     std::printf("kernels %s; one request alone: p50 %.3f ms, p99 %.3f ms, %.3f ms CPU (%d requests)\n",
                 credence::cpu_level_description().c_str(), percentile(alone_ms, 0.5), percentile(alone_ms, 0.99),
                 cpu_per_request, requests);
     for (size_t batch : {size_t(8), size_t(16)}) {
+        if (batch_only && batch != 16) continue;
         std::vector<double> pass_ms;
         const double batch_cpu0 = thread_cpu_ms();
         int passes = 0;
@@ -96,7 +98,8 @@ int main(int argc, char** argv) {
                         spec.rank, spec.samples, spec.users, static_cast<unsigned long long>(bytes));
             return 0;
         }
-        if (cmd == "topn" && argc >= 3) return topn(argv[2], argc > 3 ? std::stoi(argv[3]) : 200);
+        if (cmd == "topn" && argc >= 3)
+            return topn(argv[2], argc > 3 ? std::stoi(argv[3]) : 200, argc > 4 && std::string(argv[4]) == "batches");
         if (cmd == "serve" && argc >= 3)
             return credence::server::run_server(credence::server::load_serve_config(argv[2]));
     } catch (const std::exception& e) {
