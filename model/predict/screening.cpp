@@ -197,7 +197,8 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
     const auto tiles = static_cast<int64_t>((I + kTileItems - 1) / kTileItems);
     const int team = threads > 1 && tiles > 1 ? threads : 1;
     // Tiles are independent (each writes only its items' summaries), so the
-    // result is the same for any team.
+    // result is the same for any team. Handed out two at a time: a thread
+    // that gets less of the CPU (a busy machine) takes fewer.
 #pragma omp parallel num_threads(team) reduction(max : largest_bias_abs)
     {
         float dots[kTileItems];
@@ -206,7 +207,7 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
         std::vector<const float*> viewers(grouped.size() * kGroupSamples);
         std::vector<double*> sums(grouped.size());
         const float* slices[kGroupSamples];
-#pragma omp for schedule(static)
+#pragma omp for schedule(dynamic, 2)
         for (int64_t tile_index = 0; tile_index < tiles; ++tile_index) {
             const uint32_t i0 = static_cast<uint32_t>(tile_index) * kTileItems;
             const uint32_t len = std::min(kTileItems, I - i0);
