@@ -53,7 +53,7 @@ const DemoFit& demo_fit() {
         x.ratings = x.dir / "ratings.csv";
         x.model = x.dir / "shop.posterior";
         x.fit = run_credence("fit --ratings " + quoted(x.ratings) + " --scale 1:5 --out " + quoted(x.model) +
-                             " --rank 4 --burn-in 40 --samples 20 --thin 1 --chains 2 --seed 3 --holdout 0.1");
+                             " --rank 4 --run-length fixed --burn-in 40 --samples 20 --thin 1 --chains 2 --seed 3 --holdout 0.1");
         return x;
     }();
     return d;
@@ -184,7 +184,13 @@ TEST_CASE("fit and compare declare the same sampler flags with the same help and
     // FitOptions{} for fit, CompareOptions{}.fit for compare.
     const credence::FitOptions f;
     const credence::FitOptions c = credence::CompareOptions{}.fit;
+    auto length = [](const credence::FitOptions& o) {
+        return std::string(o.run_length == credence::RunLength::converged ? "converged" : "fixed");
+    };
     const std::vector<std::tuple<std::string, std::string, std::string>> expected = {
+        {"--run-length", length(f), length(c)},
+        {"--max-sweeps", shown(f.max_sweeps), shown(c.max_sweeps)},
+        {"--time-limit", "0", "0"},
         {"--burn-in", shown(f.burn_in), shown(c.burn_in)},
         {"--samples", shown(f.samples), shown(c.samples)},
         {"--thin", shown(f.thin), shown(c.thin)},
@@ -231,7 +237,7 @@ TEST_CASE("every sampler flag of fit reaches the sampler") {
     const auto dir = scratch_dir("cli-sampler-flags");
     const auto model = dir / "flags.posterior";
     const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 -q --out " + quoted(model) +
-                                " --rank 3 --burn-in 7 --samples 5 --thin 3 --chains 3 --seed 21 --threads 1"
+                                " --rank 3 --run-length fixed --burn-in 7 --samples 5 --thin 3 --chains 3 --seed 21 --threads 1"
                                 " --no-biases --fixed-noise-precision 3.5 --init-scale 0.25 --prior-beta0 1.5"
                                 " --prior-nu0-minus-rank 2 --prior-w0-scale 0.5 --noise-prior-shape 2.5"
                                 " --noise-prior-rate 0.75 --bias-prior-shape 3 --bias-prior-rate 4");
@@ -569,7 +575,7 @@ TEST_CASE("columns are chosen with --customer-column and --product-column") {
     const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 -q --rejects-path " +
                                 quoted(dir / "rejects.tsv") + " --out " + quoted(model) +
                                 " --customer-column product_sku --product-column 0 --rating-column stars"
-                                " --timestamp-column rated_at --rank 2 --burn-in 4 --samples 4 --chains 2");
+                                " --timestamp-column rated_at --rank 2 --run-length fixed --burn-in 4 --samples 4 --chains 2");
     INFO(r.err);
     REQUIRE(r.exit_code == 0);
     const auto p = credence::read_posterior(model.string());
@@ -599,7 +605,7 @@ TEST_CASE("the same seed gives the same samples with one thread or two") {
     const auto& d = demo_fit();
     REQUIRE(d.fit.exit_code == 0);
     const auto dir = scratch_dir("cli-threads");
-    std::string common = "fit --ratings " + quoted(d.ratings) + " --scale 1:5 --rank 3 --burn-in 5 --samples 3 --chains 2 --seed 9 -q";
+    std::string common = "fit --ratings " + quoted(d.ratings) + " --scale 1:5 --rank 3 --run-length fixed --burn-in 5 --samples 3 --chains 2 --seed 9 -q";
     REQUIRE(run_credence(common + " --threads 1 --out " + quoted(dir / "one.posterior")).exit_code == 0);
     REQUIRE(run_credence(common + " --threads 2 --out " + quoted(dir / "two.posterior")).exit_code == 0);
     const auto a = credence::read_posterior((dir / "one.posterior").string());
@@ -607,4 +613,40 @@ TEST_CASE("the same seed gives the same samples with one thread or two") {
     CHECK(a.user_factors == b.user_factors);
     CHECK(a.item_factors == b.item_factors);
     CHECK(a.noise_precision == b.noise_precision);
+}
+
+TEST_CASE("a fit that runs out of sweeps says which budget to raise, and following that advice converges") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto dir = scratch_dir("cli-advice");
+    // Rank 3 on the small demo shop converges within about a thousand sweeps;
+    // 60 is too few.
+    const std::string common = "fit --ratings " + quoted(d.ratings) + " --scale 1:5 --rank 3 --samples 20 --seed 4 --out " +
+                               quoted(dir / "m.posterior");
+    const auto short_run = run_credence(common + " --max-sweeps 60");
+    INFO(short_run.err);
+    REQUIRE(short_run.exit_code == 0);
+    CHECK(short_run.err.find("convergence: not_converged after 60 sweeps per chain (max_sweeps") != std::string::npos);
+    const auto at = short_run.err.find("rerun with --max-sweeps ");
+    REQUIRE(at != std::string::npos);
+    const uint32_t advised = std::stoul(short_run.err.substr(at + std::string("rerun with --max-sweeps ").size()));
+    CHECK(advised > 60);
+    const auto followed = run_credence(common + " --max-sweeps " + std::to_string(advised));
+    INFO(followed.err);
+    REQUIRE(followed.exit_code == 0);
+    CHECK(followed.err.find("convergence: converged after") != std::string::npos);
+    // The verdict travels with the file.
+    const auto p = credence::read_posterior((dir / "m.posterior").string());
+    CHECK(json::parse(p.diagnostics_json)["verdict"] == "converged");
+}
+
+TEST_CASE("a converged run refuses --burn-in and --thin, which belong to fixed-length runs") {
+    const auto& d = demo_fit();
+    const auto dir = scratch_dir("cli-run-length");
+    const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --out " +
+                                quoted(dir / "m.posterior") + " --burn-in 10");
+    INFO(r.err);
+    CHECK(r.exit_code == 2);
+    CHECK(r.err.find("--burn-in applies to --run-length fixed") != std::string::npos);
+    CHECK_FALSE(fs::exists(dir / "m.posterior"));
 }

@@ -227,6 +227,7 @@ TEST_CASE("same seed gives a bit-identical posterior with 1 and 2 threads") {
     const SimulatedData d = simulate_ratings(so);
     FitOptions o;
     o.rank = 4;
+    o.run_length = RunLength::fixed;
     o.burn_in = 4;
     o.samples = 3;
     o.thin = 2;
@@ -253,6 +254,85 @@ TEST_CASE("same seed gives a bit-identical posterior with 1 and 2 threads") {
     CHECK_FALSE(same(fit_bpmf(d.ratings, o).posterior.user_factors, a.user_factors));
 }
 
+TEST_CASE("a converged run stops at the first checkpoint that meets the targets, the same whatever the threads") {
+    SimulationOptions so;
+    so.users = 300;
+    so.items = 200;
+    so.rank = 2;
+    so.density = 0.1;
+    so.bias_sd = 0.3;
+    so.seed = 5;
+    const SimulatedData d = simulate_ratings(so);
+    // Rank 2 on rank-2 data mixes within a few hundred sweeps; 3 chains on 2
+    // threads make one worker run two chains, on 1 thread all run in turn.
+    FitOptions o;
+    o.rank = 2;
+    o.samples = 20;
+    o.chains = 3;
+    o.seed = 77;
+    o.threads = 1;
+    const FitResult serial = fit_bpmf(d.ratings, o);
+    o.threads = 2;
+    const FitResult parallel = fit_bpmf(d.ratings, o);
+    REQUIRE(serial.stop_reason == StopReason::converged);
+    CHECK(serial.convergence.verdict == "converged");
+    CHECK(serial.convergence.max_rhat <= 1.01);
+    CHECK(std::min(serial.convergence.min_ess_bulk_per_chain, serial.convergence.min_ess_tail_per_chain) >= 100.0);
+    CHECK(parallel.sweeps_per_chain == serial.sweeps_per_chain);
+    CHECK(parallel.posterior.user_factors == serial.posterior.user_factors);
+    CHECK(parallel.posterior.noise_precision == serial.posterior.noise_precision);
+    CHECK(parallel.trace.noise_precision == serial.trace.noise_precision);
+
+    // Checkpoints at 40, 50, 63, ... (a quarter further each time, rounded
+    // up): the run ends on one, and its window is
+    // the last three quarters. Each chain keeps exactly `samples` draws, all from the
+    // window, in sweep order.
+    const uint32_t n = serial.sweeps_per_chain;
+    std::vector<uint32_t> checkpoints{40};
+    while (checkpoints.back() < n) checkpoints.push_back((checkpoints.back() * 5 + 3) / 4);
+    CHECK(checkpoints.back() == n);
+    CHECK(serial.convergence.first_sweep == n / 4);
+    CHECK(serial.convergence.draws_per_chain == n - n / 4);
+    const Posterior& p = serial.posterior;
+    REQUIRE(p.num_samples == 3 * 20);
+    for (uint32_t c = 0; c < 3; ++c) {
+        int64_t last = -1;
+        for (uint32_t k = 0; k < 20; ++k) {
+            const float tau = p.noise_precision[c * 20 + k];
+            // The sweep it came from: the trace holds every sweep of chain c.
+            int64_t found = -1;
+            for (uint32_t j = n / 4; j < n; ++j)
+                if (serial.trace.noise_precision[size_t(c) * n + j] == tau) found = j;
+            INFO("chain " << c << " draw " << k);
+            CHECK(found > last);
+            last = found;
+        }
+    }
+}
+
+TEST_CASE("a spent sweep budget ends the run with advice that names --max-sweeps") {
+    SimulationOptions so;
+    so.users = 300;
+    so.items = 200;
+    so.rank = 2;
+    so.density = 0.1;
+    so.seed = 5;
+    const SimulatedData d = simulate_ratings(so);
+    FitOptions o;
+    o.rank = 2;
+    o.samples = 20;
+    o.max_sweeps = 41;
+    const FitResult r = fit_bpmf(d.ratings, o);
+    CHECK(r.stop_reason == StopReason::max_sweeps);
+    CHECK(r.sweeps_per_chain == 41);
+    REQUIRE(r.convergence.verdict == "not_converged");
+    REQUIRE(r.convergence.advice.size() >= 1);
+    CHECK(r.convergence.advice.front().find("--max-sweeps") != std::string::npos);
+    // Too small a budget for the first checkpoint (2 x samples) is refused.
+    o.max_sweeps = 39;
+    CHECK_THROWS_AS(fit_bpmf(d.ratings, o), OptionError);
+}
+
 TEST_CASE("synthetic recovery: held-out RMSE near the noise floor and calibrated 90% intervals") {
     // Data drawn from the model: 400 customers x 300 products, rank 5, noise sd 0.5.
     // Density 0.5, not 0.3: even an exact posterior adds parameter uncertainty of
@@ -272,6 +352,7 @@ TEST_CASE("synthetic recovery: held-out RMSE near the noise floor and calibrated
     const HoldoutSplit split = split_holdout(d.ratings, 0.1, 17);
     FitOptions o;
     o.rank = 5;
+    o.run_length = RunLength::fixed;
     o.burn_in = 40;
     o.samples = 40;
     o.thin = 1;
@@ -305,12 +386,12 @@ TEST_CASE("fit fills every posterior field, the trace and the metadata") {
     const HoldoutSplit split = split_holdout(d.ratings, 0.2, 1);
     FitOptions o;
     o.rank = 3;
+    o.run_length = RunLength::fixed;
     o.burn_in = 3;
     o.samples = 4;
     o.thin = 2;
     o.chains = 2;
-    std::vector<SweepReport> reports;
-    const FitResult fit = fit_bpmf(split.train, o, &split.test, [&](const SweepReport& r) { reports.push_back(r); });
+    const FitResult fit = fit_bpmf(split.train, o, &split.test);
     const Posterior& p = fit.posterior;
     REQUIRE_NOTHROW(p.validate());
     CHECK(p.num_samples == 8);
@@ -333,22 +414,23 @@ TEST_CASE("fit fills every posterior field, the trace and the metadata") {
     CHECK(p.user_factors[0] != p.user_factors[p.num_users * p.rank]);
 
     const uint32_t sweeps = 3 + 4 * 2;
-    REQUIRE(reports.size() == 2 * sweeps);
     REQUIRE(fit.trace.sweep.size() == 2 * sweeps);
-    int kept = 0;
-    for (size_t j = 0; j < reports.size(); ++j) {
-        CHECK(reports[j].chain == j / sweeps);
-        CHECK(reports[j].sweep == j % sweeps);
-        CHECK(reports[j].validation_rmse > 0.0);
-        CHECK(reports[j].train_rmse == Approx(fit.trace.train_rmse[j]).epsilon(1e-6));
-        kept += reports[j].kept;
+    CHECK(fit.sweeps_per_chain == sweeps);
+    CHECK(fit.stop_reason == StopReason::fixed_length);
+    for (size_t j = 0; j < fit.trace.sweep.size(); ++j) {
+        CHECK(fit.trace.chain[j] == j / sweeps);
+        CHECK(fit.trace.sweep[j] == j % sweeps);
     }
-    CHECK(kept == 8);
-    // Burn-in 3, thin 2: 0-based sweeps 4, 6, 8 and 10 (the last) are kept.
-    CHECK_FALSE(reports[3].kept);
-    CHECK(reports[4].kept);
-    CHECK_FALSE(reports[5].kept);
-    CHECK(reports[10].kept);
+    // Burn-in 3, thin 2: 0-based sweeps 4, 6, 8 and 10 (the last) of each
+    // chain are kept; the kept noise precisions are those of the trace there.
+    for (uint32_t c = 0; c < 2; ++c)
+        for (uint32_t k = 0; k < 4; ++k)
+            CHECK(p.noise_precision[c * 4 + k] == fit.trace.noise_precision[c * sweeps + 4 + 2 * k]);
+    // The convergence figures come from every sweep after burn-in.
+    CHECK(fit.convergence.assessed == "every_sweep");
+    CHECK(fit.convergence.first_sweep == 3);
+    CHECK(fit.convergence.draws_per_chain == 8);
+    CHECK(nlohmann::json::parse(p.diagnostics_json)["assessed"] == "every_sweep");
 
     const auto meta = nlohmann::json::parse(p.fit_metadata_json);
     CHECK(meta["options"]["rank"] == 3);
@@ -374,7 +456,7 @@ TEST_CASE("impossible options are rejected before any work, naming the flag") {
     CHECK_THROWS_WITH(fit_bpmf(d.ratings, FitOptions{.rank = 0}), Catch::Contains("--rank"));
     CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.samples = 0}), OptionError);
     CHECK_THROWS_WITH(fit_bpmf(d.ratings, FitOptions{.samples = 0}), Catch::Contains("--samples"));
-    CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.burn_in = 4'000'000'000u, .samples = 100'000, .thin = 10'000}),
+    CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.run_length = RunLength::fixed, .samples = 100'000, .burn_in = 4'000'000'000u, .thin = 10'000}),
                     OptionError);
     CHECK_THROWS_AS(fit_bpmf(d.ratings, FitOptions{.prior = {.nu0_minus_rank = -1.0}}), OptionError);
 }
@@ -429,6 +511,7 @@ TEST_CASE("a conditional precision that is not positive definite raises NumericE
     const SimulatedData d = simulate_ratings(so);
     FitOptions o;
     o.rank = 2;
+    o.run_length = RunLength::fixed;
     o.burn_in = 2;
     o.samples = 2;
     o.chains = 1;
