@@ -249,7 +249,9 @@ double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
         double* a = s.a + i * ld;
         const double* prior = side.prior_precision + size_t(i) * d;
         const double* gram = s.gram + size_t(i) * p;
-        for (uint32_t k = 0; k < i; ++k) a[k] = 0.0;  // the lower part: never a result
+        // The lower part is never a result; zeroed a vector at a time (the
+        // last store reaches past i, into entries the next loop writes).
+        for (uint32_t k = 0; k < i; k += kLanes) store(a + k, Vec{});
         for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * gram[k];
         for (size_t k = d; k < ld; ++k) a[k] = 0.0;  // padding
         if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
