@@ -18,6 +18,7 @@
 #include "generated/credence_version.hpp"
 #include "generated/openapi_json.hpp"
 #include "model/error.hpp"
+#include "model/math/cpu_level.hpp"
 #include "server/app.hpp"
 #include "server/http_listener.hpp"
 
@@ -194,7 +195,8 @@ int run_server(const ServeOptions& options) {
         return 1;
     }
     std::cout << "listening on http://" << options.host << ":" << port << std::endl;
-    server_log().info("credence {} serving on http://{}:{}", kCredenceVersion, options.host, port);
+    server_log().info("credence {} serving on http://{}:{}; kernels {}", kCredenceVersion, options.host, port,
+                      cpu_level_description());
 
     // Only the signal thread calls server.stop(), and only once the server
     // runs: httplib ignores a stop() that comes before listen starts.

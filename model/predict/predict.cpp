@@ -208,7 +208,11 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
 // server has many threads, so each keeps only a few jobs' buffers, and no
 // large quantile rows ([I][S] floats) between requests.
 struct Scratch {
-    static constexpr size_t kKeptJobs = 4;
+    // Jobs kept between requests: as many as a batch holds (server/config.hpp's
+    // default batch is 16) while their summaries stay small, so a busy lane
+    // does not allocate and fault in fresh pages for every pass.
+    static constexpr size_t kKeptJobs = 16;
+    static constexpr size_t kKeptJobBytes = size_t(4) << 20;
     static constexpr size_t kKeptRowBytes = size_t(8) << 20;
 
     std::vector<Plan> plans;
@@ -218,7 +222,12 @@ struct Scratch {
         if (jobs.size() < n) jobs.resize(n);
     }
     void trim() {
-        if (jobs.size() > kKeptJobs) jobs.resize(kKeptJobs);
+        size_t keep = 0, bytes = 0;
+        for (; keep < jobs.size() && keep < kKeptJobs; ++keep) {
+            bytes += (jobs[keep].sum.capacity() + jobs[keep].magnitude.capacity()) * sizeof(double);
+            if (bytes > kKeptJobBytes) break;
+        }
+        if (jobs.size() > keep) jobs.resize(std::max<size_t>(keep, 1));
         if (plans.size() > kKeptJobs) plans.resize(kKeptJobs);
         for (ScreenJob& job : jobs)
             if (job.rows.capacity() * sizeof(float) > kKeptRowBytes) std::vector<float>().swap(job.rows);
@@ -315,7 +324,8 @@ std::vector<Recommendation> PredictionEngine::recommend(uint32_t user, const Rec
     return rank_for_viewer(p, max_item_norm_, known_user(p, user), p.rated_by(user), options);
 }
 
-std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests) const {
+std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests,
+                                                               int threads) const {
     const Posterior& p = *posterior_;
     const size_t count = requests.size();
     std::vector<RecommendAnswer> answers(count);
@@ -348,7 +358,7 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
             screen_alone(p, max_item_norm_, s.plans[k], s.jobs[k]);
         }
     }
-    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared);
+    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads);
     for (size_t k = 0; k < count; ++k) {
         if (!planned[k]) continue;
         try {

@@ -108,8 +108,10 @@ public:
     // requests[k].options), or holds what it would have thrown. Requests that
     // rank by mean, lower or upper over most of the catalogue share one pass
     // over the item samples, which reads the model from memory once for all
-    // of them. Never throws for a bad request; std::bad_alloc may escape.
-    std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests) const;
+    // of them; `threads` > 1 splits that pass between OpenMP threads (the
+    // answers are the same bits for any value). Never throws for a bad
+    // request; std::bad_alloc may escape.
+    std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests, int threads = 1) const;
 
     // Top-n for a visitor described by per-sample factors and biases (fold-in):
     // visitor_factors is [S][K], visitor_bias is [S] (zeros without biases),

@@ -23,6 +23,7 @@
 #include <nlohmann/json.hpp>
 
 #include "model/assess/compare.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/fit/sampler.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/foldin.hpp"
@@ -32,6 +33,10 @@
 #include "tests/support/server_process.hpp"
 
 using namespace credence::testing;
+using credence::cpu_level_description;
+using credence::cpu_level_name;
+using credence::CpuLevel;
+using credence::detected_cpu_level;
 namespace fs = std::filesystem;
 using nlohmann::json;
 
@@ -146,10 +151,29 @@ TEST_CASE("fit turns a demo export into a posterior file and accounts for every 
     CHECK(meta.at("credence_version") == CREDENCE_PROJECT_VERSION);
 }
 
-TEST_CASE("--version prints exactly the version that CMakeLists.txt declares") {
+TEST_CASE("--version prints exactly the version that CMakeLists.txt declares and the kernels' CPU level") {
     const auto r = run_credence("--version");
     CHECK(r.exit_code == 0);
-    CHECK(r.out == std::string("credence ") + CREDENCE_PROJECT_VERSION + "\n");
+    const std::string level = cpu_level_description();
+    CHECK(r.out == std::string("credence ") + CREDENCE_PROJECT_VERSION + "\nkernels: " + level + "\n");
+}
+
+TEST_CASE("CREDENCE_CPU_LEVEL lowers the kernels' level, and a level the CPU cannot run is a usage error") {
+    const auto baseline = run_credence_with_env("CREDENCE_CPU_LEVEL=x86-64", "--version");
+    CHECK(baseline.exit_code == 0);
+    const std::string detected = cpu_level_name(detected_cpu_level());
+    const std::string expected = detected_cpu_level() == CpuLevel::baseline
+                                     ? "kernels: x86-64 (detected x86-64)"
+                                     : "kernels: x86-64 (detected " + detected + ", capped by CREDENCE_CPU_LEVEL)";
+    CHECK(baseline.out.find(expected) != std::string::npos);
+    const auto unknown = run_credence_with_env("CREDENCE_CPU_LEVEL=x86-64-v9", "--version");
+    CHECK(unknown.exit_code == 2);
+    CHECK(unknown.err.find("CREDENCE_CPU_LEVEL='x86-64-v9' names no CPU level") != std::string::npos);
+    if (detected_cpu_level() < CpuLevel::v4) {
+        const auto above = run_credence_with_env("CREDENCE_CPU_LEVEL=x86-64-v4", "--version");
+        CHECK(above.exit_code == 2);
+        CHECK(above.err.find("is above what this CPU runs") != std::string::npos);
+    }
 }
 
 TEST_CASE("fit and compare declare the same sampler flags with the same help and their own defaults") {

@@ -11,6 +11,7 @@
 #include <set>
 #include <sstream>
 
+#include "model/math/cpu_level.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/foldin.hpp"
 #include "model/predict/predict.hpp"
@@ -529,4 +530,11 @@ TEST_CASE("every route and status the server answered is described in openapi.js
     }
     // Each route answered at least once when the whole file runs.
     CHECK(checked > 0);
+}
+
+TEST_CASE("the server's start-up log names the CPU level its kernels run at") {
+    auto& f = fixture();
+    const std::string log = f.server->log();
+    INFO(log);
+    CHECK(log.find("kernels " + credence::cpu_level_description()) != std::string::npos);
 }
