@@ -17,6 +17,7 @@
 #include "generated/openapi_json.hpp"
 #include "model/error.hpp"
 #include "server/app.hpp"
+#include "server/logging.hpp"
 
 namespace credence::server {
 
@@ -71,6 +72,7 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
 }
 
 int run_server(const ServeOptions& options) {
+    use_json_logs(options.log_json);
     AppContext ctx;
     ctx.options = options;
     try {
