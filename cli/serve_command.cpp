@@ -40,8 +40,7 @@ void add_key_flag(CLI::App& cmd, const std::string& flag, std::optional<T>& valu
 Runner add_serve_command(CLI::App& app) {
     auto f = std::make_shared<ServeFlags>();
     CLI::App* cmd = app.add_subcommand("serve", "Serve a posterior file over HTTP (JSON under /v1, metrics at /metrics)");
-    cmd->add_option("--config,-c", f->config, "TOML config file (see config/credence.toml); flags override it")
-        ->check(CLI::ExistingFile);
+    cmd->add_option("--config,-c", f->config, "TOML config file (see config/credence.toml); flags override it");
     add_key_flag(*cmd, "--model,-m", f->model, "model");
     add_key_flag(*cmd, "--host", f->host, "host");
     add_key_flag(*cmd, "--port,-p", f->port, "port");

@@ -145,6 +145,9 @@ std::string serve_config_value(const ServeConfigKey& key, const ServeOptions& op
 }
 
 ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base) {
+    // A file that cannot be read is a file problem, not a mistake in it.
+    if (!std::ifstream(toml_path))
+        throw FileError("cannot read config file " + toml_path + "; check the path and its permissions");
     toml::table root;
     try {
         root = toml::parse_file(toml_path);

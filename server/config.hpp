@@ -60,8 +60,9 @@ const ServeConfigKey& serve_config_key(std::string_view name);
 std::string serve_config_value(const ServeConfigKey& key, const ServeOptions& options);
 
 // Reads the [serve] table of a TOML file over `base` (keys absent from the
-// file keep base's values). Throws OptionError naming the file and key for a
-// TOML syntax error, an unknown key, a wrong type or an out-of-range value.
+// file keep base's values). Throws FileError if the file cannot be opened,
+// OptionError naming the file and key for a TOML syntax error, an unknown
+// key, a wrong type or an out-of-range value.
 ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base = {});
 
 // Checks every key's value against the table, whether it came from the file,

@@ -104,6 +104,24 @@ std::string shown(const T& value) {
     return s.str();
 }
 
+// The subcommands `credence --help` lists, in its order.
+std::vector<std::string> subcommands_from_help() {
+    const auto help = run_credence("--help");
+    REQUIRE(help.exit_code == 0);
+    std::vector<std::string> names;
+    std::istringstream in(help.out);
+    std::string line;
+    while (std::getline(in, line) && line != "Subcommands:") {}
+    while (std::getline(in, line) && !line.empty()) {
+        std::istringstream words(line);
+        std::string name;
+        words >> name;
+        names.push_back(name);
+    }
+    REQUIRE(!names.empty());
+    return names;
+}
+
 size_t count_lines(const fs::path& p) {
     std::ifstream in(p);
     size_t n = 0;
@@ -521,6 +539,39 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
         CHECK(unwritable.exit_code == 1);
         CHECK(unwritable.err.find("could not write") != std::string::npos);
         CHECK(unwritable.err.find("r.html") != std::string::npos);
+    }
+    SECTION("a file that is missing or cannot be written exits 1 for every subcommand, and names it") {
+        const std::string missing_model = quoted(dir / "missing.posterior");
+        const std::string missing_ratings = quoted(dir / "missing.csv");
+        // Each subcommand's command line, and the file its message must name.
+        const std::map<std::string, std::pair<std::string, std::string>> commands = {
+            {"fit", {"fit --ratings " + missing_ratings + " --out " + quoted(dir / "never.posterior"), "missing.csv"}},
+            {"evaluate", {"evaluate --model " + missing_model + " --ratings " + ratings, "missing.posterior"}},
+            {"predict", {"predict --model " + missing_model + " --user c-00007 --item tea-0001", "missing.posterior"}},
+            {"recommend", {"recommend --model " + missing_model + " --user c-00007", "missing.posterior"}},
+            {"inspect", {"inspect " + missing_model, "missing.posterior"}},
+            {"serve", {"serve --config " + quoted(dir / "missing.toml") + " --model " + model, "missing.toml"}},
+            {"demo-data", {"demo-data --out-dir " + quoted(dir / "a-file.csv" / "shop"), "a-file.csv"}},
+            {"compare", {"compare --ratings " + missing_ratings, "missing.csv"}},
+            {"report", {"report " + missing_model + " --out " + quoted(dir / "never.html"), "missing.posterior"}},
+        };
+        std::ofstream(dir / "a-file.csv") << "customer,sku,stars\n";  // not a folder to write into
+        for (const auto& sub : subcommands_from_help()) {
+            INFO(sub);
+            REQUIRE(commands.count(sub) == 1);  // every subcommand is covered
+            const auto& [command, named] = commands.at(sub);
+            const auto r = run_credence(command);
+            INFO(r.err);
+            CHECK(r.exit_code == 1);
+            CHECK(r.err.find(named) != std::string::npos);
+        }
+        // Served: a model that cannot be read stops serve with 1 too.
+        const auto serve = run_credence("serve --port 0 --model " + missing_model);
+        INFO(serve.err);
+        CHECK(serve.exit_code == 1);
+        CHECK(serve.err.find("missing.posterior") != std::string::npos);
+        CHECK_FALSE(fs::exists(dir / "never.posterior"));
+        CHECK_FALSE(fs::exists(dir / "never.html"));
     }
     SECTION("--help and --version exit 0 and print to stdout") {
         const auto help = run_credence("--help");
