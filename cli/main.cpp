@@ -93,7 +93,9 @@ int main(int argc, char** argv) {
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
     app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion);
-    app.footer("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).");
+    const std::string exit_codes =
+        "Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).";
+    app.footer(exit_codes);
 
     std::map<CLI::App*, credence::cli::Runner> runners;
     auto add = [&](credence::cli::Runner (*adder)(CLI::App&)) {
@@ -111,6 +113,10 @@ int main(int argc, char** argv) {
     add(credence::cli::add_demo_data_command);
     add(credence::cli::add_compare_command);
     add(credence::cli::add_report_command);
+    // Every subcommand's help, and so its man page, ends with the exit codes
+    // (subcommands start with the footer above; one with its own gets both).
+    for (CLI::App* sub : app.get_subcommands({}))
+        if (sub->get_footer() != exit_codes) sub->footer(sub->get_footer() + "\n\n" + exit_codes);
 
     try {
         app.parse(argc, argv);
