@@ -14,11 +14,14 @@ packages=(
   libtomlplusplus-dev    # config file
   libxxhash-dev          # checksums and data fingerprints
   libomp-dev             # OpenMP (GCC's libgomp comes with g++)
+  help2man               # man pages, written from --help at build time
+  file                   # cpack -G DEB: finds the programs whose libraries become Depends
 )
 # Only the tests and benchmarks need these (scipy is the outside reference for
-# distribution checks; chromium renders the report; wrk drives the serve bench).
+# distribution checks; chromium renders the report; wrk drives the serve bench;
+# lintian checks the Debian package).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium python3 python3-scipy python3-numpy)
+  packages+=(wrk chromium python3 python3-scipy python3-numpy lintian)
 fi
 
 missing=()
