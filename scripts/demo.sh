@@ -23,22 +23,27 @@ shown() { if [[ "$1" == "$here"/* ]]; then echo "${1#"$here"/}"; else echo "$1";
 b="$(shown "$bin")"
 m="$(shown "$work/shop.posterior")"
 
+# From here on the commands are the ones README.md shows (and its test runs):
+# `credence` is the program just built, paths are relative to the source tree.
+cd "$root"
+credence() { "$bin" "$@"; }
+
 echo; echo "== 1. The shop's ratings export"
-"$bin" demo-data --out-dir "$work"
-head -4 "$work/ratings.csv"
+credence demo-data --out-dir demo-data
+head -4 demo-data/ratings.csv
 
 echo; echo "== 2. Fit (Gibbs sampling; rejected rows go to a rejects file, nothing is dropped silently)"
-"$bin" fit --ratings "$work/ratings.csv" --scale 1:5 --out "$work/shop.posterior" --rank 8 --holdout 0.1 --seed 7
+credence fit --ratings demo-data/ratings.csv --scale 1:5 --out demo-data/shop.posterior --rank 8 --holdout 0.1 --seed 7
 
 echo; echo "== 3. What the file holds"
-"$bin" inspect "$work/shop.posterior"
+credence inspect demo-data/shop.posterior
 
 echo; echo "== 4. One prediction with its uncertainty"
-"$bin" predict --model "$work/shop.posterior" --user c-00042 --item tea-0001
+credence predict --model demo-data/shop.posterior --user c-00042 --item tea-0001
 
 echo; echo "== 5. Top 5 for customer c-00042: by mean, and cautiously by the lower bound"
-"$bin" recommend --model "$work/shop.posterior" --user c-00042 -n 5
-"$bin" recommend --model "$work/shop.posterior" --user c-00042 -n 5 --rank-by lower
+credence recommend --model demo-data/shop.posterior --user c-00042 -n 5
+credence recommend --model demo-data/shop.posterior --user c-00042 -n 5 --rank-by lower
 
 version="$("$bin" --version | cut -d' ' -f2)"
 deb="credence_${version}_$(dpkg --print-architecture).deb"
@@ -56,4 +61,4 @@ next "scripts/test.sh" "the test suite (installs the test tools, builds the test
 
 if [[ "${CREDENCE_DEMO_NO_SERVE:-0}" == 1 ]]; then exit 0; fi
 echo; echo "== 6. Serving on http://127.0.0.1:$port (Ctrl-C stops it; the curl line above asks it for a top 5)"
-exec "$bin" serve --model "$work/shop.posterior" --port "$port"
+exec "$bin" serve --model demo-data/shop.posterior --port "$port"

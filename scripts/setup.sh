@@ -19,9 +19,10 @@ packages=(
 )
 # Only the tests and benchmarks need these (scipy is the outside reference for
 # distribution checks; chromium renders the report; wrk drives the serve bench;
-# lintian checks the Debian package).
+# lintian checks the Debian package; prometheus brings promtool, which checks
+# the example alert rules).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium python3 python3-scipy python3-numpy lintian)
+  packages+=(wrk chromium python3 python3-scipy python3-numpy lintian prometheus)
 fi
 
 missing=()
