@@ -23,6 +23,7 @@
 
 #include "cli/commands.hpp"
 #include "generated/credence_version.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/error.hpp"
 
 namespace {
@@ -92,7 +93,16 @@ int run_reporting_errors(const std::string& command, const credence::cli::Runner
 int main(int argc, char** argv) {
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
-    app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion);
+    // The kernels' CPU level is settled before anything runs: a bad
+    // CREDENCE_CPU_LEVEL is a usage error, and --version names the level.
+    std::string cpu_level;
+    try {
+        cpu_level = credence::cpu_level_description();
+    } catch (const credence::OptionError& e) {
+        std::cerr << "credence: " << e.what() << "\n";
+        return kExitUsage;
+    }
+    app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion + "\nkernels: " + cpu_level);
     const std::string exit_codes =
         "Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).";
     app.footer(exit_codes);

@@ -1,5 +1,6 @@
 // credence report: one self-contained HTML file about a fitted model
 // (report/html_report.hpp).
+#include <filesystem>
 #include <fstream>
 #include <iostream>
 #include <memory>
@@ -33,7 +34,8 @@ int run_report(const ReportFlags& f) {
     auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
     report::ReportInputs in;
     in.posterior = posterior.get();
-    in.model_name = f.model;
+    // The file's name only: a report travels, and names no path on this machine.
+    in.model_name = std::filesystem::path(f.model).filename().string();
     if (!f.validation.empty()) {
         IngestOptions io;
         io.path = f.validation;

@@ -19,6 +19,29 @@ namespace credence::report {
 
 namespace {
 
+// The report names no customer: a probe pair (a rated customer-product
+// pair) is shown by its number among the probes.
+std::string probe_name(const ConvergenceSummary& conv, const QuantityConvergence& q) {
+    int k = 0;
+    for (const QuantityConvergence& other : conv.quantities) {
+        if (other.quantity != "prediction") continue;
+        ++k;
+        if (&other == &q) break;
+    }
+    return fmt::format("probe pair {}", k);
+}
+
+// A warning with every probe's label replaced by its number.
+std::string without_ids(const ConvergenceSummary& conv, std::string text) {
+    for (const QuantityConvergence& q : conv.quantities) {
+        if (q.quantity != "prediction") continue;
+        const std::string from = q.label(), to = probe_name(conv, q);
+        for (size_t at = text.find(from); at != std::string::npos; at = text.find(from, at + to.size()))
+            text.replace(at, from.size(), to);
+    }
+    return text;
+}
+
 std::string fixed(double v, int digits) {
     return std::isfinite(v) ? fmt::format("{:.{}f}", v, digits) : std::string("&ndash;");
 }
@@ -114,7 +137,10 @@ std::string sweep_traces(const nlohmann::json& meta) {
     std::vector<double> rmse;
     if (trace.contains("train_rmse")) rmse = trace["train_rmse"].get<std::vector<double>>();
     double burn_in = -1;
-    if (meta.contains("options") && meta["options"].contains("burn_in")) burn_in = meta["options"]["burn_in"].get<double>();
+    if (meta.contains("run_length") && meta["run_length"].contains("burn_in"))
+        burn_in = meta["run_length"]["burn_in"].get<double>();
+    else if (meta.contains("options") && meta["options"].contains("burn_in"))
+        burn_in = meta["options"]["burn_in"].get<double>();
     o += "<p class=\"note\">Every sweep of every chain, burn-in included. Chains that started apart and now "
          "overlap, with no drift after the dashed line, have forgotten their starting points.</p><div class=\"grid\">";
     auto plot = [&](const std::vector<double>& values, const std::string& id, const std::string& title,
@@ -167,7 +193,7 @@ std::string probe_traces(const ReportInputs& in, const ConvergenceSummary& conv)
         std::vector<Series> series;
         for (auto& [c, s] : by_chain) series.push_back(std::move(s));
         PlotSpec spec = make_spec(fmt::format("trace-probe-{}", drawn + 1),
-                                  fmt::format("{} \xe2\x86\x92 {}", q.user_id, q.item_id),
+                                  probe_name(conv, q),
                                   "kept sample within chain (count)", "predicted rating (rating units)");
         spec.note = "R-hat " + fixed(q.stats.rhat, 3);
         spec.width_px = 342;
@@ -185,12 +211,17 @@ std::string probe_traces(const ReportInputs& in, const ConvergenceSummary& conv)
 std::string convergence_table(const ConvergenceSummary& conv) {
     std::string o = "<section id=\"convergence\"><h2>Convergence: R-hat and effective sample size</h2>";
     o += fmt::format("<p class=\"note\">Rank-normalized split R-hat and bulk / tail ESS (Vehtari, Gelman, Simpson, "
-                     "Carpenter &amp; B\xc3\xbcrkner 2021) over {} chains of {} draws. Flagged rows exceed R-hat {:g} "
-                     "or fall under {:g} effective draws per chain.</p>",
-                     conv.num_chains, conv.draws_per_chain, conv.options.max_rhat, conv.options.min_ess_per_chain);
-    if (!conv.warnings.empty()) {
+                     "Carpenter &amp; B\xc3\xbcrkner 2021) over {} chains of {} draws ({}). Flagged rows exceed "
+                     "R-hat {:g} or fall under {:g} effective draws per chain.</p>",
+                     conv.num_chains, conv.draws_per_chain,
+                     conv.assessed == "every_sweep"
+                         ? fmt::format("every sweep from sweep {} on, as the sampler recorded them", conv.first_sweep)
+                         : std::string("the kept samples"),
+                     conv.options.max_rhat, conv.options.min_ess_per_chain);
+    if (!conv.warnings.empty() || !conv.advice.empty()) {
         o += "<ul class=\"warnings\">";
-        for (const auto& w : conv.warnings) o += "<li>" + escape_xml(w) + "</li>";
+        for (const auto& w : conv.warnings) o += "<li>" + escape_xml(without_ids(conv, w)) + "</li>";
+        for (const auto& a : conv.advice) o += "<li>Advice: " + escape_xml(without_ids(conv, a)) + "</li>";
         o += "</ul>";
     }
     const double chains = std::max<double>(1, conv.num_chains);
@@ -205,7 +236,7 @@ std::string convergence_table(const ConvergenceSummary& conv) {
             auto cell = [](bool bad, const std::string& text) {
                 return fmt::format("<td{}>{}</td>", bad ? " class=\"bad\"" : "", text);
             };
-            const std::string name = predictions ? q.user_id + " \xe2\x86\x92 " + q.item_id : q.label();
+            const std::string name = predictions ? probe_name(conv, q) : q.label();
             t += "<tr><td>" + escape_xml(name) + "</td>" +
                  cell(std::isfinite(st.rhat) && st.rhat > conv.options.max_rhat, fixed(st.rhat, 3)) +
                  cell(std::isfinite(st.ess_bulk) && st.ess_bulk < min_ess, fixed(st.ess_bulk, 0)) +
@@ -409,7 +440,7 @@ std::string render_html_report(const ReportInputs& in) {
     if (!in.posterior) throw std::invalid_argument("render_html_report: no posterior given");
     const Posterior& p = *in.posterior;
     const nlohmann::json meta = parse_or_empty(p.fit_metadata_json);
-    const ConvergenceSummary conv = summarize_convergence(p);
+    const ConvergenceSummary conv = stored_or_recomputed_convergence(p);
 
     std::string html = "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">\n";
     html += "<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; style-src 'unsafe-inline'\">\n";

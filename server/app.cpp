@@ -113,11 +113,13 @@ void write_error_problem(httplib::Response& res, const httplib::Request& req, co
 }  // namespace
 
 httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHandler handler) {
-    return [&ctx, route = std::move(route), handler = std::move(handler)](const httplib::Request& req,
-                                                                          httplib::Response& res) {
+    const uint8_t needed = route_permission(route);
+    return [&ctx, needed, route = std::move(route), handler = std::move(handler)](const httplib::Request& req,
+                                                                                  httplib::Response& res) {
         const auto start = std::chrono::steady_clock::now();
         ctx.metrics.request_started();
         try {
+            ctx.access.check(req, res, needed);
             handler(req, res);
         } catch (const HttpProblem& p) {
             write_problem(res, p, req.target);
@@ -162,9 +164,13 @@ uint32_t query_count(const httplib::Request& req, const char* name, uint32_t fal
 }
 
 namespace {
+// The model's rule (check_interval_level), answered as a 400 naming the text sent.
 double check_level(double level, const std::string& shown) {
-    if (!(level > 0.0 && level < 1.0))
-        throw bad_request("interval level must be strictly between 0 and 1 (e.g. 0.9), got " + shown);
+    try {
+        check_interval_level(level);
+    } catch (const OptionError& e) {
+        throw bad_request(std::string(e.what()) + " (sent as " + shown + ")");
+    }
     return level;
 }
 }  // namespace
@@ -216,6 +222,8 @@ const char* rank_by_name(RankBy rank_by) {
 }
 
 nlohmann::json parse_json_body(const httplib::Request& req) {
+    if (req.body.empty())
+        throw bad_json("this route needs a JSON object as the request body (Content-Type: application/json)");
     nlohmann::json body = nlohmann::json::parse(req.body, nullptr, /*allow_exceptions=*/false);
     if (body.is_discarded())
         throw bad_json("the request body is not valid JSON; send a JSON object with Content-Type: application/json");

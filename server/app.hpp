@@ -16,6 +16,7 @@
 #include <spdlog/logger.h>
 
 #include "model/predict/predict.hpp"
+#include "server/access.hpp"
 #include "server/metrics.hpp"
 #include "server/model_slot.hpp"
 #include "server/problem.hpp"
@@ -26,6 +27,7 @@ namespace credence::server {
 struct AppContext {
     ServeOptions options;
     std::string admin_token;  // empty: admin routes are disabled (403)
+    AccessPolicy access;      // API tokens and what each route needs (configured before serving)
     ModelSlot slot;
     Metrics metrics;
     std::mutex reload_mutex;  // one reload at a time
@@ -45,8 +47,9 @@ spdlog::logger& server_log();
 
 using RouteHandler = std::function<void(const httplib::Request&, httplib::Response&)>;
 
-// Wraps a handler with metrics, the access log and error mapping
-// (model/error.hpp's taxonomy in HTTP terms):
+// Wraps a handler with the access check (route_permission(route) in
+// server/access.hpp: 401/403 before the handler runs), metrics, the access
+// log and error mapping (model/error.hpp's taxonomy in HTTP terms):
 //   HttpProblem            its own problem response;
 //   credence::OptionError  400 bad-parameter, the message as detail;
 //   credence::DataError    400 bad-data, the message as detail;
@@ -55,7 +58,8 @@ using RouteHandler = std::function<void(const httplib::Request&, httplib::Respon
 //   other credence::Error, std::logic_error (a bug) and anything else:
 //                          500 internal.
 // The 500 and 503 answers carry no internals (no message, no path); the
-// service log gets the message. `route` is the pattern logged and counted.
+// service log gets the message. `route` is the pattern logged and counted;
+// throws std::out_of_range (a bug) when it has no entry in the permission table.
 httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHandler handler);
 
 // Route groups (one file each).

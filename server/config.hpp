@@ -18,9 +18,19 @@ struct ServeOptions {
     std::string host = "127.0.0.1";              // loopback unless told otherwise
     uint16_t port = 8080;                        // 0 binds an ephemeral port (reported on stdout)
     uint32_t threads = 0;                        // worker threads (one per open connection); 0 = max(16, 4 x hardware threads)
-    uint64_t body_limit_bytes = 8u << 20;        // larger request bodies get 413
-    uint32_t read_timeout_ms = 5000;
+    uint64_t body_limit_bytes = 8u << 20;        // larger request bodies get 413 (Content-Length or chunked)
+    uint32_t read_timeout_ms = 5000;             // longest pause between a request's bytes
     uint32_t write_timeout_ms = 5000;
+    uint32_t request_deadline_ms = 10000;        // a request's head and body must arrive within this
+    uint32_t keep_alive_timeout_ms = 5000;       // an idle connection is closed after this
+    uint32_t keep_alive_max_requests = 100;      // requests per connection
+    uint32_t connection_limit = 256;             // open connections; the next gets 503 at once
+    uint32_t listen_backlog = 1024;              // connections the kernel queues before accept
+    uint64_t header_line_limit_bytes = 8192;     // request line or header line (431/414 beyond)
+    uint32_t header_count_limit = 100;           // header lines per request (431 beyond)
+    std::string read_auth = "auto";              // auto | required | off: API tokens for the read routes
+    std::string api_tokens_file;                 // named API tokens with their permissions (server/access.hpp)
+    std::string metrics_access = "token";        // token | open: who may read /metrics
     std::string admin_token_file;                // file holding the bearer token for /v1/admin/*
     std::string admin_token_env = "CREDENCE_ADMIN_TOKEN";  // env var consulted when no file is set
     std::string model_dir;                       // reload may name files only inside this directory
@@ -45,6 +55,7 @@ struct ServeConfigKey {
     uint64_t max = 0;
     std::string_view doc;
     std::string_view if_empty;    // strings only: when set, an empty value is refused with this advice
+    std::string_view choices;     // strings only: when set, the allowed values separated by '|'
 };
 
 // Every [serve] key, in the order config/credence.toml documents them. The
@@ -67,7 +78,7 @@ ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base =
 
 // Checks every key's value against the table, whether it came from the file,
 // a flag or the defaults: integers within their range, required strings
-// (model, host) not empty. Throws OptionError naming the key, its range and
+// (model, host) not empty, strings with choices one of them. Throws OptionError naming the key, its range and
 // what it sets.
 void validate_serve_options(const ServeOptions& options);
 

@@ -303,6 +303,7 @@ private:
                 case '\n': line_ += "\\n"; break;
                 case '\r': line_ += "\\r"; break;
                 case '\\': line_ += "\\\\"; break;
+                case '\0': line_ += "\\0"; break;
                 default: line_ += c;
             }
         }
@@ -399,7 +400,9 @@ private:
     std::optional<size_t> resolve(const std::string& spec, const ColumnRole& role, const std::vector<std::string>& first,
                                   bool has_header, size_t fallback_index, std::vector<size_t>& taken,
                                   uint64_t line) const;
-    void take_row(const std::vector<std::string_view>& fields, std::string_view raw, uint64_t line, CsvProblem problem);
+    void take_row(const CsvRecord& record);
+    void check_encoding(std::string_view sample) const;
+    void clear_stale_rejects();
     void reject(uint64_t line, const std::string& reason, std::string_view raw);
     void merge_and_sort(std::vector<Rating>& ratings, std::vector<double> timestamps);
 
@@ -518,45 +521,59 @@ void Ingest::reject(uint64_t line, const std::string& reason, std::string_view r
     }
 }
 
-void Ingest::take_row(const std::vector<std::string_view>& fields, std::string_view raw, uint64_t line,
-                      CsvProblem problem) {
+void Ingest::take_row(const CsvRecord& record) {
+    const auto& fields = record.fields;
+    const std::string_view raw = record.raw;
+    const uint64_t line = record.line;
+    const uint64_t lines = record.end_line - record.line + 1;
     ++summary_.rows_read;
-    if (problem != CsvProblem::none) return reject(line, describe(problem), raw);
+    summary_.row_lines += lines;
+    // A rejected row over several lines names them all, and counts them.
+    const std::string span = lines > 1 ? fmt::format(" (lines {}-{})", record.line, record.end_line) : std::string();
+    auto reject_row = [&](const std::string& reason) {
+        summary_.rejected_lines += lines;
+        reject(line, reason + span, raw);
+    };
+    if (record.problem != CsvProblem::none) return reject_row(describe(record.problem));
     if (fields.size() != expected_fields_)
-        return reject(line, fmt::format("expected {} fields, found {}", expected_fields_, fields.size()), raw);
+        return reject_row(fmt::format("expected {} fields, found {}", expected_fields_, fields.size()));
     const auto user = trim(fields[columns_.user]);
-    if (user.empty()) return reject(line, "empty user id", raw);
+    if (user.empty()) return reject_row("empty user id");
     const auto item = trim(fields[columns_.item]);
-    if (item.empty()) return reject(line, "empty item id", raw);
+    if (item.empty()) return reject_row("empty item id");
+    // An id never holds a line break or a quote: such a field is a stray
+    // quote swallowing the lines after it.
+    for (const auto& [what, id] : {std::pair{"user", user}, std::pair{"item", item}}) {
+        if (id.find_first_of("\r\n") != std::string_view::npos)
+            return reject_row(fmt::format("{} id holds a line break (a stray quote?)", what));
+        if (id.find('"') != std::string_view::npos)
+            return reject_row(fmt::format("{} id holds a double quote (a stray quote?)", what));
+        if (id.find('\0') != std::string_view::npos) return reject_row(fmt::format("{} id holds a NUL byte", what));
+    }
     const auto rating_text = trim(fields[columns_.rating]);
-    if (rating_text.empty()) return reject(line, "empty rating", raw);
+    if (rating_text.empty()) return reject_row("empty rating");
     const auto rating = parse_number(rating_text);
     if (!rating) {
         std::string with_point(rating_text);
         std::replace(with_point.begin(), with_point.end(), ',', '.');
         const bool decimal_comma = with_point != rating_text && parse_number(with_point).has_value();
-        return reject(line,
-                      fmt::format("rating {} is not a number{}", shown(rating_text),
-                                  decimal_comma ? " (decimal comma? write 4.5, not 4,5)" : ""),
-                      raw);
+        return reject_row(fmt::format("rating {} is not a number{}", shown(rating_text),
+                                      decimal_comma ? " (decimal comma? write 4.5, not 4,5)" : ""));
     }
     const auto value = static_cast<float>(*rating);
     if (!std::isfinite(*rating) || !std::isfinite(value))
-        return reject(line, fmt::format("rating {} is not finite", shown(rating_text)), raw);
+        return reject_row(fmt::format("rating {} is not finite", shown(rating_text)));
     if (options_.scale && (value < options_.scale->min || value > options_.scale->max))
-        return reject(line, fmt::format("rating {} is outside the declared scale {} to {}", shown(rating_text),
-                                        options_.scale->min, options_.scale->max),
-                      raw);
+        return reject_row(fmt::format("rating {} is outside the declared scale {} to {}", shown(rating_text),
+                                      options_.scale->min, options_.scale->max));
     double timestamp = 0.0;
     if (columns_.timestamp) {
         const auto text = trim(fields[*columns_.timestamp]);
-        if (text.empty()) return reject(line, "empty timestamp", raw);
+        if (text.empty()) return reject_row("empty timestamp");
         const auto parsed = parse_timestamp(text);
         if (!parsed)
-            return reject(line,
-                          fmt::format("timestamp {} is neither a number of epoch seconds nor an ISO-8601 date",
-                                      shown(text)),
-                          raw);
+            return reject_row(
+                fmt::format("timestamp {} is neither a number of epoch seconds nor an ISO-8601 date", shown(text)));
         timestamp = *parsed;
     }
     // Ids are interned only for kept rows, so rejects never create users or items.
@@ -670,6 +687,43 @@ void Ingest::choose_delimiter(CsvReader& reader) {
     summary_.delimiter = reader.delimiter();
 }
 
+// Refuses text that is not UTF-8 (or ASCII) by name: UTF-16 and UTF-32 by
+// their byte-order mark or their pattern of NUL bytes, anything else with NUL
+// bytes as binary. Unicode Standard section 23.8 gives the byte-order marks.
+void Ingest::check_encoding(std::string_view sample) const {
+    auto starts = [&](std::string_view mark) { return sample.substr(0, mark.size()) == mark; };
+    std::string encoding;
+    if (starts(std::string_view("\xFF\xFE\0\0", 4))) encoding = "UTF-32 (little-endian)";
+    else if (starts(std::string_view("\0\0\xFE\xFF", 4))) encoding = "UTF-32 (big-endian)";
+    else if (starts("\xFF\xFE")) encoding = "UTF-16 (little-endian)";
+    else if (starts("\xFE\xFF")) encoding = "UTF-16 (big-endian)";
+    else {
+        // Without a mark: ASCII text in UTF-16 has every other byte zero. A
+        // few stray NUL bytes are left to the rows they are in (rejected).
+        size_t even = 0, odd = 0;
+        const size_t n = std::min<size_t>(sample.size(), 4096);
+        for (size_t i = 0; i < n; ++i)
+            if (sample[i] == '\0') ++(i % 2 ? odd : even);
+        if (odd * 3 > n) encoding = "UTF-16 (little-endian)";
+        else if (even * 3 > n) encoding = "UTF-16 (big-endian)";
+        else if ((odd + even) * 10 > n)
+            throw DataError(fmt::format("{} holds NUL bytes: it is not a text export; check the path", display_path()));
+    }
+    if (!encoding.empty())
+        throw DataError(fmt::format("{} is {} text; save it as UTF-8 (for example: iconv -f UTF-16 -t UTF-8 in > out)",
+                                    display_path(), encoding));
+}
+
+// A rejects file at the rejects path was written by an earlier run when this
+// run rejected nothing: remove it, or say why it stays.
+void Ingest::clear_stale_rejects() {
+    const std::string& path = rejects_.path();
+    std::error_code ec;
+    if (summary_.rejected > 0 || path.empty() || !std::filesystem::exists(path, ec)) return;
+    if (std::filesystem::remove(path, ec)) summary_.stale_rejects = "removed " + path;
+    else summary_.stale_rejects = fmt::format("left {} ({})", path, ec ? ec.message() : "not removed");
+}
+
 // Whether the first row is a header: as declared; yes when a column is
 // named; otherwise yes when its rating field is not a number.
 bool Ingest::detect_header(const std::vector<std::string>& first) const {
@@ -685,6 +739,7 @@ bool Ingest::detect_header(const std::vector<std::string>& first) const {
 // The first non-blank row fixes the columns (and is data unless it is a
 // header); every later row is kept, rejected or merged.
 void Ingest::read_rows(CsvReader& reader) {
+    check_encoding(reader.peek());
     choose_delimiter(reader);
     CsvRecord record;
     auto blank = [](const CsvRecord& r) { return r.problem == CsvProblem::none && trim(r.raw).empty(); };
@@ -703,14 +758,16 @@ void Ingest::read_rows(CsvReader& reader) {
     expected_fields_ = first.size();
     keep_timestamps_ = columns_.timestamp.has_value() && options_.duplicates == DuplicatePolicy::latest;
 
-    if (!has_header) take_row(record.fields, record.raw, record.line, record.problem);
+    if (has_header) summary_.header_lines = record.end_line - record.line + 1;
+    else take_row(record);
     while (reader.next(record)) {
         if (blank(record)) {
             ++summary_.blank_lines;
             continue;
         }
-        take_row(record.fields, record.raw, record.line, record.problem);
+        take_row(record);
     }
+    summary_.lines_read = summary_.header_lines + summary_.blank_lines + summary_.row_lines;
 }
 
 // After the last row: too many rejects, nothing kept, or too many ratings.
@@ -774,6 +831,7 @@ IngestResult Ingest::run() {
     }
     rejects_.close();
     if (summary_.rejected > 0) summary_.rejects_path = rejects_.path();
+    clear_stale_rejects();
 
     char hex[17];
     std::snprintf(hex, sizeof hex, "%016llx", static_cast<unsigned long long>(XXH3_64bits_digest(hash.get())));
@@ -793,6 +851,11 @@ std::string describe(const IngestSummary& s) {
     if (s.rejected > 0)
         out += s.rejects_path.empty() ? " (rejects not saved)" : fmt::format(" (rejects in {})", s.rejects_path);
     if (s.blank_lines > 0) out += fmt::format("; skipped {} blank lines", s.blank_lines);
+    if (s.row_lines != s.rows_read)
+        out += fmt::format("; {} lines: {} header, {} blank, {} in rows ({} in rejected rows)", s.lines_read,
+                           s.header_lines, s.blank_lines, s.row_lines, s.rejected_lines);
+    if (!s.stale_rejects.empty())
+        out += fmt::format("; {}: a rejects file from an earlier run", s.stale_rejects);
     return out;
 }
 

@@ -10,9 +10,17 @@
 // makes one malformed record of the lines between (see model/data/csv_reader.hpp).
 //
 // Rejects file: TSV with a header line "line<TAB>reason<TAB>record"; line is
-// the 1-based physical line where the record starts; a tab, CR, LF or
-// backslash inside reason or record is written as \t, \r, \n or \\ (so one
-// reject is one line).
+// the 1-based physical line where the record starts (a reason names the span
+// "lines A-B" of a record over several lines); a tab, CR, LF, NUL or
+// backslash inside reason or record is written as \t, \r, \n, \0 or \\ (so
+// one reject is one line and the file holds no NUL byte). A run that rejects
+// nothing removes a rejects file left at that path by an earlier run.
+//
+// Lines: a quoted field may hold line breaks, but a record spanning more than
+// 8 lines is taken for a stray quote: its first line is rejected and reading
+// resumes on the next. An id (customer or product) holding a line break or a
+// double quote is rejected with the lines it covers. A file in UTF-16 or
+// UTF-32 (by its byte-order mark or its NUL bytes) is refused by name.
 //
 // Memory: the input streams through one 4 MiB buffer; each kept row costs
 // 12 bytes while reading (+8 for its timestamp under the latest policy) and
@@ -64,16 +72,25 @@ struct IngestOptions {
 };
 
 struct IngestSummary {
-    uint64_t rows_read = 0;        // data rows (header excluded, blank lines excluded)
+    uint64_t rows_read = 0;        // data rows (records; header excluded, blank lines excluded)
     uint64_t kept = 0;             // ratings in the result
     uint64_t rejected = 0;         // rows written to the rejects file
     uint64_t merged_duplicates = 0;// rows folded into another by the duplicate policy
     uint64_t blank_lines = 0;      // skipped, not counted as rows
+    // Physical lines: a row whose quoted field holds line breaks covers several.
+    uint64_t lines_read = 0;       // every line of the file (header, blank lines and rows)
+    uint64_t header_lines = 0;     // lines of the header row (0 without one)
+    uint64_t row_lines = 0;        // lines covered by rows
+    uint64_t rejected_lines = 0;   // lines covered by rejected rows (part of row_lines)
     std::string rejects_path;      // where rejects went ("" if none)
+    // A rejects file from an earlier run at the rejects path when this run
+    // rejected nothing: "removed" or "left (<reason>)"; empty when there was none.
+    std::string stale_rejects;
     char delimiter = ',';
     bool had_header = false;
     std::string fingerprint;       // xxh3-64 hex of the file bytes, for the posterior's metadata
-    // rows_read == kept + rejected + merged_duplicates always holds.
+    // rows_read == kept + rejected + merged_duplicates and
+    // lines_read == header_lines + blank_lines + row_lines always hold.
 };
 
 struct IngestResult {
@@ -97,7 +114,10 @@ struct IngestResult {
 // The scale is the declared one (declared = true) or the observed min/max.
 IngestResult ingest_ratings(const IngestOptions& options);
 
-// Human summary, one line: "read 1000 rows: kept 990, rejected 4, merged 6 duplicates (rejects in x.rejects.tsv)".
+// Human summary, one line: "read 1000 rows: kept 990, rejected 4, merged 6
+// duplicates (rejects in x.rejects.tsv)", then "; 1003 lines: 1 header, 2
+// blank, 1000 in rows (5 in rejected rows)" when rows span several lines or
+// lines were skipped, and what became of a stale rejects file.
 std::string describe(const IngestSummary& summary);
 
 }  // namespace credence

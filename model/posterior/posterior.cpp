@@ -1,7 +1,9 @@
 #include "model/posterior/posterior.hpp"
 
+#include <algorithm>
 #include <cmath>
 #include <string>
+#include <vector>
 
 #include "model/error.hpp"
 
@@ -20,6 +22,36 @@ void expect_size(const char* what, size_t actual, size_t expected) {
     if (actual != expected)
         throw FormatError(std::string("posterior: ") + what + " has " + std::to_string(actual) +
                           " values, expected " + std::to_string(expected));
+}
+
+// Every value of a section is finite; `per_sample` values belong to each
+// sample, so the message can say which one.
+void expect_finite(const char* section, const std::vector<float>& values, size_t per_sample) {
+    const auto bad = std::find_if(values.begin(), values.end(), [](float x) { return !std::isfinite(x); });
+    if (bad == values.end()) return;
+    const size_t at = static_cast<size_t>(bad - values.begin());
+    throw FormatError(std::string("posterior: section ") + section + " holds " + (std::isnan(*bad) ? "NaN" : "an infinite value") +
+                      " (value " + std::to_string(at) + ", sample " + std::to_string(per_sample ? at / per_sample : 0) +
+                      "); every number must be finite");
+}
+
+// Precisions: finite and positive.
+void expect_positive(const char* section, const std::vector<float>& values) {
+    expect_finite(section, values, 1);
+    for (size_t s = 0; s < values.size(); ++s)
+        if (!(values[s] > 0.0f))
+            throw FormatError(std::string("posterior: section ") + section + " holds " + std::to_string(values[s]) +
+                              " at sample " + std::to_string(s) + "; a precision must be positive");
+}
+
+// Precision matrices [S][K][K]: finite with a positive diagonal.
+void expect_precision_matrices(const char* section, const std::vector<float>& values, size_t K) {
+    expect_finite(section, values, K * K);
+    for (size_t s = 0; s < values.size() / (K * K); ++s)
+        for (size_t k = 0; k < K; ++k)
+            if (!(values[(s * K + k) * K + k] > 0.0f))
+                throw FormatError(std::string("posterior: section ") + section + " of sample " + std::to_string(s) +
+                                  " has a diagonal entry that is not positive; it is not a precision matrix");
 }
 }  // namespace
 
@@ -53,6 +85,18 @@ void Posterior::validate() const {
         if (!(noise_precision[s] > 0.0f) || !std::isfinite(noise_precision[s]))
             throw FormatError("posterior: noise precision of sample " + std::to_string(s) +
                               " is not a positive finite number");
+    // Every stored number is finite and every precision positive: a file
+    // with valid checksums may still carry NaN from a broken writer.
+    expect_finite("user_factors", user_factors, U * K);
+    expect_finite("item_factors", item_factors, I * K);
+    expect_finite("user_bias", user_bias, U);
+    expect_finite("item_bias", item_bias, I);
+    expect_finite("user_mu", user_mu, K);
+    expect_finite("item_mu", item_mu, K);
+    expect_precision_matrices("user_lambda", user_lambda, K);
+    expect_precision_matrices("item_lambda", item_lambda, K);
+    expect_positive("user_bias_precision", user_bias_precision);
+    expect_positive("item_bias_precision", item_bias_precision);
     if (!(scale.min <= scale.max) || !std::isfinite(scale.min) || !std::isfinite(scale.max))
         throw FormatError("posterior: rating scale is not a finite interval");
     if (!std::isfinite(global_mean)) throw FormatError("posterior: global mean is not finite");

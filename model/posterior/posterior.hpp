@@ -80,8 +80,10 @@ struct Posterior {
     // Mean of the rating under sample s (no noise): global mean + biases + u.v
     float sample_prediction(uint32_t s, uint32_t u, uint32_t i) const;
 
-    // Checks every size and invariant above; throws FormatError naming the
-    // first one that fails. Called by the file reader and by tests.
+    // Checks every size and invariant above, and that every stored number is
+    // finite (precisions positive, precision matrices with a positive
+    // diagonal); throws FormatError naming the first one that fails and its
+    // section. Called by the file reader and by tests.
     void validate() const;
 };
 

@@ -135,7 +135,9 @@ TEST_CASE("validation checks values from flags and defaults against the same tab
         ServeOptions o = ok;
         if (const auto* text = std::get_if<std::string ServeOptions::*>(&key.field)) {
             o.*(*text) = "";
-            if (key.if_empty.empty()) CHECK_NOTHROW(validate_serve_options(o));
+            if (!key.choices.empty())  // a choice key: the empty string is not one of its choices
+                CHECK_THROWS_WITH(validate_serve_options(o), Catch::Contains(std::string(key.name) + " is ''"));
+            else if (key.if_empty.empty()) CHECK_NOTHROW(validate_serve_options(o));
             else CHECK_THROWS_WITH(validate_serve_options(o), Catch::Contains(std::string(key.name) + " is empty"));
         } else if (key.min > 0) {
             // Every integer with a lower bound above 0: 0 is refused by name.
