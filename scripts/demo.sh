@@ -45,7 +45,7 @@ echo; echo "== 5. Top 5 for customer c-00042: by mean, and cautiously by the low
 credence recommend --model demo-data/shop.posterior --user c-00042 -n 5
 credence recommend --model demo-data/shop.posterior --user c-00042 -n 5 --rank-by lower
 
-version="$("$bin" --version | cut -d' ' -f2)"
+version="$("$bin" --version | head -1 | cut -d' ' -f2)"
 deb="credence_${version}_$(dpkg --print-architecture).deb"
 next() { printf '  %-70s # %s\n' "$1" "$2"; }
 echo
