@@ -19,7 +19,7 @@ packages=(
 # Only the tests and benchmarks need these (scipy is the outside reference for
 # distribution checks; chromium renders the report; wrk drives the serve bench;
 # nginx and openssl run the exposed deployment with a certificate made in the
-# test; clang builds the libFuzzer targets of scripts/ci-extra).
+# test; clang builds the libFuzzer targets of scripts/fuzz).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
   packages+=(wrk chromium python3 python3-scipy python3-numpy nginx openssl clang libclang-rt-dev)
 fi
