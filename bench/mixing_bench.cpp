@@ -2,8 +2,12 @@
 //
 //   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank 10]
 //                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
-//                [--seed 1] [--threads 0] [--moves off,on]
+//                [--seed 1] [--threads 0] [--moves off,on] [--all-predictions]
+//                [--trace FILE]
 //
+// "off" is the plain Gibbs sweep (FitOptions::group_moves = false), "on" the
+// sampler as shipped. Both are fixed-length runs of the same length, assessed
+// on every sweep after burn-in (as the fit's convergence check does).
 // Fits the same data once per sampler variant and prints, for the quantities
 // the convergence check monitors (model/fit/convergence_summary.hpp), the
 // bulk- and tail-ESS (Vehtari et al. 2021) per sweep and per second of
@@ -25,6 +29,7 @@
 #include "model/data/ingest.hpp"
 #include "model/fit/convergence_summary.hpp"
 #include "model/fit/sampler.hpp"
+#include "model/predict/mixture.hpp"
 
 namespace {
 
@@ -35,11 +40,23 @@ struct Row {
     double rhat, ess_bulk, ess_tail;
 };
 
-void print_variant(const std::string& name, const FitOptions& o, const FitResult& fit, const ConvergenceSummary& c) {
-    const double sweeps = double(o.samples) * o.thin * o.chains;
-    std::printf("\n== %s: %u chains x (%u burn-in + %u x thin %u), %.1f s, %.2f ms/sweep\n", name.c_str(), o.chains,
-                o.burn_in, o.samples, o.thin, fit.seconds,
-                1000.0 * fit.seconds / (double(o.burn_in + o.samples * o.thin) * o.chains));
+// The figures one variant is judged by: ESS per second of its slowest
+// hyperparameter quantity and of its slowest prediction (ESS = min(bulk, tail)).
+struct Headline {
+    double slowest_hyper_ess_per_s = 0.0;
+    std::string slowest_hyper;
+    double slowest_prediction_ess_per_s = 0.0;
+    double median_prediction_ess_per_s = 0.0;
+};
+
+Headline print_variant(const std::string& name, const FitOptions& o, const FitResult& fit, const ConvergenceSummary& c,
+                       bool all_predictions) {
+    Headline h;
+    h.slowest_hyper_ess_per_s = INFINITY;
+    const double sweeps = double(c.draws_per_chain) * o.chains;
+    std::printf("\n== %s: %u chains x %u sweeps (assessed: the last %u), %.1f s, %.2f ms/sweep\n", name.c_str(), o.chains,
+                fit.sweeps_per_chain, c.draws_per_chain, fit.seconds,
+                1000.0 * fit.seconds / (double(fit.sweeps_per_chain) * o.chains));
     std::printf("%-34s %8s %10s %10s %12s %12s\n", "quantity", "R-hat", "bulk ESS", "tail ESS", "ESS/sweep",
                 "ESS/s");
     std::vector<double> pred_ess;
@@ -47,10 +64,14 @@ void print_variant(const std::string& name, const FitOptions& o, const FitResult
         const double ess = std::min(q.stats.ess_bulk, q.stats.ess_tail);
         if (q.quantity == "prediction") {
             pred_ess.push_back(ess);
-            if (!std::getenv("MIXING_ALL")) continue;
+            if (!all_predictions) continue;
         }
         std::printf("%-34s %8.3f %10.1f %10.1f %12.4f %12.2f\n", q.label().c_str(), q.stats.rhat, q.stats.ess_bulk,
                     q.stats.ess_tail, ess / sweeps, ess / fit.seconds);
+        if (q.quantity != "prediction" && ess / fit.seconds < h.slowest_hyper_ess_per_s) {
+            h.slowest_hyper_ess_per_s = ess / fit.seconds;
+            h.slowest_hyper = q.label();
+        }
     }
     if (!pred_ess.empty()) {
         std::sort(pred_ess.begin(), pred_ess.end());
@@ -59,9 +80,12 @@ void print_variant(const std::string& name, const FitOptions& o, const FitResult
                     lo / fit.seconds);
         std::printf("%-34s %8s %10s %10s %12.4f %12.2f\n", "predictions (median of 20)", "", "", "", mid / sweeps,
                     mid / fit.seconds);
+        h.slowest_prediction_ess_per_s = lo / fit.seconds;
+        h.median_prediction_ess_per_s = mid / fit.seconds;
     }
     std::printf("verdict %s: max R-hat %.3f, min bulk ESS/chain %.1f, min tail ESS/chain %.1f\n", c.verdict.c_str(),
                 c.max_rhat, c.min_ess_bulk_per_chain, c.min_ess_tail_per_chain);
+    return h;
 }
 
 // Per kept sample: chain, tau, bias precisions, traces of the factor
@@ -117,6 +141,7 @@ int main(int argc, char** argv) {
     std::string ratings, scale, moves = "off,on";
     double holdout = 0.0;
     FitOptions o;
+    o.run_length = RunLength::fixed;
     o.samples = 400;
     o.thin = 1;
     app.add_option("--ratings", ratings)->required();
@@ -132,10 +157,16 @@ int main(int argc, char** argv) {
     double fixed_noise = 0.0;
     app.add_option("--fixed-noise-precision", fixed_noise);
     std::string trace_path;
+    bool all_predictions = false, converged = false;
+    uint64_t split_seed = 0;
+    app.add_flag("--converged", converged, "run each variant until converged (the fit's default) instead of a fixed length");
+    app.add_option("--split-seed", split_seed, "seed of the held-out split (default: --seed)");
+    app.add_flag("--all-predictions", all_predictions, "one line per probe prediction, not only min and median");
     app.add_option("--trace", trace_path, "write per-sample scalars (TSV) of the last variant here");
     app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
     CLI11_PARSE(app, argc, argv);
 
+    if (converged) o.run_length = RunLength::converged;
     if (fixed_noise > 0.0) {
         o.sample_noise = false;
         o.fixed_noise_precision = fixed_noise;
@@ -149,18 +180,58 @@ int main(int argc, char** argv) {
     }
     auto data = ingest_ratings(in);
     RatingSet train = std::move(data.ratings);
-    if (holdout > 0.0) train = split_holdout(std::move(train), holdout, o.seed).train;
+    std::vector<Rating> test;
+    if (holdout > 0.0) {
+        HoldoutSplit split = split_holdout(std::move(train), holdout, split_seed ? split_seed : o.seed);
+        train = std::move(split.train);
+        test = std::move(split.test);
+    }
     std::printf("data: %zu ratings, %zu users, %zu items; rank %u\n", train.ratings.size(), train.users.size(),
                 train.items.size(), o.rank);
 
     std::stringstream list(moves);
+    std::vector<std::pair<std::string, Headline>> headlines;
     for (std::string variant; std::getline(list, variant, ',');) {
         FitOptions v = o;
         v.group_moves = variant == "on";
         const FitResult fit = fit_bpmf(train, v);
-        print_variant(variant, v, fit, summarize_convergence(fit.posterior));
+        headlines.emplace_back(variant, print_variant(variant, v, fit, fit.convergence, all_predictions));
+        if (!test.empty()) {
+            // Held-out RMSE of the posterior mean, clipped to the scale.
+            const Posterior& p = fit.posterior;
+            double se = 0.0;
+            for (const Rating& r : test) {
+                double m = 0.0;
+                for (uint32_t smp = 0; smp < p.num_samples; ++smp) m += p.sample_prediction(smp, r.user, r.item);
+                m = std::clamp(m / p.num_samples, double(p.scale.min), double(p.scale.max));
+                se += (r.value - m) * (r.value - m);
+            }
+            double inside = 0.0, lpd = 0.0;
+            std::vector<double> m(p.num_samples);
+            for (const Rating& r : test) {
+                for (uint32_t smp = 0; smp < p.num_samples; ++smp) m[smp] = p.sample_prediction(smp, r.user, r.item);
+                inside += r.value >= mixture_quantile(m, p.noise_precision, 0.05) &&
+                          r.value <= mixture_quantile(m, p.noise_precision, 0.95);
+                lpd += mixture_log_density(m, p.noise_precision, r.value);
+            }
+            std::printf("held-out RMSE %.4f, 90%% coverage %.3f, mean log density %.4f on %zu ratings; %u sweeps per chain (%s)\n",
+                        std::sqrt(se / double(test.size())), inside / double(test.size()), lpd / double(test.size()),
+                        test.size(), fit.sweeps_per_chain, stop_reason_name(fit.stop_reason));
+        }
         if (!trace_path.empty()) write_trace(fit.posterior, trace_path);
         std::fflush(stdout);
+    }
+    if (headlines.size() == 2) {
+        const Headline &before = headlines[0].second, &after = headlines[1].second;
+        std::printf("\nslowest hyperparameter quantity, ESS/s: %s %.2f (%s) -> %s %.2f (%s): %.1fx\n",
+                    headlines[0].first.c_str(), before.slowest_hyper_ess_per_s, before.slowest_hyper.c_str(),
+                    headlines[1].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
+                    after.slowest_hyper_ess_per_s / before.slowest_hyper_ess_per_s);
+        std::printf("predictions, ESS/s: slowest %.2f -> %.2f (%.1fx), median %.2f -> %.2f (%.1fx)\n",
+                    before.slowest_prediction_ess_per_s, after.slowest_prediction_ess_per_s,
+                    after.slowest_prediction_ess_per_s / before.slowest_prediction_ess_per_s,
+                    before.median_prediction_ess_per_s, after.median_prediction_ess_per_s,
+                    after.median_prediction_ess_per_s / before.median_prediction_ess_per_s);
     }
     return 0;
 }

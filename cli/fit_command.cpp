@@ -42,24 +42,32 @@ std::string utc_now_iso8601() {
     return buf;
 }
 
-std::string describe_verdict(const ConvergenceSummary& c) {
-    std::string out = fmt::format("convergence: {} (max R-hat {:.3f}, min bulk ESS per chain {:.0f}, min tail ESS per chain {:.0f}; "
-                                  "{} chains x {} draws)\n",
-                                  c.verdict, c.max_rhat, c.min_ess_bulk_per_chain, c.min_ess_tail_per_chain,
-                                  c.num_chains, c.draws_per_chain);
+std::string describe_verdict(const FitResult& r) {
+    const ConvergenceSummary& c = r.convergence;
+    std::string out = fmt::format(
+        "convergence: {} after {} sweeps per chain ({}; max R-hat {:.3f}, min bulk ESS per chain {:.0f}, "
+        "min tail ESS per chain {:.0f}, over every sweep of the last {} of {} chains)\n",
+        c.verdict, r.sweeps_per_chain, stop_reason_name(r.stop_reason), c.max_rhat, c.min_ess_bulk_per_chain,
+        c.min_ess_tail_per_chain, c.draws_per_chain, c.num_chains);
     for (const auto& w : c.warnings) out += "warning: " + w + "\n";
+    for (const auto& a : c.advice) out += "advice: " + a + "\n";
     return out;
 }
 
-std::string sweep_line(const SweepReport& r, uint32_t chains) {
-    const double total = static_cast<double>(r.sweeps_per_chain) * chains;
-    const double done = static_cast<double>(r.chain) * r.sweeps_per_chain + r.sweep + 1;
-    const double eta = r.elapsed_s / done * (total - done);
-    std::string line = fmt::format("chain {}/{} sweep {}/{}{}  elapsed {}  ETA {}  train RMSE {:.4f}",
-                                   r.chain + 1, chains, r.sweep + 1, r.sweeps_per_chain,
-                                   r.kept ? " (kept)" : "", format_duration(r.elapsed_s),
-                                   format_duration(eta), r.train_rmse);
-    if (r.validation_rmse >= 0) line += fmt::format("  validation RMSE {:.4f}", r.validation_rmse);
+// The live line: where the chains are, and at checkpoints the worst figures.
+std::string progress_line(const FitProgress& p, FitProgress& last_checkpoint) {
+    if (p.checkpoint) last_checkpoint = p;
+    std::string line = fmt::format("sampling {} chain{}{}: sweep {}/{} (budget {})  {}", p.chains,
+                                   p.chains == 1 ? "" : "s", p.parallel_chains > 1 ? " in parallel" : "",
+                                   p.sweeps_done, p.next_checkpoint, p.max_sweeps, format_duration(p.elapsed_s));
+    if (p.train_rmse >= 0) line += fmt::format("  train RMSE {:.4f}", p.train_rmse);
+    if (last_checkpoint.checkpoint) {
+        line += fmt::format("  | at {}: worst R-hat {:.3f} ({}), min ESS/chain {:.0f} ({})",
+                            last_checkpoint.sweeps_done, last_checkpoint.max_rhat, last_checkpoint.worst_rhat,
+                            last_checkpoint.min_ess_per_chain, last_checkpoint.worst_ess);
+        if (last_checkpoint.validation_rmse >= 0)
+            line += fmt::format("  validation RMSE {:.4f}", last_checkpoint.validation_rmse);
+    }
     return line;
 }
 
@@ -121,13 +129,22 @@ TrainingData split_for_validation(const FitFlags& f, RatingSet&& ratings, uint64
 
 // ---- 3. The Gibbs sampler, one progress line per sweep.
 FitResult sample_posterior(const TrainingData& d, const FitOptions& options, ProgressLine& progress, const Log& log) {
-    log(fmt::format("fitting rank {} on {} ratings ({} users, {} items): {} chains x ({} burn-in + {} kept x thin {}) sweeps",
-                    options.rank, d.train.size(), d.train.users.size(), d.train.items.size(), options.chains,
-                    options.burn_in, options.samples, options.thin));
+    const std::string length =
+        options.run_length == RunLength::converged
+            ? fmt::format("until R-hat <= {} and ESS >= {} per chain (at most {} sweeps per chain{}), keeping {} draws per chain",
+                          options.convergence.max_rhat, options.convergence.min_ess_per_chain, options.max_sweeps,
+                          options.max_seconds > 0 ? fmt::format(" or {:.0f} s", options.max_seconds) : "", options.samples)
+            : fmt::format("{} burn-in + {} kept x thin {} sweeps per chain", options.burn_in, options.samples,
+                          options.thin);
+    log(fmt::format("fitting rank {} on {} ratings ({} customers, {} products), {} chains: {}", options.rank,
+                    d.train.size(), d.train.users.size(), d.train.items.size(), options.chains, length));
+    FitProgress last_checkpoint;
     FitResult result = fit_bpmf(d.train, options, d.validation.empty() ? nullptr : &d.validation,
-                                [&](const SweepReport& r) {
-                                    const bool last = r.chain + 1 == options.chains && r.sweep + 1 == r.sweeps_per_chain;
-                                    progress.update(sweep_line(r, options.chains), last);
+                                [&](const FitProgress& p) {
+                                    const std::string line = progress_line(p, last_checkpoint);
+                                    progress.update(line, p.checkpoint);
+                                    // Without a terminal, one log line per checkpoint instead.
+                                    if (p.checkpoint && !progress.active()) log(line);
                                 });
     progress.finish();
     return result;
@@ -154,9 +171,7 @@ void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSumma
 // ---- 5. Convergence figures, then the file. The figures travel with the
 // model (inspect, /v1/model, report).
 void write_model(FitResult& result, const std::string& out) {
-    const ConvergenceSummary convergence = summarize_convergence(result.posterior);
-    result.posterior.diagnostics_json = to_json(convergence).dump();
-    std::cerr << describe_verdict(convergence);
+    std::cerr << describe_verdict(result);
 
     const uint64_t bytes = write_posterior(result.posterior, out);
     const auto& trace = result.trace;

@@ -137,7 +137,10 @@ std::string sweep_traces(const nlohmann::json& meta) {
     std::vector<double> rmse;
     if (trace.contains("train_rmse")) rmse = trace["train_rmse"].get<std::vector<double>>();
     double burn_in = -1;
-    if (meta.contains("options") && meta["options"].contains("burn_in")) burn_in = meta["options"]["burn_in"].get<double>();
+    if (meta.contains("run_length") && meta["run_length"].contains("burn_in"))
+        burn_in = meta["run_length"]["burn_in"].get<double>();
+    else if (meta.contains("options") && meta["options"].contains("burn_in"))
+        burn_in = meta["options"]["burn_in"].get<double>();
     o += "<p class=\"note\">Every sweep of every chain, burn-in included. Chains that started apart and now "
          "overlap, with no drift after the dashed line, have forgotten their starting points.</p><div class=\"grid\">";
     auto plot = [&](const std::vector<double>& values, const std::string& id, const std::string& title,
@@ -208,12 +211,17 @@ std::string probe_traces(const ReportInputs& in, const ConvergenceSummary& conv)
 std::string convergence_table(const ConvergenceSummary& conv) {
     std::string o = "<section id=\"convergence\"><h2>Convergence: R-hat and effective sample size</h2>";
     o += fmt::format("<p class=\"note\">Rank-normalized split R-hat and bulk / tail ESS (Vehtari, Gelman, Simpson, "
-                     "Carpenter &amp; B\xc3\xbcrkner 2021) over {} chains of {} draws. Flagged rows exceed R-hat {:g} "
-                     "or fall under {:g} effective draws per chain.</p>",
-                     conv.num_chains, conv.draws_per_chain, conv.options.max_rhat, conv.options.min_ess_per_chain);
-    if (!conv.warnings.empty()) {
+                     "Carpenter &amp; B\xc3\xbcrkner 2021) over {} chains of {} draws ({}). Flagged rows exceed "
+                     "R-hat {:g} or fall under {:g} effective draws per chain.</p>",
+                     conv.num_chains, conv.draws_per_chain,
+                     conv.assessed == "every_sweep"
+                         ? fmt::format("every sweep from sweep {} on, as the sampler recorded them", conv.first_sweep)
+                         : std::string("the kept samples"),
+                     conv.options.max_rhat, conv.options.min_ess_per_chain);
+    if (!conv.warnings.empty() || !conv.advice.empty()) {
         o += "<ul class=\"warnings\">";
         for (const auto& w : conv.warnings) o += "<li>" + escape_xml(without_ids(conv, w)) + "</li>";
+        for (const auto& a : conv.advice) o += "<li>Advice: " + escape_xml(without_ids(conv, a)) + "</li>";
         o += "</ul>";
     }
     const double chains = std::max<double>(1, conv.num_chains);
@@ -432,7 +440,7 @@ std::string render_html_report(const ReportInputs& in) {
     if (!in.posterior) throw std::invalid_argument("render_html_report: no posterior given");
     const Posterior& p = *in.posterior;
     const nlohmann::json meta = parse_or_empty(p.fit_metadata_json);
-    const ConvergenceSummary conv = summarize_convergence(p);
+    const ConvergenceSummary conv = stored_or_recomputed_convergence(p);
 
     std::string html = "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">\n";
     html += "<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; style-src 'unsafe-inline'\">\n";

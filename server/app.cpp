@@ -5,24 +5,12 @@
 #include <chrono>
 #include <cmath>
 
-#include <spdlog/sinks/stdout_sinks.h>
-#include <spdlog/spdlog.h>
-
 #include "model/error.hpp"
+#include "server/logging.hpp"
 
 namespace credence::server {
 
 namespace {
-
-std::shared_ptr<spdlog::logger> stderr_logger(const std::string& name) {
-    auto existing = spdlog::get(name);
-    return existing ? existing : spdlog::stderr_logger_mt(name);
-}
-
-std::shared_ptr<spdlog::logger> access_logger() {
-    static const auto logger = stderr_logger("credence.access");
-    return logger;
-}
 
 int hex_value(char c) {
     if (c >= '0' && c <= '9') return c - '0';
@@ -50,10 +38,7 @@ std::string percent_decode(std::string_view s) {
 
 }  // namespace
 
-spdlog::logger& server_log() {
-    static const auto logger = stderr_logger("credence.serve");
-    return *logger;
-}
+spdlog::logger& server_log() { return event_log(); }
 
 std::shared_ptr<const LoadedModel> AppContext::model() const {
     auto m = slot.get();
@@ -189,14 +174,9 @@ httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHan
         const double latency_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
         const int status = res.status == -1 ? 200 : res.status;
         ctx.metrics.request_finished(route, status, latency_s);
-        if (ctx.options.access_log) {
-            if (ctx.options.log_ids)
-                access_logger()->info("{} {} status={} latency_ms={:.3f} target={}", req.method, route, status,
-                                      latency_s * 1e3, req.target);
-            else
-                access_logger()->info("{} {} status={} latency_ms={:.3f}", req.method, route, status,
-                                      latency_s * 1e3);
-        }
+        if (ctx.options.access_log)
+            log_access(req.method, route, status, latency_s * 1e3,
+                       ctx.options.log_ids ? std::string_view(req.target) : std::string_view());
     };
 }
 

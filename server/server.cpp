@@ -4,6 +4,7 @@
 // that reach no handler (unknown route, body too large, malformed request).
 #include "server/server.hpp"
 
+#include <chrono>
 #include <cctype>
 #include <csignal>
 #include <cstdio>
@@ -18,7 +19,9 @@
 #include "generated/credence_version.hpp"
 #include "generated/openapi_json.hpp"
 #include "model/error.hpp"
+#include "model/math/cpu_level.hpp"
 #include "server/app.hpp"
+#include "server/logging.hpp"
 #include "server/http_listener.hpp"
 
 namespace credence::server {
@@ -150,6 +153,7 @@ void reload_api_tokens(AppContext& ctx) {
 }  // namespace
 
 int run_server(const ServeOptions& options) {
+    use_json_logs(options.log_json);
     AppContext ctx;
     ctx.options = options;
     try {
@@ -194,11 +198,13 @@ int run_server(const ServeOptions& options) {
         return 1;
     }
     std::cout << "listening on http://" << options.host << ":" << port << std::endl;
-    server_log().info("credence {} serving on http://{}:{}", kCredenceVersion, options.host, port);
+    server_log().info("credence {} serving on http://{}:{}; kernels {}", kCredenceVersion, options.host, port,
+                      cpu_level_description());
 
     // Only the signal thread calls server.stop(), and only once the server
     // runs: httplib ignores a stop() that comes before listen starts.
     std::atomic<bool> stop_requested{false};
+    std::chrono::steady_clock::time_point stop_started{};  // written by the signal thread before stop()
     std::atomic<bool> listen_returned{false};
     std::atomic<int> exit_code{0};
     std::thread loader([&] {
@@ -226,7 +232,12 @@ int run_server(const ServeOptions& options) {
                 }
                 reload_api_tokens(ctx);
             } else if (sig == SIGINT || sig == SIGTERM) {
-                server_log().info("serve: stopping on signal {}", sig);
+                // Graceful: stop() closes the listening socket at once (new
+                // connections are refused, so a proxy tries another replica);
+                // listen_after_bind() returns once every worker has answered
+                // the request it is on (idle keep-alive connections close).
+                server_log().info("serve: stopping on signal {}; answering the requests in flight", sig);
+                stop_started = std::chrono::steady_clock::now();
                 stop_requested = true;
             }
             if (stop_requested && server.is_running()) {
@@ -240,6 +251,15 @@ int run_server(const ServeOptions& options) {
     listen_returned = true;
     loader.join();
     signals.join();
+    // A signal that came while stopping (a supervisor's second SIGTERM) is
+    // part of this stop: take it, so restoring the mask does not deliver it.
+    const timespec no_wait{0, 0};
+    while (sigtimedwait(&handled, nullptr, &no_wait) > 0) {
+    }
+    if (stop_started != std::chrono::steady_clock::time_point{})
+        server_log().info("serve: stopped {:.0f} ms after the signal, every request in flight answered",
+                          std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - stop_started)
+                              .count());
     pthread_sigmask(SIG_SETMASK, &previous, nullptr);
     return exit_code;
 }

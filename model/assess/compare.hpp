@@ -58,9 +58,11 @@ struct CompareOptions {
     double coverage_level = 0.9;       // in (0, 1)
     uint64_t split_seed = 1;           // which ratings are held out
     // Rank and biases are set per configuration. A comparison runs ranks x
-    // folds fits, so its default chains are shorter than a single fit's.
+    // folds fits, so by default each is a short fixed-length run rather than
+    // one that samples until converged (--run-length converged asks for that).
     FitOptions fit = [] {
         FitOptions f;
+        f.run_length = RunLength::fixed;
         f.burn_in = 100;
         f.samples = 40;
         return f;

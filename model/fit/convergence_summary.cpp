@@ -82,53 +82,33 @@ void check_thresholds(const ConvergenceOptions& options) {
                                                 options.min_ess_per_chain));
 }
 
-// The quantities listed in the header, each assessed on the last n draws of
-// every chain.
-std::vector<QuantityConvergence> assess_quantities(const Posterior& posterior, const ConvergenceOptions& options,
-                                                   const std::vector<ChainRange>& ranges, uint32_t n) {
-    std::vector<QuantityConvergence> quantities;
-    // Gathers one quantity's draws (last n of each chain) and assesses it.
-    auto assess = [&](QuantityConvergence q, auto value_of_sample) {
+// The quantities listed in the header: the last n draws of every chain.
+std::vector<MonitoredQuantity> posterior_quantities(const Posterior& posterior, const ConvergenceOptions& options,
+                                                    const std::vector<ChainRange>& ranges, uint32_t n) {
+    std::vector<MonitoredQuantity> quantities;
+    auto gather = [&](QuantityConvergence q, auto value_of_sample) {
         ChainDraws draws(ranges.size(), std::vector<double>(n));
         for (size_t m = 0; m < ranges.size(); ++m)
             for (uint32_t j = 0; j < n; ++j) draws[m][j] = value_of_sample(ranges[m].end - n + j);
-        q.stats = convergence(draws);
-        quantities.push_back(std::move(q));
+        quantities.push_back({std::move(q), std::move(draws)});
     };
-
     const uint32_t K = posterior.rank;
-    assess(named("noise_precision"), [&](uint32_t s) { return double(posterior.noise_precision[s]); });
-    // The likelihood is unchanged when every user factor is mapped by an
-    // invertible R and every item factor by R^-T, so single components of
-    // mu, or their norms, drift between chains even when every prediction
-    // has mixed. Assess functions that this map leaves unchanged:
-    //   mu_interaction    = mu_U . mu_V
-    //   factor_cov_product = trace(Lambda_U^-1 Lambda_V^-1)
-    auto dot_mu = [&](uint32_t s) {
-        double d = 0.0;
-        for (uint32_t k = 0; k < K; ++k)
-            d += double(posterior.user_mu[size_t(s) * K + k]) * double(posterior.item_mu[size_t(s) * K + k]);
-        return d;
+    using Mat = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+    auto lambda = [&](const std::vector<float>& all, uint32_t s) -> Eigen::MatrixXd {
+        return Eigen::Map<const Mat>(all.data() + size_t(s) * K * K, K, K).cast<double>();
     };
-    auto cov_product = [&](uint32_t s) {
-        using Mat = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
-        const Eigen::MatrixXd lu = Eigen::Map<const Mat>(posterior.user_lambda.data() + size_t(s) * K * K, K, K).cast<double>();
-        const Eigen::MatrixXd lv = Eigen::Map<const Mat>(posterior.item_lambda.data() + size_t(s) * K * K, K, K).cast<double>();
-        Eigen::LLT<Eigen::MatrixXd> cu(lu), cv(lv);
-        if (cu.info() != Eigen::Success || cv.info() != Eigen::Success) return kNaN;
-        const Eigen::MatrixXd id = Eigen::MatrixXd::Identity(K, K);
-        return (cu.solve(id) * cv.solve(id)).trace();
+    auto mu = [&](const std::vector<float>& all, uint32_t s) -> Eigen::VectorXd {
+        return Eigen::Map<const Eigen::VectorXf>(all.data() + size_t(s) * K, K).cast<double>();
     };
-    assess(named("mu_interaction"), dot_mu);
-    assess(named("factor_cov_product"), cov_product);
-    const auto& offsets = posterior.rated_offsets;
-    for (uint64_t pos : probe_positions(offsets.back(), options.max_probe_pairs, options.probe_seed)) {
-        const auto user = static_cast<uint32_t>(std::upper_bound(offsets.begin(), offsets.end(), pos) -
-                                                offsets.begin() - 1);
-        const uint32_t item = posterior.rated_items[pos];
-        assess(named("prediction", -1, posterior.user_ids[user], posterior.item_ids[item]),
-               [&](uint32_t s) { return double(posterior.sample_prediction(s, user, item)); });
-    }
+    gather(named("noise_precision"), [&](uint32_t s) { return double(posterior.noise_precision[s]); });
+    gather(named("mu_interaction"),
+           [&](uint32_t s) { return mu_interaction(mu(posterior.user_mu, s), mu(posterior.item_mu, s)); });
+    gather(named("factor_cov_product"), [&](uint32_t s) {
+        return factor_cov_product(lambda(posterior.user_lambda, s), lambda(posterior.item_lambda, s));
+    });
+    for (const ProbePair& pair : probe_pairs(posterior.rated_offsets, posterior.rated_items, options))
+        gather(named("prediction", -1, posterior.user_ids[pair.user], posterior.item_ids[pair.item]),
+               [&](uint32_t s) { return double(posterior.sample_prediction(s, pair.user, pair.item)); });
     return quantities;
 }
 
@@ -171,13 +151,11 @@ void aggregate(ConvergenceSummary& out) {
             undefined.size(), total, undefined.front()));
     if (!high_rhat.empty())
         out.warnings.push_back(fmt::format(
-            "R-hat above {} for {} of {} quantities (worst {} at {}); the chains disagree: "
-            "run more sweeps or a longer burn-in",
+            "R-hat above {} for {} of {} quantities (worst {} at {}): the chains disagree",
             options.max_rhat, high_rhat.size(), total, worst_rhat->label(), describe(out.max_rhat)));
     if (!low_ess.empty())
         out.warnings.push_back(fmt::format(
-            "ESS below {} per chain for {} of {} quantities (worst {} at {} per chain); "
-            "keep more samples or thin less",
+            "ESS below {} per chain for {} of {} quantities (worst {} at {} per chain)",
             options.min_ess_per_chain, low_ess.size(), total, worst_ess->label(), describe(worst_ess_value)));
 
     if (std::isnan(out.max_rhat))
@@ -214,7 +192,61 @@ ConvergenceSummary summarize_convergence(const Posterior& posterior, const Conve
         return out;
     }
 
-    out.quantities = assess_quantities(posterior, options, ranges, n);
+    ConvergenceSummary assessed = summarize_draws(posterior_quantities(posterior, options, ranges, n), options);
+    assessed.warnings.insert(assessed.warnings.begin(), out.warnings.begin(), out.warnings.end());
+    return assessed;
+}
+
+std::vector<ProbePair> probe_pairs(const std::vector<uint64_t>& offsets, const std::vector<uint32_t>& items,
+                                   const ConvergenceOptions& options) {
+    std::vector<ProbePair> pairs;
+    if (offsets.empty()) return pairs;
+    for (uint64_t pos : probe_positions(offsets.back(), options.max_probe_pairs, options.probe_seed)) {
+        const auto user =
+            static_cast<uint32_t>(std::upper_bound(offsets.begin(), offsets.end(), pos) - offsets.begin() - 1);
+        pairs.push_back({user, items[pos]});
+    }
+    return pairs;
+}
+
+double factor_cov_product(const Eigen::MatrixXd& user_lambda, const Eigen::MatrixXd& item_lambda) {
+    Eigen::LLT<Eigen::MatrixXd> cu(user_lambda), cv(item_lambda);
+    if (cu.info() != Eigen::Success || cv.info() != Eigen::Success) return kNaN;
+    const Eigen::MatrixXd id = Eigen::MatrixXd::Identity(user_lambda.rows(), user_lambda.cols());
+    return (cu.solve(id) * cv.solve(id)).trace();
+}
+
+double mu_interaction(const Eigen::VectorXd& user_mu, const Eigen::VectorXd& item_mu) { return user_mu.dot(item_mu); }
+
+ConvergenceSummary summarize_draws(std::vector<MonitoredQuantity> quantities, const ConvergenceOptions& options) {
+    check_thresholds(options);
+    ConvergenceSummary out;
+    out.options = options;
+    out.max_rhat = out.min_ess_bulk_per_chain = out.min_ess_tail_per_chain = kNaN;
+    if (quantities.empty()) {
+        out.verdict = "not_assessable";
+        out.warnings.push_back("no quantity to assess");
+        return out;
+    }
+    const size_t chains = quantities.front().draws.size();
+    const size_t n = chains ? quantities.front().draws.front().size() : 0;
+    for (const auto& q : quantities) {
+        if (q.draws.size() != chains) throw std::invalid_argument("summarize_draws: quantities with different chain counts");
+        for (const auto& c : q.draws)
+            if (c.size() != n) throw std::invalid_argument("summarize_draws: chains of different lengths");
+    }
+    out.num_chains = static_cast<uint32_t>(chains);
+    out.draws_per_chain = static_cast<uint32_t>(n);
+    if (n < 4 || chains == 0) {
+        out.verdict = "not_assessable";
+        out.warnings.push_back(fmt::format(
+            "only {} draw(s) per chain; convergence needs at least 4 (keep more samples)", n));
+        return out;
+    }
+    for (auto& q : quantities) {
+        q.id.stats = convergence(q.draws);
+        out.quantities.push_back(std::move(q.id));
+    }
     aggregate(out);
     return out;
 }
@@ -237,6 +269,8 @@ nlohmann::json to_json(const ConvergenceSummary& summary) {
         {"method", "rank-normalized split R-hat, bulk-ESS and tail-ESS (Vehtari et al. 2021)"},
         {"num_chains", summary.num_chains},
         {"draws_per_chain", summary.draws_per_chain},
+        {"assessed", summary.assessed},
+        {"first_sweep", summary.first_sweep},
         {"thresholds", {{"max_rhat", summary.options.max_rhat},
                         {"min_ess_per_chain", summary.options.min_ess_per_chain}}},
         {"max_rhat", finite_or_null(summary.max_rhat)},
@@ -244,8 +278,54 @@ nlohmann::json to_json(const ConvergenceSummary& summary) {
         {"min_ess_tail_per_chain", finite_or_null(summary.min_ess_tail_per_chain)},
         {"verdict", summary.verdict},
         {"warnings", summary.warnings},
+        {"advice", summary.advice},
         {"quantities", std::move(quantities)},
     };
+}
+
+namespace {
+double number_or_nan(const nlohmann::json& j, const char* key) {
+    return j.contains(key) && j[key].is_number() ? j[key].get<double>() : kNaN;
+}
+}  // namespace
+
+std::optional<ConvergenceSummary> convergence_from_json(const nlohmann::json& j) {
+    if (!j.is_object() || !j.contains("verdict") || !j["verdict"].is_string()) return std::nullopt;
+    ConvergenceSummary c;
+    c.verdict = j["verdict"].get<std::string>();
+    c.num_chains = j.value("num_chains", 0u);
+    c.draws_per_chain = j.value("draws_per_chain", 0u);
+    c.assessed = j.value("assessed", std::string("kept_samples"));
+    c.first_sweep = j.value("first_sweep", 0u);
+    c.max_rhat = number_or_nan(j, "max_rhat");
+    c.min_ess_bulk_per_chain = number_or_nan(j, "min_ess_bulk_per_chain");
+    c.min_ess_tail_per_chain = number_or_nan(j, "min_ess_tail_per_chain");
+    if (j.contains("thresholds") && j["thresholds"].is_object()) {
+        c.options.max_rhat = j["thresholds"].value("max_rhat", c.options.max_rhat);
+        c.options.min_ess_per_chain = j["thresholds"].value("min_ess_per_chain", c.options.min_ess_per_chain);
+    }
+    for (const char* key : {"warnings", "advice"})
+        if (j.contains(key) && j[key].is_array())
+            for (const auto& w : j[key])
+                if (w.is_string()) (std::string(key) == "warnings" ? c.warnings : c.advice).push_back(w.get<std::string>());
+    if (j.contains("quantities") && j["quantities"].is_array())
+        for (const auto& q : j["quantities"]) {
+            if (!q.is_object()) continue;
+            QuantityConvergence qc;
+            qc.quantity = q.value("quantity", std::string());
+            qc.component = q.value("component", -1);
+            qc.user_id = q.value("user_id", std::string());
+            qc.item_id = q.value("item_id", std::string());
+            qc.stats = {number_or_nan(q, "rhat"), number_or_nan(q, "ess_bulk"), number_or_nan(q, "ess_tail")};
+            c.quantities.push_back(std::move(qc));
+        }
+    return c;
+}
+
+ConvergenceSummary stored_or_recomputed_convergence(const Posterior& posterior) {
+    const auto j = nlohmann::json::parse(posterior.diagnostics_json, nullptr, false);
+    if (auto stored = convergence_from_json(j); stored && stored->assessed == "every_sweep") return *stored;
+    return summarize_convergence(posterior);
 }
 
 }  // namespace credence

@@ -22,9 +22,11 @@
 // "not_assessable" rather than an exception, so a short fit still saves.
 #pragma once
 #include <cstdint>
+#include <optional>
 #include <string>
 #include <vector>
 
+#include <Eigen/Dense>
 #include <nlohmann/json.hpp>
 
 #include "model/math/convergence_diagnostics.hpp"
@@ -53,15 +55,56 @@ struct QuantityConvergence {
 struct ConvergenceSummary {
     uint32_t num_chains = 0;       // chains with kept samples
     uint32_t draws_per_chain = 0;  // draws of each chain used
+    // Which draws were assessed: "kept_samples" (the posterior's kept draws)
+    // or "every_sweep" (the sampler's record of every sweep in the window
+    // [first_sweep, first_sweep + draws_per_chain) of each chain).
+    std::string assessed = "kept_samples";
+    uint32_t first_sweep = 0;
     std::vector<QuantityConvergence> quantities;
     // Over quantities whose figure is defined; NaN when none is.
     double max_rhat = 0.0;
     double min_ess_bulk_per_chain = 0.0;
     double min_ess_tail_per_chain = 0.0;
     std::string verdict;  // "converged", "not_converged" or "not_assessable"
-    std::vector<std::string> warnings;
+    std::vector<std::string> warnings;  // what failed, with the worst quantity and figure
+    std::vector<std::string> advice;    // what to do about it (added by the caller that ran the fit)
     ConvergenceOptions options;
 };
+
+// ---- the pieces the sampler's own monitor (model/fit/convergence_monitor.hpp)
+// shares with summarize_convergence, so both assess the same quantities.
+
+// One rated (user, item) pair whose prediction is monitored.
+struct ProbePair {
+    uint32_t user = 0;
+    uint32_t item = 0;
+};
+
+// Up to options.max_probe_pairs distinct pairs of the rated-items CSR
+// (offsets [U+1], items [nnz]), chosen without replacement by an Rng seeded
+// with options.probe_seed, in CSR order. Needs a well-formed CSR.
+std::vector<ProbePair> probe_pairs(const std::vector<uint64_t>& offsets, const std::vector<uint32_t>& items,
+                                   const ConvergenceOptions& options);
+
+// trace(Lambda_U^-1 Lambda_V^-1), the factor_cov_product; NaN when either
+// precision is not positive definite.
+double factor_cov_product(const Eigen::MatrixXd& user_lambda, const Eigen::MatrixXd& item_lambda);
+
+// mu_U . mu_V, the mu_interaction.
+double mu_interaction(const Eigen::VectorXd& user_mu, const Eigen::VectorXd& item_mu);
+
+// A quantity to assess and its draws, draws[chain][iteration].
+struct MonitoredQuantity {
+    QuantityConvergence id;  // quantity name and labels; stats are filled by summarize_draws
+    ChainDraws draws;
+};
+
+// Assesses each quantity (every one with the same number of chains and
+// draws, at least 4 per chain; fewer gives the verdict "not_assessable"
+// with a warning), aggregates, warns about the ones that fail the thresholds
+// and sets the verdict. Throws std::invalid_argument for thresholds out of
+// range or draws of different shapes (bugs in the caller).
+ConvergenceSummary summarize_draws(std::vector<MonitoredQuantity> quantities, const ConvergenceOptions& options);
 
 // Needs a posterior that passes Posterior::validate() and thresholds in
 // range (max_rhat finite and >= 1, min_ess_per_chain finite and >= 0;
@@ -72,5 +115,16 @@ ConvergenceSummary summarize_convergence(const Posterior& posterior, const Conve
 // snake_case JSON; undefined (NaN) and infinite figures are written as null
 // and explained in "warnings".
 nlohmann::json to_json(const ConvergenceSummary& summary);
+
+// Reads what to_json wrote (null figures come back as NaN; keys a file from
+// an older version lacks keep their defaults). nullopt when `j` is not such
+// an object (for example "{}" from a fit that stored no figures).
+std::optional<ConvergenceSummary> convergence_from_json(const nlohmann::json& j);
+
+// The figures a fit stored in the posterior (Posterior::diagnostics_json)
+// when they come from the sampler's every-sweep record, else those of the
+// kept draws (summarize_convergence), as for files written before the
+// sampler kept that record.
+ConvergenceSummary stored_or_recomputed_convergence(const Posterior& posterior);
 
 }  // namespace credence

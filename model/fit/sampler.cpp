@@ -1,13 +1,24 @@
 #include "model/fit/sampler.hpp"
 
+#include <omp.h>
+
+#include <algorithm>
+#include <atomic>
 #include <chrono>
 #include <cmath>
+#include <condition_variable>
+#include <exception>
+#include <memory>
+#include <mutex>
 #include <stdexcept>
 #include <string>
+#include <thread>
 
+#include <fmt/format.h>
 #include <nlohmann/json.hpp>
 
 #include "model/error.hpp"
+#include "model/fit/convergence_monitor.hpp"
 #include "model/fit/gibbs_sweep.hpp"
 #include "model/fit/sparse.hpp"
 
@@ -36,6 +47,16 @@ void validate_options(const FitOptions& o) {
     require_option(o.chains > 0, "--chains must be at least 1");
     require_option(uint64_t(o.burn_in) + uint64_t(o.samples) * o.thin < (uint64_t(1) << 32),
                    "--burn-in + --samples x --thin must stay below 2^32 sweeps per chain");
+    if (o.run_length == RunLength::converged) {
+        require_option(uint64_t(o.max_sweeps) >= 2 * uint64_t(o.samples),
+                       "--max-sweeps must be at least 2 x --samples (the first checkpoint)");
+        require_option(o.max_seconds >= 0.0 && std::isfinite(o.max_seconds),
+                       "--time-limit must be a finite number of seconds (0: none)");
+    }
+    require_option(o.convergence.max_rhat >= 1.0 && std::isfinite(o.convergence.max_rhat),
+                   "the R-hat target must be a finite number of at least 1");
+    require_option(o.convergence.min_ess_per_chain >= 0.0 && std::isfinite(o.convergence.min_ess_per_chain),
+                   "the ESS target must be a finite number of at least 0");
     require_option(o.threads >= 0, "--threads must be 0 (all cores) or positive");
     require_option(positive_finite(o.fixed_noise_precision), "--fixed-noise-precision must be positive and finite");
     require_option(std::isfinite(o.init_scale), "the init scale must be finite (negative: automatic)");
@@ -51,6 +72,12 @@ void validate_options(const FitOptions& o) {
 
 nlohmann::json options_json(const FitOptions& o) {
     return {{"rank", o.rank},
+            {"run_length", o.run_length == RunLength::converged ? "converged" : "fixed"},
+            {"max_sweeps", o.max_sweeps},
+            {"max_seconds", o.max_seconds},
+            {"target_rhat", o.convergence.max_rhat},
+            {"target_ess_per_chain", o.convergence.min_ess_per_chain},
+            {"group_moves", o.group_moves},
             {"burn_in", o.burn_in},
             {"samples", o.samples},
             {"thin", o.thin},
@@ -151,43 +178,248 @@ void shape_posterior(const RatingSet& train, const FitOptions& options, const Cs
     post.rated_items = by_user.index;
 }
 
-// RMSE on the validation set of the running posterior mean: the mean of the
-// kept states so far (`kept_total` of them, summed in `validation_sum`), or
-// this sweep's state before the first one is kept. Adds this sweep's
-// predictions to the sums when it is kept.
-double running_validation_rmse(const GibbsState& st, double g, const std::vector<Rating>& validation, bool kept,
-                               uint32_t kept_total, std::vector<double>& validation_sum) {
-    double se = 0.0;
-    for (size_t v = 0; v < validation.size(); ++v) {
-        const Rating& r = validation[v];
-        const double pred = state_prediction(st, g, r.user, r.item);
-        if (kept) validation_sum[v] += pred;
-        const double m = kept_total > 0 ? validation_sum[v] / kept_total : pred;
-        se += (r.value - m) * (r.value - m);
+// ---- the run: chains, the sweeps they keep, checkpoints
+
+// One kept state and the sweep it came from.
+struct Draw {
+    uint32_t sweep = 0;
+    GibbsState state;
+};
+
+// Which sweeps a chain keeps: j >= begin with (j + 1 - offset) a multiple of
+// spacing. Converged runs align to absolute sweep numbers (offset 0), so the
+// draws kept for one checkpoint contain those of any later one whose spacing
+// is a multiple; fixed runs keep every thin-th sweep after burn-in.
+struct KeepRule {
+    uint32_t begin = 0;
+    uint32_t spacing = 1;
+    uint32_t offset = 0;
+    bool keeps(uint32_t j) const { return j >= begin && (j + 1 - offset) % spacing == 0; }
+};
+
+// The burn-in of a converged run that has reached n sweeps per chain: its
+// first quarter. The rest, [n/4, n), is the window assessed and kept from. A
+// start that is still drifting in the window shows in the split R-hat (each
+// chain's halves disagree), so the run goes on rather than stops early; a
+// shorter burn-in than the common first half means fewer sweeps for the
+// same window.
+uint32_t window_begin(uint32_t n) { return n / 4; }
+
+// Sweeps j in [n/4, n) with (j + 1) a multiple of t.
+uint32_t kept_in_window(uint32_t n, uint32_t t) { return n / t - window_begin(n) / t; }
+
+// The keep rule for a converged-run checkpoint at n sweeps: the window is
+// [n/4, n); the spacing is the largest power of two that still leaves
+// `samples` draws in it (so between samples and 2 x samples + 1 are held).
+KeepRule window_rule(uint32_t n, uint32_t samples) {
+    uint32_t t = 1;
+    while (kept_in_window(n, 2 * t) >= samples) t *= 2;
+    return {window_begin(n), t, 0};
+}
+
+// The next checkpoint after n: a quarter further (rounded up), within the
+// budget, so a run overshoots the sweeps it needed by at most a quarter.
+uint32_t next_checkpoint(uint32_t n, uint32_t max_sweeps) {
+    const uint64_t next = std::max<uint64_t>(uint64_t(n) + 1, (uint64_t(n) * 5 + 3) / 4);
+    return static_cast<uint32_t>(std::min<uint64_t>(next, max_sweeps));
+}
+
+struct Chain {
+    uint32_t index = 0;
+    GibbsState state;
+    std::vector<Draw> draws;     // kept so far, in sweep order
+    SweepTrace trace;            // every sweep of this chain
+    std::atomic<uint32_t> done{0};
+    std::atomic<float> train_rmse{-1.0f};
+    double seconds = 0.0;        // wall time spent sweeping
+};
+
+struct RunContext {
+    const GibbsData& data;
+    const FitOptions& options;
+    ConvergenceMonitor& monitor;
+    uint64_t nnz = 0;
+    int team = 1;                // OpenMP threads per chain
+};
+
+// Sweeps [from, to) of one chain, recording each and keeping what `rule` says.
+void run_chain(RunContext& run, Chain& c, uint32_t from, uint32_t to, const KeepRule& rule) {
+    const auto start = std::chrono::steady_clock::now();
+    for (uint32_t j = from; j < to; ++j) {
+        gibbs_sweep(run.data, run.options, SweepKey{run.options.seed, c.index, j}, c.state, run.team);
+        run.monitor.record(c.index, j, c.state);
+        const double rmse = std::sqrt(c.state.sse / double(run.nnz));
+        c.trace.chain.push_back(c.index);
+        c.trace.sweep.push_back(j);
+        c.trace.noise_precision.push_back(float(c.state.noise_precision));
+        c.trace.train_rmse.push_back(float(rmse));
+        if (rule.keeps(j)) c.draws.push_back({j, c.state});
+        c.train_rmse.store(float(rmse));
+        c.done.store(j + 1);
     }
-    return std::sqrt(se / double(validation.size()));
+    c.seconds += std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+}
+
+// Runs every chain through sweep `to` on `parallel` worker threads (chain c
+// on worker c % parallel), while the calling thread reports progress every
+// 200 ms. Rethrows the first failure by chain order once all have stopped.
+void run_segment(RunContext& run, std::vector<std::unique_ptr<Chain>>& chains, uint32_t from, uint32_t to,
+                 const KeepRule& rule, uint32_t parallel, const std::function<void(FitProgress)>& report,
+                 FitProgress progress) {
+    std::vector<std::exception_ptr> failures(chains.size());
+    std::mutex mutex;  // guards finished
+    std::condition_variable finished_changed;
+    uint32_t finished = 0;
+    std::vector<std::thread> workers;
+    for (uint32_t w = 0; w < parallel; ++w)
+        workers.emplace_back([&, w] {
+            for (size_t c = w; c < chains.size(); c += parallel) {
+                try {
+                    run_chain(run, *chains[c], from, to, rule);
+                } catch (...) {
+                    failures[c] = std::current_exception();
+                }
+            }
+            std::lock_guard lock(mutex);
+            ++finished;
+            finished_changed.notify_all();
+        });
+    {
+        std::unique_lock lock(mutex);
+        while (!finished_changed.wait_for(lock, std::chrono::milliseconds(200), [&] { return finished == parallel; })) {
+            if (!report) continue;
+            lock.unlock();
+            uint32_t done = to;
+            for (const auto& c : chains) done = std::min(done, c->done.load());
+            progress.sweeps_done = done;
+            progress.train_rmse = chains.front()->train_rmse.load();
+            report(progress);
+            lock.lock();
+        }
+    }
+    for (auto& t : workers) t.join();
+    for (auto& f : failures)
+        if (f) std::rethrow_exception(f);
+}
+
+// RMSE on the validation set of the mean prediction over the draws held.
+double validation_rmse(const std::vector<std::unique_ptr<Chain>>& chains, double g, const std::vector<Rating>& v) {
+    std::vector<double> sum(v.size(), 0.0);
+    size_t count = 0;
+    for (const auto& c : chains)
+        for (const Draw& d : c->draws) {
+            ++count;
+            for (size_t r = 0; r < v.size(); ++r) sum[r] += state_prediction(d.state, g, v[r].user, v[r].item);
+        }
+    if (count == 0 || v.empty()) return -1.0;
+    double se = 0.0;
+    for (size_t r = 0; r < v.size(); ++r) se += std::pow(v[r].value - sum[r] / double(count), 2);
+    return std::sqrt(se / double(v.size()));
+}
+
+// The worst quantities of a summary, for progress lines.
+void describe_worst(const ConvergenceSummary& c, FitProgress& p) {
+    p.max_rhat = c.max_rhat;
+    p.min_ess_per_chain = std::min(c.min_ess_bulk_per_chain, c.min_ess_tail_per_chain);
+    double worst_ess = INFINITY;
+    for (const auto& q : c.quantities) {
+        if (q.stats.rhat == c.max_rhat) p.worst_rhat = q.label();
+        const double ess = std::min(q.stats.ess_bulk, q.stats.ess_tail) / std::max(1u, c.num_chains);
+        if (ess < worst_ess) {
+            worst_ess = ess;
+            p.worst_ess = q.label();
+        }
+    }
+}
+
+// Sweeps per chain a run would need for every quantity of `c` (assessed on
+// the window [n/4, n)) to reach the ESS target, if ESS grows in proportion
+// to the window: 4/3 x window x target / ESS, at least 1.5 x n when only R-hat
+// fails. A planning figure, rounded up to a hundred, not a promise.
+uint64_t sweeps_needed(const ConvergenceSummary& c, uint32_t n) {
+    const double window = double(c.draws_per_chain);
+    double needed = n;
+    for (const auto& q : c.quantities) {
+        const double ess = std::min(q.stats.ess_bulk, q.stats.ess_tail) / std::max(1u, c.num_chains);
+        if (ess < c.options.min_ess_per_chain && ess > 0.0)
+            needed = std::max(needed, 4.0 / 3.0 * window * c.options.min_ess_per_chain / ess);
+        if (q.stats.rhat > c.options.max_rhat) needed = std::max(needed, 1.5 * n);
+    }
+    return static_cast<uint64_t>(std::ceil(1.2 * needed / 100.0) * 100.0);
+}
+
+// What to do when a run ends without meeting the targets; every piece of
+// advice names the option and the direction that helps.
+std::vector<std::string> advice_for(const ConvergenceSummary& c, StopReason stop, const FitOptions& o, uint32_t n,
+                                    double seconds) {
+    if (c.verdict == "converged") return {};
+    std::vector<std::string> advice;
+    const uint64_t needed = sweeps_needed(c, n);
+    switch (stop) {
+        case StopReason::max_sweeps:
+            advice.push_back(fmt::format(
+                "the budget of {} sweeps per chain ran out; at the rate measured, about {} would meet the "
+                "targets: rerun with --max-sweeps {}",
+                o.max_sweeps, needed, needed));
+            break;
+        case StopReason::time_limit:
+            advice.push_back(fmt::format(
+                "the time limit of {:.0f} s ran out after {} sweeps per chain; about {} sweeps would meet the "
+                "targets, roughly {:.0f} s at this speed: rerun with --time-limit {:.0f}",
+                o.max_seconds, n, needed, seconds * double(needed) / n, std::ceil(1.2 * seconds * double(needed) / n)));
+            break;
+        case StopReason::fixed_length:
+            advice.push_back(fmt::format(
+                "this fixed-length run had {} sweeps per chain after burn-in; about {} would meet the targets: "
+                "drop --run-length fixed to let the fit run until they are met, or raise --thin to about {} "
+                "(more sweeps between kept draws, same file size)",
+                n - o.burn_in, needed / 2, (needed / 2 + o.samples - 1) / o.samples));
+            break;
+        case StopReason::converged:
+            break;
+    }
+    if (c.max_rhat > c.options.max_rhat && stop == StopReason::fixed_length)
+        advice.push_back(fmt::format("R-hat {:.3f} also says the chains have not forgotten their starts: raise "
+                                     "--burn-in (now {})",
+                                     c.max_rhat, o.burn_in));
+    return advice;
 }
 
 struct FitTimings {
     double setup_s = 0.0;
-    nlohmann::json chain_s = nlohmann::json::array();
-    double sweeps_s = 0.0;  // all chains' sweeps
+    nlohmann::json chain_s = nlohmann::json::array();  // each chain's sweeping time
+    double sampling_s = 0.0;                            // wall time of all sweeping
 };
 
-// Posterior::fit_metadata_json: options, data shape, timings and the
-// per-sweep trace.
+struct RunRecord {
+    RunLength mode = RunLength::converged;
+    StopReason stop = StopReason::fixed_length;
+    uint32_t sweeps = 0;            // per chain
+    KeepRule rule;
+    uint32_t parallel_chains = 1;
+    std::vector<uint32_t> checkpoints;
+};
+
+// Posterior::fit_metadata_json: options, data shape, run length, timings and
+// the per-sweep trace.
 nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user, const Posterior& post, double g,
-                            uint32_t sweeps, const FitResult& result, const FitTimings& timings) {
-    const size_t S = post.num_samples;
+                            const RunRecord& run, const FitResult& result, const FitTimings& timings) {
     nlohmann::json meta;
     meta["options"] = options_json(options);
     meta["seed"] = options.seed;
     meta["data"] = {{"ratings", by_user.nnz()}, {"users", post.num_users}, {"items", post.num_items}, {"global_mean", g}};
-    meta["sweeps_per_chain"] = sweeps;
-    meta["kept_samples"] = S;
+    meta["sweeps_per_chain"] = run.sweeps;
+    meta["kept_samples"] = post.num_samples;
+    meta["run_length"] = {{"mode", run.mode == RunLength::converged ? "converged" : "fixed"},
+                          {"stop_reason", stop_reason_name(run.stop)},
+                          {"sweeps_per_chain", run.sweeps},
+                          {"burn_in", run.mode == RunLength::converged ? window_begin(run.sweeps) : options.burn_in},
+                          {"checkpoints", run.checkpoints},
+                          {"parallel_chains", run.parallel_chains}};
     meta["timings"] = {{"setup_s", timings.setup_s},
                        {"chain_s", timings.chain_s},
-                       {"seconds_per_sweep", timings.sweeps_s / (double(sweeps) * options.chains)},
+                       {"sampling_s", timings.sampling_s},
+                       {"seconds_per_sweep", timings.sampling_s / std::max(1u, run.sweeps)},
                        {"total_s", result.seconds}};
     meta["trace"] = {{"chain", result.trace.chain},
                      {"sweep", result.trace.sweep},
@@ -196,10 +428,98 @@ nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user,
     return meta;
 }
 
+// `samples` of `draws`, evenly spread (all of them when there are exactly that many).
+std::vector<const Draw*> evenly(const std::vector<Draw>& draws, uint32_t samples) {
+    std::vector<const Draw*> out;
+    for (uint32_t k = 0; k < samples; ++k) out.push_back(&draws[size_t(k) * draws.size() / samples]);
+    return out;
+}
+
+// Runs the chains to a verdict: fixed length, or checkpoint by checkpoint.
+RunRecord run_chains(RunContext& run, std::vector<std::unique_ptr<Chain>>& chains, uint32_t parallel,
+                     const std::vector<Rating>* validation, double g, std::chrono::steady_clock::time_point start,
+                     const std::function<void(const FitProgress&)>& on_progress, ConvergenceSummary& summary) {
+    const FitOptions& o = run.options;
+    RunRecord rec;
+    rec.mode = o.run_length;
+    rec.parallel_chains = parallel;
+    auto elapsed = [&] { return std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count(); };
+    FitProgress progress;
+    progress.chains = o.chains;
+    progress.parallel_chains = parallel;
+    std::function<void(FitProgress)> report;
+    if (on_progress)
+        report = [&](FitProgress p) {
+            p.elapsed_s = elapsed();
+            on_progress(p);
+        };
+
+    if (o.run_length == RunLength::fixed) {
+        rec.sweeps = o.burn_in + o.samples * o.thin;
+        rec.rule = {o.burn_in, o.thin, o.burn_in};
+        progress.next_checkpoint = progress.max_sweeps = rec.sweeps;
+        run.monitor.drop_before(o.burn_in);
+        run_segment(run, chains, 0, rec.sweeps, rec.rule, parallel, report, progress);
+        summary = run.monitor.assess(o.burn_in, rec.sweeps);
+        rec.stop = StopReason::fixed_length;
+        return rec;
+    }
+    const double sampling_start = elapsed();
+    uint32_t from = 0, n = 2 * o.samples;
+    for (;;) {
+        rec.rule = window_rule(n, o.samples);
+        for (auto& c : chains) std::erase_if(c->draws, [&](const Draw& d) { return !rec.rule.keeps(d.sweep); });
+        run.monitor.drop_before(window_begin(n));
+        progress.next_checkpoint = n;
+        progress.max_sweeps = o.max_sweeps;
+        progress.checkpoint = false;
+        run_segment(run, chains, from, n, rec.rule, parallel, report, progress);
+        rec.checkpoints.push_back(n);
+        summary = run.monitor.assess(window_begin(n), n);
+        if (report) {
+            FitProgress p = progress;
+            p.sweeps_done = n;
+            p.checkpoint = true;
+            p.train_rmse = chains.front()->train_rmse.load();
+            describe_worst(summary, p);
+            if (validation && !validation->empty()) p.validation_rmse = validation_rmse(chains, g, *validation);
+            report(p);
+        }
+        rec.sweeps = n;
+        if (summary.verdict == "converged") {
+            rec.stop = StopReason::converged;
+            break;
+        }
+        if (n >= o.max_sweeps) {
+            rec.stop = StopReason::max_sweeps;
+            break;
+        }
+        const uint32_t next = next_checkpoint(n, o.max_sweeps);
+        const double per_sweep = (elapsed() - sampling_start) / n;
+        if (o.max_seconds > 0.0 && elapsed() + per_sweep * (next - n) > o.max_seconds) {
+            rec.stop = StopReason::time_limit;
+            break;
+        }
+        from = n;
+        n = next;
+    }
+    return rec;
+}
+
 }  // namespace
 
+const char* stop_reason_name(StopReason reason) {
+    switch (reason) {
+        case StopReason::converged: return "converged";
+        case StopReason::max_sweeps: return "max_sweeps";
+        case StopReason::time_limit: return "time_limit";
+        case StopReason::fixed_length: return "fixed_length";
+    }
+    return "unknown";
+}
+
 FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const std::vector<Rating>* validation,
-                   const std::function<void(const SweepReport&)>& on_sweep) {
+                   const std::function<void(const FitProgress&)>& on_progress) {
     using clock = std::chrono::steady_clock;
     const auto start = clock::now();
     validate_options(requested);
@@ -214,49 +534,47 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
                           "a validation rating refers to a user or item outside the training id maps");
     const double g = train.mean();
     const GibbsData data{&by_user, &by_item, g};
-    const uint32_t sweeps = options.burn_in + options.samples * options.thin;
 
     FitResult result;
     Posterior& post = result.posterior;
     shape_posterior(train, options, by_user, by_item, g, post);
 
-    std::vector<double> validation_sum(validation ? validation->size() : 0, 0.0);
-    uint32_t kept_total = 0;
+    const int threads = options.threads > 0 ? options.threads : omp_get_max_threads();
+    const uint32_t parallel = std::max<uint32_t>(1, std::min<uint32_t>(options.chains, uint32_t(threads)));
+    ConvergenceMonitor monitor(by_user, train.users, train.items, g, options.chains, options.convergence);
+    RunContext run{data, options, monitor, by_user.nnz(), std::max(1, threads / int(parallel))};
+    std::vector<std::unique_ptr<Chain>> chains;
+    for (uint32_t c = 0; c < options.chains; ++c) {
+        chains.push_back(std::make_unique<Chain>());
+        chains.back()->index = c;
+        chains.back()->state = initial_state(data, options, options.seed, c);
+    }
     FitTimings timings;
     timings.setup_s = std::chrono::duration<double>(clock::now() - start).count();
 
-    for (uint32_t chain = 0; chain < options.chains; ++chain) {
-        const auto chain_start = clock::now();
-        GibbsState st = initial_state(data, options, options.seed, chain);
-        for (uint32_t sweep = 0; sweep < sweeps; ++sweep) {
-            gibbs_sweep(data, options, SweepKey{options.seed, chain, sweep}, st, options.threads);
-            const bool kept = sweep >= options.burn_in && (sweep - options.burn_in + 1) % options.thin == 0;
-            if (kept) keep_sample(st, kept_total++, chain, post);
-            const double train_rmse = std::sqrt(st.sse / double(by_user.nnz()));
-            result.trace.chain.push_back(chain);
-            result.trace.sweep.push_back(sweep);
-            result.trace.noise_precision.push_back(float(st.noise_precision));
-            result.trace.train_rmse.push_back(float(train_rmse));
+    const RunRecord rec = run_chains(run, chains, parallel, validation, g, start, on_progress, result.convergence);
+    timings.sampling_s = std::chrono::duration<double>(clock::now() - start).count() - timings.setup_s;
 
-            SweepReport report;
-            report.chain = chain;
-            report.sweep = sweep;
-            report.sweeps_per_chain = sweeps;
-            report.kept = kept;
-            report.noise_precision = st.noise_precision;
-            report.train_rmse = train_rmse;
-            if (validation && !validation->empty())
-                report.validation_rmse = running_validation_rmse(st, g, *validation, kept, kept_total, validation_sum);
-            report.elapsed_s = std::chrono::duration<double>(clock::now() - start).count();
-            if (on_sweep) on_sweep(report);
-        }
-        const double cs = std::chrono::duration<double>(clock::now() - chain_start).count();
-        timings.sweeps_s += cs;
-        timings.chain_s.push_back(cs);
+    // The kept draws, chain by chain, in sweep order; the trace likewise.
+    uint32_t s = 0;
+    for (auto& c : chains) {
+        std::vector<Draw> draws;
+        std::swap(draws, c->draws);
+        for (const Draw* d : evenly(draws, options.samples)) keep_sample(d->state, s++, c->index, post);
+        timings.chain_s.push_back(c->seconds);
+        auto append = [](auto& to, const auto& from) { to.insert(to.end(), from.begin(), from.end()); };
+        append(result.trace.chain, c->trace.chain);
+        append(result.trace.sweep, c->trace.sweep);
+        append(result.trace.noise_precision, c->trace.noise_precision);
+        append(result.trace.train_rmse, c->trace.train_rmse);
     }
+    result.stop_reason = rec.stop;
+    result.sweeps_per_chain = rec.sweeps;
     result.seconds = std::chrono::duration<double>(clock::now() - start).count();
+    result.convergence.advice = advice_for(result.convergence, rec.stop, options, rec.sweeps, timings.sampling_s);
 
-    post.fit_metadata_json = fit_metadata(options, by_user, post, g, sweeps, result, timings).dump();
+    post.fit_metadata_json = fit_metadata(options, by_user, post, g, rec, result, timings).dump();
+    post.diagnostics_json = to_json(result.convergence).dump();
     try {
         post.validate();
     } catch (const FormatError& e) {

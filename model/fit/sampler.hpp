@@ -9,17 +9,32 @@
 // g is the training mean, held fixed. Each sweep draws, in order: user
 // hyperparameters, every user row (factor and bias jointly, exactly from
 // their Gaussian conditional), item hyperparameters, every item row, the bias
-// precisions, then tau. Rows are drawn in parallel (OpenMP); every draw uses
-// a stream keyed by (seed, chain, sweep, block, row), so results do not
-// depend on the thread count.
+// precisions, tau, then the group moves (model/fit/group_moves.hpp). Rows
+// are drawn in parallel (OpenMP); every draw uses a stream keyed by (seed,
+// chain, sweep, block, row), so results do not depend on the thread count.
+//
+// Run length. By default (RunLength::converged) every chain runs until the
+// quantities of model/fit/convergence_summary.hpp reach the targets (R-hat
+// <= 1.01, bulk- and tail-ESS >= 100 per chain; Vehtari et al. 2021) on the
+// last three quarters of its sweeps, or a budget (max_sweeps per chain,
+// max_seconds of wall clock) runs out. Checks happen at checkpoints n = 2S,
+// then each 1.25 times the last (S = samples per chain); the first quarter of
+// each chain is burn-in (a start still drifting after it shows in the split
+// R-hat and keeps the run going), and `samples` draws evenly spaced over the
+// rest are kept. RunLength::fixed runs burn_in + samples * thin sweeps instead. In
+// both, the convergence figures come from every sweep after burn-in (not
+// only the kept draws), and chains run at the same time when there are
+// threads for them; samples are bit-identical whatever the thread count and
+// however the chains are scheduled.
 #pragma once
 #include <cstdint>
 #include <functional>
 #include <string>
 #include <vector>
 
-#include "model/posterior/posterior.hpp"
 #include "model/data/ratings.hpp"
+#include "model/fit/convergence_summary.hpp"
+#include "model/posterior/posterior.hpp"
 
 namespace credence {
 
@@ -36,16 +51,27 @@ struct HyperpriorOptions {
     double bias_rate = 1.0;
 };
 
+enum class RunLength {
+    converged,  // until the convergence targets are met or a budget runs out
+    fixed,      // burn_in + samples * thin sweeps per chain
+};
+
 struct FitOptions {
     uint32_t rank = 10;
-    // Defaults: 100 kept draws per chain is the least that can show the
-    // ESS >= 100 per chain the convergence check asks for (Vehtari et al. 2021).
+    RunLength run_length = RunLength::converged;
+    uint32_t samples = 100;          // draws kept per chain (file size grows with it)
+    // RunLength::fixed only:
     uint32_t burn_in = 200;          // sweeps discarded per chain
-    uint32_t samples = 100;          // samples kept per chain
     uint32_t thin = 2;               // sweeps between kept samples
+    // RunLength::converged only: the budget. The run stops at the first
+    // checkpoint that meets the targets, reaches max_sweeps, or finds that
+    // the next checkpoint would end after max_seconds (0: no clock limit).
+    uint32_t max_sweeps = 20000;     // per chain
+    double max_seconds = 0.0;
+    ConvergenceOptions convergence{};  // targets and probe pairs
     uint32_t chains = 2;
     uint64_t seed = 1;
-    int threads = 0;                 // 0: OpenMP default
+    int threads = 0;                 // all chains together; 0: OpenMP default (every core)
     bool biases = true;
     bool sample_noise = true;
     double fixed_noise_precision = 2.0;  // used when !sample_noise (the paper's alpha = 2)
@@ -57,17 +83,33 @@ struct FitOptions {
     bool group_moves = true;
 };
 
-// What the sampler reports after each sweep (for progress lines and traces).
-struct SweepReport {
-    uint32_t chain = 0;
-    uint32_t sweep = 0;              // 0-based within the chain
-    uint32_t sweeps_per_chain = 0;   // burn_in + samples * thin
-    bool kept = false;               // this sweep's state was kept
-    double noise_precision = 0.0;
-    double train_rmse = 0.0;         // of this sweep's state on the training ratings
-    double validation_rmse = -1.0;   // of the running posterior mean on the validation set; <0 if none
+// What the sampler reports while it runs (for progress lines), from the
+// calling thread only: a few times a second, and at every checkpoint.
+struct FitProgress {
+    uint32_t sweeps_done = 0;        // per chain: the fewest any chain has done
+    uint32_t next_checkpoint = 0;    // sweeps per chain at the next check (fixed: the total)
+    uint32_t max_sweeps = 0;         // the budget per chain (fixed: the total)
+    uint32_t chains = 0;
+    uint32_t parallel_chains = 0;    // chains running at the same time
     double elapsed_s = 0.0;          // since the fit started
+    double train_rmse = -1.0;        // latest sweep of chain 0; <0 before the first
+    // At a checkpoint (converged runs), the figures of the window just assessed:
+    bool checkpoint = false;
+    double max_rhat = 0.0;
+    std::string worst_rhat;          // label of the quantity with the largest R-hat
+    double min_ess_per_chain = 0.0;  // min over quantities of min(bulk, tail) per chain
+    std::string worst_ess;
+    double validation_rmse = -1.0;   // posterior mean of the draws held so far; <0 if no validation set
 };
+
+// Why sampling ended.
+enum class StopReason {
+    converged,        // every monitored quantity met the targets
+    max_sweeps,       // budget: sweeps per chain
+    time_limit,       // budget: wall clock
+    fixed_length,     // RunLength::fixed
+};
+const char* stop_reason_name(StopReason reason);  // "converged", "max_sweeps", "time_limit", "fixed_length"
 
 // Per-sweep record kept for diagnostics and the report (all sweeps, burn-in included).
 struct SweepTrace {
@@ -78,15 +120,19 @@ struct SweepTrace {
 };
 
 struct FitResult {
-    Posterior posterior;             // fit_metadata_json already holds options, timings and trace
+    Posterior posterior;             // fit_metadata_json holds options, timings, trace and run length;
+                                     // diagnostics_json holds `convergence`
     SweepTrace trace;
+    ConvergenceSummary convergence;  // of every sweep in the final window, with advice when not converged
+    StopReason stop_reason = StopReason::fixed_length;
+    uint32_t sweeps_per_chain = 0;
     double seconds = 0.0;
 };
 
 // Fits the model. `train` must be non-empty with sorted unique (user, item)
 // pairs (as ingest returns). `validation` may be null; its ratings use the
 // indices of `train` (callers drop pairs with unknown ids first).
-// `on_sweep` may be empty. Throws:
+// `on_progress` may be empty. Throws:
 //   OptionError           impossible options (rank 0, samples 0, a prior
 //                         parameter that is not positive, ...), naming the flag;
 //   NumericError          a conditional precision that is not positive
@@ -98,6 +144,6 @@ struct FitResult {
 //                         (a bug in the sampler).
 FitResult fit_bpmf(const RatingSet& train, const FitOptions& options,
                    const std::vector<Rating>* validation = nullptr,
-                   const std::function<void(const SweepReport&)>& on_sweep = {});
+                   const std::function<void(const FitProgress&)>& on_progress = {});
 
 }  // namespace credence

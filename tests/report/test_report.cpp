@@ -100,6 +100,7 @@ TEST_CASE("the report of a small fit renders in headless Chromium with content i
     const HoldoutSplit split = split_holdout(data.ratings, 0.15, 5);
     FitOptions fo;
     fo.rank = 3;
+    fo.run_length = RunLength::fixed;
     fo.burn_in = 40;
     fo.samples = 40;
     fo.thin = 1;

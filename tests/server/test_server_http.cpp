@@ -12,6 +12,7 @@
 #include <sstream>
 #include <thread>
 
+#include "model/math/cpu_level.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/foldin.hpp"
 #include "model/predict/predict.hpp"
@@ -236,6 +237,12 @@ TEST_CASE("user top-N equals the offline engine for every ranking") {
             REQUIRE(a.status == 200);
             CHECK(a.body["user"] == p.user_ids[u]);
             CHECK(a.body["rank_by"] == rank_by);
+            // A draw ranking echoes its seed as a string (JavaScript-safe); no other ranking has one.
+            if (o.rank_by == RankBy::draw) {
+                CHECK(a.body["seed"] == "99");
+            } else {
+                CHECK_FALSE(a.body.contains("seed"));
+            }
             REQUIRE(a.body["items"].size() == want.size());
             for (size_t k = 0; k < want.size(); ++k) {
                 CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
@@ -276,33 +283,55 @@ TEST_CASE("bad recommendation requests get problem documents") {
     require_problem(get(*c, kUserRoute, "/v1/users/cust%zz/recommendations"), 400);
 }
 
-TEST_CASE("visitor fold-in matches the offline fold-in and engine") {
+TEST_CASE("visitor fold-in matches the offline exact fold-in for every ranking, and identical requests get identical bytes") {
     auto& f = fixture();
     auto c = f.server->client();
     const Posterior& p = *f.posterior;
     const std::vector<VisitorRating> ratings = {{10, 5.0}, {11, 1.5}, {5, 4.0}};
-    RecommendOptions o;
-    o.n = 6;
-    o.rank_by = RankBy::lower;
-    const auto visitor = fold_in_visitor(p, ratings, 1234);
-    const auto want = f.engine->recommend_for_factors(visitor.factors, visitor.bias, std::vector<uint32_t>{5, 10, 11}, o);
-    const json req = {{"ratings", json::array({{{"item", "sku-00010"}, {"rating", 5.0}},
-                                               {{"item", "sku-00011"}, {"rating", 1.5}},
-                                               {{"item", kOddItem}, {"rating", 4}}})},
-                      {"n", 6},
-                      {"rank_by", "lower"},
-                      {"seed", 1234}};
-    auto a = post(*c, "/v1/recommendations", "/v1/recommendations", req.dump());
-    INFO(a.text);
-    REQUIRE(a.status == 200);
-    CHECK(a.body["seed"] == 1234);
-    REQUIRE(a.body["items"].size() == want.size());
-    for (size_t k = 0; k < want.size(); ++k) {
-        CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
-        require_same_prediction(a.body["items"][k], want[k].prediction);
+    const json rated = json::array({{{"item", "sku-00010"}, {"rating", 5.0}},
+                                    {{"item", "sku-00011"}, {"rating", 1.5}},
+                                    {{"item", kOddItem}, {"rating", 4}}});
+    for (const char* rank_by : {"mean", "lower", "upper", "draw"}) {
+        INFO(rank_by);
+        RecommendOptions o;
+        o.n = 6;
+        o.level = 0.8;
+        o.rank_by = server::parse_rank_by(rank_by);
+        o.draw_seed = 18446744073709551557ull;  // beyond 2^53: only a string carries it intact
+        const auto want = recommend_for_visitor(*f.engine, ratings, o);
+        json req = {{"ratings", rated}, {"n", 6}, {"level", 0.8}, {"rank_by", rank_by}};
+        if (o.rank_by == RankBy::draw) req["seed"] = "18446744073709551557";
+        auto a = post(*c, "/v1/recommendations", "/v1/recommendations", req.dump());
+        INFO(a.text);
+        REQUIRE(a.status == 200);
+        REQUIRE(a.body["items"].size() == want.size());
+        for (size_t k = 0; k < want.size(); ++k) {
+            CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
+            CHECK(a.body["items"][k]["score"].get<double>() == want[k].score);
+            require_same_prediction(a.body["items"][k], want[k].prediction);
+        }
+        // Deterministic: a second identical request gets the same bytes.
+        CHECK(post(*c, "/v1/recommendations", "/v1/recommendations", req.dump()).text == a.text);
+        if (o.rank_by == RankBy::draw) {
+            CHECK(a.body["seed"] == "18446744073709551557");
+        } else {
+            CHECK_FALSE(a.body.contains("seed"));
+        }
     }
-    // Same seed, same answer; no ratings at all is a valid (prior) visitor.
-    CHECK(post(*c, "/v1/recommendations", "/v1/recommendations", req.dump()).text == a.text);
+    // Without a seed, a draw ranking gets a fresh one and says which, as a
+    // string that reproduces the answer; an integer seed is accepted too.
+    auto fresh = post(*c, "/v1/recommendations", "/v1/recommendations",
+                      json({{"ratings", rated}, {"rank_by", "draw"}}).dump());
+    REQUIRE(fresh.status == 200);
+    REQUIRE(fresh.body["seed"].is_string());
+    const auto again = post(*c, "/v1/recommendations", "/v1/recommendations",
+                            json({{"ratings", rated}, {"rank_by", "draw"}, {"seed", fresh.body["seed"]}}).dump());
+    CHECK(again.body["items"] == fresh.body["items"]);
+    const auto as_integer = post(*c, "/v1/recommendations", "/v1/recommendations",
+                                 json({{"ratings", rated}, {"rank_by", "draw"}, {"seed", 77}}).dump());
+    REQUIRE(as_integer.status == 200);
+    CHECK(as_integer.body["seed"] == "77");
+    // No ratings at all is a valid (prior) visitor.
     auto cold = post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": 3})");
     REQUIRE(cold.status == 200);
     CHECK(cold.body["items"].size() == 3);
@@ -314,7 +343,13 @@ TEST_CASE("visitor fold-in matches the offline fold-in and engine") {
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
                          R"({"ratings":[{"item":"sku-00001","rating":3},{"item":"sku-00001","rating":4}]})"), 400);
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": -2})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"rank_by": "draw", "seed": "abc"})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"rank_by": "draw", "seed": -4})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"rank_by": "draw", "seed": 1.5})"), 400);
+    // A malformed seed is refused even when the ranking does not use it.
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"seed": "abc"})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
+                         R"({"seed": "99999999999999999999999"})"), 400);
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", "nope"), 400);
 }
 
@@ -613,4 +648,11 @@ TEST_CASE("every route and status the server answered is described in openapi.js
     }
     // Each route answered at least once when the whole file runs.
     CHECK(checked > 0);
+}
+
+TEST_CASE("the server's start-up log names the CPU level its kernels run at") {
+    auto& f = fixture();
+    const std::string log = f.server->log();
+    INFO(log);
+    CHECK(log.find("kernels " + credence::cpu_level_description()) != std::string::npos);
 }

@@ -18,6 +18,7 @@ namespace {
 
 FitOptions short_chains(uint64_t seed) {
     FitOptions o;
+    o.run_length = RunLength::fixed;
     o.burn_in = 40;
     o.samples = 30;
     o.thin = 1;

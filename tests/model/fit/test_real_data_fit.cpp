@@ -60,6 +60,7 @@ TEST_CASE("open dataset: rank-10 fit beats the bias baseline with calibrated int
 
     FitOptions o;
     o.rank = 10;
+    o.run_length = RunLength::fixed;
     o.burn_in = 60;
     o.samples = 60;
     o.thin = 1;
