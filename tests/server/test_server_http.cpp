@@ -202,6 +202,8 @@ TEST_CASE("bad prediction requests get problem documents") {
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs": 3})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 1.0})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 0})"), 400);
+    // Within 1e-16 of 1, (1 + level)/2 rounds to 1 in double precision: a 400, never a 500.
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 0.9999999999999999})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": "high"})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[{"user": 7, "item": "sku-00000"}]})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[{"user": "cust-00000"}]})"), 400);
