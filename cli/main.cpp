@@ -123,6 +123,7 @@ int main(int argc, char** argv) {
     add(credence::cli::add_demo_data_command);
     add(credence::cli::add_compare_command);
     add(credence::cli::add_report_command);
+    add(credence::cli::add_forget_command);
     // Every subcommand's help, and so its man page, ends with the exit codes
     // (subcommands start with the footer above; one with its own gets both).
     for (CLI::App* sub : app.get_subcommands({}))

@@ -21,7 +21,7 @@ packages=(
 # Only the tests and benchmarks need these (scipy is the outside reference for
 # distribution checks; chromium renders the report; wrk drives the serve bench;
 # nginx and openssl run the exposed deployment with a certificate made in the
-# test; clang builds the libFuzzer targets of scripts/ci-extra; lintian checks
+# test; clang builds the libFuzzer targets of scripts/fuzz; lintian checks
 # the Debian package; prometheus brings promtool, which checks the example
 # alert rules).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then

@@ -1,5 +1,6 @@
 #include "server/app.hpp"
 
+#include <algorithm>
 #include <charconv>
 #include <chrono>
 #include <cmath>
@@ -45,10 +46,54 @@ std::shared_ptr<const LoadedModel> AppContext::model() const {
     return m;
 }
 
+namespace {
+
+// `model` less every customer in `forgotten` (the same model when none is in it).
+std::shared_ptr<const LoadedModel> less_forgotten(std::shared_ptr<const LoadedModel> model,
+                                                  const std::set<std::string>& forgotten) {
+    std::shared_ptr<const Posterior> posterior = model->posterior;
+    bool changed = false;
+    for (const auto& customer : forgotten) {
+        const auto& ids = posterior->user_ids;
+        const auto at = std::find(ids.begin(), ids.end(), customer);
+        if (at == ids.end()) continue;
+        posterior = std::make_shared<const Posterior>(
+            without_user(*posterior, static_cast<uint32_t>(at - ids.begin())));
+        changed = true;
+    }
+    if (!changed) return model;
+    const double load_ms = model->load_ms;
+    auto next = build_loaded_model(posterior, model->source_path);
+    std::const_pointer_cast<LoadedModel>(next)->load_ms += load_ms;
+    return next;
+}
+
+}  // namespace
+
+AppContext::Forgotten AppContext::forget(const std::string& customer) {
+    std::lock_guard lock(reload_mutex);
+    Forgotten out;
+    out.previous = model();
+    forgotten.insert(customer);
+    const auto user = out.previous->users.find(customer);
+    if (!user) {
+        out.model = out.previous;
+        return out;
+    }
+    out.found = true;
+    out.rated_items = out.previous->posterior->rated_by(*user).size();
+    out.model = build_loaded_model(std::make_shared<const Posterior>(without_user(*out.previous->posterior, *user)),
+                                   out.previous->source_path);
+    slot.set(out.model);
+    server_log().info("dropped a customer from the served model {} (now {}); {} forgotten since start",
+                      out.previous->fingerprint, out.model->fingerprint, forgotten.size());
+    return out;
+}
+
 std::shared_ptr<const LoadedModel> AppContext::reload(const std::string& path) {
     std::lock_guard lock(reload_mutex);
     try {
-        auto next = load_model_file(path);
+        auto next = less_forgotten(load_model_file(path), forgotten);
         slot.set(next);
         metrics.reload_finished(true);
         server_log().info("serving model {} from {} (loaded in {:.1f} ms)", next->fingerprint, path, next->load_ms);

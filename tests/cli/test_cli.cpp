@@ -671,6 +671,7 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
             {"demo-data", {"demo-data --out-dir " + quoted(dir / "a-file.csv" / "shop"), "a-file.csv"}},
             {"compare", {"compare --ratings " + missing_ratings, "missing.csv"}},
             {"report", {"report " + missing_model + " --out " + quoted(dir / "never.html"), "missing.posterior"}},
+            {"forget", {"forget --ratings " + missing_ratings + " --customer c-00007", "missing.csv"}},
         };
         std::ofstream(dir / "a-file.csv") << "customer,sku,stars\n";  // not a folder to write into
         for (const auto& sub : subcommands_from_help()) {
