@@ -22,8 +22,22 @@ CpuLevel probe() {
     // libgcc's probe checks the CPU's flags and that the operating system
     // saves the wide registers (XGETBV), as the psABI level definitions ask.
     __builtin_cpu_init();
-    if (CREDENCE_KERNEL_MAX_LEVEL >= 2 && __builtin_cpu_supports("x86-64-v4")) return CpuLevel::v4;
-    if (__builtin_cpu_supports("x86-64-v3")) return CpuLevel::v3;
+#if defined(__clang__)
+    // Clang before 17 knows no level names here (the fuzz and sanitizer
+    // builds use Debian's clang 14), so its probe asks for the levels'
+    // defining features; its runtime too reports AVX features only when the
+    // operating system saves the registers.
+    const bool v3 = __builtin_cpu_supports("avx2") && __builtin_cpu_supports("fma") &&
+                    __builtin_cpu_supports("bmi") && __builtin_cpu_supports("bmi2");
+    const bool v4 = v3 && __builtin_cpu_supports("avx512f") && __builtin_cpu_supports("avx512bw") &&
+                    __builtin_cpu_supports("avx512cd") && __builtin_cpu_supports("avx512dq") &&
+                    __builtin_cpu_supports("avx512vl");
+#else
+    const bool v3 = __builtin_cpu_supports("x86-64-v3");
+    const bool v4 = __builtin_cpu_supports("x86-64-v4");
+#endif
+    if (CREDENCE_KERNEL_MAX_LEVEL >= 2 && v4) return CpuLevel::v4;
+    if (v3) return CpuLevel::v3;
 #endif
     return CpuLevel::baseline;
 }
