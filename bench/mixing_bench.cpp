@@ -18,6 +18,7 @@
 #include <cmath>
 #include <cstdlib>
 #include <cstdio>
+#include <optional>
 #include <sstream>
 #include <string>
 #include <vector>
@@ -90,9 +91,12 @@ Headline print_variant(const std::string& name, const FitOptions& o, const FitRe
 
 // Per kept sample: chain, tau, bias precisions, traces of the factor
 // covariances, mu_U . mu_V, mean biases, mean squared factor norms.
-void write_trace(const Posterior& p, const std::string& path) {
+// With a pair (user, item index): that prediction and its parts (biases,
+// factor dot product, factor norms) too.
+void write_trace(const Posterior& p, const std::string& path, std::optional<std::pair<uint32_t, uint32_t>> pair) {
     std::FILE* f = std::fopen(path.c_str(), "w");
     std::fprintf(f, "chain\ttau\tlambda_b\tlambda_c\ttr_cov_u\ttr_cov_v\tmu_dot\tmean_b\tmean_c\tnorm_u\tnorm_v\tmu_u_norm\tmu_v_norm");
+    if (pair) std::fprintf(f, "\tpred\tb_u\tc_i\tdot_ui\tnorm_uu\tnorm_vi");
     for (uint32_t k = 0; k < p.rank; ++k) std::fprintf(f, "\tsv%u", k);
     std::fprintf(f, "\n");
     const uint32_t K = p.rank;
@@ -121,6 +125,18 @@ void write_trace(const Posterior& p, const std::string& path) {
         std::fprintf(f, "%u\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g\t%g", p.sample_chain[s], p.noise_precision[s],
                      p.has_biases ? p.user_bias_precision[s] : 0.f, p.has_biases ? p.item_bias_precision[s] : 0.f, tu, tv,
                      dot, mb / p.num_users, mc / p.num_items, nu / p.num_users, nv / p.num_items, std::sqrt(mun), std::sqrt(mvn));
+        if (pair) {
+            const auto [u, i] = *pair;
+            double d = 0, a = 0, b = 0;
+            const auto fu = p.user_factor(s, u), fi = p.item_factor(s, i);
+            for (uint32_t k = 0; k < K; ++k) {
+                d += double(fu[k]) * fi[k];
+                a += double(fu[k]) * fu[k];
+                b += double(fi[k]) * fi[k];
+            }
+            std::fprintf(f, "\t%g\t%g\t%g\t%g\t%g\t%g", p.sample_prediction(s, u, i), p.has_biases ? p.user_bias_of(s, u) : 0.f,
+                         p.has_biases ? p.item_bias_of(s, i) : 0.f, d, std::sqrt(a), std::sqrt(b));
+        }
         using RM = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
         const Eigen::MatrixXd U = Eigen::Map<const RM>(p.user_factors.data() + size_t(s) * p.num_users * K, p.num_users, K).cast<double>();
         const Eigen::MatrixXd V = Eigen::Map<const RM>(p.item_factors.data() + size_t(s) * p.num_items * K, p.num_items, K).cast<double>();
@@ -163,6 +179,9 @@ int main(int argc, char** argv) {
     app.add_option("--split-seed", split_seed, "seed of the held-out split (default: --seed)");
     app.add_flag("--all-predictions", all_predictions, "one line per probe prediction, not only min and median");
     app.add_option("--trace", trace_path, "write per-sample scalars (TSV) of the last variant here");
+    std::vector<uint32_t> trace_pair;
+    app.add_option("--trace-pair", trace_pair, "user and item index whose prediction and its parts the trace adds")
+        ->expected(2)->delimiter(',');
     app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
     CLI11_PARSE(app, argc, argv);
 
@@ -218,7 +237,9 @@ int main(int argc, char** argv) {
                         std::sqrt(se / double(test.size())), inside / double(test.size()), lpd / double(test.size()),
                         test.size(), fit.sweeps_per_chain, stop_reason_name(fit.stop_reason));
         }
-        if (!trace_path.empty()) write_trace(fit.posterior, trace_path);
+        if (!trace_path.empty())
+            write_trace(fit.posterior, trace_path,
+                        trace_pair.size() == 2 ? std::optional(std::pair(trace_pair[0], trace_pair[1])) : std::nullopt);
         std::fflush(stdout);
     }
     if (headlines.size() == 2) {
