@@ -78,6 +78,8 @@ void print_list(const RecommendFlags& f, const Posterior& p, const std::vector<R
         for (const auto& r : list) {
             nlohmann::json j = prediction_json(r.prediction, f.level);
             j["item"] = p.item_ids[r.item];
+            if (!p.item_name(r.item).empty()) j["name"] = p.item_name(r.item);
+            if (!p.item_category(r.item).empty()) j["category"] = p.item_category(r.item);
             j["score"] = r.score;
             items.push_back(std::move(j));
         }
@@ -96,9 +98,12 @@ void print_list(const RecommendFlags& f, const Posterior& p, const std::vector<R
     std::cout << fmt::format("top {} for {} ranked by {} ({:.0f}% intervals):\n", list.size(), who, f.rank_by,
                              100 * f.level);
     int pos = 1;
-    for (const auto& r : list)
-        std::cout << fmt::format("{:>3}. {:<32} {:.2f} ± {:.2f}  [{:.2f} .. {:.2f}]\n", pos++, p.item_ids[r.item],
+    for (const auto& r : list) {
+        std::cout << fmt::format("{:>3}. {:<32} {:.2f} ± {:.2f}  [{:.2f} .. {:.2f}]", pos++, p.item_ids[r.item],
                                  r.prediction.mean, r.prediction.sd, r.prediction.lower, r.prediction.upper);
+        if (!p.item_name(r.item).empty()) std::cout << "  " << p.item_name(r.item);
+        std::cout << "\n";
+    }
 }
 
 int run_recommend(const RecommendFlags& f) {

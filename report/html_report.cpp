@@ -116,6 +116,10 @@ std::string overview(const ReportInputs& in, const ConvergenceSummary& conv, con
     fact("kept samples", std::to_string(p.num_samples));
     fact("chains", std::to_string(p.num_chains));
     fact("bias terms", p.has_biases ? "yes" : "no");
+    if (p.has_catalogue()) {
+        const auto named = std::count_if(p.item_names.begin(), p.item_names.end(), [](const std::string& n) { return !n.empty(); });
+        fact("products named by the catalogue", std::to_string(named));
+    }
     fact("rating scale", fmt::format("{:g} to {:g}", p.scale.min, p.scale.max));
     o += fmt::format("<div><b><span class=\"badge {0}\">{1}</span></b>convergence verdict</div>", conv.verdict,
                      escape_xml(conv.verdict == "not_converged" ? "not converged"

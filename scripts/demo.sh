@@ -16,7 +16,7 @@ echo; echo "== 1. The shop's ratings export"
 head -4 "$work/ratings.csv"
 
 echo; echo "== 2. Fit (Gibbs sampling; rejected rows go to a rejects file, nothing is dropped silently)"
-"$bin" fit --ratings "$work/ratings.csv" --scale 1:5 --out "$work/shop.posterior" --rank 8 --holdout 0.1 --seed 7
+"$bin" fit --ratings "$work/ratings.csv" --catalogue "$work/catalogue.csv" --scale 1:5 --out "$work/shop.posterior" --rank 8 --holdout 0.1 --seed 7
 
 echo; echo "== 3. What the file holds"
 "$bin" inspect "$work/shop.posterior"

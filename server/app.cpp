@@ -270,6 +270,14 @@ void write_json(httplib::Response& res, const nlohmann::json& body, const Loaded
     res.set_content(body.dump(-1, ' ', false, nlohmann::json::error_handler_t::replace), "application/json");
 }
 
+nlohmann::json item_json(const LoadedModel& model, uint32_t i) {
+    nlohmann::json out = {{"item", model.items.name(i)}};
+    const Posterior& p = *model.posterior;
+    if (!p.item_name(i).empty()) out["name"] = p.item_name(i);
+    if (!p.item_category(i).empty()) out["category"] = p.item_category(i);
+    return out;
+}
+
 void put_prediction(nlohmann::json& out, const Prediction& p) {
     out["mean"] = p.mean;
     out["sd"] = p.sd;

@@ -97,6 +97,10 @@ double json_level(const nlohmann::json& body, double fallback);
 // and the Credence-Model header naming the model that answered.
 void write_json(httplib::Response& res, const nlohmann::json& body, const LoadedModel* model = nullptr);
 
+// {"item": id} plus "name" and "category" when the model carries a
+// catalogue (omitted for a product the catalogue does not list). Needs i < I.
+nlohmann::json item_json(const LoadedModel& model, uint32_t i);
+
 // The JSON fields of one prediction: mean, sd, lower, upper.
 void put_prediction(nlohmann::json& out, const Prediction& p);
 

@@ -15,11 +15,12 @@ namespace {
 
 nlohmann::json item_summary(const LoadedModel& m, uint32_t i) {
     const ItemStatistics& st = m.statistics;
-    return {{"item", m.items.name(i)},
-            {"rating_count", st.rating_count[i]},
-            {"mean", st.population_mean[i]},
-            {"sd", st.population_sd[i]},
-            {"factor_spread", st.factor_spread[i]}};
+    nlohmann::json out = item_json(m, i);
+    out.update(nlohmann::json{{"rating_count", st.rating_count[i]},
+                              {"mean", st.population_mean[i]},
+                              {"sd", st.population_sd[i]},
+                              {"factor_spread", st.factor_spread[i]}});
+    return out;
 }
 
 void detail_handler(const LoadedModel& m, uint32_t i, httplib::Response& res) {
@@ -39,7 +40,9 @@ void similar_handler(const AppContext& ctx, const httplib::Request& req, const L
     const uint32_t n = query_count(req, "n", 10, ctx.options.max_n);
     nlohmann::json items = nlohmann::json::array();
     for (const SimilarItem& similar : similar_items(*m.posterior, m.statistics, target, n))
-        items.push_back({{"item", m.items.name(similar.item)}, {"similarity", similar.similarity}});
+        nlohmann::json entry = item_json(m, similar.item);
+        entry["similarity"] = similar.similarity;
+        items.push_back(std::move(entry));
     write_json(res, {{"model", m.fingerprint}, {"item", m.items.name(target)}, {"items", std::move(items)}}, &m);
 }
 

@@ -8,6 +8,7 @@
 // share one pass over the item samples (server/topn_batcher.hpp).
 #include <algorithm>
 #include <charconv>
+#include <optional>
 #include <string>
 #include <vector>
 
@@ -34,10 +35,40 @@ uint32_t item_index(const LoadedModel& model, const std::string& id) {
     return *index;
 }
 
+// The products of one catalogue category, as candidates; narrows `candidates`
+// when the request also named some. Throws a 400 problem when the model has
+// no catalogue or no product in that category (naming the known ones).
+std::vector<uint32_t> category_candidates(const LoadedModel& model, const std::string& category,
+                                          const std::optional<std::vector<uint32_t>>& candidates) {
+    const Posterior& p = *model.posterior;
+    if (!p.has_catalogue())
+        throw bad_request("category needs a model fitted with a catalogue (credence fit --catalogue FILE)");
+    std::vector<uint32_t> out;
+    std::vector<std::string> known;
+    const auto keep = [&](uint32_t i) {
+        if (p.item_category(i) == category) out.push_back(i);
+    };
+    if (candidates) {
+        for (uint32_t i : *candidates) keep(i);
+    } else {
+        for (uint32_t i = 0; i < p.num_items; ++i) keep(i);
+    }
+    if (out.empty() && !candidates) {
+        for (uint32_t i = 0; i < p.num_items; ++i)
+            if (!p.item_category(i).empty() && std::find(known.begin(), known.end(), p.item_category(i)) == known.end())
+                known.push_back(p.item_category(i));
+        std::string list;
+        for (const auto& k : known) list += (list.empty() ? "" : ", ") + k;
+        throw bad_request("no product has category '" + category + "'; the catalogue's categories are: " + list);
+    }
+    return out;
+}
+
 nlohmann::json recommendation_list(const LoadedModel& model, const std::vector<Recommendation>& recs) {
     nlohmann::json items = nlohmann::json::array();
     for (const auto& r : recs) {
-        nlohmann::json entry = {{"item", model.items.name(r.item)}, {"score", r.score}};
+        nlohmann::json entry = item_json(model, r.item);
+        entry["score"] = r.score;
         put_prediction(entry, r.prediction);
         items.push_back(std::move(entry));
     }
@@ -74,6 +105,8 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
             candidates.push_back(item_index(*model, req.get_param_value("items", k)));
         options.candidates = std::move(candidates);
     }
+    if (req.has_param("category"))
+        options.candidates = category_candidates(*model, req.get_param_value("category"), options.candidates);
     const auto recs = known_user_batcher(ctx.options).recommend(model->engine, *user, options);
     nlohmann::json body = {{"model", model->fingerprint},
                            {"user", user_id},
@@ -163,6 +196,8 @@ void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
         for (const auto& id : candidate_ids) candidates.push_back(item_index(*model, id));
         options.candidates = std::move(candidates);
     }
+    if (const auto it = body.find("category"); it != body.end())
+        options.candidates = category_candidates(*model, json_string(*it, "category"), options.candidates);
     const auto recs = recommend_for_visitor(model->engine, ratings, options);
     nlohmann::json answer = {{"model", model->fingerprint},
                              {"rank_by", rank_by_name(options.rank_by)},

@@ -56,7 +56,8 @@ const DemoFit& demo_fit() {
         REQUIRE(gen.exit_code == 0);
         x.ratings = x.dir / "ratings.csv";
         x.model = x.dir / "shop.posterior";
-        x.fit = run_credence("fit --ratings " + quoted(x.ratings) + " --scale 1:5 --out " + quoted(x.model) +
+        x.fit = run_credence("fit --ratings " + quoted(x.ratings) + " --catalogue " + quoted(x.dir / "catalogue.csv") +
+                             " --scale 1:5 --out " + quoted(x.model) +
                              " --rank 4 --run-length fixed --burn-in 40 --samples 20 --thin 1 --chains 2 --seed 3 --holdout 0.1");
         return x;
     }();
@@ -149,6 +150,49 @@ TEST_CASE("fit turns a demo export into a posterior file and accounts for every 
     CHECK(meta.at("data").at("rejected") == 3);
     // CREDENCE_PROJECT_VERSION comes from CMake's project(VERSION), not from the program.
     CHECK(meta.at("credence_version") == CREDENCE_PROJECT_VERSION);
+}
+
+TEST_CASE("fit --catalogue stores each product's name and category, and recommend shows the names") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    // The catalogue as demo-data wrote it, read here line by line (no quoted
+    // commas in ids or categories; a name may be quoted).
+    std::map<std::string, std::pair<std::string, std::string>> listed;
+    std::ifstream in(d.dir / "catalogue.csv");
+    std::string line;
+    std::getline(in, line);  // header
+    while (std::getline(in, line)) {
+        const auto first = line.find(','), last = line.rfind(',');
+        std::string name = line.substr(first + 1, last - first - 1);
+        if (name.size() >= 2 && name.front() == '"') name = name.substr(1, name.size() - 2);
+        listed[line.substr(0, first)] = {name, line.substr(last + 1)};
+    }
+    REQUIRE(listed.size() == 80);
+    const auto p = credence::read_posterior(d.model.string());
+    REQUIRE(p.has_catalogue());
+    for (uint32_t i = 0; i < p.num_items; ++i) {
+        INFO(p.item_ids[i]);
+        REQUIRE(listed.count(p.item_ids[i]) == 1);
+        CHECK(p.item_name(i) == listed[p.item_ids[i]].first);
+        CHECK(p.item_category(i) == listed[p.item_ids[i]].second);
+    }
+    const auto meta = json::parse(p.fit_metadata_json);
+    CHECK(meta.at("catalogue").at("rows_read") == 80);
+    CHECK(meta.at("catalogue").at("kept") == 80);
+    CHECK(meta.at("catalogue").at("products_named") == p.num_items);
+
+    const auto text = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 3");
+    REQUIRE(text.exit_code == 0);
+    const auto js = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 3 --json");
+    REQUIRE(js.exit_code == 0);
+    const auto items = json::parse(js.out).at("items");
+    REQUIRE(items.size() == 3);
+    for (const auto& item : items) {
+        const std::string id = item.at("item");
+        CHECK(item.at("name") == listed[id].first);
+        CHECK(item.at("category") == listed[id].second);
+        CHECK(text.out.find(listed[id].first) != std::string::npos);
+    }
 }
 
 TEST_CASE("--version prints exactly the version that CMakeLists.txt declares and the kernels' CPU level") {
