@@ -51,6 +51,11 @@ struct Fixture {
         p.user_ids[3] = kOddUser;
         p.item_ids[5] = kOddItem;
         p.item_ids[6] = kSimilarItem;
+        // A catalogue of the invented shop: every item named, three categories.
+        for (uint32_t i = 0; i < p.num_items; ++i) {
+            p.item_names.push_back("Thimbleford piece " + std::to_string(i));
+            p.item_categories.push_back(i % 3 == 0 ? "kitchen" : i % 3 == 1 ? "pantry" : "garden");
+        }
         model_path = dir / "shop.posterior";
         write_posterior(p, model_path.string());
         spec.seed = 2;
@@ -264,6 +269,32 @@ TEST_CASE("user top-N equals the offline engine for every ranking") {
         REQUIRE(a.body["items"].size() == want.size());
         for (size_t k = 0; k < want.size(); ++k) CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
     }
+}
+
+TEST_CASE("a category narrows the top-N to its products, as the offline engine does, and names come beside ids") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    RecommendOptions o;
+    o.n = 5;
+    std::vector<uint32_t> pantry;
+    for (uint32_t i = 0; i < p.num_items; ++i)
+        if (p.item_category(i) == "pantry") pantry.push_back(i);
+    o.candidates = pantry;
+    const auto want = f.engine->recommend(0, o);
+    auto a = get(*c, kUserRoute, user_path(p.user_ids[0]) + "?n=5&category=pantry");
+    INFO(a.text);
+    REQUIRE(a.status == 200);
+    REQUIRE(a.body["items"].size() == want.size());
+    for (size_t k = 0; k < want.size(); ++k) {
+        const auto& item = a.body["items"][k];
+        CHECK(item["item"] == p.item_ids[want[k].item]);
+        CHECK(item["category"] == "pantry");
+        CHECK(item["name"] == "Thimbleford piece " + std::to_string(want[k].item));
+    }
+    auto unknown = get(*c, kUserRoute, user_path(p.user_ids[0]) + "?category=lighting");
+    require_problem(unknown, 400);
+    CHECK(unknown.body["detail"].get<std::string>().find("kitchen") != std::string::npos);
 }
 
 TEST_CASE("bad recommendation requests get problem documents") {
