@@ -173,7 +173,7 @@ int main(int argc, char** argv) {
     }
     IngestOptions in;
     in.path = ratings;
-    in.rejects_path = "/dev/null";
+    in.rejects_path = "";  // the default place, written only when a row is rejected
     if (!scale.empty()) {
         const auto colon = scale.find(':');
         in.scale = RatingScale{std::stof(scale.substr(0, colon)), std::stof(scale.substr(colon + 1)), true};

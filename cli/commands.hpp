@@ -21,5 +21,6 @@ Runner add_demo_data_command(CLI::App& app);
 Runner add_serve_command(CLI::App& app);
 Runner add_compare_command(CLI::App& app);
 Runner add_report_command(CLI::App& app);
+Runner add_forget_command(CLI::App& app);
 
 }  // namespace credence::cli

@@ -103,7 +103,9 @@ int main(int argc, char** argv) {
         return kExitUsage;
     }
     app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion + "\nkernels: " + cpu_level);
-    app.footer("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).");
+    const std::string exit_codes =
+        "Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).";
+    app.footer(exit_codes);
 
     std::map<CLI::App*, credence::cli::Runner> runners;
     auto add = [&](credence::cli::Runner (*adder)(CLI::App&)) {
@@ -121,6 +123,11 @@ int main(int argc, char** argv) {
     add(credence::cli::add_demo_data_command);
     add(credence::cli::add_compare_command);
     add(credence::cli::add_report_command);
+    add(credence::cli::add_forget_command);
+    // Every subcommand's help, and so its man page, ends with the exit codes
+    // (subcommands start with the footer above; one with its own gets both).
+    for (CLI::App* sub : app.get_subcommands({}))
+        if (sub->get_footer() != exit_codes) sub->footer(sub->get_footer() + "\n\n" + exit_codes);
 
     try {
         app.parse(argc, argv);

@@ -144,7 +144,7 @@ Runner add_recommend_command(CLI::App& app) {
     auto f = std::make_shared<RecommendFlags>();
     CLI::App* cmd = app.add_subcommand(
         "recommend", "Top-N items for one user, or for a visitor from a few ratings, each with sd and credible interval");
-    cmd->add_option("--model,-m", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
+    cmd->add_option("--model,-m", f->model, "Posterior file")->required();
     cmd->add_option("--user,-u", f->user, "User id as in the ratings export (or give --rated)");
     cmd->add_option("--rated", f->rated,
                     "PRODUCT=STARS: a rating of someone not in the model, folded in; repeat for each product "

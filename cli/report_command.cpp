@@ -72,10 +72,9 @@ int run_report(const ReportFlags& f) {
 Runner add_report_command(CLI::App& app) {
     auto f = std::make_shared<ReportFlags>();
     CLI::App* cmd = app.add_subcommand("report", "Write a self-contained HTML report: convergence, traces, calibration, uncertainty, rank comparison");
-    cmd->add_option("model", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
-    cmd->add_option("--validation", f->validation, "Held-out ratings file (CSV/TSV, detected) for the calibration section")
-        ->check(CLI::ExistingFile);
-    cmd->add_option("--comparison", f->comparison, "JSON written by credence compare --json")->check(CLI::ExistingFile);
+    cmd->add_option("model", f->model, "Posterior file")->required();
+    cmd->add_option("--validation", f->validation, "Held-out ratings file (CSV/TSV, detected) for the calibration section");
+    cmd->add_option("--comparison", f->comparison, "JSON written by credence compare --json");
     cmd->add_option("--out,-o", f->out, "HTML file to write")->required();
     cmd->add_option("--k", f->k, "List length for the top-k metrics of the validation set")
         ->check(CLI::Range(1u, 10000u))->capture_default_str();

@@ -7,6 +7,7 @@
 #include <memory>
 #include <mutex>
 #include <optional>
+#include <set>
 #include <string>
 #include <string_view>
 #include <vector>
@@ -30,14 +31,25 @@ struct AppContext {
     AccessPolicy access;      // API tokens and what each route needs (configured before serving)
     ModelSlot slot;
     Metrics metrics;
-    std::mutex reload_mutex;  // one reload at a time
+    std::mutex reload_mutex;  // one reload or forget at a time; guards forgotten
+    std::set<std::string> forgotten;  // customers dropped by POST /v1/admin/forget since start
     std::atomic<uint64_t> seed_counter{0};
 
     // The current model, or throws the 503 problem.
     std::shared_ptr<const LoadedModel> model() const;
-    // Loads `path` and swaps it in; on failure the old model stays and the
-    // error propagates. Returns the new model.
+    // Loads `path` and swaps it in, less every forgotten customer; on failure
+    // the old model stays and the error propagates. Returns the new model.
     std::shared_ptr<const LoadedModel> reload(const std::string& path);
+
+    struct Forgotten {
+        bool found = false;              // the model had this customer
+        uint64_t rated_items = 0;        // how many products they had rated
+        std::shared_ptr<const LoadedModel> model, previous;
+    };
+    // Drops `customer`'s own factors, bias, id and rated list from the model
+    // being served (swapped in at once) and from every model loaded later by
+    // this process. Throws the 503 problem when no model is loaded.
+    Forgotten forget(const std::string& customer);
     // A fresh seed for requests that did not give one.
     uint64_t next_seed();
 };

@@ -2,11 +2,14 @@
 
 #include <algorithm>
 #include <array>
+#include <cctype>
+#include <charconv>
 #include <cstdlib>
 #include <fstream>
 #include <limits>
 #include <stdexcept>
 #include <type_traits>
+#include <utility>
 
 #include <fmt/format.h>
 #include <toml++/toml.h>
@@ -84,6 +87,7 @@ const auto kKeys = std::to_array<ServeConfigKey>({
              "directory that admin reloads may load files from; empty: only the file being served"),
     switch_key("access_log", &O::access_log, "one access-log line per request on stderr"),
     switch_key("log_ids", &O::log_ids, "access-log lines include the request target, so user and item ids"),
+    switch_key("log_json", &O::log_json, "every log line is one JSON object (time, level, logger, fields); else text"),
     number_key("max_n", &O::max_n, 1, kU32, "largest n for top-N lists, similar items and item lists"),
     number_key("max_batch", &O::max_batch, 1, kU32, "largest prediction batch, fold-in rating list and candidate list"),
     number_key("topn_lanes", &O::topn_lanes, 0, kU32,
@@ -185,6 +189,9 @@ std::string serve_config_value(const ServeConfigKey& key, const ServeOptions& op
 }
 
 ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base) {
+    // A file that cannot be read is a file problem, not a mistake in it.
+    if (!std::ifstream(toml_path))
+        throw FileError("cannot read config file " + toml_path + "; check the path and its permissions");
     toml::table root;
     try {
         root = toml::parse_file(toml_path);
@@ -236,6 +243,55 @@ std::string resolve_admin_token(const ServeOptions& o) {
                     (o.admin_token_file.empty() ? "variable " + o.admin_token_env : "file " + o.admin_token_file) +
                     " is empty; put a long random string in it or unset it");
     return token;
+}
+
+// ---- the environment (CREDENCE_SERVE_<KEY>)
+
+std::string serve_environment_variable(const ServeConfigKey& key) {
+    std::string name = "CREDENCE_SERVE_";
+    for (const char c : key.name) name.push_back(static_cast<char>(std::toupper(static_cast<unsigned char>(c))));
+    return name;
+}
+
+namespace {
+
+// Sets `key` from the text of its variable; returns why it cannot (empty: done).
+std::string assign_text(const ServeConfigKey& key, const std::string& text, ServeOptions& options) {
+    return std::visit(
+        [&](auto member) -> std::string {
+            using T = std::remove_cvref_t<decltype(options.*member)>;
+            if constexpr (std::is_same_v<T, std::string>) {
+                return assign(key, toml::value<std::string>(text), options);
+            } else if constexpr (std::is_same_v<T, bool>) {
+                if (text != "true" && text != "false") return "must be true or false";
+                return assign(key, toml::value<bool>(text == "true"), options);
+            } else {
+                int64_t v = 0;
+                const auto [end, ec] = std::from_chars(text.data(), text.data() + text.size(), v);
+                if (text.empty() || ec != std::errc() || end != text.data() + text.size())
+                    return "must be an integer in " + range_text(key);
+                return assign(key, toml::value<int64_t>(v), options);
+            }
+        },
+        key.field);
+}
+
+}  // namespace
+
+ServeOptions apply_serve_environment(ServeOptions base, const EnvironmentLookup& lookup) {
+    for (const auto& key : kKeys) {
+        const std::string variable = serve_environment_variable(key);
+        const char* value = lookup(variable.c_str());
+        if (!value) continue;
+        if (const std::string why = assign_text(key, value, base); !why.empty())
+            throw OptionError("environment: " + variable + "=" + value + " " + why + " (sets [serve] " +
+                              std::string(key.name) + ": " + std::string(key.doc) + ")");
+    }
+    return base;
+}
+
+ServeOptions apply_serve_environment(ServeOptions base) {
+    return apply_serve_environment(std::move(base), [](const char* name) -> const char* { return std::getenv(name); });
 }
 
 }  // namespace credence::server

@@ -5,6 +5,7 @@
 // unknown keys, validation and every message about a key come from it.
 #pragma once
 #include <cstdint>
+#include <functional>
 #include <span>
 #include <string>
 #include <string_view>
@@ -35,6 +36,7 @@ struct ServeOptions {
     std::string model_dir;                       // reload may name files only inside this directory
     bool log_ids = false;                        // access log includes user/item ids
     bool access_log = true;                      // one log line per request
+    bool log_json = false;                       // log lines as JSON objects (server/logging.hpp)
     uint32_t max_n = 1000;                       // largest n for top-N and item lists
     uint32_t max_batch = 10000;                  // largest prediction batch / fold-in rating count
     uint32_t topn_lanes = 0;                     // top-N passes running at once; 0 = one per hardware thread
@@ -69,8 +71,9 @@ const ServeConfigKey& serve_config_key(std::string_view name);
 std::string serve_config_value(const ServeConfigKey& key, const ServeOptions& options);
 
 // Reads the [serve] table of a TOML file over `base` (keys absent from the
-// file keep base's values). Throws OptionError naming the file and key for a
-// TOML syntax error, an unknown key, a wrong type or an out-of-range value.
+// file keep base's values). Throws FileError if the file cannot be opened,
+// OptionError naming the file and key for a TOML syntax error, an unknown
+// key, a wrong type or an out-of-range value.
 ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base = {});
 
 // Checks every key's value against the table, whether it came from the file,
@@ -78,6 +81,23 @@ ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base =
 // (model, host) not empty, strings with choices one of them. Throws OptionError naming the key, its range and
 // what it sets.
 void validate_serve_options(const ServeOptions& options);
+
+// ---- the environment: every [serve] key also comes from a variable
+// CREDENCE_SERVE_<KEY> (the name in upper case: CREDENCE_SERVE_PORT,
+// CREDENCE_SERVE_LOG_JSON), for containers and service managers. Precedence:
+// built-in defaults, then the config file, then the environment, then flags.
+
+// The variable that sets `key`: "CREDENCE_SERVE_" + the name in upper case.
+std::string serve_environment_variable(const ServeConfigKey& key);
+
+// Returns `base` with every key whose variable `lookup` knows (a non-null
+// result) set from it: a string as it is, true or false, or decimal digits
+// within the key's range. `lookup` is std::getenv unless a test passes its
+// own. Throws OptionError naming the variable, what it sets and its range for
+// a value of the wrong kind or out of range.
+using EnvironmentLookup = std::function<const char*(const char*)>;
+ServeOptions apply_serve_environment(ServeOptions base, const EnvironmentLookup& lookup);
+ServeOptions apply_serve_environment(ServeOptions base);
 
 // Resolves the admin token: the file's first line (trimmed) when
 // admin_token_file is set, else the environment variable admin_token_env.

@@ -4,6 +4,7 @@
 // that reach no handler (unknown route, body too large, malformed request).
 #include "server/server.hpp"
 
+#include <chrono>
 #include <cctype>
 #include <csignal>
 #include <cstdio>
@@ -20,6 +21,7 @@
 #include "model/error.hpp"
 #include "model/math/cpu_level.hpp"
 #include "server/app.hpp"
+#include "server/logging.hpp"
 #include "server/http_listener.hpp"
 
 namespace credence::server {
@@ -148,10 +150,9 @@ void reload_api_tokens(AppContext& ctx) {
     }
 }
 
-}  // namespace
-
-int run_server(const ServeOptions& options) {
-    AppContext ctx;
+// Reads the options and tokens into ctx. Returns 0, or the exit code of a
+// refusal it has logged (2 for a usage problem, 1 for an unreadable file).
+int prepare_context(AppContext& ctx, const ServeOptions& options) {
     ctx.options = options;
     try {
         validate_serve_options(options);
@@ -164,6 +165,56 @@ int run_server(const ServeOptions& options) {
         server_log().error("{}", e.what());
         return 1;
     }
+    return 0;
+}
+
+// What the signal thread and run_server share while the server runs.
+struct StopState {
+    std::atomic<bool> stop_requested{false};
+    std::chrono::steady_clock::time_point stop_started{};  // written by the signal thread before stop()
+    std::atomic<bool> listen_returned{false};
+};
+
+// The signal thread: SIGHUP reloads the model and the tokens; SIGINT and
+// SIGTERM stop the server gracefully. Only this thread calls server.stop(),
+// and only once the server runs (httplib ignores a stop() before listen).
+void watch_signals(HttpListener& server, AppContext& ctx, const sigset_t& handled, StopState& state) {
+    const timespec tick{0, 50'000'000};
+    while (!state.listen_returned) {
+        const int sig = sigtimedwait(&handled, nullptr, &tick);
+        if (sig == SIGHUP) {
+            // Reloading here keeps it off the request path; requests keep
+            // the old model until the swap.
+            const auto current = ctx.slot.get();
+            const std::string path = current ? current->source_path : ctx.options.model_path;
+            try {
+                ctx.reload(path);
+            } catch (const std::exception& e) {
+                server_log().error("reload on SIGHUP failed, still serving the previous model: {}", e.what());
+            }
+            reload_api_tokens(ctx);
+        } else if (sig == SIGINT || sig == SIGTERM) {
+            // Graceful: stop() closes the listening socket at once (new
+            // connections are refused, so a proxy tries another replica);
+            // listen_after_bind() returns once every worker has answered
+            // the request it is on (idle keep-alive connections close).
+            server_log().info("serve: stopping on signal {}; answering the requests in flight", sig);
+            state.stop_started = std::chrono::steady_clock::now();
+            state.stop_requested = true;
+        }
+        if (state.stop_requested && server.is_running()) {
+            server.stop();
+            break;
+        }
+    }
+}
+
+}  // namespace
+
+int run_server(const ServeOptions& options) {
+    use_json_logs(options.log_json);
+    AppContext ctx;
+    if (const int refused = prepare_context(ctx, options); refused != 0) return refused;
 
     // Block the signals we handle in every thread started from here on; one
     // thread waits for them synchronously (no async-signal-safety pitfalls).
@@ -198,10 +249,7 @@ int run_server(const ServeOptions& options) {
     server_log().info("credence {} serving on http://{}:{}; kernels {}", kCredenceVersion, options.host, port,
                       cpu_level_description());
 
-    // Only the signal thread calls server.stop(), and only once the server
-    // runs: httplib ignores a stop() that comes before listen starts.
-    std::atomic<bool> stop_requested{false};
-    std::atomic<bool> listen_returned{false};
+    StopState state;
     std::atomic<int> exit_code{0};
     std::thread loader([&] {
         try {
@@ -209,39 +257,24 @@ int run_server(const ServeOptions& options) {
         } catch (const std::exception& e) {
             server_log().error("serve: cannot load model {}: {}", options.model_path, e.what());
             exit_code = 1;
-            stop_requested = true;
+            state.stop_requested = true;
         }
     });
-    std::thread signals([&] {
-        const timespec tick{0, 50'000'000};
-        while (!listen_returned) {
-            const int sig = sigtimedwait(&handled, nullptr, &tick);
-            if (sig == SIGHUP) {
-                // Reloading here keeps it off the request path; requests keep
-                // the old model until the swap.
-                const auto current = ctx.slot.get();
-                const std::string path = current ? current->source_path : ctx.options.model_path;
-                try {
-                    ctx.reload(path);
-                } catch (const std::exception& e) {
-                    server_log().error("reload on SIGHUP failed, still serving the previous model: {}", e.what());
-                }
-                reload_api_tokens(ctx);
-            } else if (sig == SIGINT || sig == SIGTERM) {
-                server_log().info("serve: stopping on signal {}", sig);
-                stop_requested = true;
-            }
-            if (stop_requested && server.is_running()) {
-                server.stop();
-                break;
-            }
-        }
-    });
+    std::thread signals([&] { watch_signals(server, ctx, handled, state); });
 
     server.listen_after_bind();
-    listen_returned = true;
+    state.listen_returned = true;
     loader.join();
     signals.join();
+    // A signal that came while stopping (a supervisor's second SIGTERM) is
+    // part of this stop: take it, so restoring the mask does not deliver it.
+    const timespec no_wait{0, 0};
+    while (sigtimedwait(&handled, nullptr, &no_wait) > 0) {
+    }
+    if (state.stop_started != std::chrono::steady_clock::time_point{})
+        server_log().info("serve: stopped {:.0f} ms after the signal, every request in flight answered",
+                          std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - state.stop_started)
+                              .count());
     pthread_sigmask(SIG_SETMASK, &previous, nullptr);
     return exit_code;
 }

@@ -715,11 +715,19 @@ void Ingest::check_encoding(std::string_view sample) const {
 }
 
 // A rejects file at the rejects path was written by an earlier run when this
-// run rejected nothing: remove it, or say why it stays.
+// run rejected nothing: remove it, or say why it stays. Only a regular file
+// is ever removed: a rejects path naming a device (/dev/null), a pipe or a
+// folder is the caller's to keep.
 void Ingest::clear_stale_rejects() {
     const std::string& path = rejects_.path();
     std::error_code ec;
-    if (summary_.rejected > 0 || path.empty() || !std::filesystem::exists(path, ec)) return;
+    if (summary_.rejected > 0 || path.empty()) return;
+    const auto status = std::filesystem::status(path, ec);
+    if (std::filesystem::is_directory(status)) {
+        summary_.stale_rejects = fmt::format("left {} (a folder, not a rejects file)", path);
+        return;
+    }
+    if (!std::filesystem::is_regular_file(status)) return;
     if (std::filesystem::remove(path, ec)) summary_.stale_rejects = "removed " + path;
     else summary_.stale_rejects = fmt::format("left {} ({})", path, ec ? ec.message() : "not removed");
 }

@@ -2,8 +2,11 @@
 
 #include <algorithm>
 #include <cmath>
+#include <stdexcept>
 #include <string>
 #include <vector>
+
+#include <nlohmann/json.hpp>
 
 #include "model/error.hpp"
 
@@ -119,6 +122,68 @@ void Posterior::validate() const {
                                   " are not sorted and unique");
         }
     }
+}
+
+namespace {
+
+// Copies [S][U][width] minus user `u`'s rows.
+std::vector<float> without_rows(const std::vector<float>& values, size_t samples, size_t users, size_t width, size_t u) {
+    if (values.empty()) return {};
+    std::vector<float> out;
+    out.reserve(samples * (users - 1) * width);
+    for (size_t s = 0; s < samples; ++s) {
+        const auto* block = values.data() + s * users * width;
+        out.insert(out.end(), block, block + u * width);
+        out.insert(out.end(), block + (u + 1) * width, block + users * width);
+    }
+    return out;
+}
+
+// The convergence figures without probe pairs of `id`, and without `id` in warnings.
+std::string diagnostics_without(const std::string& text, const std::string& id) {
+    nlohmann::json doc = nlohmann::json::parse(text, nullptr, false);
+    if (doc.is_discarded() || !doc.is_object()) return text;
+    if (auto it = doc.find("quantities"); it != doc.end() && it->is_array()) {
+        nlohmann::json kept = nlohmann::json::array();
+        for (const auto& q : *it)
+            if (!(q.is_object() && q.contains("user_id") && q["user_id"] == id)) kept.push_back(q);
+        *it = std::move(kept);
+    }
+    if (auto it = doc.find("warnings"); it != doc.end() && it->is_array() && !id.empty()) {
+        for (auto& w : *it) {
+            if (!w.is_string()) continue;
+            std::string line = w.get<std::string>();
+            for (size_t at = line.find(id); at != std::string::npos; at = line.find(id, at + 1))
+                line.replace(at, id.size(), "(a removed customer)");
+            w = line;
+        }
+    }
+    return doc.dump();
+}
+
+}  // namespace
+
+Posterior without_user(const Posterior& p, uint32_t user) {
+    if (user >= p.num_users)
+        throw std::out_of_range("without_user: user index " + std::to_string(user) + " is beyond the model's " +
+                                std::to_string(p.num_users) + " users");
+    const size_t S = p.num_samples, U = p.num_users, K = p.rank, u = user;
+    Posterior out = p;  // items, hyperparameters, metadata: unchanged
+    out.num_users = p.num_users - 1;
+    out.user_ids.erase(out.user_ids.begin() + static_cast<std::ptrdiff_t>(u));
+    out.user_factors = without_rows(p.user_factors, S, U, K, u);
+    out.user_bias = without_rows(p.user_bias, S, U, 1, u);
+    out.rated_offsets.clear();
+    out.rated_items.clear();
+    out.rated_offsets.push_back(0);
+    for (size_t v = 0; v < U; ++v) {
+        if (v == u) continue;
+        const auto rated = p.rated_by(static_cast<uint32_t>(v));
+        out.rated_items.insert(out.rated_items.end(), rated.begin(), rated.end());
+        out.rated_offsets.push_back(out.rated_items.size());
+    }
+    out.diagnostics_json = diagnostics_without(p.diagnostics_json, p.user_ids[u]);
+    return out;
 }
 
 }  // namespace credence

@@ -7,12 +7,14 @@
 #include <unistd.h>
 
 #include <algorithm>
+#include <cctype>
 #include <chrono>
 #include <filesystem>
 #include <fstream>
 #include <map>
 #include <memory>
 #include <optional>
+#include <set>
 #include <sstream>
 #include <string>
 #include <tuple>
@@ -112,6 +114,57 @@ std::string shown(const T& value) {
     std::ostringstream s;
     s << value;
     return s.str();
+}
+
+// The subcommands `credence --help` lists, in its order.
+std::vector<std::string> subcommands_from_help() {
+    const auto help = run_credence("--help");
+    REQUIRE(help.exit_code == 0);
+    std::vector<std::string> names;
+    std::istringstream in(help.out);
+    std::string line;
+    while (std::getline(in, line) && line != "Subcommands:") {}
+    while (std::getline(in, line) && !line.empty()) {
+        std::istringstream words(line);
+        std::string name;
+        words >> name;
+        names.push_back(name);
+    }
+    REQUIRE(!names.empty());
+    return names;
+}
+
+// The long option names in a help text: the first "--name" of each entry line.
+std::set<std::string> long_options(const std::string& help) {
+    std::set<std::string> names;
+    std::istringstream in(help);
+    for (std::string line; std::getline(in, line);) {
+        if (line.rfind("  -", 0) != 0) continue;
+        const auto at = line.find("--");
+        if (at == std::string::npos) continue;
+        const auto end = line.find_first_of(" =,", at);
+        names.insert(line.substr(at, end == std::string::npos ? std::string::npos : end - at));
+    }
+    return names;
+}
+
+// A gzip-compressed man page as roff text, with roff's escaped hyphens ("\-") as "-".
+std::string man_page_text(const fs::path& page) {
+    std::string text;
+    // Built with append: GCC 12 warns falsely (-Wrestrict) on "literal" + string.
+    std::string command = "gzip -dc ";
+    command.append(quoted(page));
+    FILE* pipe = popen(command.c_str(), "r");
+    REQUIRE(pipe);
+    char buffer[4096];
+    for (size_t got; (got = fread(buffer, 1, sizeof buffer, pipe)) > 0;) text.append(buffer, got);
+    REQUIRE(pclose(pipe) == 0);
+    std::string unescaped;
+    for (size_t k = 0; k < text.size(); ++k) {
+        if (text[k] == '\\' && k + 1 < text.size() && text[k + 1] == '-') continue;  // "\-" -> "-"
+        unescaped.push_back(text[k]);
+    }
+    return unescaped;
 }
 
 size_t count_lines(const fs::path& p) {
@@ -648,6 +701,49 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
         CHECK(unwritable.err.find("could not write") != std::string::npos);
         CHECK(unwritable.err.find("r.html") != std::string::npos);
     }
+    SECTION("a file that is missing or cannot be written exits 1 for every subcommand, and names it") {
+        const std::string missing_model = quoted(dir / "missing.posterior");
+        const std::string missing_ratings = quoted(dir / "missing.csv");
+        // Each subcommand's command line, and the file its message must name.
+        const std::map<std::string, std::pair<std::string, std::string>> commands = {
+            {"fit", {"fit --ratings " + missing_ratings + " --out " + quoted(dir / "never.posterior"), "missing.csv"}},
+            {"evaluate", {"evaluate --model " + missing_model + " --ratings " + ratings, "missing.posterior"}},
+            {"predict", {"predict --model " + missing_model + " --user c-00007 --item tea-0001", "missing.posterior"}},
+            {"recommend", {"recommend --model " + missing_model + " --user c-00007", "missing.posterior"}},
+            {"inspect", {"inspect " + missing_model, "missing.posterior"}},
+            {"serve", {"serve --config " + quoted(dir / "missing.toml") + " --model " + model, "missing.toml"}},
+            {"demo-data", {"demo-data --out-dir " + quoted(dir / "a-file.csv" / "shop"), "a-file.csv"}},
+            {"compare", {"compare --ratings " + missing_ratings, "missing.csv"}},
+            {"report", {"report " + missing_model + " --out " + quoted(dir / "never.html"), "missing.posterior"}},
+            {"forget", {"forget --ratings " + missing_ratings + " --customer c-00007", "missing.csv"}},
+        };
+        std::ofstream(dir / "a-file.csv") << "customer,sku,stars\n";  // not a folder to write into
+        for (const auto& sub : subcommands_from_help()) {
+            INFO(sub);
+            REQUIRE(commands.count(sub) == 1);  // every subcommand is covered
+            const auto& [command, named] = commands.at(sub);
+            const auto r = run_credence(command);
+            INFO(r.err);
+            CHECK(r.exit_code == 1);
+            CHECK(r.err.find(named) != std::string::npos);
+        }
+        // Served: a model that cannot be read stops serve with 1 too.
+        const auto serve = run_credence("serve --port 0 --model " + missing_model);
+        INFO(serve.err);
+        CHECK(serve.exit_code == 1);
+        CHECK(serve.err.find("missing.posterior") != std::string::npos);
+        CHECK_FALSE(fs::exists(dir / "never.posterior"));
+        CHECK_FALSE(fs::exists(dir / "never.html"));
+    }
+    SECTION("every subcommand's --help exits 0 and ends with the exit codes") {
+        for (const auto& sub : subcommands_from_help()) {
+            const auto r = run_credence(sub + " --help");
+            INFO(sub << "\n" << r.err);
+            CHECK(r.exit_code == 0);
+            CHECK(r.out.find("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error") !=
+                  std::string::npos);
+        }
+    }
     SECTION("--help and --version exit 0 and print to stdout") {
         const auto help = run_credence("--help");
         CHECK(help.exit_code == 0);
@@ -660,6 +756,39 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
         CHECK(version.exit_code == 0);
         CHECK(version.out.find(std::string("credence ") + CREDENCE_PROJECT_VERSION) != std::string::npos);
     }
+}
+
+TEST_CASE("every subcommand has a man page, written from its --help, naming every option") {
+    // The build writes the pages after linking credence (cmake/man_pages.cmake).
+    const fs::path man_dir = fs::path(CREDENCE_BUILD_DIR) / "man";
+    const auto subcommands = subcommands_from_help();
+    const std::string main_page = man_page_text(man_dir / "credence.1.gz");
+    CHECK(main_page.find(".TH CREDENCE \"1\"") != std::string::npos);
+    for (const auto& sub : subcommands) {
+        INFO(sub);
+        CHECK(main_page.find(sub) != std::string::npos);
+        const fs::path page = man_dir / ("credence-" + sub + ".1.gz");
+        REQUIRE(fs::exists(page));
+        const std::string text = man_page_text(page);
+        std::string title = "credence-" + sub;
+        std::transform(title.begin(), title.end(), title.begin(), [](unsigned char c) { return std::toupper(c); });
+        CHECK(text.find(".TH " + title + " \"1\"") != std::string::npos);
+        CHECK(text.find(".SH NAME\ncredence-" + sub + " - ") != std::string::npos);
+        CHECK(text.find(std::string("\"credence ") + CREDENCE_PROJECT_VERSION + "\"") != std::string::npos);
+        CHECK(text.find("Exit codes: 0 ok") != std::string::npos);
+        const auto help = run_credence(sub + " --help");
+        REQUIRE(help.exit_code == 0);
+        const auto options = long_options(help.out);
+        CHECK(options.count("--help") == 1);
+        for (const auto& option : options) {
+            INFO(option);
+            CHECK(text.find(option) != std::string::npos);
+        }
+    }
+    // No page for a subcommand that does not exist.
+    size_t pages = 0;
+    for (const auto& entry : fs::directory_iterator(man_dir)) pages += entry.path().extension() == ".gz";
+    CHECK(pages == subcommands.size() + 1);
 }
 
 TEST_CASE("columns are chosen with --customer-column and --product-column") {

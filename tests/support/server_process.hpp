@@ -83,6 +83,14 @@ public:
     int stop() {
         if (pid_ <= 0) return exit_code_;
         ::kill(pid_, SIGTERM);
+        return wait_for_exit();
+    }
+
+    // Waits up to 10 s for the process to end by itself (after a signal the
+    // test sent), then kills it. The exit code, or -1 if it was killed or
+    // ended by a signal.
+    int wait_for_exit() {
+        if (pid_ <= 0) return exit_code_;
         int status = 0;
         for (int k = 0; k < 200; ++k) {
             if (waitpid(pid_, &status, WNOHANG) == pid_) {

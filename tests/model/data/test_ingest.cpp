@@ -2,6 +2,7 @@
 // reason with its line number, duplicate policies, the reject limit, the
 // accounting invariant on messy input, the fingerprint, and the open dataset.
 #include <catch2/catch.hpp>
+#include <sys/stat.h>
 
 #include <algorithm>
 #include <cinttypes>
@@ -696,4 +697,13 @@ TEST_CASE("a run that rejects nothing removes the rejects file of an earlier run
     const auto third = ingest_ratings(o);
     CHECK(third.summary.stale_rejects.rfind("left " + o.rejects_path + " (", 0) == 0);
     CHECK(fs::exists(dir / "rejects-dir"));
+
+    // A rejects path that is not a regular file (a pipe here; /dev/null in a
+    // script) is never removed: only files an earlier run wrote are.
+    o.rejects_path = (dir / "rejects-pipe").string();
+    fs::remove(o.rejects_path);
+    REQUIRE(mkfifo(o.rejects_path.c_str(), 0600) == 0);
+    const auto fourth = ingest_ratings(o);
+    CHECK(fourth.summary.stale_rejects.empty());
+    CHECK(fs::is_fifo(o.rejects_path));
 }
