@@ -39,10 +39,11 @@ void similar_handler(const AppContext& ctx, const httplib::Request& req, const L
                      httplib::Response& res) {
     const uint32_t n = query_count(req, "n", 10, ctx.options.max_n);
     nlohmann::json items = nlohmann::json::array();
-    for (const SimilarItem& similar : similar_items(*m.posterior, m.statistics, target, n))
+    for (const SimilarItem& similar : similar_items(*m.posterior, m.statistics, target, n)) {
         nlohmann::json entry = item_json(m, similar.item);
         entry["similarity"] = similar.similarity;
         items.push_back(std::move(entry));
+    }
     write_json(res, {{"model", m.fingerprint}, {"item", m.items.name(target)}, {"items", std::move(items)}}, &m);
 }
 
