@@ -35,6 +35,10 @@ const std::vector<std::pair<std::string_view, uint8_t>> kRoutePermissions = {
     {"/metrics", kMetrics},
     {"/v1/admin/reload", kAdmin},
     {"/v1/admin/forget", kAdmin},
+    // The console page and its files hold no data; what it shows comes from
+    // the routes above, each with its own permission.
+    {"/", kOpen},
+    {"/console/{asset}", kOpen},
 };
 
 constexpr std::pair<std::string_view, uint8_t> kPermissionNames[] = {

@@ -80,6 +80,8 @@ void install_prediction_routes(httplib::Server& server, AppContext& ctx);
 void install_recommendation_routes(httplib::Server& server, AppContext& ctx);
 void install_item_routes(httplib::Server& server, AppContext& ctx);
 void install_admin_routes(httplib::Server& server, AppContext& ctx);
+// GET / and /console/{asset}: the console page (server/routes_console.cpp).
+void install_console_routes(httplib::Server& server, AppContext& ctx);
 // Everything above plus /metrics, /v1/openapi.json and the problem answers
 // for unknown routes, oversized bodies and other transport errors.
 void install_all_routes(httplib::Server& server, AppContext& ctx);
