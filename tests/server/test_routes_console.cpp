@@ -58,7 +58,7 @@ TEST_CASE("the console page and its files are the ones in server/console, sent w
         CHECK(answer->status == 200);
         CHECK(answer->get_header_value("Content-Type") == file.content_type);
         const std::string expected = source_text(file.source);
-        REQUIRE(expected.size() > 500);
+        REQUIRE(expected.size() > 200);
         CHECK(answer->body == expected);
         const std::string policy = answer->get_header_value("Content-Security-Policy");
         CHECK(policy.find("default-src 'none'") != std::string::npos);
