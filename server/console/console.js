@@ -250,8 +250,10 @@
     return items.length;
   }
 
-  // rank_by and level selects for a panel; `refresh` runs on every change.
-  function buildSwitches(prefix, refresh) {
+  // rank_by and level selects for a panel, and a category select when
+  // `withCategory` (filled once the catalogue is known); `refresh` runs on
+  // every change. Returns a function that reads the current choices.
+  function buildSwitches(prefix, refresh, withCategory) {
     const container = $(`${prefix}-switches`);
     const rankBy = el("select", { id: `${prefix}-rank-by`, onchange: refresh },
       ...RANK_BY.map(([value, label]) => el("option", { value }, label)));
@@ -260,7 +262,22 @@
     container.append(
       el("div", { className: "field" }, el("label", { for: rankBy.id }, "Order by"), rankBy),
       el("div", { className: "field" }, el("label", { for: level.id }, "Interval"), level));
-    return () => ({ rank_by: rankBy.value, level: Number(level.value) });
+    let category = null;
+    if (withCategory) {
+      category = el("select", { id: `${prefix}-category`, onchange: refresh }, el("option", { value: "" }, "All"));
+      container.append(el("div", { className: "field", hidden: true, "data-category-field": "" },
+        el("label", { for: category.id }, "Category"), category));
+    }
+    return () => ({ rank_by: rankBy.value, level: Number(level.value), category: category ? category.value : "" });
+  }
+
+  // Fills every category select (products panel and panels' switches).
+  function fillCategories(categories) {
+    for (const select of [$("product-category"), $("customer-category")]) {
+      if (!select) continue;
+      select.replaceChildren(el("option", { value: "" }, "All"), ...categories.map((c) => el("option", { value: c }, c)));
+      select.closest(".field").hidden = categories.length === 0;
+    }
   }
 
   // ---- the model at a glance
@@ -269,7 +286,7 @@
     const customers = pick(m, "customers", "users");
     const products = pick(m, "products", "items");
     const ratings = pick(m, "ratings", "fit.data.ratings", "fit.data.kept_rows", "fit.data.rows");
-    const fitted = pick(m, "fit_date", "fitted_at", "fit.created_at", "fit.date", "fit.finished_at");
+    const fitted = pick(m, "fit_date", "fitted_at", "created_at", "fit.created_at", "fit.date", "fit.finished_at");
     const facts = [
       ["Customers", count(customers)],
       ["Products", count(products)],
@@ -308,7 +325,7 @@
     };
     const [tone, sentence] = words[verdict] || ["unknown", verdict ? `Convergence: ${verdict}.` : "No convergence verdict stored."];
     const rows = worstQuantities(m).map((q) => {
-      const name = q.label || q.quantity || "quantity";
+      const name = q.label || q.quantity || q.name || "quantity";
       const probe = isNumber(q.probe) ? ` (probe ${q.probe})` : "";
       const ess = pick(q, "ess_bulk", "ess_bulk_per_chain");
       return el("li", {}, `${name}${probe}: R-hat ${fixed(q.rhat, 3)}`, isNumber(ess) ? `, bulk ESS ${fixed(ess, 0)}` : "");
@@ -346,17 +363,21 @@
   async function refreshCustomer() {
     if (!state.customerId) return;
     const ticket = ++customerRequest;
-    const { rank_by, level } = customerSwitches();
+    const { rank_by, level, category } = customerSwitches();
     const query = new URLSearchParams({ n: $("customer-n").value, rank_by, level: String(level) });
+    if (category) query.set("category", category);
     say("customer-status", "Asking the model…");
+    $("customer-list").setAttribute("aria-busy", "true");
     try {
       const answer = await api(`/v1/users/${encodeURIComponent(state.customerId)}/recommendations?${query}`);
       if (ticket !== customerRequest) return;  // a newer request is on its way
       const shown = showList("customer-list", "customer-axis", answer, "they");
-      say("customer-status", `${shown} products for this customer. ${orderNote(answer)}`);
+      $("customer-list").removeAttribute("aria-busy");
+      say("customer-status", `${shown} products${category ? ` in ${category}` : ""} for this customer. ${orderNote(answer)}`);
     } catch (e) {
       if (ticket !== customerRequest) return;
       $("customer-list").replaceChildren();
+      $("customer-list").removeAttribute("aria-busy");
       say("customer-status", problemText(e, "this customer's list"), "error");
     }
   }
@@ -393,10 +414,12 @@
     const { rank_by, level } = visitorSwitches();
     const body = { ratings: state.visitorRatings, n: VISITOR_N, rank_by, level };
     say("visitor-status", "Asking the model…");
+    $("visitor-list").setAttribute("aria-busy", "true");
     try {
       const answer = await api("/v1/recommendations", body);
       if (ticket !== visitorRequest) return;
       const shown = showList("visitor-list", "visitor-axis", answer, "you");
+      $("visitor-list").removeAttribute("aria-busy");
       const basis = state.visitorRatings.length === 0
         ? "With no ratings yet, this is what the model expects of anyone."
         : `From ${state.visitorRatings.length} rating${state.visitorRatings.length === 1 ? "" : "s"}.`;
@@ -404,6 +427,7 @@
     } catch (e) {
       if (ticket !== visitorRequest) return;
       $("visitor-list").replaceChildren();
+      $("visitor-list").removeAttribute("aria-busy");
       say("visitor-status", problemText(e, "the visitor's list"), "error");
     }
   }
@@ -444,16 +468,13 @@
 
   let productRequest = 0;
 
-  async function loadProducts() {
-    const products = pick(await api("/v1/model"), "products", "items");
+  async function loadProducts(model) {
+    const products = pick(model, "products", "items");
     const n = Math.max(1, Math.min(isNumber(products) ? products : 1000, 1000));
     const answer = await api(`/v1/items?order=popularity&n=${n}`);
     state.products = Array.isArray(answer.items) ? answer.items : [];
     for (const p of state.products) if (p.name) state.names.set(p.item, p.name);
-    const categories = [...new Set(state.products.map((p) => p.category).filter(Boolean))].sort();
-    const select = $("product-category");
-    select.replaceChildren(el("option", { value: "" }, "All"), ...categories.map((c) => el("option", { value: c }, c)));
-    select.closest(".field").hidden = categories.length === 0;
+    fillCategories([...new Set(state.products.map((p) => p.category).filter(Boolean))].sort());
     drawScatter();
     fillVisitorChoices();
   }
@@ -564,10 +585,20 @@
       label.setAttribute("text-anchor", onRight ? "start" : "end");
       $("scatter-caption").textContent = label.textContent;
     };
-    for (const p of points) {
+    // One tab stop for the whole plot: the arrow keys move between points
+    // from fewest to most ratings, Home and End jump to the ends.
+    const ordered = [...points].sort((a, b) => a.rating_count - b.rating_count || a.sd - b.sd);
+    const dots = [];
+    const moveTo = (k) => {
+      const next = dots[Math.max(0, Math.min(dots.length - 1, k))];
+      for (const d of dots) d.setAttribute("tabindex", d === next ? "0" : "-1");
+      next.focus();
+    };
+    const keys = { ArrowRight: 1, ArrowUp: 1, ArrowLeft: -1, ArrowDown: -1 };
+    ordered.forEach((p, k) => {
       const cx = x(p.rating_count), cy = y(p.sd);
       const dot = svg("circle", {
-        class: "point", cx: cx.toFixed(1), cy: cy.toFixed(1), r: 4.5, tabindex: 0, role: "button",
+        class: "point", cx: cx.toFixed(1), cy: cy.toFixed(1), r: 4.5, tabindex: k === 0 ? 0 : -1, role: "button",
         "aria-label": `${productLabel(p)}: predictive sd ${fixed(p.sd)}, ${count(p.rating_count)} ratings`,
       });
       dot.append(svg("title", { text: `${productLabel(p)} (${p.item})` }));
@@ -576,9 +607,13 @@
       dot.addEventListener("click", () => showSimilar(p));
       dot.addEventListener("keydown", (event) => {
         if (event.key === "Enter" || event.key === " ") { event.preventDefault(); showSimilar(p); }
+        else if (event.key in keys) { event.preventDefault(); moveTo(k + keys[event.key]); }
+        else if (event.key === "Home") { event.preventDefault(); moveTo(0); }
+        else if (event.key === "End") { event.preventDefault(); moveTo(dots.length - 1); }
       });
+      dots.push(dot);
       plot.append(dot);
-    }
+    });
     plot.append(label);
     box.replaceChildren(plot);
   }
@@ -587,14 +622,16 @@
 
   async function loadAll() {
     say("notice", "");
+    let model;
     try {
-      showModel(await api("/v1/model"));
+      model = await api("/v1/model");
+      showModel(model);
     } catch (e) {
       say("notice", problemText(e, "the model"), "error");
       return;
     }
     try {
-      await loadProducts();
+      await loadProducts(model);
     } catch (e) {
       say("product-status", problemText(e, "the products"), "error");
     }
@@ -605,7 +642,7 @@
   }
 
   function start() {
-    customerSwitches = buildSwitches("customer", refreshCustomer);
+    customerSwitches = buildSwitches("customer", refreshCustomer, true);
     visitorSwitches = buildSwitches("visitor", refreshVisitor);
     $("customer-form").addEventListener("submit", (event) => {
       event.preventDefault();

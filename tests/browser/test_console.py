@@ -9,7 +9,8 @@
 #   - customer c-00042's list has one row per product asked for, each with
 #     an interval bar and the catalogue's name for its id, in the order the
 #     API gives;
-#   - switching the order to the lower bound refetches and changes the order;
+#   - switching the order to the lower bound refetches and changes the order,
+#     and choosing a category narrows the list to that category;
 #   - two ratings in the visitor panel change the visitor's list to the
 #     API's fold-in answer for those two ratings;
 #   - the product explorer's scatter has a point per product and a product's
@@ -152,7 +153,7 @@ def screenshot(driver, path, width, height, mobile):
                            {"width": width, "height": height, "deviceScaleFactor": 1, "mobile": mobile})
 
 
-def check_customer_panel(driver, server, names):
+def check_customer_panel(driver, server, names, categories):
     from selenium.webdriver.common.by import By
     from selenium.webdriver.common.keys import Keys
     from selenium.webdriver.support.ui import Select
@@ -186,6 +187,14 @@ def check_customer_panel(driver, server, names):
     wait_for("the order by lower bound", lambda: list_items(driver, "customer-list") == by_lower)
     if not driver.find_elements(By.CSS_SELECTOR, "#customer-list svg.interval-bar .rank-mark"):
         fail("ranking by the lower bound draws no mark for the number used")
+
+    # A category narrows the list to that category's products.
+    Select(driver.find_element(By.ID, "customer-category")).select_by_visible_text("candles")
+    in_category = [e["item"] for e in server.json(
+        "GET", f"/v1/users/{CUSTOMER}/recommendations?n={n}&rank_by=lower&level=0.9&category=candles")["items"]]
+    if not in_category or any(categories[item] != "candles" for item in in_category):
+        fail(f"the API's candles list holds other products: {in_category}")
+    wait_for("the list narrowed to candles", lambda: list_items(driver, "customer-list") == in_category)
     return by_mean, by_lower
 
 
@@ -219,10 +228,17 @@ def check_products_panel(driver, server, products):
     points = driver.find_elements(By.CSS_SELECTOR, "#scatter circle.point")
     if len(points) != products:
         fail(f"the scatter has {len(points)} points for {products} products")
-    driver.execute_script("arguments[0].focus();", points[0])
-    caption = driver.find_element(By.ID, "scatter-caption").text
-    if ": sd " not in caption:
-        fail(f"focusing a point does not name its product (caption {caption!r})")
+    # One tab stop; the arrow keys walk the points.
+    from selenium.webdriver.common.keys import Keys
+    stops = [p for p in points if p.get_attribute("tabindex") == "0"]
+    if len(stops) != 1:
+        fail(f"the scatter has {len(stops)} tab stops, not one")
+    driver.execute_script("arguments[0].focus();", stops[0])
+    first = driver.find_element(By.ID, "scatter-caption").text
+    driver.switch_to.active_element.send_keys(Keys.ARROW_RIGHT)
+    second = driver.find_element(By.ID, "scatter-caption").text
+    if ": sd " not in first or first == second:
+        fail(f"focus and the arrow keys do not name the products (captions {first!r}, {second!r})")
     Select(driver.find_element(By.ID, "product-order")).select_by_value("popularity")
     top = server.json("GET", "/v1/items?order=popularity&n=1")["items"][0]
     wait_for("the most rated product first",
@@ -318,6 +334,7 @@ def main():
     with open(work / "catalogue.csv", newline="") as f:
         rows = list(csv.reader(f))
     names = {row[0]: row[1] for row in rows[1:]}
+    categories = {row[0]: row[2] for row in rows[1:]}
 
     config = work / "credence.toml"
     write_config(config, model)
@@ -334,7 +351,7 @@ def main():
         if f"{customers:,}" not in facts or f"{products:,}" not in facts:
             fail(f"the model at a glance does not show {customers} customers and {products} products: {facts!r}")
 
-        by_mean, by_lower = check_customer_panel(driver, server, names)
+        by_mean, by_lower = check_customer_panel(driver, server, names, categories)
         before, after = check_visitor_panel(driver, server, by_mean)
         check_products_panel(driver, server, products)
         requests = check_quiet_and_local(driver, server.port)
