@@ -254,6 +254,31 @@ std::string convergence_table(const ConvergenceSummary& conv) {
     return o;
 }
 
+// The rated products with the largest averaged predictive sd, by id and,
+// when the model has a catalogue, name and category.
+std::string least_sure_table(const Posterior& p, const std::vector<uint32_t>& count, const std::vector<double>& sd) {
+    constexpr size_t kShown = 10;
+    std::vector<uint32_t> order;
+    for (uint32_t i = 0; i < p.num_items; ++i)
+        if (count[i] > 0) order.push_back(i);
+    const size_t take = std::min(kShown, order.size());
+    std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
+                      [&](uint32_t a, uint32_t b) { return sd[a] != sd[b] ? sd[a] > sd[b] : a < b; });
+    if (take == 0) return "";
+    const bool named = p.has_catalogue();
+    std::string t = fmt::format("<h3>The {} products the model is least sure about</h3>"
+                                "<table class=\"diagnostics\"><thead><tr><th>product</th>{}<th>training ratings</th>"
+                                "<th>predictive sd</th></tr></thead><tbody>",
+                                take, named ? "<th>name</th><th>category</th>" : "");
+    for (size_t k = 0; k < take; ++k) {
+        const uint32_t i = order[k];
+        t += "<tr><td>" + escape_xml(p.item_ids[i]) + "</td>";
+        if (named) t += "<td>" + escape_xml(p.item_name(i)) + "</td><td>" + escape_xml(p.item_category(i)) + "</td>";
+        t += fmt::format("<td>{}</td><td>{}</td></tr>", count[i], fixed(sd[i], 3));
+    }
+    return t + "</tbody></table>";
+}
+
 // ---- predictive sd against how many ratings an item has
 std::string uncertainty_by_item(const ReportInputs& in) {
     const Posterior& p = *in.posterior;
@@ -310,6 +335,7 @@ std::string uncertainty_by_item(const ReportInputs& in) {
                      ref.size(), noise_sd,
                      unrated ? fmt::format(" {} products with no training rating are not shown.", unrated) : "");
     o += render_svg(spec, {pts});
+    o += least_sure_table(p, count, sd);
     o += "</section>\n";
     return o;
 }
