@@ -166,8 +166,10 @@ void print_list(const RecommendFlags& f, const Posterior& p, const std::vector<R
             const SimilarItem& s = why.similar[k];
             line += k == 0 ? "; near what was rated: " : ", ";
             line += shown(p, s.item);
-            if (const auto stars = rating_of(rated, s.item)) line += fmt::format(" ({:g}★)", *stars);
-            line += fmt::format(" {:.2f}", s.similarity);
+            if (const auto stars = rating_of(rated, s.item))
+                line += fmt::format(" (rated {:g}, similarity {:.2f})", *stars, s.similarity);
+            else
+                line += fmt::format(" (similarity {:.2f})", s.similarity);
         }
         std::cout << line << "\n";
     }
