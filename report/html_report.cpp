@@ -12,6 +12,7 @@
 #include <stdexcept>
 
 #include "model/fit/convergence_summary.hpp"
+#include "model/predict/item_statistics.hpp"
 #include "model/predict/predict.hpp"
 #include "report/svg_plot.hpp"
 
@@ -282,26 +283,11 @@ std::string least_sure_table(const Posterior& p, const std::vector<uint32_t>& co
 // ---- predictive sd against how many ratings an item has
 std::string uncertainty_by_item(const ReportInputs& in) {
     const Posterior& p = *in.posterior;
-    std::vector<uint32_t> count(p.num_items, 0);
-    for (uint32_t item : p.rated_items) ++count[item];
-    const uint32_t n_ref = std::max<uint32_t>(1, std::min(in.sd_reference_users, p.num_users));
-    std::vector<uint32_t> ref;
-    for (uint32_t j = 0; j < n_ref; ++j) ref.push_back(static_cast<uint32_t>(static_cast<uint64_t>(j) * p.num_users / n_ref));
-    std::vector<double> sd(p.num_items, 0.0);
-    const std::span<const float> tau(p.noise_precision);
-#pragma omp parallel
-    {
-        std::vector<double> m(p.num_samples);
-#pragma omp for schedule(dynamic, 64)
-        for (uint32_t i = 0; i < p.num_items; ++i) {
-            double total = 0.0;
-            for (uint32_t u : ref) {
-                for (uint32_t s = 0; s < p.num_samples; ++s) m[s] = p.sample_prediction(s, u, i);
-                total += mixture_sd(m, tau);
-            }
-            sd[i] = total / static_cast<double>(ref.size());
-        }
-    }
+    // The figures GET /v1/items shows (model/predict/item_statistics.hpp):
+    // each customer's predictive sd for the product, averaged over customers.
+    const ItemStatistics st = compute_item_statistics(p);
+    const std::vector<uint32_t>& count = st.rating_count;
+    const std::vector<double>& sd = st.predictive_sd;
     Series pts = make_series("", SeriesKind::points);
     pts.point_radius = p.num_items > 2000 ? 1.6 : 2.6;
     pts.opacity = p.num_items > 2000 ? 0.45 : 0.75;
@@ -329,10 +315,10 @@ std::string uncertainty_by_item(const ReportInputs& in) {
                                ""});
     }
     std::string o = "<section id=\"uncertainty\"><h2>Uncertainty against evidence</h2>";
-    o += fmt::format("<p class=\"note\">Each dot is a product: its predictive sd, averaged over {} evenly spaced "
-                     "customers, against how many training ratings it has. The dashed line is the rating noise alone "
-                     "(sd {:.3f}); sparse products should sit higher.{}</p>",
-                     ref.size(), noise_sd,
+    o += fmt::format("<p class=\"note\">Each dot is a product: its predictive sd, averaged over the model's {} "
+                     "customers (as GET /v1/items shows it), against how many training ratings it has. The dashed "
+                     "line is the rating noise alone (sd {:.3f}); sparse products should sit higher.{}</p>",
+                     p.num_users, noise_sd,
                      unrated ? fmt::format(" {} products with no training rating are not shown.", unrated) : "");
     o += render_svg(spec, {pts});
     o += least_sure_table(p, count, sd);
