@@ -16,6 +16,7 @@
 #include "model/fit/convergence_summary.hpp"
 #include "model/error.hpp"
 #include "model/data/holdout.hpp"
+#include "model/assess/evaluate.hpp"
 #include "model/data/catalogue.hpp"
 #include "model/data/ingest.hpp"
 #include "model/posterior/posterior_file.hpp"
@@ -170,6 +171,28 @@ void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSumma
     posterior.fit_metadata_json = meta.dump();
 }
 
+// ---- 4a. How the finished posterior does on the validation ratings (held
+// out or given), stored beside the split so /v1/model and inspect --json
+// can show calibration: RMSE and MAE of the clipped mean, mean log
+// predictive density and the coverage of central intervals (model/assess/evaluate.hpp).
+void add_validation_figures(Posterior& posterior, const TrainingData& d) {
+    if (d.validation.empty()) return;
+    RatingSet held;
+    held.users = d.train.users;
+    held.items = d.train.items;
+    held.ratings = d.validation;
+    held.scale = d.train.scale;
+    // The engine only reads the posterior while this function runs: share it without owning it.
+    const PredictionEngine engine(std::shared_ptr<const Posterior>(std::shared_ptr<void>(), &posterior));
+    EvaluationOptions options;
+    options.ranking = false;
+    const nlohmann::json figures = to_json(evaluate(engine, held, options));
+    nlohmann::json meta = nlohmann::json::parse(posterior.fit_metadata_json);
+    for (const char* key : {"rmse", "mae", "mean_log_predictive_density", "coverage", "rated"})
+        if (figures.contains(key)) meta["validation"][key] = figures[key];
+    posterior.fit_metadata_json = meta.dump();
+}
+
 // ---- 4b. Names and categories from the catalogue for every product the
 // model knows; catalogue rows for products without ratings are counted, not kept.
 void attach_catalogue(Posterior& posterior, const Catalogue& catalogue, const Log& log) {
@@ -227,6 +250,7 @@ int run_fit(FitFlags& f) {
     const TrainingData d = split_for_validation(f, std::move(data.ratings), options.seed, log);
     FitResult result = sample_posterior(d, options, progress, log);
     add_fit_metadata(result.posterior, f, data.summary, d);
+    add_validation_figures(result.posterior, d);
     if (catalogue) attach_catalogue(result.posterior, *catalogue, log);
     write_model(result, f.out);
     return 0;

@@ -104,6 +104,8 @@ Catalogue read_catalogue(const CatalogueOptions& o) {
     CsvRecord r;
     while (reader.next(r)) {
         s.lines_read = r.end_line;
+        // A blank line is skipped and counted, as ingest does for ratings.
+        if (r.problem == CsvProblem::none && trimmed(r.raw).empty()) continue;
         if (first && r.problem == CsvProblem::none) {
             first = false;
             std::vector<std::string> fields;

@@ -32,7 +32,8 @@ struct CatalogueOptions {
 // Reads the catalogue. Columns: with a header (detected when the first row
 // has a field named like "name"), the columns named name, category and the
 // first other column as the product id; without one, id, name, category in
-// that order. A row is rejected (line and reason in the rejects file, TSV
+// that order. Blank lines are skipped and counted (summary.blank_lines).
+// A row is rejected (line and reason in the rejects file, TSV
 // "line<TAB>reason<TAB>record") when it is malformed CSV, has fewer than 2
 // fields, an empty id or name, or repeats an id with other values.
 // Throws OptionError for max_reject_fraction outside [0, 1]; FileError when

@@ -9,6 +9,7 @@
 #include <algorithm>
 #include <cctype>
 #include <chrono>
+#include <cmath>
 #include <filesystem>
 #include <fstream>
 #include <map>
@@ -248,6 +249,62 @@ TEST_CASE("fit --catalogue stores each product's name and category, and recommen
     }
 }
 
+TEST_CASE("recommend --category keeps to one category and every entry says why") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto p = credence::read_posterior(d.model.string());
+    REQUIRE(p.has_catalogue());
+    const std::string category = p.item_category(0);
+    const auto js = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 4 --json --category " +
+                                 word(category));
+    INFO(js.err);
+    REQUIRE(js.exit_code == 0);
+    const auto items = json::parse(js.out).at("items");
+    REQUIRE(!items.empty());
+    for (const auto& item : items) {
+        CHECK(item.at("category") == category);
+        CHECK(item.at("why").at("rating_count").get<uint32_t>() > 0);
+        for (const auto& s : item.at("why").at("similar_rated")) CHECK(s.at("similarity").get<double>() > 0.0);
+    }
+    const auto text = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 2 --category " +
+                                   word(category));
+    REQUIRE(text.exit_code == 0);
+    CHECK(text.out.find("why: ") != std::string::npos);
+    CHECK(text.out.find(" ratings in training") != std::string::npos);
+    const auto unknown = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 --category lighting");
+    CHECK(unknown.exit_code == 2);
+    CHECK(unknown.err.find(category) != std::string::npos);  // the known categories are listed
+}
+
+TEST_CASE("inspect --json prints the model summary: data size, convergence, validation and sampled noise") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto r = run_credence("inspect --json " + quoted(d.model));
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    const auto j = json::parse(r.out);
+    const auto p = credence::read_posterior(d.model.string());
+    CHECK(j.at("data").at("customers") == p.num_users);
+    CHECK(j.at("data").at("products") == p.num_items);
+    CHECK(j.at("data").at("ratings") == p.rated_items.size());
+    CHECK(j.at("rank") == 4);
+    CHECK(j.at("chains") == 2);
+    CHECK(j.at("samples") == p.num_samples);
+    CHECK(j.at("fit").at("seed") == 3);
+    CHECK(j.at("fit").at("created_at").get<std::string>().size() == 20);  // 2026-12-03T23:47:03Z
+    CHECK(j.at("validation").at("kind") == "holdout");
+    CHECK(j.at("convergence").at("worst").size() == 3);
+    // The noise was sampled: its posterior mean sd, never a fixed precision.
+    CHECK(j.at("noise").at("sampled") == true);
+    CHECK_FALSE(j.at("noise").contains("precision"));
+    double sd = 0;
+    for (float tau : p.noise_precision) sd += 1.0 / std::sqrt(double(tau)) / p.noise_precision.size();
+    CHECK(j.at("noise").at("sd_posterior_mean").get<double>() == Approx(sd).epsilon(1e-12));
+    // Short: no per-sweep trace, no customer id.
+    CHECK(r.out.size() < 4000);
+    for (const auto& id : p.user_ids) CHECK(r.out.find("\"" + id) == std::string::npos);
+}
+
 TEST_CASE("--version prints exactly the version that CMakeLists.txt declares and the kernels' CPU level") {
     const auto r = run_credence("--version");
     CHECK(r.exit_code == 0);
@@ -412,9 +469,11 @@ TEST_CASE("inspect, predict and recommend answer from the file") {
     REQUIRE(rec.exit_code == 0);
     const auto rj = json::parse(rec.out);
     REQUIRE(rj.at("items").size() == 5);
-    // Ranked by the lower bound: non-increasing scores.
+    // Ranked by the lower bound: non-increasing ranked values, which are the lower bounds shown.
     for (size_t k = 1; k < 5; ++k)
-        CHECK(rj["items"][k - 1]["score"].get<double>() >= rj["items"][k]["score"].get<double>());
+        CHECK(rj["items"][k - 1]["rank_value_unclipped"].get<double>() >=
+              rj["items"][k]["rank_value_unclipped"].get<double>());
+    for (const auto& item : rj["items"]) CHECK(item["rank_value"] == item["lower"]);
     // Items the customer rated in training are excluded by default.
     const auto p = credence::read_posterior(d.model.string());
     uint32_t u = 0;
@@ -468,7 +527,8 @@ TEST_CASE("recommend --rated folds in a visitor exactly as the server and the of
             INFO("position " << k);
             CHECK(items[k].at("item") == ids[want[k].item]);
             // JSON numbers round-trip doubles exactly, so equality is bitwise.
-            CHECK(items[k].at("score").get<double>() == want[k].score);
+            CHECK(items[k].at("rank_value_unclipped").get<double>() == want[k].score);
+            CHECK(items[k].at("rank_value").get<double>() == want[k].rank_value);
             CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
             CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
             CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
@@ -485,7 +545,7 @@ TEST_CASE("recommend --rated folds in a visitor exactly as the server and the of
         REQUIRE(served.at("items").size() == items.size());
         for (size_t k = 0; k < items.size(); ++k) {
             INFO("position " << k);
-            for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"})
+            for (const char* key : {"item", "name", "rank_value", "rank_value_unclipped", "mean", "sd", "lower", "upper", "why"})
                 CHECK(served.at("items")[k].at(key) == items[k].at(key));
         }
         CHECK(served.contains("seed") == got.contains("seed"));
