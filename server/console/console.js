@@ -62,8 +62,8 @@
   function count(x) { return isNumber(x) ? x.toLocaleString("en") : "–"; }
   function percent(level) { return isNumber(level) ? `${Math.round(level * 1000) / 10}%` : "–"; }
 
-  // The first of `paths` ("a.b.c") present in `obj`, else undefined: the
-  // page reads a few spellings so it keeps working while the API settles.
+  // The value at the first of `paths` ("a.b.c") present in `obj`, else
+  // undefined, so a field an older server lacks shows as "–".
   function pick(obj, ...paths) {
     for (const path of paths) {
       let at = obj;
@@ -184,7 +184,7 @@
     return bar;
   }
 
-  function rankValue(entry) { return pick(entry, "rank_value", "score"); }
+  function rankValue(entry) { return pick(entry, "rank_value"); }
 
   function drawAxis(container) {
     container.replaceChildren();
@@ -200,17 +200,18 @@
   function whyLine(entry, who) {
     const why = entry.why;
     if (!why || typeof why !== "object") return null;
+    // The same words as `credence recommend` (cli/recommend_command.cpp).
     const parts = [];
+    if (isNumber(why.rating_count)) {
+      parts.push(`${count(why.rating_count)} rating${why.rating_count === 1 ? "" : "s"} in training`);
+    }
     const near = Array.isArray(why.similar_rated) ? why.similar_rated : [];
     if (near.length > 0) {
-      const list = near.map((s) => `${productLabel(s)} (rated ${fixed(s.rating, 0)}, likeness ${fixed(s.similarity)})`);
-      parts.push(`Close to what ${who} rated: ${list.join("; ")}.`);
+      const list = near.map((s) => `${productLabel(s)} (${isNumber(s.rating) ? `rated ${s.rating}, ` : ""}` +
+        `similarity ${fixed(s.similarity)})`);
+      parts.push(`near what ${who} rated: ${list.join(", ")}`);
     }
-    if (isNumber(why.rating_count)) {
-      parts.push(why.rating_count === 0 ? "No one has rated it yet."
-        : `${count(why.rating_count)} rating${why.rating_count === 1 ? "" : "s"} behind it.`);
-    }
-    return parts.length ? el("p", { className: "why" }, parts.join(" ")) : null;
+    return parts.length ? el("p", { className: "why" }, el("span", { className: "why-label" }, "Why: "), parts.join("; ")) : null;
   }
 
   function recommendationRow(entry, answer, who) {
@@ -219,7 +220,12 @@
     const used = rankValue(entry);
     const figures = [`expected ${fixed(entry.mean)}`,
       `${percent(level)} interval ${fixed(entry.lower)}–${fixed(entry.upper)}`];
-    if (rankBy !== "mean" && isNumber(used)) figures.push(`ranked on ${fixed(used)}`);
+    if (rankBy !== "mean" && isNumber(used)) {
+      // At the scale's end the API clips; the unclipped value orders the ties.
+      const unclipped = entry.rank_value_unclipped;
+      figures.push(`ranked on ${fixed(used)}` +
+        (isNumber(unclipped) && fixed(unclipped) !== fixed(used) ? ` (${fixed(unclipped)} unclipped)` : ""));
+    }
     const name = entry.name || state.names.get(entry.item);
     return el("li", { className: "rec" },
       el("div", { className: "rec-head" },
@@ -283,10 +289,11 @@
   // ---- the model at a glance
 
   function showModel(m) {
-    const customers = pick(m, "customers", "users");
-    const products = pick(m, "products", "items");
-    const ratings = pick(m, "ratings", "fit.data.ratings", "fit.data.kept_rows", "fit.data.rows");
-    const fitted = pick(m, "fit_date", "fitted_at", "created_at", "fit.created_at", "fit.date", "fit.finished_at");
+    const customers = pick(m, "data.customers");
+    const products = pick(m, "data.products");
+    const ratings = pick(m, "data.ratings");
+    const fitted = pick(m, "fit.created_at");
+    const noiseSd = pick(m, "noise.sd_posterior_mean", "noise.sd");
     const facts = [
       ["Customers", count(customers)],
       ["Products", count(products)],
@@ -294,6 +301,7 @@
       ["Rank", count(m.rank)],
       ["Chains", count(m.chains)],
       ["Samples kept", count(m.samples)],
+      ["Noise sd", fixed(noiseSd)],
       ["Fitted", fitted ? shortDate(String(fitted)) : "–"],
     ];
     $("glance-facts").replaceChildren(...facts.flatMap(([term, value]) =>
@@ -308,16 +316,13 @@
   }
 
   function worstQuantities(m) {
-    const given = pick(m, "convergence.worst", "convergence.worst_quantities", "worst_quantities");
-    if (Array.isArray(given)) return given.slice(0, 3);
-    const all = pick(m, "diagnostics.quantities", "convergence.quantities");
-    if (!Array.isArray(all)) return [];
-    return all.filter((q) => isNumber(q.rhat)).sort((a, b) => b.rhat - a.rhat).slice(0, 3);
+    const given = pick(m, "convergence.worst");
+    return Array.isArray(given) ? given.slice(0, 3) : [];
   }
 
   function showVerdict(m) {
     const box = $("glance-verdict");
-    const verdict = pick(m, "convergence.verdict", "verdict", "diagnostics.verdict");
+    const verdict = pick(m, "convergence.verdict");
     const words = {
       converged: ["good", "The chains agree: converged."],
       not_converged: ["bad", "The chains disagree: not converged; treat the figures with care."],
@@ -325,10 +330,9 @@
     };
     const [tone, sentence] = words[verdict] || ["unknown", verdict ? `Convergence: ${verdict}.` : "No convergence verdict stored."];
     const rows = worstQuantities(m).map((q) => {
-      const name = q.label || q.quantity || q.name || "quantity";
-      const probe = isNumber(q.probe) ? ` (probe ${q.probe})` : "";
-      const ess = pick(q, "ess_bulk", "ess_bulk_per_chain");
-      return el("li", {}, `${name}${probe}: R-hat ${fixed(q.rhat, 3)}`, isNumber(ess) ? `, bulk ESS ${fixed(ess, 0)}` : "");
+      const ess = pick(q, "ess_bulk");
+      return el("li", {}, `${q.quantity || "quantity"}: R-hat ${fixed(pick(q, "r_hat"), 3)}`,
+        isNumber(ess) ? `, bulk ESS ${fixed(ess, 0)}` : "");
     });
     box.replaceChildren(
       el("p", { className: `verdict-line tone-${tone}` }, sentence),
@@ -336,23 +340,36 @@
       rows.length ? el("ul", { className: "worst" }, ...rows) : null);
   }
 
-  // Held-out figures, whatever the fit stored: every number in the object.
+  // The held-out ratings (validation in GET /v1/model; null when the fit had
+  // none): accuracy figures, then calibration: how often each nominal
+  // interval held the held-out rating (a calibrated model: about as often as
+  // it says).
   function showHeldOut(m) {
     const box = $("glance-heldout");
-    const held = pick(m, "held_out", "holdout", "validation", "fit.held_out", "fit.holdout", "fit.validation");
+    const held = pick(m, "validation");
     if (!held || typeof held !== "object") { box.replaceChildren(); return; }
-    const rows = [];
-    const walk = (obj, prefix) => {
-      for (const [key, value] of Object.entries(obj)) {
-        const name = `${prefix}${key.replace(/_/g, " ")}`;
-        if (isNumber(value)) rows.push([name, Number.isInteger(value) ? count(value) : fixed(value, 3)]);
-        else if (typeof value === "string" && value.length < 40) rows.push([name, value]);
-        else if (value && typeof value === "object" && !Array.isArray(value)) walk(value, `${name}: `);
-      }
-    };
-    walk(held, "");
+    const facts = [
+      ["Held-out ratings", count(held.ratings)],
+      ["RMSE", fixed(held.rmse, 3)],
+      ["MAE", fixed(held.mae, 3)],
+      ["Mean log predictive density", fixed(held.mean_log_predictive_density, 3)],
+    ].filter(([, v]) => v !== "–");
+    const coverage = held.coverage && typeof held.coverage === "object" ? Object.entries(held.coverage)
+      .map(([level, share]) => [Number(level), share]).filter(([l, s]) => isNumber(l) && isNumber(s))
+      .sort((a, b) => a[0] - b[0]) : [];
+    const rows = coverage.map(([level, share]) => {
+      const bar = svg("svg", { class: "coverage-bar", width: "100%", height: 14, "aria-hidden": "true" });
+      bar.append(svg("rect", { class: "coverage-track", x: 0, y: 3, width: "100%", height: 8, rx: 4 }));
+      bar.append(svg("rect", { class: "coverage-fill", x: 0, y: 3, width: `${(100 * share).toFixed(1)}%`, height: 8, rx: 4 }));
+      bar.append(svg("line", { class: "coverage-nominal", x1: `${100 * level}%`, x2: `${100 * level}%`, y1: 0, y2: 14 }));
+      return el("li", {}, el("span", { className: "coverage-text" },
+        `${percent(level)} intervals caught ${percent(share)}`), bar);
+    });
     box.replaceChildren(el("h3", {}, "On the held-out ratings"),
-      el("dl", { className: "facts facts-small" }, ...rows.map(([t, v]) => el("div", { className: "fact" }, el("dt", {}, t), el("dd", {}, v)))));
+      el("dl", { className: "facts facts-small" },
+        ...facts.map(([t, v]) => el("div", { className: "fact" }, el("dt", {}, t), el("dd", {}, v)))),
+      rows.length ? el("p", { className: "small" }, "Calibration (the mark is where a calibrated model would be):") : null,
+      rows.length ? el("ul", { className: "coverage" }, ...rows) : null);
   }
 
   // ---- a customer's list
@@ -469,7 +486,7 @@
   let productRequest = 0;
 
   async function loadProducts(model) {
-    const products = pick(model, "products", "items");
+    const products = pick(model, "data.products");
     const n = Math.max(1, Math.min(isNumber(products) ? products : 1000, 1000));
     const answer = await api(`/v1/items?order=popularity&n=${n}`);
     state.products = Array.isArray(answer.items) ? answer.items : [];
@@ -520,22 +537,22 @@
       const items = Array.isArray(answer.items) ? answer.items : [];
       box.replaceChildren(
         el("h3", {}, `Closest to ${productLabel(product)}`),
-        el("p", { className: "small" }, "Likeness: cosine of the products' factors, averaged over the posterior samples."),
+        el("p", { className: "small" }, "Similarity: cosine of the products' factors, averaged over the posterior samples."),
         el("ol", { className: "similar-list" }, ...items.map((s) => el("li", {},
           el("span", { className: "similar-name" }, productLabel(s)),
           s.category ? el("span", { className: "rec-category" }, s.category) : null,
           el("span", { className: "similar-score" },
-            likenessBar(s.similarity), el("span", { className: "similar-figure" }, fixed(s.similarity)))))));
+            similarityBar(s.similarity), el("span", { className: "similar-figure" }, fixed(s.similarity)))))));
     } catch (e) {
       box.replaceChildren(el("p", { className: "status is-error" }, problemText(e, "similar products")));
     }
   }
 
-  function likenessBar(similarity) {
-    const bar = svg("svg", { class: "likeness", width: 80, height: 10, "aria-hidden": "true" });
-    bar.append(svg("rect", { class: "likeness-track", x: 0, y: 2, width: 80, height: 6, rx: 3 }));
+  function similarityBar(similarity) {
+    const bar = svg("svg", { class: "similarity-bar", width: 80, height: 10, "aria-hidden": "true" });
+    bar.append(svg("rect", { class: "similarity-track", x: 0, y: 2, width: 80, height: 6, rx: 3 }));
     if (isNumber(similarity)) {
-      bar.append(svg("rect", { class: "likeness-fill", x: 0, y: 2, width: (80 * Math.max(0, similarity)).toFixed(1), height: 6, rx: 3 }));
+      bar.append(svg("rect", { class: "similarity-fill", x: 0, y: 2, width: (80 * Math.max(0, similarity)).toFixed(1), height: 6, rx: 3 }));
     }
     return bar;
   }

@@ -5,7 +5,8 @@
 #   /usr/bin/python3 tests/browser/test_console.py BUILD_DIR
 # It fits the demo shop with its catalogue (small rank, fixed seed), serves
 # it on a free loopback port and, in the browser:
-#   - the model at a glance shows the demo's customer and product counts;
+#   - the model at a glance shows the demo's customer and product counts, the
+#     worst convergence quantity and the held-out calibration;
 #   - customer c-00042's list has one row per product asked for, each with
 #     an interval bar and the catalogue's name for its id, in the order the
 #     API gives;
@@ -189,17 +190,18 @@ def check_customer_panel(driver, server, names, categories):
     if len(driver.find_elements(By.CSS_SELECTOR, "#customer-list svg.interval-bar .rank-mark")) != n:
         fail("ranking by the lower bound does not mark the number used on every row")
     for row, entry in zip(rows, lower_answer):
-        used = entry.get("rank_value", entry.get("score"))
+        used = entry["rank_value"]
         figures = row.find_element(By.CSS_SELECTOR, ".rec-figures").text
         if f"ranked on {used:.2f}" not in figures:
             fail(f"row for {entry['item']} does not print the number it was ranked on ({used:.2f}): {figures!r}")
-        near = (entry.get("why") or {}).get("similar_rated") or []
-        if near:
-            why = row.find_element(By.CSS_SELECTOR, ".why").text
-            if near[0].get("name", near[0]["item"]) not in why:
-                fail(f"row for {entry['item']} does not say why: {why!r} lacks {near[0]}")
-    if not any("why" in e for e in lower_answer):
-        print("NOTICE: the API's answers carry no 'why' yet; the why line is not checked")
+        why = row.find_element(By.CSS_SELECTOR, ".why").text
+        if f"{entry['why']['rating_count']:,} rating" not in why:
+            fail(f"row for {entry['item']} does not say how many ratings back it: {why!r}")
+        for near in entry["why"]["similar_rated"]:
+            if f"{near['name']} (similarity {near['similarity']:.2f})" not in why:
+                fail(f"row for {entry['item']} does not name {near['name']} in its why line: {why!r}")
+    if not any(e["why"]["similar_rated"] for e in lower_answer):
+        fail("no row of the demo customer's list names a similar rated product; the why check proves little")
 
     # A category narrows the list to that category's products.
     Select(driver.find_element(By.ID, "customer-category")).select_by_visible_text("candles")
@@ -355,14 +357,22 @@ def main():
     driver = None
     try:
         summary = server.json("GET", "/v1/model")
-        customers = summary.get("customers", summary.get("users"))
-        products = summary.get("products", summary.get("items"))
+        customers = summary["data"]["customers"]
+        products = summary["data"]["products"]
         driver = browser(webdriver, Options, Service)
         driver.get(server.base + "/")
         wait_for("the page to load", lambda: driver.execute_script("return document.body.dataset.ready === 'true';"))
         facts = driver.find_element(By.ID, "glance-facts").text
         if f"{customers:,}" not in facts or f"{products:,}" not in facts:
             fail(f"the model at a glance does not show {customers} customers and {products} products: {facts!r}")
+        verdict = driver.find_element(By.ID, "glance-verdict").text
+        worst = summary["convergence"]["worst"][0]
+        if worst["quantity"] not in verdict or f"R-hat {worst['r_hat']:.3f}" not in verdict:
+            fail(f"the verdict does not name the worst quantity {worst}: {verdict!r}")
+        held = driver.find_element(By.ID, "glance-heldout").text
+        share = summary["validation"]["coverage"]["0.9"]
+        if f"90% intervals caught {round(share * 1000) / 10:g}%" not in held:
+            fail(f"the held-out calibration does not show 90% intervals holding {share}: {held!r}")
 
         by_mean, by_lower = check_customer_panel(driver, server, names, categories)
         before, after = check_visitor_panel(driver, server, by_mean)
