@@ -16,6 +16,8 @@
 #include "model/fit/convergence_summary.hpp"
 #include "model/error.hpp"
 #include "model/data/holdout.hpp"
+#include "model/assess/evaluate.hpp"
+#include "model/data/catalogue.hpp"
 #include "model/data/ingest.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/fit/sampler.hpp"
@@ -30,6 +32,7 @@ struct FitFlags {
     SamplerFlags sampler;
     std::optional<double> holdout;
     std::string validation_path;
+    std::string catalogue_path;
     bool quiet = false;
 };
 
@@ -168,6 +171,50 @@ void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSumma
     posterior.fit_metadata_json = meta.dump();
 }
 
+// ---- 4a. How the finished posterior does on the validation ratings (held
+// out or given), stored beside the split so /v1/model and inspect --json
+// can show calibration: RMSE and MAE of the clipped mean, mean log
+// predictive density and the coverage of central intervals (model/assess/evaluate.hpp).
+void add_validation_figures(Posterior& posterior, const TrainingData& d) {
+    if (d.validation.empty()) return;
+    RatingSet held;
+    held.users = d.train.users;
+    held.items = d.train.items;
+    held.ratings = d.validation;
+    held.scale = d.train.scale;
+    // The engine only reads the posterior while this function runs: share it without owning it.
+    const PredictionEngine engine(std::shared_ptr<const Posterior>(std::shared_ptr<void>(), &posterior));
+    EvaluationOptions options;
+    options.ranking = false;
+    const nlohmann::json figures = to_json(evaluate(engine, held, options));
+    nlohmann::json meta = nlohmann::json::parse(posterior.fit_metadata_json);
+    for (const char* key : {"rmse", "mae", "mean_log_predictive_density", "coverage", "rated"})
+        if (figures.contains(key)) meta["validation"][key] = figures[key];
+    posterior.fit_metadata_json = meta.dump();
+}
+
+// ---- 4b. Names and categories from the catalogue for every product the
+// model knows; catalogue rows for products without ratings are counted, not kept.
+void attach_catalogue(Posterior& posterior, const Catalogue& catalogue, const Log& log) {
+    posterior.item_names.assign(posterior.num_items, "");
+    posterior.item_categories.assign(posterior.num_items, "");
+    uint64_t named = 0;
+    for (uint32_t i = 0; i < posterior.num_items; ++i) {
+        auto it = catalogue.products.find(posterior.item_ids[i]);
+        if (it == catalogue.products.end()) continue;
+        posterior.item_names[i] = it->second.name;
+        posterior.item_categories[i] = it->second.category;
+        ++named;
+    }
+    nlohmann::json meta = nlohmann::json::parse(posterior.fit_metadata_json);
+    const IngestSummary& c = catalogue.summary;
+    meta["catalogue"] = {{"rows_read", c.rows_read}, {"kept", c.kept}, {"rejected", c.rejected},
+                         {"merged_duplicates", c.merged_duplicates}, {"products_named", named}};
+    posterior.fit_metadata_json = meta.dump();
+    log(fmt::format("catalogue: named {} of {} rated products; {} catalogue products have no ratings", named,
+                    posterior.num_items, catalogue.products.size() - named));
+}
+
 // ---- 5. Convergence figures, then the file. The figures travel with the
 // model (inspect, /v1/model, report).
 void write_model(FitResult& result, const std::string& out) {
@@ -192,10 +239,19 @@ int run_fit(FitFlags& f) {
     ProgressLine progress(f.quiet);
     for (const auto& note : prepare_posterior_output(f.out)) log(note);  // before any sampling
 
+    std::optional<Catalogue> catalogue;
+    if (!f.catalogue_path.empty()) {
+        catalogue = read_catalogue(CatalogueOptions{.path = f.catalogue_path,
+                                                    .max_reject_fraction = f.ingest.max_reject_fraction,
+                                                    .rejects_path = ""});
+        log("catalogue " + f.catalogue_path + ": " + describe(catalogue->summary));
+    }
     IngestResult data = read_ratings(f, progress, log);
     const TrainingData d = split_for_validation(f, std::move(data.ratings), options.seed, log);
     FitResult result = sample_posterior(d, options, progress, log);
     add_fit_metadata(result.posterior, f, data.summary, d);
+    add_validation_figures(result.posterior, d);
+    if (catalogue) attach_catalogue(result.posterior, *catalogue, log);
     write_model(result, f.out);
     return 0;
 }
@@ -210,6 +266,8 @@ Runner add_fit_command(CLI::App& app) {
     add_sampler_flags(*cmd, f->sampler, RankFlag::one);
     cmd->add_option("--holdout", f->holdout, "Hold out this share of ratings to report validation RMSE while fitting")->check(CLI::Range(0.0, 1.0));
     cmd->add_option("--validation", f->validation_path, "Ratings file scored by the running posterior mean while fitting");
+    cmd->add_option("--catalogue", f->catalogue_path,
+                    "Product catalogue CSV (product id, name, optional category) stored in the posterior so answers show names");
     cmd->add_flag("--quiet,-q", f->quiet, "No progress or summary on stderr");
     return [f] { return run_fit(*f); };
 }

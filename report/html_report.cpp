@@ -12,6 +12,7 @@
 #include <stdexcept>
 
 #include "model/fit/convergence_summary.hpp"
+#include "model/predict/item_statistics.hpp"
 #include "model/predict/predict.hpp"
 #include "report/svg_plot.hpp"
 
@@ -116,6 +117,10 @@ std::string overview(const ReportInputs& in, const ConvergenceSummary& conv, con
     fact("kept samples", std::to_string(p.num_samples));
     fact("chains", std::to_string(p.num_chains));
     fact("bias terms", p.has_biases ? "yes" : "no");
+    if (p.has_catalogue()) {
+        const auto named = std::count_if(p.item_names.begin(), p.item_names.end(), [](const std::string& n) { return !n.empty(); });
+        fact("products named by the catalogue", std::to_string(named));
+    }
     fact("rating scale", fmt::format("{:g} to {:g}", p.scale.min, p.scale.max));
     o += fmt::format("<div><b><span class=\"badge {0}\">{1}</span></b>convergence verdict</div>", conv.verdict,
                      escape_xml(conv.verdict == "not_converged" ? "not converged"
@@ -250,29 +255,39 @@ std::string convergence_table(const ConvergenceSummary& conv) {
     return o;
 }
 
+// The rated products with the largest averaged predictive sd, by id and,
+// when the model has a catalogue, name and category.
+std::string least_sure_table(const Posterior& p, const std::vector<uint32_t>& count, const std::vector<double>& sd) {
+    constexpr size_t kShown = 10;
+    std::vector<uint32_t> order;
+    for (uint32_t i = 0; i < p.num_items; ++i)
+        if (count[i] > 0) order.push_back(i);
+    const size_t take = std::min(kShown, order.size());
+    std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
+                      [&](uint32_t a, uint32_t b) { return sd[a] != sd[b] ? sd[a] > sd[b] : a < b; });
+    if (take == 0) return "";
+    const bool named = p.has_catalogue();
+    std::string t = fmt::format("<h3>The {} products the model is least sure about</h3>"
+                                "<table class=\"diagnostics\"><thead><tr><th>product</th>{}<th>training ratings</th>"
+                                "<th>predictive sd</th></tr></thead><tbody>",
+                                take, named ? "<th>name</th><th>category</th>" : "");
+    for (size_t k = 0; k < take; ++k) {
+        const uint32_t i = order[k];
+        t += "<tr><td>" + escape_xml(p.item_ids[i]) + "</td>";
+        if (named) t += "<td>" + escape_xml(p.item_name(i)) + "</td><td>" + escape_xml(p.item_category(i)) + "</td>";
+        t += fmt::format("<td>{}</td><td>{}</td></tr>", count[i], fixed(sd[i], 3));
+    }
+    return t + "</tbody></table>";
+}
+
 // ---- predictive sd against how many ratings an item has
 std::string uncertainty_by_item(const ReportInputs& in) {
     const Posterior& p = *in.posterior;
-    std::vector<uint32_t> count(p.num_items, 0);
-    for (uint32_t item : p.rated_items) ++count[item];
-    const uint32_t n_ref = std::max<uint32_t>(1, std::min(in.sd_reference_users, p.num_users));
-    std::vector<uint32_t> ref;
-    for (uint32_t j = 0; j < n_ref; ++j) ref.push_back(static_cast<uint32_t>(static_cast<uint64_t>(j) * p.num_users / n_ref));
-    std::vector<double> sd(p.num_items, 0.0);
-    const std::span<const float> tau(p.noise_precision);
-#pragma omp parallel
-    {
-        std::vector<double> m(p.num_samples);
-#pragma omp for schedule(dynamic, 64)
-        for (uint32_t i = 0; i < p.num_items; ++i) {
-            double total = 0.0;
-            for (uint32_t u : ref) {
-                for (uint32_t s = 0; s < p.num_samples; ++s) m[s] = p.sample_prediction(s, u, i);
-                total += mixture_sd(m, tau);
-            }
-            sd[i] = total / static_cast<double>(ref.size());
-        }
-    }
+    // The figures GET /v1/items shows (model/predict/item_statistics.hpp):
+    // each customer's predictive sd for the product, averaged over customers.
+    const ItemStatistics st = compute_item_statistics(p);
+    const std::vector<uint32_t>& count = st.rating_count;
+    const std::vector<double>& sd = st.predictive_sd;
     Series pts = make_series("", SeriesKind::points);
     pts.point_radius = p.num_items > 2000 ? 1.6 : 2.6;
     pts.opacity = p.num_items > 2000 ? 0.45 : 0.75;
@@ -300,12 +315,13 @@ std::string uncertainty_by_item(const ReportInputs& in) {
                                ""});
     }
     std::string o = "<section id=\"uncertainty\"><h2>Uncertainty against evidence</h2>";
-    o += fmt::format("<p class=\"note\">Each dot is a product: its predictive sd, averaged over {} evenly spaced "
-                     "customers, against how many training ratings it has. The dashed line is the rating noise alone "
-                     "(sd {:.3f}); sparse products should sit higher.{}</p>",
-                     ref.size(), noise_sd,
+    o += fmt::format("<p class=\"note\">Each dot is a product: its predictive sd, averaged over the model's {} "
+                     "customers (as GET /v1/items shows it), against how many training ratings it has. The dashed "
+                     "line is the rating noise alone (sd {:.3f}); sparse products should sit higher.{}</p>",
+                     p.num_users, noise_sd,
                      unrated ? fmt::format(" {} products with no training rating are not shown.", unrated) : "");
     o += render_svg(spec, {pts});
+    o += least_sure_table(p, count, sd);
     o += "</section>\n";
     return o;
 }

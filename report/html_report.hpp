@@ -27,7 +27,6 @@ struct ReportInputs {
     std::string validation_name;               // shown with the calibration section
     std::optional<ComparisonResult> comparison;
     uint32_t max_probe_plots = 6;              // probe prediction traces drawn (of up to 20 probes)
-    uint32_t sd_reference_users = 25;          // customers averaged for the per-item predictive sd
 };
 
 // Returns the whole HTML document. Throws std::invalid_argument when

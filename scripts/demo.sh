@@ -33,7 +33,7 @@ credence demo-data --out-dir demo-data
 head -4 demo-data/ratings.csv
 
 echo; echo "== 2. Fit (Gibbs sampling; rejected rows go to a rejects file, nothing is dropped silently)"
-credence fit --ratings demo-data/ratings.csv --scale 1:5 --out demo-data/shop.posterior --rank 8 --holdout 0.1 --seed 7
+credence fit --ratings demo-data/ratings.csv --catalogue demo-data/catalogue.csv --scale 1:5 --out demo-data/shop.posterior --rank 8 --holdout 0.1 --seed 7
 
 echo; echo "== 3. What the file holds"
 credence inspect demo-data/shop.posterior
@@ -60,5 +60,5 @@ next "(cd $(shown "$build") && cpack -G DEB) && sudo apt-get install ./$(shown "
 next "scripts/test.sh" "the test suite (installs the test tools, builds the tests)"
 
 if [[ "${CREDENCE_DEMO_NO_SERVE:-0}" == 1 ]]; then exit 0; fi
-echo; echo "== 6. Serving on http://127.0.0.1:$port (Ctrl-C stops it; the curl line above asks it for a top 5)"
+echo; echo "== 6. Serving on http://127.0.0.1:$port (Ctrl-C stops it; open that address in a browser for the console, or use the curl line above)"
 exec "$bin" serve --model demo-data/shop.posterior --port "$port"

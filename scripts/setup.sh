@@ -19,13 +19,14 @@ packages=(
   libssl-dev             # OpenSSL: cpp-httplib's TLS client in the exposed-deployment test
 )
 # Only the tests and benchmarks need these (scipy is the outside reference for
-# distribution checks; chromium renders the report; wrk drives the serve bench;
+# distribution checks; chromium renders the report, and with chromium-driver
+# and python3-selenium drives the console test; wrk drives the serve bench;
 # nginx and openssl run the exposed deployment with a certificate made in the
 # test; clang builds the libFuzzer targets of scripts/fuzz; lintian checks
 # the Debian package; prometheus brings promtool, which checks the example
 # alert rules).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium python3 python3-scipy python3-numpy nginx openssl clang libclang-rt-dev lintian prometheus)
+  packages+=(wrk chromium chromium-driver python3 python3-selenium python3-scipy python3-numpy nginx openssl clang libclang-rt-dev lintian prometheus)
 fi
 
 missing=()

@@ -26,6 +26,8 @@ const std::vector<std::pair<std::string_view, uint8_t>> kRoutePermissions = {
     {"/v1/ready", kOpen},
     {"/v1/openapi.json", kOpen},
     {"/v1/model", kRead},
+    {"/v1/model/trace", kRead},
+    {"/v1/model/diagnostics", kRead},
     {"/v1/items", kRead},
     {"/v1/items/{item}", kRead},
     {"/v1/items/{item}/similar", kRead},
@@ -35,6 +37,10 @@ const std::vector<std::pair<std::string_view, uint8_t>> kRoutePermissions = {
     {"/metrics", kMetrics},
     {"/v1/admin/reload", kAdmin},
     {"/v1/admin/forget", kAdmin},
+    // The console page and its files hold no data; what it shows comes from
+    // the routes above, each with its own permission.
+    {"/", kOpen},
+    {"/console/{asset}", kOpen},
 };
 
 constexpr std::pair<std::string_view, uint8_t> kPermissionNames[] = {

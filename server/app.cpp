@@ -19,14 +19,20 @@ int hex_value(char c) {
     return -1;
 }
 
-std::string percent_decode(std::string_view s) {
+// `plus_is_space`: in a query string '+' stands for a space (as httplib
+// decodes the other parameters); in a path it is itself.
+std::string percent_decode(std::string_view s, bool plus_is_space = false) {
     std::string out;
     out.reserve(s.size());
     for (size_t i = 0; i < s.size(); ++i) {
-        if (s[i] == '%') {
+        if (plus_is_space && s[i] == '+') {
+            out += ' ';
+        } else if (s[i] == '%') {
             const int hi = i + 2 < s.size() ? hex_value(s[i + 1]) : -1;
             const int lo = i + 2 < s.size() ? hex_value(s[i + 2]) : -1;
-            if (hi < 0 || lo < 0) throw bad_request("malformed %-escape in the path; encode '%' as %25");
+            if (hi < 0 || lo < 0)
+                throw bad_request(std::string("malformed %-escape in the ") + (plus_is_space ? "query" : "path") +
+                                  "; encode '%' as %25");
             out += static_cast<char>(hi * 16 + lo);
             i += 2;
         } else {
@@ -195,6 +201,69 @@ std::vector<std::string> decoded_path_segments(const httplib::Request& req) {
     return segments;
 }
 
+namespace {
+
+std::string known_list(std::initializer_list<std::string_view> known) {
+    std::string out;
+    for (std::string_view k : known) out += (out.empty() ? "" : ", ") + std::string(k);
+    return out.empty() ? "none" : out;
+}
+
+bool is_known(std::initializer_list<std::string_view> known, std::string_view name) {
+    return std::find(known.begin(), known.end(), name) != known.end();
+}
+
+}  // namespace
+
+void check_query_names(const httplib::Request& req, std::initializer_list<std::string_view> known) {
+    for (const auto& [name, value] : req.params) {
+        if (is_known(known, name)) continue;
+        if (name == "interval" && is_known(known, "level"))
+            throw bad_request("the interval level is now the query parameter level (e.g. level=0.9), as in bodies "
+                              "and answers; interval= is not accepted");
+        throw bad_request("unknown query parameter '" + name + "'; this route accepts: " + known_list(known));
+    }
+}
+
+void check_body_keys(const nlohmann::json& object, std::initializer_list<std::string_view> known,
+                     const std::string& where) {
+    if (!object.is_object()) return;
+    for (const auto& [key, value] : object.items()) {
+        if (is_known(known, key)) continue;
+        if (key == "interval" && is_known(known, "level"))
+            throw bad_request(where + ": the interval level is the key \"level\" (e.g. 0.9); \"interval\" is not "
+                              "accepted");
+        throw bad_request(where + " has an unknown key \"" + key + "\"; it accepts: " + known_list(known));
+    }
+}
+
+std::vector<std::string> query_list(const httplib::Request& req, std::string_view name) {
+    std::vector<std::string> out;
+    const size_t q = req.target.find('?');
+    if (q == std::string::npos) return out;
+    std::string_view query = std::string_view(req.target).substr(q + 1);
+    query = query.substr(0, query.find('#'));
+    while (!query.empty()) {
+        const size_t amp = query.find('&');
+        const std::string_view pair = query.substr(0, amp);
+        query = amp == std::string_view::npos ? std::string_view() : query.substr(amp + 1);
+        const size_t eq = pair.find('=');
+        if (percent_decode(pair.substr(0, eq), true) != name) continue;
+        std::string_view value = eq == std::string_view::npos ? std::string_view() : pair.substr(eq + 1);
+        while (true) {
+            const size_t comma = value.find(',');
+            const std::string id = percent_decode(value.substr(0, comma), true);
+            if (id.empty())
+                throw bad_request(std::string(name) + " has an empty id; list ids as " + std::string(name) + "=a," +
+                                  "b or repeat " + std::string(name) + "=, and send a comma inside an id as %2C");
+            out.push_back(id);
+            if (comma == std::string_view::npos) break;
+            value.remove_prefix(comma + 1);
+        }
+    }
+    return out;
+}
+
 uint32_t query_count(const httplib::Request& req, const char* name, uint32_t fallback, uint32_t max_value) {
     if (!req.has_param(name)) return fallback;
     const std::string text = req.get_param_value(name);
@@ -293,6 +362,33 @@ void write_json(httplib::Response& res, const nlohmann::json& body, const Loaded
     if (model) res.set_header("Credence-Model", model->fingerprint);
     res.status = 200;
     res.set_content(body.dump(-1, ' ', false, nlohmann::json::error_handler_t::replace), "application/json");
+}
+
+nlohmann::json item_json(const LoadedModel& model, uint32_t i) {
+    nlohmann::json out = {{"item", model.items.name(i)}};
+    const Posterior& p = *model.posterior;
+    if (!p.item_name(i).empty()) out["name"] = p.item_name(i);
+    if (!p.item_category(i).empty()) out["category"] = p.item_category(i);
+    return out;
+}
+
+std::vector<uint32_t> category_items(const LoadedModel& model, const std::string& category) {
+    const Posterior& p = *model.posterior;
+    if (!p.has_catalogue())
+        throw bad_request("category needs a model fitted with a catalogue (credence fit --catalogue FILE)");
+    std::vector<uint32_t> out;
+    for (uint32_t i = 0; i < p.num_items; ++i)
+        if (p.item_category(i) == category) out.push_back(i);
+    if (out.empty()) {
+        std::set<std::string> known;
+        for (uint32_t i = 0; i < p.num_items; ++i)
+            if (!p.item_category(i).empty()) known.insert(p.item_category(i));
+        std::string list;
+        for (const auto& k : known) list += (list.empty() ? "" : ", ") + k;
+        throw bad_request("no product has category '" + category + "'; the catalogue's categories are: " +
+                          (list.empty() ? "(none)" : list));
+    }
+    return out;
 }
 
 void put_prediction(nlohmann::json& out, const Prediction& p) {

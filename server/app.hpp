@@ -4,6 +4,7 @@
 #include <atomic>
 #include <cstdint>
 #include <functional>
+#include <initializer_list>
 #include <memory>
 #include <mutex>
 #include <optional>
@@ -80,6 +81,8 @@ void install_prediction_routes(httplib::Server& server, AppContext& ctx);
 void install_recommendation_routes(httplib::Server& server, AppContext& ctx);
 void install_item_routes(httplib::Server& server, AppContext& ctx);
 void install_admin_routes(httplib::Server& server, AppContext& ctx);
+// GET / and /console/{asset}: the console page (server/routes_console.cpp).
+void install_console_routes(httplib::Server& server, AppContext& ctx);
 // Everything above plus /metrics, /v1/openapi.json and the problem answers
 // for unknown routes, oversized bodies and other transport errors.
 void install_all_routes(httplib::Server& server, AppContext& ctx);
@@ -89,6 +92,22 @@ void install_all_routes(httplib::Server& server, AppContext& ctx);
 // The raw path of the request target split on '/', each segment
 // percent-decoded, so ids may contain any character including '/'.
 std::vector<std::string> decoded_path_segments(const httplib::Request& req);
+
+// Strictness: a query parameter or body key the route does not know is a
+// 400 naming it and listing the known ones (sorted as given), so a typo is
+// never silently ignored. `interval` (the old name of `level`) gets a
+// detail saying to send `level`. `where` names the object in the body
+// ("the body", "pairs[3]").
+void check_query_names(const httplib::Request& req, std::initializer_list<std::string_view> known);
+void check_body_keys(const nlohmann::json& object, std::initializer_list<std::string_view> known,
+                     const std::string& where);
+
+// The ids of a list parameter such as items=: every occurrence counts and
+// each value is split at literal commas, so items=a&items=b and items=a,b
+// both give [a, b]. The split happens on the raw query before decoding, so
+// an id containing a comma is sent with it percent-encoded (%2C). Empty
+// pieces ("a,,b", a trailing comma) are a 400, as is a malformed %-escape.
+std::vector<std::string> query_list(const httplib::Request& req, std::string_view name);
 
 // Query parameters. Absent -> fallback; present but malformed -> 400.
 uint32_t query_count(const httplib::Request& req, const char* name, uint32_t fallback, uint32_t max_value);
@@ -108,6 +127,15 @@ double json_level(const nlohmann::json& body, double fallback);
 // Sets a JSON body (invalid UTF-8 in echoed ids is replaced, never thrown)
 // and the Credence-Model header naming the model that answered.
 void write_json(httplib::Response& res, const nlohmann::json& body, const LoadedModel* model = nullptr);
+
+// {"item": id} plus "name" and "category" when the model carries a
+// catalogue (omitted for a product the catalogue does not list). Needs i < I.
+nlohmann::json item_json(const LoadedModel& model, uint32_t i);
+
+// The item indices of one catalogue category, ascending. Throws a 400
+// problem when the model has no catalogue, or when no product has that
+// category (the detail lists the catalogue's categories).
+std::vector<uint32_t> category_items(const LoadedModel& model, const std::string& category);
 
 // The JSON fields of one prediction: mean, sd, lower, upper.
 void put_prediction(nlohmann::json& out, const Prediction& p);

@@ -61,6 +61,7 @@ void reload_handler(AppContext& ctx, const httplib::Request& req, httplib::Respo
     std::string path;
     if (!req.body.empty()) {
         const auto body = parse_json_body(req);
+        check_body_keys(body, {"path"}, "the body");
         if (const auto it = body.find("path"); it != body.end()) path = allowed_path(ctx, json_string(*it, "path"));
     }
     const auto previous = ctx.slot.get();
@@ -83,6 +84,7 @@ void reload_handler(AppContext& ctx, const httplib::Request& req, httplib::Respo
 void forget_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
     check_token(ctx, req, res);
     const auto body = parse_json_body(req);
+    check_body_keys(body, {"customer"}, "the body");
     const auto it = body.find("customer");
     if (it == body.end()) throw bad_request("the body needs \"customer\": the id to remove from the served model");
     const std::string customer = json_string(*it, "customer");

@@ -1,66 +1,15 @@
 // GET /v1/health (process alive), GET /v1/ready (a model is loaded),
-// GET /v1/model (what is being served, naming no customer and no file path).
+// GET /v1/model (a short summary of what is being served, naming no customer
+// and no file path), GET /v1/model/trace (the fit's per-sweep traces) and
+// GET /v1/model/diagnostics (every convergence quantity, probes numbered).
+// The documents come from model/posterior/model_summary.hpp, so `credence
+// inspect --json` prints the same summary.
 #include <string>
-#include <utility>
-#include <vector>
 
+#include "model/posterior/model_summary.hpp"
 #include "server/app.hpp"
 
 namespace credence::server {
-
-namespace {
-
-// The file's free-form JSON documents, passed through; a document that does
-// not parse is shown as a string rather than failing the route.
-nlohmann::json embedded_json(const std::string& text) {
-    auto doc = nlohmann::json::parse(text, nullptr, false);
-    return doc.is_discarded() ? nlohmann::json(text) : doc;
-}
-
-// What /v1/model may show of the fit metadata: everything but where the
-// ratings came from (a path on the analyst's machine).
-nlohmann::json public_fit_metadata(const std::string& text) {
-    nlohmann::json doc = embedded_json(text);
-    if (doc.is_object() && doc.contains("data") && doc["data"].is_object()) doc["data"].erase("source");
-    return doc.is_object() ? doc : nlohmann::json::object();
-}
-
-// The convergence figures with the probe pairs numbered instead of named:
-// a probe is a (customer, product) pair the customer rated.
-nlohmann::json public_diagnostics(const std::string& text) {
-    nlohmann::json doc = embedded_json(text);
-    if (!doc.is_object()) return nlohmann::json::object();
-    std::vector<std::pair<std::string, std::string>> named;  // "prediction(u, i)" -> "prediction(probe k)"
-    if (auto it = doc.find("quantities"); it != doc.end() && it->is_array()) {
-        for (auto& q : *it) {
-            if (!q.is_object() || (!q.contains("user_id") && !q.contains("item_id"))) continue;
-            const auto id = [&](const char* key) {
-                const auto found = q.find(key);
-                return found != q.end() && found->is_string() ? found->get<std::string>() : std::string();
-            };
-            const std::string user = id("user_id"), item = id("item_id");
-            q.erase("user_id");
-            q.erase("item_id");
-            q["probe"] = named.size() + 1;
-            named.emplace_back("prediction(" + user + ", " + item + ")",
-                               "prediction(probe " + std::to_string(named.size() + 1) + ")");
-        }
-    }
-    // Warnings quote the worst quantity, which may be a probe pair.
-    if (auto it = doc.find("warnings"); it != doc.end() && it->is_array()) {
-        for (auto& w : *it) {
-            if (!w.is_string()) continue;
-            std::string text_of = w.get<std::string>();
-            for (const auto& [from, to] : named)
-                for (size_t at = text_of.find(from); at != std::string::npos; at = text_of.find(from, at + to.size()))
-                    text_of.replace(at, from.size(), to);
-            w = text_of;
-        }
-    }
-    return doc;
-}
-
-}  // namespace
 
 void install_health_routes(httplib::Server& server, AppContext& ctx) {
     server.Get("/v1/health", wrap_route(ctx, "/v1/health", [](const httplib::Request&, httplib::Response& res) {
@@ -72,25 +21,29 @@ void install_health_routes(httplib::Server& server, AppContext& ctx) {
                    write_json(res, {{"status", "ready"}, {"model", model->fingerprint}}, model.get());
                }));
 
-    server.Get("/v1/model", wrap_route(ctx, "/v1/model", [&ctx](const httplib::Request&, httplib::Response& res) {
+    server.Get("/v1/model", wrap_route(ctx, "/v1/model", [&ctx](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
                    const auto model = ctx.model();
-                   const Posterior& p = *model->posterior;
-                   nlohmann::json body = {
-                       {"model", model->fingerprint},
-                       {"loaded_at_unix_s", model->loaded_at_unix_s},
-                       {"load_ms", model->load_ms},
-                       {"rank", p.rank},
-                       {"samples", p.num_samples},
-                       {"chains", p.num_chains},
-                       {"users", p.num_users},
-                       {"items", p.num_items},
-                       {"has_biases", p.has_biases},
-                       {"global_mean", p.global_mean},
-                       {"scale", {{"min", p.scale.min}, {"max", p.scale.max}, {"declared", p.scale.declared}}},
-                       {"fit", public_fit_metadata(p.fit_metadata_json)},
-                       {"diagnostics", public_diagnostics(p.diagnostics_json)},
-                   };
+                   nlohmann::json body = model_summary(*model->posterior);
+                   body["model"] = model->fingerprint;
+                   body["loaded_at_unix_s"] = model->loaded_at_unix_s;
+                   body["load_ms"] = model->load_ms;
                    write_json(res, body, model.get());
+               }));
+    server.Get("/v1/model/trace",
+               wrap_route(ctx, "/v1/model/trace", [&ctx](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
+                   const auto model = ctx.model();
+                   write_json(res, {{"model", model->fingerprint}, {"trace", fit_trace(*model->posterior)}},
+                              model.get());
+               }));
+    server.Get("/v1/model/diagnostics",
+               wrap_route(ctx, "/v1/model/diagnostics", [&ctx](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
+                   const auto model = ctx.model();
+                   write_json(res,
+                              {{"model", model->fingerprint}, {"diagnostics", public_diagnostics(*model->posterior)}},
+                              model.get());
                }));
 }
 

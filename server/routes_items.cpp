@@ -1,9 +1,11 @@
-// GET /v1/items/{item}: an item's rating count, population prediction and
-// factor spread. GET /v1/items?order=uncertainty|popularity|mean&n=20: ranked
-// lists for analysts. GET /v1/items/{item}/similar?n=10: nearest items.
+// GET /v1/items/{item}: a product's rating count, its predictive mean and sd
+// averaged over the customers, and its factor summary.
+// GET /v1/items?order=uncertainty|popularity|mean&n=20&category=: ranked
+// lists for analysts. GET /v1/items/{item}/similar?n=10: nearest products.
 //
 // The statistics and the similarity (per-sample cosine averaged over samples)
 // come from model/predict/item_statistics.hpp; this file parses and serializes.
+// "sd" means the predictive sd here as in every other answer.
 #include <algorithm>
 
 #include "model/predict/item_statistics.hpp"
@@ -15,11 +17,11 @@ namespace {
 
 nlohmann::json item_summary(const LoadedModel& m, uint32_t i) {
     const ItemStatistics& st = m.statistics;
-    return {{"item", m.items.name(i)},
-            {"rating_count", st.rating_count[i]},
-            {"mean", st.population_mean[i]},
-            {"sd", st.population_sd[i]},
-            {"factor_spread", st.factor_spread[i]}};
+    nlohmann::json out = item_json(m, i);
+    out.update(nlohmann::json{{"rating_count", st.rating_count[i]},
+                              {"mean", st.predictive_mean[i]},
+                              {"sd", st.predictive_sd[i]}});
+    return out;
 }
 
 void detail_handler(const LoadedModel& m, uint32_t i, httplib::Response& res) {
@@ -27,6 +29,7 @@ void detail_handler(const LoadedModel& m, uint32_t i, httplib::Response& res) {
     const ItemStatistics& st = m.statistics;
     nlohmann::json body = item_summary(m, i);
     body["model"] = m.fingerprint;
+    body["factor_spread"] = st.factor_spread[i];
     body["factor_mean"] = std::vector<float>(st.factor_mean.begin() + static_cast<size_t>(i) * K,
                                              st.factor_mean.begin() + static_cast<size_t>(i + 1) * K);
     body["factor_sd"] = std::vector<float>(st.factor_sd.begin() + static_cast<size_t>(i) * K,
@@ -38,12 +41,16 @@ void similar_handler(const AppContext& ctx, const httplib::Request& req, const L
                      httplib::Response& res) {
     const uint32_t n = query_count(req, "n", 10, ctx.options.max_n);
     nlohmann::json items = nlohmann::json::array();
-    for (const SimilarItem& similar : similar_items(*m.posterior, m.statistics, target, n))
-        items.push_back({{"item", m.items.name(similar.item)}, {"similarity", similar.similarity}});
+    for (const SimilarItem& similar : similar_items(*m.posterior, m.statistics, target, n)) {
+        nlohmann::json entry = item_json(m, similar.item);
+        entry["similarity"] = similar.similarity;
+        items.push_back(std::move(entry));
+    }
     write_json(res, {{"model", m.fingerprint}, {"item", m.items.name(target)}, {"items", std::move(items)}}, &m);
 }
 
 void list_handler(const AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    check_query_names(req, {"order", "n", "category"});
     const uint32_t n = query_count(req, "n", 20, ctx.options.max_n);
     const std::string order = req.has_param("order") ? req.get_param_value("order") : "uncertainty";
     const auto model = ctx.model();
@@ -52,9 +59,17 @@ void list_handler(const AppContext& ctx, const httplib::Request& req, httplib::R
     else if (order == "popularity") ranking = &model->statistics.by_popularity;
     else if (order == "mean") ranking = &model->statistics.by_mean;
     else throw bad_request("order must be one of uncertainty, popularity, mean; got '" + order + "'");
+    std::vector<uint32_t> in_category;
+    if (req.has_param("category")) in_category = category_items(*model, req.get_param_value("category"));
     nlohmann::json items = nlohmann::json::array();
-    for (size_t k = 0; k < std::min<size_t>(n, ranking->size()); ++k) items.push_back(item_summary(*model, (*ranking)[k]));
-    write_json(res, {{"model", model->fingerprint}, {"order", order}, {"items", std::move(items)}}, model.get());
+    for (size_t k = 0; k < ranking->size() && items.size() < n; ++k) {
+        const uint32_t i = (*ranking)[k];
+        if (req.has_param("category") && !std::binary_search(in_category.begin(), in_category.end(), i)) continue;
+        items.push_back(item_summary(*model, i));
+    }
+    nlohmann::json body = {{"model", model->fingerprint}, {"order", order}, {"items", std::move(items)}};
+    if (req.has_param("category")) body["category"] = req.get_param_value("category");
+    write_json(res, body, model.get());
 }
 
 void item_handler(const AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
@@ -65,6 +80,8 @@ void item_handler(const AppContext& ctx, const httplib::Request& req, httplib::R
         throw HttpProblem(404, "no-route", "Not Found",
                           "no route for " + req.path + "; use /v1/items/{item} or /v1/items/{item}/similar "
                           "(percent-encode '/' inside ids as %2F)");
+    if (similar) check_query_names(req, {"n"});
+    else check_query_names(req, {});
     if (similar) query_count(req, "n", 10, ctx.options.max_n);  // reject a bad n before anything else
     const auto model = ctx.model();
     const auto item = model->items.find(segments[3]);

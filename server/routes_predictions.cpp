@@ -1,6 +1,8 @@
 // POST /v1/predictions: predicted ratings with credible intervals for a batch
 // of (user, item) pairs. Unknown ids fail per pair (a 404 error object in the
-// answer) unless the client asks for "fallback": "population".
+// answer); with "fallback": "population" an unknown customer gets the
+// population answer instead, but an unknown product is always an error (a
+// typo must not get a plausible rating).
 #include <optional>
 
 #include "model/predict/population.hpp"
@@ -11,15 +13,18 @@ namespace credence::server {
 namespace {
 
 nlohmann::json pair_error(const std::string& what, const std::string& id) {
+    const std::string hint = what == "user" ? "; send \"fallback\": \"population\" for a population-level answer"
+                                            : "; check the product id (the population fallback covers unknown "
+                                              "customers only)";
     return {{"type", "urn:credence:problem:unknown-" + what},
             {"title", "Unknown " + what},
             {"status", 404},
-            {"detail", "the model has no " + what + " '" + id +
-                           "'; send \"fallback\": \"population\" for a population-level answer"}};
+            {"detail", "the model has no " + what + " '" + id + "'" + hint}};
 }
 
 void predict_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
     const nlohmann::json body = parse_json_body(req);
+    check_body_keys(body, {"pairs", "level", "fallback"}, "the body");
     const double level = json_level(body, 0.9);
     bool population = false;
     if (const auto it = body.find("fallback"); it != body.end()) {
@@ -45,6 +50,7 @@ void predict_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
         if (!pair.is_object()) throw bad_request(where + " must be an object {\"user\": ..., \"item\": ...}");
         const auto u = pair.find("user"), i = pair.find("item");
         if (u == pair.end() || i == pair.end()) throw bad_request(where + " needs both \"user\" and \"item\"");
+        check_body_keys(pair, {"user", "item"}, where);
         ids.emplace_back(json_string(*u, where + ".user"), json_string(*i, where + ".item"));
     }
 
@@ -57,12 +63,12 @@ void predict_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
         if (user && item) {
             put_prediction(answer, model->engine.predict(*user, *item, level));
             answer["source"] = "model";
-        } else if (population) {
+        } else if (population && item) {
             put_prediction(answer,
                            population_prediction(*model->posterior, model->statistics.covariances, user, item, level));
             answer["source"] = "population";
         } else {
-            answer["error"] = user ? pair_error("item", item_id) : pair_error("user", user_id);
+            answer["error"] = !item ? pair_error("item", item_id) : pair_error("user", user_id);
         }
         out.push_back(std::move(answer));
     }

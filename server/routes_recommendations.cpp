@@ -8,11 +8,13 @@
 // share one pass over the item samples (server/topn_batcher.hpp).
 #include <algorithm>
 #include <charconv>
+#include <optional>
 #include <string>
 #include <vector>
 
 #include "model/error.hpp"
 #include "model/predict/foldin.hpp"
+#include "model/predict/item_statistics.hpp"
 #include "server/app.hpp"
 #include "server/topn_batcher.hpp"
 
@@ -30,15 +32,67 @@ TopNBatcher& known_user_batcher(const ServeOptions& options) {
 
 uint32_t item_index(const LoadedModel& model, const std::string& id) {
     const auto index = model.items.find(id);
-    if (!index) throw not_found("item", "the model has no item '" + id + "'");
+    if (!index)
+        throw not_found("item", "the model has no item '" + id + "'" +
+                                    (id.find(',') != std::string::npos
+                                         ? "; an encoded comma (%2C) is part of an id: to list several ids, send "
+                                           "literal commas (items=a,b) or repeat items= for each id"
+                                         : ""));
     return *index;
 }
 
-nlohmann::json recommendation_list(const LoadedModel& model, const std::vector<Recommendation>& recs) {
+// Narrows the request's candidates (or every product) to one catalogue
+// category. Throws the 400 problems of category_items().
+std::vector<uint32_t> category_candidates(const LoadedModel& model, const std::string& category,
+                                          const std::optional<std::vector<uint32_t>>& candidates) {
+    std::vector<uint32_t> in_category = category_items(model, category);  // ascending
+    if (!candidates) return in_category;
+    std::vector<uint32_t> out;
+    for (uint32_t i : *candidates)
+        if (std::binary_search(in_category.begin(), in_category.end(), i)) out.push_back(i);
+    return out;
+}
+
+// What the customer rated, for the "why" of each entry: their items and,
+// for a visitor, the ratings they gave (a known customer's ratings are not
+// in the posterior file, only which products they rated).
+struct RatedByViewer {
+    std::vector<uint32_t> items;
+    std::vector<double> ratings;  // empty, or one per item
+};
+
+// "why": the product's training rating count and up to 3 of the viewer's
+// rated products most similar to it (averaged factor cosine,
+// model/predict/item_statistics.hpp), only those with a positive similarity.
+nlohmann::json why_json(const LoadedModel& model, uint32_t item, const RatedByViewer& rated) {
+    constexpr uint32_t kSimilarShown = 3;
+    nlohmann::json similar = nlohmann::json::array();
+    for (const SimilarItem& s : most_similar_among(*model.posterior, model.statistics, item, rated.items, kSimilarShown)) {
+        if (!(s.similarity > 0.0)) break;  // an opposite direction explains nothing; the list is best first
+        nlohmann::json entry = item_json(model, s.item);
+        entry["similarity"] = s.similarity;
+        if (!rated.ratings.empty()) {
+            const size_t at = static_cast<size_t>(std::find(rated.items.begin(), rated.items.end(), s.item) -
+                                                  rated.items.begin());
+            entry["rating"] = rated.ratings.at(at);
+        }
+        similar.push_back(std::move(entry));
+    }
+    return {{"rating_count", model.statistics.rating_count[item]}, {"similar_rated", std::move(similar)}};
+}
+
+// One entry per recommendation: the product, its prediction, the number it
+// was ranked by on the rating scale (rank_value) and unclipped
+// (rank_value_unclipped, which orders entries tied at a scale end), and why.
+nlohmann::json recommendation_list(const LoadedModel& model, const std::vector<Recommendation>& recs,
+                                   const RatedByViewer& rated) {
     nlohmann::json items = nlohmann::json::array();
     for (const auto& r : recs) {
-        nlohmann::json entry = {{"item", model.items.name(r.item)}, {"score", r.score}};
+        nlohmann::json entry = item_json(model, r.item);
         put_prediction(entry, r.prediction);
+        entry["rank_value"] = r.rank_value;
+        entry["rank_value_unclipped"] = r.score;
+        entry["why"] = why_json(model, r.item, rated);
         items.push_back(std::move(entry));
     }
     return items;
@@ -51,16 +105,17 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
         throw HttpProblem(404, "no-route", "Not Found",
                           "no route for " + req.path + "; did you mean /v1/users/{user}/recommendations?");
     const std::string& user_id = segments[3];
+    check_query_names(req, {"n", "rank_by", "level", "exclude_rated", "seed", "items", "category"});
 
     RecommendOptions options;
     options.n = query_count(req, "n", 10, ctx.options.max_n);
     options.rank_by = req.has_param("rank_by") ? parse_rank_by(req.get_param_value("rank_by")) : RankBy::mean;
-    options.level = query_level(req, "interval", 0.9);
+    options.level = query_level(req, "level", 0.9);
     options.exclude_rated = query_bool(req, "exclude_rated", true);
     const auto seed = query_seed(req, "seed");
     options.draw_seed = seed ? *seed : ctx.next_seed();
-    const size_t candidate_count = req.get_param_value_count("items");
-    if (candidate_count > ctx.options.max_batch)
+    const std::vector<std::string> candidate_ids = query_list(req, "items");
+    if (candidate_ids.size() > ctx.options.max_batch)
         throw bad_request("items may list at most " + std::to_string(ctx.options.max_batch) + " candidates");
 
     const auto model = ctx.model();
@@ -68,18 +123,21 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
     if (!user)
         throw not_found("user", "the model has no user '" + user_id +
                                     "'; use POST /v1/recommendations with the visitor's ratings instead");
-    if (candidate_count > 0) {
+    if (!candidate_ids.empty()) {
         std::vector<uint32_t> candidates;
-        for (size_t k = 0; k < candidate_count; ++k)
-            candidates.push_back(item_index(*model, req.get_param_value("items", k)));
+        for (const auto& id : candidate_ids) candidates.push_back(item_index(*model, id));
         options.candidates = std::move(candidates);
     }
+    if (req.has_param("category"))
+        options.candidates = category_candidates(*model, req.get_param_value("category"), options.candidates);
     const auto recs = known_user_batcher(ctx.options).recommend(model->engine, *user, options);
+    const auto rated_span = model->posterior->rated_by(*user);
+    const RatedByViewer rated{{rated_span.begin(), rated_span.end()}, {}};
     nlohmann::json body = {{"model", model->fingerprint},
                            {"user", user_id},
                            {"rank_by", rank_by_name(options.rank_by)},
                            {"level", options.level},
-                           {"items", recommendation_list(*model, recs)}};
+                           {"items", recommendation_list(*model, recs, rated)}};
     if (options.rank_by == RankBy::draw) body["seed"] = std::to_string(options.draw_seed);
     write_json(res, body, model.get());
 }
@@ -110,6 +168,8 @@ uint64_t json_seed(const nlohmann::json& value) {
 
 void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
     const nlohmann::json body = parse_json_body(req);
+    check_body_keys(body, {"ratings", "n", "rank_by", "level", "exclude_rated", "seed", "items", "category"},
+                    "the body");
     RecommendOptions options;
     options.n = json_count(body, "n", 10, ctx.options.max_n);
     options.level = json_level(body, 0.9);
@@ -136,6 +196,7 @@ void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
             const std::string where = "ratings[" + std::to_string(k) + "]";
             if (!r.is_object() || !r.contains("item") || !r.contains("rating"))
                 throw bad_request(where + " must be an object {\"item\": ..., \"rating\": ...}");
+            check_body_keys(r, {"item", "rating"}, where);
             if (!r["rating"].is_number()) throw bad_request(where + ".rating must be a number");
             rated.emplace_back(json_string(r["item"], where + ".item"), r["rating"].get<double>());
         }
@@ -163,11 +224,18 @@ void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
         for (const auto& id : candidate_ids) candidates.push_back(item_index(*model, id));
         options.candidates = std::move(candidates);
     }
+    if (const auto it = body.find("category"); it != body.end())
+        options.candidates = category_candidates(*model, json_string(*it, "category"), options.candidates);
     const auto recs = recommend_for_visitor(model->engine, ratings, options);
+    RatedByViewer rated_by_visitor;
+    for (const VisitorRating& r : ratings) {
+        rated_by_visitor.items.push_back(r.item);
+        rated_by_visitor.ratings.push_back(r.rating);
+    }
     nlohmann::json answer = {{"model", model->fingerprint},
                              {"rank_by", rank_by_name(options.rank_by)},
                              {"level", options.level},
-                             {"items", recommendation_list(*model, recs)}};
+                             {"items", recommendation_list(*model, recs, rated_by_visitor)}};
     if (options.rank_by == RankBy::draw) answer["seed"] = std::to_string(options.draw_seed);
     write_json(res, answer, model.get());
 }

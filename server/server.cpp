@@ -61,6 +61,7 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
     install_recommendation_routes(server, ctx);
     install_item_routes(server, ctx);
     install_admin_routes(server, ctx);
+    install_console_routes(server, ctx);
 
     server.Get("/metrics", wrap_route(ctx, "/metrics", [&ctx](const httplib::Request&, httplib::Response& res) {
                    const auto model = ctx.slot.get();

@@ -65,6 +65,8 @@ void Posterior::validate() const {
     const size_t S = num_samples, U = num_users, I = num_items, K = rank;
     expect_size("user_ids", user_ids.size(), U);
     expect_size("item_ids", item_ids.size(), I);
+    expect_size("item_names", item_names.size(), has_catalogue() ? I : 0);
+    expect_size("item_categories", item_categories.size(), has_catalogue() ? I : 0);
     expect_size("sample_chain", sample_chain.size(), S);
     for (size_t s = 0; s < S; ++s) {
         if (sample_chain[s] >= num_chains)

@@ -53,6 +53,12 @@ struct Posterior {
     std::vector<uint64_t> rated_offsets;    // [U+1]
     std::vector<uint32_t> rated_items;      // [rated_offsets[U]]
 
+    // ---- the shop's catalogue (fit --catalogue): both empty when the fit had
+    // none, else both [I]; "" where the catalogue has no name or category
+    // for that product. Format version 2 sections item_names, item_categories.
+    std::vector<std::string> item_names;       // [I] or empty
+    std::vector<std::string> item_categories;  // [I] or empty
+
     // ---- free-form JSON documents carried in the file
     std::string fit_metadata_json = "{}";   // arguments, seed, data fingerprint, timings, per-sweep trace
     std::string diagnostics_json = "{}";    // R-hat / ESS figures and verdict (see model/math/convergence_diagnostics.hpp)
@@ -76,6 +82,16 @@ struct Posterior {
     }
     std::span<const uint32_t> rated_by(uint32_t u) const {
         return {rated_items.data() + rated_offsets[u], rated_items.data() + rated_offsets[u + 1]};
+    }
+    bool has_catalogue() const { return !item_names.empty(); }
+    // The catalogue name of item i, "" when there is none.
+    const std::string& item_name(uint32_t i) const {
+        static const std::string none;
+        return has_catalogue() ? item_names[i] : none;
+    }
+    const std::string& item_category(uint32_t i) const {
+        static const std::string none;
+        return has_catalogue() ? item_categories[i] : none;
     }
     // Mean of the rating under sample s (no noise): global mean + biases + u.v
     float sample_prediction(uint32_t s, uint32_t u, uint32_t i) const;

@@ -71,7 +71,9 @@ enum SectionId : uint32_t {
     kRatedItems = 17,
     kFitMetadata = 18,
     kDiagnostics = 19,
-    kLastKnownSection = 19,
+    kItemNames = 20,       // version 2
+    kItemCategories = 21,  // version 2
+    kLastKnownSection = 21,
 };
 
 const char* section_name(uint32_t id) {
@@ -79,7 +81,8 @@ const char* section_name(uint32_t id) {
         "?",           "metadata",         "user_ids",     "item_ids",        "sample_chain",
         "user_factors", "item_factors",    "user_bias",    "item_bias",       "noise_precision",
         "user_mu",     "user_lambda",      "item_mu",      "item_lambda",     "user_bias_precision",
-        "item_bias_precision", "rated_offsets", "rated_items", "fit_metadata", "diagnostics"};
+        "item_bias_precision", "rated_offsets", "rated_items", "fit_metadata", "diagnostics",
+        "item_names", "item_categories"};
     return id >= 1 && id <= kLastKnownSection ? names[id] : "unknown";
 }
 
@@ -330,7 +333,7 @@ void check_writable(const Posterior& p) {
 
 // The encoded sections the OutSections point into; must outlive them.
 struct Encoded {
-    std::string metadata, user_ids, item_ids;
+    std::string metadata, user_ids, item_ids, item_names, item_categories;
 };
 
 // The sections of `p` in file order (the bias sections only with biases).
@@ -370,6 +373,12 @@ std::vector<OutSection> sections_of(const Posterior& p, const Encoded& encoded) 
             p.fit_metadata_json.size());
     add_raw(kDiagnostics, ElementType::bytes, p.diagnostics_json.size(), p.diagnostics_json.data(),
             p.diagnostics_json.size());
+    if (p.has_catalogue()) {
+        add_raw(kItemNames, ElementType::strings, p.item_names.size(), encoded.item_names.data(),
+                encoded.item_names.size());
+        add_raw(kItemCategories, ElementType::strings, p.item_categories.size(), encoded.item_categories.data(),
+                encoded.item_categories.size());
+    }
     return sections;
 }
 
@@ -430,7 +439,8 @@ void write_atomically(const std::string& path, const std::vector<unsigned char>&
 }
 
 uint64_t write_posterior_unchecked(const Posterior& p, const std::string& path) {
-    const Encoded encoded{encode_metadata(p), encode_strings(p.user_ids), encode_strings(p.item_ids)};
+    const Encoded encoded{encode_metadata(p), encode_strings(p.user_ids), encode_strings(p.item_ids),
+                          encode_strings(p.item_names), encode_strings(p.item_categories)};
     std::vector<OutSection> sections = sections_of(p, encoded);
     uint64_t file_bytes = 0;
     const std::vector<unsigned char> head = lay_out(sections, file_bytes);
@@ -570,7 +580,9 @@ ElementType expected_type(uint32_t id) {
     switch (id) {
         case kMetadata: return ElementType::record;
         case kUserIds:
-        case kItemIds: return ElementType::strings;
+        case kItemIds:
+        case kItemNames:
+        case kItemCategories: return ElementType::strings;
         case kSampleChain:
         case kRatedItems: return ElementType::u32;
         case kRatedOffsets: return ElementType::u64;
@@ -611,6 +623,7 @@ void decode_strings(const Reader& r, const InEntry& e, std::vector<std::string>&
 // What the header tells: where the section table ends, the table's bytes
 // and the declared file size.
 struct HeaderInfo {
+    uint32_t version = 0;
     uint64_t table_end = 0;
     uint64_t file_bytes = 0;
     std::vector<unsigned char> table;
@@ -626,12 +639,14 @@ HeaderInfo read_header(const Reader& r) {
         r.fail("not a Credence posterior file (wrong magic bytes)");
     if (size < 12) r.truncated(kHeaderBytes);
     const uint32_t version = get_u32(header + 8);
-    if (version != kPosteriorFormatVersion)
-        r.fail("format version " + std::to_string(version) + " is not supported (this build reads version " +
-               std::to_string(kPosteriorFormatVersion) + "); use a matching credence build or refit");
+    if (version < kOldestReadableFormatVersion || version > kPosteriorFormatVersion)
+        r.fail("format version " + std::to_string(version) + " is not supported (this build reads versions " +
+               std::to_string(kOldestReadableFormatVersion) + " to " + std::to_string(kPosteriorFormatVersion) +
+               "); use a matching credence build or refit");
     if (size < kHeaderBytes) r.truncated(kHeaderBytes);
 
     HeaderInfo h;
+    h.version = version;
     const uint64_t section_count = get_u32(header + 12);
     h.table_end = kHeaderBytes + kEntryBytes * section_count;
     if (size < h.table_end) r.truncated(h.table_end);
@@ -671,7 +686,9 @@ void read_section_table(const Reader& r, const HeaderInfo& h, SectionTable& t) {
         if (e.offset != align_up(end)) r.corrupt("section " + name + " is not where the layout puts it");
         if (e.offset > h.file_bytes || e.length_bytes > h.file_bytes - e.offset) r.corrupt("section " + name + " extends past the end of file");
         end = e.offset + e.length_bytes;
-        if (e.id >= 1 && e.id <= kLastKnownSection) {
+        // Ids 20 and up were free in version 1, so there they are unknown sections.
+        const uint32_t last_known = h.version >= 2 ? kLastKnownSection : kDiagnostics;
+        if (e.id >= 1 && e.id <= last_known) {
             if (t.known[e.id]) r.corrupt("section " + name + " appears twice");
             if (e.type != expected_type(e.id)) r.corrupt("section " + name + " has the wrong element type");
             const uint64_t unit = element_bytes(e.type);
@@ -727,6 +744,7 @@ void check_sections_against_shape(const Reader& r, const SectionTable& t, const 
     for (uint32_t id = 1; id <= kLastKnownSection; ++id) {
         const bool bias_section = id == kUserBias || id == kItemBias || id == kUserBiasPrecision ||
                                   id == kItemBiasPrecision;
+        if (id == kItemNames || id == kItemCategories) continue;  // optional, checked below
         const bool required = !bias_section || p.has_biases;
         if (required && !t.known[id])
             r.fail(std::string("required section ") + section_name(id) + " is missing; refit or restore it");
@@ -739,6 +757,11 @@ void check_sections_against_shape(const Reader& r, const SectionTable& t, const 
     }
     if (t.known[kUserIds]->count != p.num_users) r.corrupt("section user_ids count does not match the shape");
     if (t.known[kItemIds]->count != p.num_items) r.corrupt("section item_ids count does not match the shape");
+    if (!t.known[kItemNames] != !t.known[kItemCategories])
+        r.corrupt("sections item_names and item_categories must be present together");
+    for (uint32_t id : {kItemNames, kItemCategories})
+        if (t.known[id] && t.known[id]->count != p.num_items)
+            r.corrupt(std::string("section ") + section_name(id) + " count does not match the shape");
 }
 
 // Bulk reads, in file order (the writer's order), straight into place.
@@ -748,6 +771,13 @@ void read_contents(const Reader& r, const SectionTable& t, Posterior& p) {
             case kMetadata: break;
             case kUserIds: decode_strings(r, e, p.user_ids); break;
             case kItemIds: decode_strings(r, e, p.item_ids); break;
+            case kItemNames:
+            case kItemCategories:
+                if (t.known[e.id] == &e)
+                    decode_strings(r, e, e.id == kItemNames ? p.item_names : p.item_categories);
+                else
+                    r.verify_skipped(e);  // id 20/21 in a version-1 file: not ours
+                break;
             case kSampleChain: read_array(r, e, p.sample_chain); break;
             case kUserFactors: read_array(r, e, p.user_factors); break;
             case kItemFactors: read_array(r, e, p.item_factors); break;

@@ -10,7 +10,9 @@
 
 namespace credence {
 
-inline constexpr uint32_t kPosteriorFormatVersion = 1;
+inline constexpr uint32_t kPosteriorFormatVersion = 2;
+// The oldest version this build still reads (version 1: no catalogue).
+inline constexpr uint32_t kOldestReadableFormatVersion = 1;
 
 // Writes `posterior` to `path` atomically: bytes go to a temporary file in
 // the same directory, which is flushed, fsync'd and renamed over `path` (and

@@ -12,6 +12,7 @@
 #include <cmath>
 #include <cstdio>
 #include <filesystem>
+#include <fstream>
 #include <map>
 #include <sstream>
 #include <string>
@@ -65,6 +66,17 @@ std::string highlights(const std::string& text, const std::vector<std::pair<cons
     return out;
 }
 
+// The version in bytes 8..11 of the file (FORMAT.md section 3), which may be
+// older than the one this build writes; the file was already read, so a
+// short read only happens if it changed since: then "?".
+std::string file_format_version(const std::string& path) {
+    std::ifstream in(path, std::ios::binary);
+    unsigned char head[12] = {};
+    if (!in.read(reinterpret_cast<char*>(head), sizeof head)) return "?";
+    return std::to_string(uint32_t{head[8]} | uint32_t{head[9]} << 8 | uint32_t{head[10]} << 16 |
+                          uint32_t{head[11]} << 24);
+}
+
 }  // namespace
 
 std::string describe_posterior(const Posterior& p, const std::string& path) {
@@ -75,9 +87,14 @@ std::string describe_posterior(const Posterior& p, const std::string& path) {
     if (ec)
         out << " (size unavailable: " << ec.message() << ")\n";
     else
-        out << " (" << file_bytes << " bytes, format version " << kPosteriorFormatVersion << ")\n";
+        out << " (" << file_bytes << " bytes, format version " << file_format_version(path) << ")\n";
 
     out << "shape:          " << p.num_users << " users x " << p.num_items << " items, rank " << p.rank << "\n";
+    if (p.has_catalogue()) {
+        size_t named = 0;
+        for (const auto& n : p.item_names) named += !n.empty();
+        out << "catalogue:      " << named << " of " << p.num_items << " products named\n";
+    }
 
     std::map<uint32_t, uint32_t> per_chain;
     for (uint32_t c : p.sample_chain) per_chain[c]++;

@@ -411,7 +411,7 @@ std::vector<Recommendation> recommend_for_visitor(const PredictionEngine& engine
     std::vector<Recommendation> out;
     if (options.rank_by == RankBy::lower || options.rank_by == RankBy::upper) {
         const std::vector<uint32_t> pool = request_candidates(p, rated, options);
-        for (const auto& t : top_by_quantile(p, visitor, pool, options)) out.push_back({t.item, t.score, {}});
+        for (const auto& t : top_by_quantile(p, visitor, pool, options)) out.push_back({t.item, t.score, 0.0, {}});
     } else if (options.rank_by == RankBy::draw) {
         // The engine's draw ranking with the visitor's draw at the sample it draws.
         const uint32_t K = p.rank, s = drawn_sample(options.draw_seed, p.num_samples);
@@ -425,7 +425,10 @@ std::vector<Recommendation> recommend_for_visitor(const PredictionEngine& engine
     } else {
         out = engine.recommend_for_factors(visitor.factor_mean, visitor.bias_mean, rated, options);
     }
-    for (auto& r : out) r.prediction = predict_for_visitor(p, visitor, r.item, options.level);
+    for (auto& r : out) {
+        r.rank_value = std::clamp(r.score, static_cast<double>(p.scale.min), static_cast<double>(p.scale.max));
+        r.prediction = predict_for_visitor(p, visitor, r.item, options.level);
+    }
     return out;
 }
 

@@ -111,6 +111,90 @@ void population_moments(const Posterior& p, ItemStatistics& out) {
     }
 }
 
+double clipped(const Posterior& p, double x) {
+    return std::clamp(x, static_cast<double>(p.scale.min), static_cast<double>(p.scale.max));
+}
+
+// With no known customer: the mixture over samples of the unseen-customer
+// Normals (mean g + c_i + mu_U.v_i, variance 1/tau + v' Sigma_U v + 1/lambda_b).
+void unseen_customer_predictive(const Posterior& p, ItemStatistics& out) {
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    std::vector<double> sum(I, 0.0), sum_sq(I, 0.0);
+    for (uint32_t s = 0; s < S; ++s) {
+        Eigen::Map<const Eigen::VectorXf> mu(p.user_mu.data() + static_cast<size_t>(s) * K, K);
+        Eigen::Map<const MatrixXdR> sigma(out.covariances.user_of(s), K, K);
+        const double extra = 1.0 / static_cast<double>(p.noise_precision[s]) +
+                             (p.has_biases ? 1.0 / static_cast<double>(p.user_bias_precision[s]) : 0.0);
+        for (uint32_t i = 0; i < I; ++i) {
+            const auto f = p.item_factor(s, i);
+            const Eigen::VectorXd v = Eigen::Map<const Eigen::VectorXf>(f.data(), K).cast<double>();
+            const double mean = static_cast<double>(p.global_mean) + p.item_bias_of(s, i) + mu.cast<double>().dot(v);
+            sum[i] += mean;
+            sum_sq[i] += extra + v.dot(sigma * v) + mean * mean;
+        }
+    }
+    for (uint32_t i = 0; i < I; ++i) {
+        const double mean = sum[i] / S;
+        out.predictive_mean[i] = clipped(p, mean);
+        out.predictive_sd[i] = std::sqrt(std::max(0.0, sum_sq[i] / S - mean * mean));  // rounding only
+    }
+}
+
+// Every known customer's predictive mean and sd for every item, summed into
+// the per-item averages. Customers go in blocks of kBlock so the per-pair
+// sums stay in cache while the samples stream by; each sample's block of
+// noise-free means is one float matrix product (U_block x K) (K x I), then
+// the biases are added and the moments accumulated in double.
+void known_customer_predictive(const Posterior& p, ItemStatistics& out) {
+    constexpr uint32_t kBlock = 16;
+    const uint32_t S = p.num_samples, U = p.num_users, I = p.num_items, K = p.rank;
+    double noise_variance = 0.0;  // mean over samples of 1/tau_s
+    for (float tau : p.noise_precision) noise_variance += 1.0 / static_cast<double>(tau) / S;
+    MatrixXfR dots(kBlock, I);
+    std::vector<double> sum(static_cast<size_t>(kBlock) * I), sum_sq(sum.size());
+    std::vector<double> mean_total(I, 0.0), sd_total(I, 0.0);
+    for (uint32_t u0 = 0; u0 < U; u0 += kBlock) {
+        const uint32_t b = std::min(kBlock, U - u0);
+        std::fill(sum.begin(), sum.end(), 0.0);
+        std::fill(sum_sq.begin(), sum_sq.end(), 0.0);
+        for (uint32_t s = 0; s < S; ++s) {
+            Eigen::Map<const MatrixXfR> users(p.user_factors.data() + (static_cast<size_t>(s) * U + u0) * K, b, K);
+            Eigen::Map<const MatrixXfR> items(p.item_block(s), I, K);
+            dots.topRows(b).noalias() = users * items.transpose();
+            const float* item_bias = p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * I : nullptr;
+            for (uint32_t r = 0; r < b; ++r) {
+                const double base = static_cast<double>(p.global_mean) + p.user_bias_of(s, u0 + r);
+                double* row_sum = sum.data() + static_cast<size_t>(r) * I;
+                double* row_sq = sum_sq.data() + static_cast<size_t>(r) * I;
+                for (uint32_t i = 0; i < I; ++i) {
+                    const double m = base + (item_bias ? item_bias[i] : 0.0f) + dots(r, i);
+                    row_sum[i] += m;
+                    row_sq[i] += m * m;
+                }
+            }
+        }
+        for (uint32_t r = 0; r < b; ++r)
+            for (uint32_t i = 0; i < I; ++i) {
+                const size_t j = static_cast<size_t>(r) * I + i;
+                const double mean = sum[j] / S;
+                mean_total[i] += clipped(p, mean);
+                // The variance of the per-sample means is >= 0; rounding only.
+                sd_total[i] += std::sqrt(noise_variance + std::max(0.0, sum_sq[j] / S - mean * mean));
+            }
+    }
+    for (uint32_t i = 0; i < I; ++i) {
+        out.predictive_mean[i] = mean_total[i] / U;
+        out.predictive_sd[i] = sd_total[i] / U;
+    }
+}
+
+void predictive_moments(const Posterior& p, ItemStatistics& out) {
+    out.predictive_mean.assign(p.num_items, 0.0);
+    out.predictive_sd.assign(p.num_items, 0.0);
+    if (p.num_users == 0) unseen_customer_predictive(p, out);
+    else known_customer_predictive(p, out);
+}
+
 // Factor mean, sd and spread over samples, and each sample's item norms.
 void factor_moments(const Posterior& p, ItemStatistics& out) {
     const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
@@ -168,10 +252,11 @@ ItemStatistics compute_item_statistics(const Posterior& p) {
     out.covariances = hyperparameter_covariances(p);
     population_moments(p, out);
     factor_moments(p, out);
+    predictive_moments(p, out);
 
-    out.by_uncertainty = order_desc(out.factor_spread);
+    out.by_uncertainty = order_desc(out.predictive_sd);
     out.by_popularity = order_desc(std::vector<double>(out.rating_count.begin(), out.rating_count.end()));
-    out.by_mean = order_desc(out.population_mean);
+    out.by_mean = order_desc(out.predictive_mean);
     return out;
 }
 
@@ -209,6 +294,49 @@ std::vector<SimilarItem> similar_items(const Posterior& p, const ItemStatistics&
     std::vector<SimilarItem> out;
     out.reserve(take);
     for (size_t k = 0; k < take; ++k) out.push_back({order[k], total(order[k]) / S});
+    return out;
+}
+
+std::vector<SimilarItem> most_similar_among(const Posterior& p, const ItemStatistics& statistics, uint32_t target,
+                                            std::span<const uint32_t> among, uint32_t n) {
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    if (statistics.num_items != I || statistics.rank != K || statistics.num_samples != S ||
+        statistics.item_norm.size() != static_cast<size_t>(S) * I)
+        throw std::invalid_argument("most_similar_among: the item statistics were computed from another posterior");
+    std::vector<uint32_t> items;
+    for (uint32_t i : among) {
+        if (i >= I)
+            throw std::out_of_range("most_similar_among: item index " + std::to_string(i) + " is not below " +
+                                    std::to_string(I));
+        if (i != target) items.push_back(i);
+    }
+    if (target >= I)
+        throw std::out_of_range("most_similar_among: item index " + std::to_string(target) + " is not below " +
+                                std::to_string(I));
+    std::sort(items.begin(), items.end());
+    items.erase(std::unique(items.begin(), items.end()), items.end());
+    std::vector<double> total(items.size(), 0.0);  // sum over samples of the cosine
+    for (uint32_t s = 0; s < S; ++s) {
+        const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
+        const auto v = p.item_factor(s, target);
+        for (size_t j = 0; j < items.size(); ++j) {
+            const double denom = static_cast<double>(norms[target]) * norms[items[j]];
+            if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
+            const auto w = p.item_factor(s, items[j]);
+            double dot = 0.0;
+            for (uint32_t k = 0; k < K; ++k) dot += static_cast<double>(v[k]) * w[k];
+            total[j] += dot / denom;
+        }
+    }
+    std::vector<size_t> order(items.size());
+    std::iota(order.begin(), order.end(), size_t{0});
+    const size_t take = std::min<size_t>(n, order.size());
+    // items is ascending, so ties in total break by item index through the position.
+    std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
+                      [&](size_t a, size_t b) { return total[a] != total[b] ? total[a] > total[b] : a < b; });
+    std::vector<SimilarItem> out;
+    out.reserve(take);
+    for (size_t k = 0; k < take; ++k) out.push_back({items[order[k]], total[order[k]] / S});
     return out;
 }
 

@@ -5,6 +5,7 @@
 // is an equal-weight average over the posterior's kept Gibbs samples.
 #pragma once
 #include <cstdint>
+#include <span>
 #include <vector>
 
 #include "model/posterior/posterior.hpp"
@@ -47,8 +48,21 @@ struct ItemStatistics {
     // hyperparameter prior (factor Normal(mu_U,s, Sigma_U,s), bias
     // Normal(0, 1/lambda_b,s)), and the moments are exact expectations.
     std::vector<double> population_mean;
-    // [I] sd of m_s(u, i) over the same (user, sample) pairs.
+    // [I] sd of m_s(u, i) over the same (user, sample) pairs: how much
+    // customers differ, mixed with posterior uncertainty (population answers).
     std::vector<double> population_sd;
+    // The predictive answer for one known customer u and item i is the
+    // mixture over samples of Normal(m_s(u, i), 1/tau_s), as PredictionEngine
+    // summarises it: its mean clipped to the rating scale, and its sd
+    // sqrt(mean_s 1/tau_s + mean_s m_s^2 - (mean_s m_s)^2) (unclipped).
+    // [I] that clipped predictive mean averaged over the U known customers
+    // (equal weight per customer, rated the item or not).
+    std::vector<double> predictive_mean;
+    // [I] that predictive sd averaged over the U known customers (the plain
+    // mean of the U sds, not the root mean square). With no known customers
+    // both are instead the mixture of the unseen-customer Normals of
+    // model/predict/population.hpp (mean clipped, sd of the mixture).
+    std::vector<double> predictive_sd;
     // [I][K] mean over samples of each coordinate of the item's factor V_i,s.
     std::vector<float> factor_mean;
     // [I][K] sd over samples of each coordinate of V_i,s.
@@ -60,9 +74,9 @@ struct ItemStatistics {
     std::vector<float> item_norm;
 
     // Item indices ordered by a statistic, largest first; ties by item index.
-    std::vector<uint32_t> by_uncertainty;  // factor_spread
+    std::vector<uint32_t> by_uncertainty;  // predictive_sd
     std::vector<uint32_t> by_popularity;   // rating_count
-    std::vector<uint32_t> by_mean;         // population_mean
+    std::vector<uint32_t> by_mean;         // predictive_mean
 
     // Sigma_U,s and Sigma_V,s for every sample: population_mean needs them
     // when no user is known, and population answers (population.hpp) reuse them.
@@ -71,6 +85,8 @@ struct ItemStatistics {
 
 // Needs a posterior that passed Posterior::validate(). Returns every
 // statistic above, owning its arrays (nothing refers back to the posterior).
+// Cost: the predictive figures visit every (customer, item, sample) triple,
+// U * I * S * K multiply-adds through blocked matrix products.
 // Throws NumericError as hyperparameter_covariances() does.
 ItemStatistics compute_item_statistics(const Posterior& posterior);
 
@@ -91,5 +107,15 @@ struct SimilarItem {
 // have another shape). Returns min(n, I - 1) items; n == 0 gives none.
 std::vector<SimilarItem> similar_items(const Posterior& posterior, const ItemStatistics& statistics,
                                        uint32_t target, uint32_t n);
+
+// The n items of `among` most similar to `target` by the same averaged
+// cosine as similar_items() (computed in double here), most similar first,
+// ties by item index; `target` itself is skipped if listed, and so are
+// repeats. Used to explain a recommendation by the customer's own rated
+// products. Needs `statistics` from this posterior (std::invalid_argument
+// otherwise); throws std::out_of_range when target or an item of `among` is
+// not below I. Returns min(n, distinct items of among other than target).
+std::vector<SimilarItem> most_similar_among(const Posterior& posterior, const ItemStatistics& statistics,
+                                            uint32_t target, std::span<const uint32_t> among, uint32_t n);
 
 }  // namespace credence

@@ -199,7 +199,7 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
     out.reserve(top.size());
     for (const auto& t : top) {
         const auto& means = means_of(t.item);
-        out.push_back({t.item, t.score, prediction_from(p, means, options.level)});
+        out.push_back({t.item, t.score, clip(p, t.score), prediction_from(p, means, options.level)});
     }
     return out;
 }

@@ -45,9 +45,15 @@ struct RecommendOptions {
     uint64_t draw_seed = 0;                           // for RankBy::draw: which posterior sample
 };
 
+// A list is ordered by score, highest first, ties by lower item index.
+// Because clipping is monotone, that is the same order as by rank_value with
+// ties in rank_value (several items at a scale end) broken by score: so a
+// reader of rank_value and score can always see why the order is what it is.
 struct Recommendation {
     uint32_t item = 0;
-    double score = 0.0;  // the value ranked by, before clipping to the scale
+    double score = 0.0;       // the value ranked by (mean, bound or draw), before clipping to the scale
+    double rank_value = 0.0;  // score clipped to the rating scale: for mean, lower and upper it equals
+                              // prediction.mean, .lower, .upper (the same numbers, bit for bit)
     Prediction prediction;
     bool operator==(const Recommendation&) const = default;
 };

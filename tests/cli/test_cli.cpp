@@ -9,6 +9,7 @@
 #include <algorithm>
 #include <cctype>
 #include <chrono>
+#include <cmath>
 #include <filesystem>
 #include <fstream>
 #include <map>
@@ -58,7 +59,8 @@ const DemoFit& demo_fit() {
         REQUIRE(gen.exit_code == 0);
         x.ratings = x.dir / "ratings.csv";
         x.model = x.dir / "shop.posterior";
-        x.fit = run_credence("fit --ratings " + quoted(x.ratings) + " --scale 1:5 --out " + quoted(x.model) +
+        x.fit = run_credence("fit --ratings " + quoted(x.ratings) + " --catalogue " + quoted(x.dir / "catalogue.csv") +
+                             " --scale 1:5 --out " + quoted(x.model) +
                              " --rank 4 --run-length fixed --burn-in 40 --samples 20 --thin 1 --chains 2 --seed 3 --holdout 0.1");
         return x;
     }();
@@ -202,6 +204,105 @@ TEST_CASE("fit turns a demo export into a posterior file and accounts for every 
     CHECK(meta.at("data").at("rejected") == 3);
     // CREDENCE_PROJECT_VERSION comes from CMake's project(VERSION), not from the program.
     CHECK(meta.at("credence_version") == CREDENCE_PROJECT_VERSION);
+}
+
+TEST_CASE("fit --catalogue stores each product's name and category, and recommend shows the names") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    // The catalogue as demo-data wrote it, read here line by line (no quoted
+    // commas in ids or categories; a name may be quoted).
+    std::map<std::string, std::pair<std::string, std::string>> listed;
+    std::ifstream in(d.dir / "catalogue.csv");
+    std::string line;
+    std::getline(in, line);  // header
+    while (std::getline(in, line)) {
+        const auto first = line.find(','), last = line.rfind(',');
+        std::string name = line.substr(first + 1, last - first - 1);
+        if (name.size() >= 2 && name.front() == '"') name = name.substr(1, name.size() - 2);
+        listed[line.substr(0, first)] = {name, line.substr(last + 1)};
+    }
+    REQUIRE(listed.size() == 80);
+    const auto p = credence::read_posterior(d.model.string());
+    REQUIRE(p.has_catalogue());
+    for (uint32_t i = 0; i < p.num_items; ++i) {
+        INFO(p.item_ids[i]);
+        REQUIRE(listed.count(p.item_ids[i]) == 1);
+        CHECK(p.item_name(i) == listed[p.item_ids[i]].first);
+        CHECK(p.item_category(i) == listed[p.item_ids[i]].second);
+    }
+    const auto meta = json::parse(p.fit_metadata_json);
+    CHECK(meta.at("catalogue").at("rows_read") == 80);
+    CHECK(meta.at("catalogue").at("kept") == 80);
+    CHECK(meta.at("catalogue").at("products_named") == p.num_items);
+
+    const auto text = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 3");
+    REQUIRE(text.exit_code == 0);
+    const auto js = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 3 --json");
+    REQUIRE(js.exit_code == 0);
+    const auto items = json::parse(js.out).at("items");
+    REQUIRE(items.size() == 3);
+    for (const auto& item : items) {
+        const std::string id = item.at("item");
+        CHECK(item.at("name") == listed[id].first);
+        CHECK(item.at("category") == listed[id].second);
+        CHECK(text.out.find(listed[id].first) != std::string::npos);
+    }
+}
+
+TEST_CASE("recommend --category keeps to one category and every entry says why") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto p = credence::read_posterior(d.model.string());
+    REQUIRE(p.has_catalogue());
+    const std::string category = p.item_category(0);
+    const auto js = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 4 --json --category " +
+                                 word(category));
+    INFO(js.err);
+    REQUIRE(js.exit_code == 0);
+    const auto items = json::parse(js.out).at("items");
+    REQUIRE(!items.empty());
+    for (const auto& item : items) {
+        CHECK(item.at("category") == category);
+        CHECK(item.at("why").at("rating_count").get<uint32_t>() > 0);
+        for (const auto& s : item.at("why").at("similar_rated")) CHECK(s.at("similarity").get<double>() > 0.0);
+    }
+    const auto text = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 -n 2 --category " +
+                                   word(category));
+    REQUIRE(text.exit_code == 0);
+    CHECK(text.out.find("why: ") != std::string::npos);
+    CHECK(text.out.find(" ratings in training") != std::string::npos);
+    const auto unknown = run_credence("recommend --model " + quoted(d.model) + " --user c-00007 --category lighting");
+    CHECK(unknown.exit_code == 2);
+    CHECK(unknown.err.find(category) != std::string::npos);  // the known categories are listed
+}
+
+TEST_CASE("inspect --json prints the model summary: data size, convergence, validation and sampled noise") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto r = run_credence("inspect --json " + quoted(d.model));
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    const auto j = json::parse(r.out);
+    const auto p = credence::read_posterior(d.model.string());
+    CHECK(j.at("data").at("customers") == p.num_users);
+    CHECK(j.at("data").at("products") == p.num_items);
+    CHECK(j.at("data").at("ratings") == p.rated_items.size());
+    CHECK(j.at("rank") == 4);
+    CHECK(j.at("chains") == 2);
+    CHECK(j.at("samples") == p.num_samples);
+    CHECK(j.at("fit").at("seed") == 3);
+    CHECK(j.at("fit").at("created_at").get<std::string>().size() == 20);  // 2026-12-03T23:47:03Z
+    CHECK(j.at("validation").at("kind") == "holdout");
+    CHECK(j.at("convergence").at("worst").size() == 3);
+    // The noise was sampled: its posterior mean sd, never a fixed precision.
+    CHECK(j.at("noise").at("sampled") == true);
+    CHECK_FALSE(j.at("noise").contains("precision"));
+    double sd = 0;
+    for (float tau : p.noise_precision) sd += 1.0 / std::sqrt(double(tau)) / p.noise_precision.size();
+    CHECK(j.at("noise").at("sd_posterior_mean").get<double>() == Approx(sd).epsilon(1e-12));
+    // Short: no per-sweep trace, no customer id.
+    CHECK(r.out.size() < 4000);
+    for (const auto& id : p.user_ids) CHECK(r.out.find("\"" + id) == std::string::npos);
 }
 
 TEST_CASE("--version prints exactly the version that CMakeLists.txt declares and the kernels' CPU level") {
@@ -368,9 +469,11 @@ TEST_CASE("inspect, predict and recommend answer from the file") {
     REQUIRE(rec.exit_code == 0);
     const auto rj = json::parse(rec.out);
     REQUIRE(rj.at("items").size() == 5);
-    // Ranked by the lower bound: non-increasing scores.
+    // Ranked by the lower bound: non-increasing ranked values, which are the lower bounds shown.
     for (size_t k = 1; k < 5; ++k)
-        CHECK(rj["items"][k - 1]["score"].get<double>() >= rj["items"][k]["score"].get<double>());
+        CHECK(rj["items"][k - 1]["rank_value_unclipped"].get<double>() >=
+              rj["items"][k]["rank_value_unclipped"].get<double>());
+    for (const auto& item : rj["items"]) CHECK(item["rank_value"] == item["lower"]);
     // Items the customer rated in training are excluded by default.
     const auto p = credence::read_posterior(d.model.string());
     uint32_t u = 0;
@@ -424,7 +527,8 @@ TEST_CASE("recommend --rated folds in a visitor exactly as the server and the of
             INFO("position " << k);
             CHECK(items[k].at("item") == ids[want[k].item]);
             // JSON numbers round-trip doubles exactly, so equality is bitwise.
-            CHECK(items[k].at("score").get<double>() == want[k].score);
+            CHECK(items[k].at("rank_value_unclipped").get<double>() == want[k].score);
+            CHECK(items[k].at("rank_value").get<double>() == want[k].rank_value);
             CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
             CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
             CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
@@ -441,7 +545,7 @@ TEST_CASE("recommend --rated folds in a visitor exactly as the server and the of
         REQUIRE(served.at("items").size() == items.size());
         for (size_t k = 0; k < items.size(); ++k) {
             INFO("position " << k);
-            for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"})
+            for (const char* key : {"item", "name", "rank_value", "rank_value_unclipped", "mean", "sd", "lower", "upper", "why"})
                 CHECK(served.at("items")[k].at(key) == items[k].at(key));
         }
         CHECK(served.contains("seed") == got.contains("seed"));

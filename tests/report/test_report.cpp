@@ -195,3 +195,26 @@ TEST_CASE("the report of a small fit renders in headless Chromium with content i
     const BrowserRun bad = open_in_chromium(broken_page, work, "");
     CHECK_FALSE(console_lines(bad.log).empty());
 }
+
+TEST_CASE("the report names the least sure products by catalogue name and category beside their ids") {
+    SimulatedPosteriorOptions spec{.users = 30, .items = 40, .rank = 3, .samples = 12, .chains = 2, .seed = 9};
+    Posterior p = simulate_posterior(spec);
+    for (uint32_t i = 0; i < p.num_items; ++i) {
+        p.item_names.push_back("Thimbleford <mug> " + std::to_string(i));
+        p.item_categories.push_back(i % 2 ? "kitchen" : "pantry");
+    }
+    report::ReportInputs in;
+    in.posterior = &p;
+    in.model_name = "shop.posterior";
+    const std::string html = report::render_html_report(in);
+    const size_t table = html.find("products the model is least sure about");
+    REQUIRE(table != std::string::npos);
+    const std::string rows = html.substr(table, html.find("</table>", table) - table);
+    size_t named = 0;
+    for (uint32_t i = 0; i < p.num_items; ++i) {
+        const std::string row = "<td>" + p.item_ids[i] + "</td><td>Thimbleford &lt;mug&gt; " + std::to_string(i) +
+                                "</td><td>" + p.item_categories[i] + "</td>";
+        named += rows.find(row) != std::string::npos;
+    }
+    CHECK(named == 10);  // the table's 10 rows, each with id, escaped name and category
+}

@@ -15,6 +15,7 @@
 #include "model/math/cpu_level.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/foldin.hpp"
+#include "model/predict/item_statistics.hpp"
 #include "model/predict/predict.hpp"
 #include "tests/support/simulate.hpp"
 #include "server/app.hpp"
@@ -52,6 +53,11 @@ struct Fixture {
         p.user_ids[3] = kOddUser;
         p.item_ids[5] = kOddItem;
         p.item_ids[6] = kSimilarItem;
+        // A catalogue of the invented shop: every item named, three categories.
+        for (uint32_t i = 0; i < p.num_items; ++i) {
+            p.item_names.push_back("Thimbleford piece " + std::to_string(i));
+            p.item_categories.push_back(i % 3 == 0 ? "kitchen" : i % 3 == 1 ? "pantry" : "garden");
+        }
         model_path = dir / "shop.posterior";
         write_posterior(p, model_path.string());
         spec.seed = 2;
@@ -116,13 +122,25 @@ TEST_CASE("health, readiness and the model description") {
     CHECK(model.body["rank"] == 4);
     CHECK(model.body["samples"] == 16);
     CHECK(model.body["chains"] == 2);
-    CHECK(model.body["users"] == 40);
-    CHECK(model.body["items"] == 120);
+    CHECK(model.body["data"]["customers"] == 40);
+    CHECK(model.body["data"]["products"] == 120);
+    CHECK(model.body["data"]["ratings"] == f.posterior->rated_items.size());
+    CHECK(model.body["data"]["products_named"] == 120);
     CHECK(model.body["scale"]["min"] == 1.0);
     CHECK(model.body["scale"]["max"] == 5.0);
-    CHECK(model.body["fit"]["generator"] == "synthetic");
-    CHECK(model.body["diagnostics"]["verdict"] == "not assessed");
+    CHECK(model.body["convergence"]["verdict"] == "not assessed");
     CHECK(model.body["model"] == fingerprint);
+    // A summary: the traces and the per-quantity figures have their own routes.
+    CHECK_FALSE(model.body.contains("diagnostics"));
+    CHECK(model.text.find("\"trace\"") == std::string::npos);
+    auto diagnostics = get(*c, "/v1/model/diagnostics", "/v1/model/diagnostics");
+    REQUIRE(diagnostics.status == 200);
+    CHECK(diagnostics.body["diagnostics"]["verdict"] == "not assessed");
+    auto trace = get(*c, "/v1/model/trace", "/v1/model/trace");
+    REQUIRE(trace.status == 200);
+    CHECK(trace.body["trace"].is_object());
+    CHECK(trace.body["model"] == fingerprint);
+    require_problem(get(*c, "/v1/model", "/v1/model?verbose=true"), 400);
 }
 
 TEST_CASE("predictions equal the offline engine exactly, per pair") {
@@ -153,7 +171,7 @@ TEST_CASE("predictions equal the offline engine exactly, per pair") {
     }
 }
 
-TEST_CASE("unknown ids fail per pair, or get a population answer on request") {
+TEST_CASE("unknown ids fail per pair; the population answer on request covers unknown customers only") {
     auto& f = fixture();
     auto c = f.server->client();
     const Posterior& p = *f.posterior;
@@ -177,7 +195,13 @@ TEST_CASE("unknown ids fail per pair, or get a population answer on request") {
     REQUIRE(lenient.status == 200);
     const auto& l = lenient.body["predictions"];
     require_same_prediction(l[0], f.engine->predict(0, 0, 0.9));
-    for (int k = 1; k < 4; ++k) {
+    // An unknown product is an error whatever the fallback: a typo must not get a plausible rating.
+    for (int k = 2; k < 4; ++k) {
+        INFO(l[k].dump());
+        CHECK(l[k]["error"]["title"] == "Unknown item");
+        CHECK_FALSE(l[k].contains("mean"));
+    }
+    for (int k = 1; k < 2; ++k) {
         INFO(l[k].dump());
         CHECK(l[k]["source"] == "population");
         const double lower = l[k]["lower"], mean = l[k]["mean"], upper = l[k]["upper"], sd = l[k]["sd"];
@@ -234,7 +258,7 @@ TEST_CASE("user top-N equals the offline engine for every ranking") {
             o.rank_by = server::parse_rank_by(rank_by);
             o.draw_seed = 99;
             const auto want = f.engine->recommend(u, o);
-            auto a = get(*c, kUserRoute, user_path(p.user_ids[u]) + "?n=7&interval=0.8&seed=99&rank_by=" + rank_by);
+            auto a = get(*c, kUserRoute, user_path(p.user_ids[u]) + "?n=7&level=0.8&seed=99&rank_by=" + rank_by);
             INFO(a.text);
             REQUIRE(a.status == 200);
             CHECK(a.body["user"] == p.user_ids[u]);
@@ -245,10 +269,13 @@ TEST_CASE("user top-N equals the offline engine for every ranking") {
             } else {
                 CHECK_FALSE(a.body.contains("seed"));
             }
+            CHECK(a.body["level"] == 0.8);
             REQUIRE(a.body["items"].size() == want.size());
             for (size_t k = 0; k < want.size(); ++k) {
                 CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
-                CHECK(a.body["items"][k]["score"].get<double>() == want[k].score);
+                CHECK(a.body["items"][k]["rank_value"].get<double>() == want[k].rank_value);
+                CHECK(a.body["items"][k]["rank_value_unclipped"].get<double>() == want[k].score);
+                CHECK_FALSE(a.body["items"][k].contains("score"));
                 require_same_prediction(a.body["items"][k], want[k].prediction);
             }
         }
@@ -266,7 +293,133 @@ TEST_CASE("user top-N equals the offline engine for every ranking") {
         REQUIRE(a.status == 200);
         REQUIRE(a.body["items"].size() == want.size());
         for (size_t k = 0; k < want.size(); ++k) CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
+        // The same candidates as one comma list, and mixed with a repeat. The
+        // client must send the commas as they are (httplib, like a browser's
+        // URLSearchParams, would encode them as %2C, which is part of an id).
+        auto verbatim = f.server->client();
+        verbatim->set_url_encode(false);
+        const std::string listed = user_path(kOddUser) + "?n=3&exclude_rated=false&items=" + url_encode(kOddItem) +
+                                   "," + url_encode(kSimilarItem) + ",sku-00009";
+        auto comma = get(*verbatim, kUserRoute, listed + "&items=sku-00040");
+        INFO(comma.text);
+        REQUIRE(comma.status == 200);
+        CHECK(comma.body["items"] == a.body["items"]);
+        require_problem(get(*verbatim, kUserRoute, listed + ",,sku-00040"), 400);
     }
+    SECTION("an id with a comma is one id when the comma is percent-encoded") {
+        // url_encode leaves ',' alone, so encode it by hand: "sku-00009%2Csku-00010" names no product.
+        auto a = get(*c, kUserRoute, user_path(p.user_ids[0]) + "?items=sku-00009%2Csku-00010");
+        require_problem(a, 404);
+        CHECK(a.body["detail"].get<std::string>().find("sku-00009,sku-00010") != std::string::npos);
+        // The detail says how to list several ids when the commas came encoded.
+        CHECK(a.body["detail"].get<std::string>().find("repeat items=") != std::string::npos);
+    }
+}
+
+TEST_CASE("every recommendation says why: its rating count and the viewer's most similar rated products") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    const ItemStatistics st = compute_item_statistics(p);
+    const uint32_t u = 17;
+    const auto rated = p.rated_by(u);
+    REQUIRE(rated.size() >= 3);
+    auto a = get(*c, kUserRoute, user_path(p.user_ids[u]) + "?n=8");
+    INFO(a.text);
+    REQUIRE(a.status == 200);
+    REQUIRE(a.body["items"].size() == 8);
+    for (const auto& entry : a.body["items"]) {
+        const auto at = std::find(p.item_ids.begin(), p.item_ids.end(), entry["item"].get<std::string>());
+        REQUIRE(at != p.item_ids.end());
+        const auto i = static_cast<uint32_t>(at - p.item_ids.begin());
+        CHECK(entry["why"]["rating_count"] == st.rating_count[i]);
+        // The model's own ranking of the customer's rated products, positive similarities only.
+        std::vector<SimilarItem> want = most_similar_among(p, st, i, rated, 3);
+        std::erase_if(want, [](const SimilarItem& s) { return !(s.similarity > 0.0); });
+        const auto& similar = entry["why"]["similar_rated"];
+        REQUIRE(similar.size() == want.size());
+        for (size_t k = 0; k < want.size(); ++k) {
+            CHECK(similar[k]["item"] == p.item_ids[want[k].item]);
+            CHECK(similar[k]["name"] == p.item_name(want[k].item));
+            CHECK(similar[k]["similarity"].get<double>() == want[k].similarity);
+            CHECK(std::binary_search(rated.begin(), rated.end(), want[k].item));
+            // A known customer's ratings are not in the model file: no rating is claimed.
+            CHECK_FALSE(similar[k].contains("rating"));
+        }
+    }
+    // A visitor's why names the ratings they gave.
+    auto v = post(*c, "/v1/recommendations", "/v1/recommendations",
+                  json{{"ratings", json::array({{{"item", "sku-00010"}, {"rating", 5.0}}, {{"item", "sku-00011"}, {"rating", 2}}})},
+                       {"n", 10}}.dump());
+    INFO(v.text);
+    REQUIRE(v.status == 200);
+    size_t with_rating = 0;
+    for (const auto& entry : v.body["items"])
+        for (const auto& s : entry["why"]["similar_rated"]) {
+            const std::string id = s["item"];
+            REQUIRE((id == "sku-00010" || id == "sku-00011"));
+            CHECK(s["rating"].get<double>() == (id == "sku-00010" ? 5.0 : 2.0));
+            ++with_rating;
+        }
+    CHECK(with_rating > 0);
+}
+
+TEST_CASE("unknown query parameters and body keys answer 400 listing the known ones; interval= names level") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const std::string base = user_path("cust-00001");
+    auto typo = get(*c, kUserRoute, base + "?rank-by=upper");
+    require_problem(typo, 400);
+    CHECK(typo.body["detail"].get<std::string>().find("rank-by") != std::string::npos);
+    CHECK(typo.body["detail"].get<std::string>().find("rank_by, level") != std::string::npos);
+    auto old = get(*c, kUserRoute, base + "?interval=0.8");
+    require_problem(old, 400);
+    CHECK(old.body["detail"].get<std::string>().find("level") != std::string::npos);
+    for (const char* bad : {"?level=1.5", "?level=0", "?level=high", "?level="}) {
+        INFO(bad);
+        require_problem(get(*c, kUserRoute, base + bad), 400);
+    }
+    auto body = post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": 3, "interval": 0.8})");
+    require_problem(body, 400);
+    CHECK(body.body["detail"].get<std::string>().find("level") != std::string::npos);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"nn": 3})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
+                         R"({"ratings":[{"item":"sku-00001","rating":3,"stars":3}]})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions",
+                         R"({"pairs":[{"user":"cust-00001","item":"sku-00001"}],"levle":0.8})"), 400);
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions",
+                         R"({"pairs":[{"user":"cust-00001","item":"sku-00001","rating":4}]})"), 400);
+    require_problem(get(*c, "/v1/items", "/v1/items?sort=mean"), 400);
+    require_problem(get(*c, "/v1/items/{item}", "/v1/items/sku-00001?n=3"), 400);
+    require_problem(get(*c, "/v1/items/{item}/similar", "/v1/items/sku-00001/similar?count=3"), 400);
+    // Known parameters still work.
+    CHECK(get(*c, kUserRoute, base + "?level=0.5&n=2").status == 200);
+}
+
+TEST_CASE("a category narrows the top-N to its products, as the offline engine does, and names come beside ids") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    RecommendOptions o;
+    o.n = 5;
+    std::vector<uint32_t> pantry;
+    for (uint32_t i = 0; i < p.num_items; ++i)
+        if (p.item_category(i) == "pantry") pantry.push_back(i);
+    o.candidates = pantry;
+    const auto want = f.engine->recommend(0, o);
+    auto a = get(*c, kUserRoute, user_path(p.user_ids[0]) + "?n=5&category=pantry");
+    INFO(a.text);
+    REQUIRE(a.status == 200);
+    REQUIRE(a.body["items"].size() == want.size());
+    for (size_t k = 0; k < want.size(); ++k) {
+        const auto& item = a.body["items"][k];
+        CHECK(item["item"] == p.item_ids[want[k].item]);
+        CHECK(item["category"] == "pantry");
+        CHECK(item["name"] == "Thimbleford piece " + std::to_string(want[k].item));
+    }
+    auto unknown = get(*c, kUserRoute, user_path(p.user_ids[0]) + "?category=lighting");
+    require_problem(unknown, 400);
+    CHECK(unknown.body["detail"].get<std::string>().find("kitchen") != std::string::npos);
 }
 
 TEST_CASE("bad recommendation requests get problem documents") {
@@ -278,7 +431,7 @@ TEST_CASE("bad recommendation requests get problem documents") {
     require_problem(get(*c, kUserRoute, base + "?n=101"), 400);
     require_problem(get(*c, kUserRoute, base + "?n=ten"), 400);
     require_problem(get(*c, kUserRoute, base + "?rank_by=luck"), 400);
-    require_problem(get(*c, kUserRoute, base + "?interval=1.5"), 400);
+    require_problem(get(*c, kUserRoute, base + "?level=1.5"), 400);
     require_problem(get(*c, kUserRoute, base + "?exclude_rated=maybe"), 400);
     require_problem(get(*c, kUserRoute, base + "?items=sku-missing"), 404);
     require_problem(get(*c, kUserRoute, "/v1/users/cust-00001/wishlist"), 404);
@@ -309,7 +462,8 @@ TEST_CASE("visitor fold-in matches the offline exact fold-in for every ranking, 
         REQUIRE(a.body["items"].size() == want.size());
         for (size_t k = 0; k < want.size(); ++k) {
             CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
-            CHECK(a.body["items"][k]["score"].get<double>() == want[k].score);
+            CHECK(a.body["items"][k]["rank_value"].get<double>() == want[k].rank_value);
+            CHECK(a.body["items"][k]["rank_value_unclipped"].get<double>() == want[k].score);
             require_same_prediction(a.body["items"][k], want[k].prediction);
         }
         // Deterministic: a second identical request gets the same bytes.
@@ -360,19 +514,17 @@ TEST_CASE("item detail and lists agree with direct computation") {
     auto c = f.server->client();
     const Posterior& p = *f.posterior;
     const uint32_t S = p.num_samples, U = p.num_users, I = p.num_items, K = p.rank;
-    // Direct: mean and sd of m_s(u,i) over every (user, sample), and the
-    // posterior sd of each factor coordinate, by plain loops in double.
+    // Direct: each customer's predictive mean (clipped) and sd for the item,
+    // as the engine answers them, averaged over the customers; and the
+    // posterior sd of each factor coordinate by plain loops in double.
     auto direct = [&](uint32_t i) {
-        double sum = 0, sum_sq = 0;
-        for (uint32_t s = 0; s < S; ++s)
-            for (uint32_t u = 0; u < U; ++u) {
-                double m = double(p.global_mean) + p.user_bias_of(s, u) + p.item_bias_of(s, i);
-                for (uint32_t k = 0; k < K; ++k) m += double(p.user_factor(s, u)[k]) * p.item_factor(s, i)[k];
-                sum += m;
-                sum_sq += m * m;
-            }
-        const double n = double(S) * U, mean = sum / n;
-        return std::pair{mean, std::sqrt(sum_sq / n - mean * mean)};
+        double mean = 0, sd = 0;
+        for (uint32_t u = 0; u < U; ++u) {
+            const Prediction pred = f.engine->predict(u, i, 0.9);
+            mean += pred.mean / U;
+            sd += pred.sd / U;
+        }
+        return std::pair{mean, sd};
     };
     std::vector<uint32_t> counts(I, 0);
     for (uint32_t i : p.rated_items) ++counts[i];
@@ -383,9 +535,10 @@ TEST_CASE("item detail and lists agree with direct computation") {
         CHECK(a.body["item"] == p.item_ids[i]);
         CHECK(a.body["rating_count"] == counts[i]);
         const auto [mean, sd] = direct(i);
-        // Two summation orders of ~1e3 terms: agreement to 1e-9 relative.
-        CHECK(a.body["mean"].get<double>() == Approx(mean).epsilon(1e-9));
-        CHECK(a.body["sd"].get<double>() == Approx(sd).epsilon(1e-7));
+        // The server forms per-sample means from float products, the engine
+        // in double: agreement to 1e-5 relative.
+        CHECK(a.body["mean"].get<double>() == Approx(mean).epsilon(1e-5));
+        CHECK(a.body["sd"].get<double>() == Approx(sd).epsilon(1e-5));
         for (uint32_t k = 0; k < K; ++k) {
             double s1 = 0, s2 = 0;
             for (uint32_t s = 0; s < S; ++s) {
@@ -405,7 +558,7 @@ TEST_CASE("item detail and lists agree with direct computation") {
         CHECK(popular.body["items"][k - 1]["rating_count"] >= popular.body["items"][k]["rating_count"]);
     CHECK(popular.body["items"][0]["rating_count"] == *std::max_element(counts.begin(), counts.end()));
     for (const char* order : {"uncertainty", "mean"}) {
-        const std::string key = std::string(order) == "mean" ? "mean" : "factor_spread";
+        const std::string key = std::string(order) == "mean" ? "mean" : "sd";
         auto list = get(*c, "/v1/items", std::string("/v1/items?n=100&order=") + order);
         REQUIRE(list.status == 200);
         REQUIRE(list.body["items"].size() == 100);
@@ -413,6 +566,12 @@ TEST_CASE("item detail and lists agree with direct computation") {
     }
     CHECK(get(*c, "/v1/items", "/v1/items").body["items"].size() == 20);
     require_problem(get(*c, "/v1/items", "/v1/items?order=price"), 400);
+    auto garden = get(*c, "/v1/items", "/v1/items?order=uncertainty&n=100&category=garden");
+    INFO(garden.text);
+    REQUIRE(garden.status == 200);
+    CHECK(garden.body["items"].size() == 40);  // every third of the 120 products
+    for (const auto& item : garden.body["items"]) CHECK(item["category"] == "garden");
+    require_problem(get(*c, "/v1/items", "/v1/items?category=lighting"), 400);
     require_problem(get(*c, "/v1/items", "/v1/items?n=1000"), 400);
 }
 
@@ -512,8 +671,8 @@ TEST_CASE("admin forget drops a customer's own factors at once, and they stay ou
     CHECK(gone.body["model"] != gone.body["previous"]);
     require_problem(get(*c, kUserRoute, user_path(customer)), 404);
     auto model = get(*c, "/v1/model", "/v1/model");
-    CHECK(model.body["users"] == p.num_users - 1);
-    CHECK(model.body["items"] == p.num_items);
+    CHECK(model.body["data"]["customers"] == p.num_users - 1);
+    CHECK(model.body["data"]["products"] == p.num_items);
     // Others are answered from the same item samples as before.
     RecommendOptions o;
     o.n = 5;

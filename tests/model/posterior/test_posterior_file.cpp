@@ -68,6 +68,8 @@ void require_identical(const Posterior& a, const Posterior& b) {
     CHECK(a.has_biases == b.has_biases);
     CHECK(a.user_ids == b.user_ids);
     CHECK(a.item_ids == b.item_ids);
+    CHECK(a.item_names == b.item_names);
+    CHECK(a.item_categories == b.item_categories);
     CHECK(std::memcmp(&a.global_mean, &b.global_mean, 4) == 0);
     CHECK(std::memcmp(&a.scale.min, &b.scale.min, 4) == 0);
     CHECK(std::memcmp(&a.scale.max, &b.scale.max, 4) == 0);
@@ -146,12 +148,13 @@ std::vector<Section> split_sections(const Bytes& file) {
     return out;
 }
 
-// Lays sections out as FORMAT.md prescribes, with fresh checksums.
-Bytes assemble(const std::vector<Section>& sections) {
+// Lays sections out as FORMAT.md prescribes, with fresh checksums, under
+// format version `version` (2 is what this build writes).
+Bytes assemble(const std::vector<Section>& sections, uint32_t version = 2) {
     const size_t table_end = 40 + 40 * sections.size();
     Bytes file(table_end, 0);
     std::memcpy(file.data(), "CREDPOST", 8);
-    set_u32(file, 8, 1);
+    set_u32(file, 8, version);
     set_u32(file, 12, static_cast<uint32_t>(sections.size()));
     for (size_t k = 0; k < sections.size(); ++k) {
         file.resize((file.size() + 63) / 64 * 64, 0);
@@ -362,6 +365,82 @@ TEST_CASE("the file layout follows FORMAT.md") {
     CHECK(assemble(sections) == file);
 }
 
+// The strings encoding of FORMAT.md section 4, type 5, decoded independently.
+std::vector<std::string> strings_of(const Section& s) {
+    std::vector<std::string> out;
+    size_t at = 0;
+    for (uint64_t k = 0; k < s.count; ++k) {
+        const uint32_t n = u32_at(s.data, at);
+        out.emplace_back(reinterpret_cast<const char*>(&s.data[at + 4]), n);
+        at += 4 + n;
+    }
+    CHECK(at == s.data.size());
+    return out;
+}
+
+Posterior with_catalogue(Posterior p) {
+    p.item_names.clear();
+    p.item_categories.clear();
+    for (uint32_t i = 0; i < p.num_items; ++i) {
+        // One product without a catalogue row (both ""), one without a category.
+        p.item_names.push_back(i == 1 ? "" : "Thimbleford jar no. " + std::to_string(i) + " \xc3\xa9");
+        p.item_categories.push_back(i == 1 || i == 2 ? "" : (i % 2 ? "pantry" : "kitchen"));
+    }
+    return p;
+}
+
+TEST_CASE("a catalogue travels in sections item_names and item_categories of a version-2 file") {
+    const auto dir = scratch_dir("posterior_file_catalogue");
+    const auto path = dir / "catalogue.posterior";
+    const Posterior p = with_catalogue(make_posterior({.users = 4, .items = 6, .rank = 2, .samples = 2, .chains = 1}));
+    write_posterior(p, path.string());
+    const Bytes file = slurp(path);
+    CHECK(u32_at(file, 8) == 2);
+    const auto sections = split_sections(file);
+    REQUIRE(sections.size() == 21);  // ids 1-19 (biases on), then 20 and 21
+    CHECK(sections[19].id == 20);
+    CHECK(sections[19].type == 5);
+    CHECK(sections[20].id == 21);
+    CHECK(strings_of(sections[19]) == p.item_names);
+    CHECK(strings_of(sections[20]) == p.item_categories);
+    CHECK(assemble(sections) == file);
+    require_identical(p, read_posterior(path.string()));
+
+    // One of the pair without the other is refused.
+    auto half = sections;
+    half.pop_back();
+    spit(path, assemble(half));
+    require_format_error(path, "must be present together");
+    // A count that does not match the items is refused.
+    auto short_names = sections;
+    short_names[19].count -= 1;
+    short_names[19].data.resize(short_names[19].data.size() - 4 - p.item_names.back().size());
+    spit(path, assemble(short_names));
+    require_format_error(path, "item_names count does not match");
+}
+
+TEST_CASE("a version-1 file is still read, with no catalogue, and ids 20 and 21 in it are unknown sections") {
+    const auto dir = scratch_dir("posterior_file_version1");
+    const auto path = dir / "old.posterior";
+    const Posterior plain = make_posterior({.users = 3, .items = 4, .rank = 2, .samples = 2, .chains = 1});
+    write_posterior(plain, path.string());
+    const auto sections = split_sections(slurp(path));
+    spit(path, assemble(sections, 1));
+    const Posterior old = read_posterior(path.string());
+    require_identical(plain, old);
+    CHECK_FALSE(old.has_catalogue());
+
+    // A version-1 writer could have used id 20 for something else (FORMAT.md
+    // section 7): it is skipped, not decoded as names.
+    auto extended = sections;
+    extended.push_back(Section{20, 1, 3, Bytes{'a', 'b', 'c'}});
+    spit(path, assemble(extended, 1));
+    CHECK_FALSE(read_posterior(path.string()).has_catalogue());
+    // The same section in a version-2 file is a wrongly typed item_names.
+    spit(path, assemble(extended, 2));
+    require_format_error(path, "item_names has the wrong element type");
+}
+
 TEST_CASE("truncation at every offset is refused without crashing") {
     const auto dir = scratch_dir("posterior_file_truncate");
     const auto path = dir / "tiny.posterior";
@@ -452,7 +531,7 @@ TEST_CASE("other format versions are refused with a version message") {
     const auto path = dir / "model.posterior";
     write_posterior(make_posterior(kTiny), path.string());
     const Bytes good = slurp(path);
-    for (uint32_t version : {0u, 2u, 77u}) {
+    for (uint32_t version : {0u, 3u, 77u}) {
         Bytes b = good;
         set_u32(b, 8, version);
         spit(path, b);

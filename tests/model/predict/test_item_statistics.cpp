@@ -119,9 +119,10 @@ TEST_CASE("item statistics equal a direct loop over users and samples") {
     }
     // The duplicated items (the last 4 copy items 0..3) tie on the factor
     // statistics, so the orderings' tie rule is exercised.
-    check_order(st.by_uncertainty, I, [&](uint32_t i) { return st.factor_spread[i]; });
+    check_order(st.by_uncertainty, I, [&](uint32_t i) { return st.predictive_sd[i]; });
     check_order(st.by_popularity, I, [&](uint32_t i) { return double(st.rating_count[i]); });
-    check_order(st.by_mean, I, [&](uint32_t i) { return st.population_mean[i]; });
+    check_order(st.by_mean, I, [&](uint32_t i) { return st.predictive_mean[i]; });
+    CHECK(st.predictive_sd[0] == st.predictive_sd[I - 4]);
     CHECK(st.factor_spread[0] == st.factor_spread[I - 4]);
 }
 
@@ -236,4 +237,102 @@ TEST_CASE("similar items honour n and refuse a bad target or foreign statistics"
     CHECK_THROWS_AS(similar_items(p, st, 6, 3), std::out_of_range);
     const Posterior other = simulate_posterior({.users = 4, .items = 7, .rank = 2, .samples = 3, .chains = 1});
     CHECK_THROWS_AS(similar_items(other, st, 2, 3), std::invalid_argument);
+}
+
+TEST_CASE("the averaged predictive mean and sd equal each customer's predictive moments averaged directly") {
+    // Direct computation: for every (customer u, item i), the mixture over
+    // samples of Normal(m_s(u, i), 1/tau_s) has mean mean_s m_s and variance
+    // mean_s(1/tau_s) + mean_s m_s^2 - (mean_s m_s)^2 (law of total variance,
+    // common practice); the mean is clipped to the scale as answers are.
+    for (bool biases : {true, false}) {
+        INFO("biases " << biases);
+        // 37 customers: two full blocks of 16 and a partial one.
+        Posterior p = simulate_posterior(
+            {.users = 37, .items = 23, .rank = 3, .samples = 9, .chains = 1, .biases = biases, .seed = 12});
+        p.scale.max = p.global_mean + 0.4f;  // so the clipping of the mean is exercised
+        const ItemStatistics st = compute_item_statistics(p);
+        const uint32_t S = p.num_samples, U = p.num_users, I = p.num_items;
+        size_t clipped_pairs = 0;
+        for (uint32_t i = 0; i < I; ++i) {
+            double mean_sum = 0.0, sd_sum = 0.0;
+            for (uint32_t u = 0; u < U; ++u) {
+                double m1 = 0.0, m2 = 0.0, noise = 0.0;
+                for (uint32_t s = 0; s < S; ++s) {
+                    const double m = sample_mean(p, s, u, i);
+                    m1 += m / S;
+                    m2 += m * m / S;
+                    noise += 1.0 / p.noise_precision[s] / S;
+                }
+                clipped_pairs += m1 > p.scale.max;
+                mean_sum += std::clamp(m1, double(p.scale.min), double(p.scale.max));
+                sd_sum += std::sqrt(noise + m2 - m1 * m1);
+            }
+            INFO("item " << i);
+            // The library forms m_s from float dot products (rounding about
+            // 1e-7 of |u.v|), the loop in double: agreement to 1e-5 relative.
+            CHECK(st.predictive_mean[i] == Approx(mean_sum / U).epsilon(1e-5));
+            CHECK(st.predictive_sd[i] == Approx(sd_sum / U).epsilon(1e-5));
+        }
+        CHECK(clipped_pairs > 0);
+        check_order(st.by_uncertainty, I, [&](uint32_t i) { return st.predictive_sd[i]; });
+        check_order(st.by_mean, I, [&](uint32_t i) { return st.predictive_mean[i]; });
+    }
+}
+
+TEST_CASE("with no known customer the predictive figures are the unseen-customer mixture") {
+    // Direct computation: under sample s an unseen customer's rating is
+    // Normal(g + c_i + mu_U.v_i, 1/tau + v_i' Lambda_U^-1 v_i + 1/lambda_b)
+    // (BPMF's hyperprior, Salakhutdinov & Mnih 2008); the mixture's mean and
+    // sd over the samples by the law of total variance.
+    Posterior p = simulate_posterior({.users = 2, .items = 7, .rank = 3, .samples = 6, .chains = 1, .seed = 4});
+    p = without_user(without_user(p, 1), 0);
+    REQUIRE(p.num_users == 0);
+    const ItemStatistics st = compute_item_statistics(p);
+    const uint32_t S = p.num_samples, K = p.rank;
+    for (uint32_t i = 0; i < p.num_items; ++i) {
+        double m1 = 0.0, m2 = 0.0;
+        for (uint32_t s = 0; s < S; ++s) {
+            const Eigen::MatrixXd sigma = precision_of(p.user_lambda, s, K).inverse();
+            Eigen::VectorXd v(K), mu(K);
+            for (uint32_t k = 0; k < K; ++k) {
+                v(k) = p.item_factor(s, i)[k];
+                mu(k) = p.user_mu[size_t(s) * K + k];
+            }
+            const double mean = double(p.global_mean) + p.item_bias_of(s, i) + mu.dot(v);
+            const double var = 1.0 / p.noise_precision[s] + v.dot(sigma * v) + 1.0 / p.user_bias_precision[s];
+            m1 += mean / S;
+            m2 += (var + mean * mean) / S;
+        }
+        INFO("item " << i);
+        // Both in double from the same floats; two inversion routes: 1e-9.
+        CHECK(st.predictive_mean[i] == Approx(std::clamp(m1, double(p.scale.min), double(p.scale.max))).epsilon(1e-9));
+        CHECK(st.predictive_sd[i] == Approx(std::sqrt(m2 - m1 * m1)).epsilon(1e-9));
+    }
+}
+
+TEST_CASE("the most similar among given items equal a direct averaged cosine") {
+    const Posterior p = simulate_posterior({.users = 4, .items = 30, .rank = 4, .samples = 10, .chains = 2, .seed = 31});
+    const ItemStatistics st = compute_item_statistics(p);
+    const uint32_t target = 5;
+    // The target itself and a repeat are in the list: both must be skipped.
+    const std::vector<uint32_t> among = {3, 5, 11, 12, 17, 20, 11, 29};
+    const auto got = most_similar_among(p, st, target, among, 3);
+    std::vector<std::pair<double, uint32_t>> want;  // (-similarity, item): sorts best first, ties by index
+    for (uint32_t j : {3u, 11u, 12u, 17u, 20u, 29u}) {
+        double total = 0.0;
+        for (uint32_t s = 0; s < p.num_samples; ++s) total += cosine(p, s, target, j);
+        want.emplace_back(-total / p.num_samples, j);
+    }
+    std::sort(want.begin(), want.end());
+    REQUIRE(got.size() == 3);
+    for (size_t k = 0; k < 3; ++k) {
+        INFO("position " << k);
+        CHECK(got[k].item == want[k].second);
+        // Norms are stored as floats: agreement to float rounding, 1e-6.
+        CHECK(got[k].similarity == Approx(-want[k].first).margin(1e-6));
+    }
+    CHECK(most_similar_among(p, st, target, among, 10).size() == 6);
+    CHECK(most_similar_among(p, st, target, std::vector<uint32_t>{5}, 3).empty());
+    CHECK_THROWS_AS(most_similar_among(p, st, target, std::vector<uint32_t>{30}, 3), std::out_of_range);
+    CHECK_THROWS_AS(most_similar_among(p, st, 30, among, 3), std::out_of_range);
 }
