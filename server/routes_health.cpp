@@ -13,6 +13,19 @@ nlohmann::json embedded_json(const std::string& text) {
     return doc.is_discarded() ? nlohmann::json(text) : doc;
 }
 
+// The held-out check the fit stored (fit --holdout): its figures and the
+// product-mean baseline's; null when the fit held nothing out.
+nlohmann::json held_out_figures(const std::string& fit_metadata) {
+    const auto meta = nlohmann::json::parse(fit_metadata, nullptr, false);
+    if (meta.is_discarded() || !meta.is_object() || !meta.contains("validation") ||
+        !meta["validation"].is_object() || !meta["validation"].contains("figures"))
+        return nullptr;
+    nlohmann::json out = meta["validation"]["figures"];
+    out["kind"] = meta["validation"].value("kind", "");
+    out["refit_on_all"] = meta.contains("refit_on_all");
+    return out;
+}
+
 }  // namespace
 
 void install_health_routes(httplib::Server& server, AppContext& ctx) {
@@ -41,6 +54,7 @@ void install_health_routes(httplib::Server& server, AppContext& ctx) {
                        {"has_biases", p.has_biases},
                        {"global_mean", p.global_mean},
                        {"scale", {{"min", p.scale.min}, {"max", p.scale.max}, {"declared", p.scale.declared}}},
+                       {"held_out", held_out_figures(p.fit_metadata_json)},
                        {"fit", embedded_json(p.fit_metadata_json)},
                        {"diagnostics", embedded_json(p.diagnostics_json)},
                    };
