@@ -14,11 +14,15 @@ packages=(
   libtomlplusplus-dev    # config file
   libxxhash-dev          # checksums and data fingerprints
   libomp-dev             # OpenMP (GCC's libgomp comes with g++)
+  libsqlite3-dev         # --ratings sqlite:PATH
+  libpq-dev              # --ratings postgresql://... (libpq)
 )
 # Only the tests and benchmarks need these (scipy is the outside reference for
-# distribution checks; chromium renders the report; wrk drives the serve bench).
+# distribution checks; chromium renders the report; wrk drives the serve bench;
+# sqlite3 and postgresql (initdb, pg_ctl) give the database-source tests a real
+# SQLite file and a PostgreSQL server of their own).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium python3 python3-scipy python3-numpy)
+  packages+=(wrk chromium python3 python3-scipy python3-numpy sqlite3 postgresql)
 fi
 
 missing=()
