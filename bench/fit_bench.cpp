@@ -2,11 +2,20 @@
 //
 //   fit_bench speed [--users N] [--items N] [--per-user N] [--ranks 8,16,32]
 //                   [--threads 1,2] [--sweeps N] [--warmup N] [--gemm-size N] [--no-biases]
-//       Times Gibbs sweeps on synthetic data (tests/support/simulate.hpp) and, in the
-//       same process, Eigen's dense double matrix multiply at each thread
-//       count. Prints one table row per (rank, threads) and one per rank with
+//       Times Gibbs sweeps on synthetic data (tests/support/simulate.hpp) next
+//       to the machine's dense double matrix multiply at each thread count,
+//       measured in the same run by gemm_rate_native (Eigen built for this
+//       CPU: the yardstick) and gemm_rate_portable (the product's portable
+//       flags). Prints one table row per (rank, threads) and one per rank with
 //       the thread speed-up. "cpu s" is the process CPU time of a sweep (all
 //       threads): with 2 threads near 2x "s/sweep" when both cores were ours.
+//   fit_bench run [--rank K] [--threads T] [--sweeps N] (and the data flags)
+//       Wall time of N consecutive sweeps (default 200) from a fresh state.
+//   fit_bench scale [--sizes 1,4,16] [--rank K] [--threads T] [--sweeps N]
+//       For each size (millions of ratings; users and items grow by the square
+//       root of the factor, so the density stays that of 1M = 20,000 x 5,000),
+//       in a child process: seconds per sweep, nanoseconds per rating visit
+//       and the child's peak resident memory (data, both layouts and the state).
 //   fit_bench csv PATH [--users N] [--items N] [--per-user N] [--seed N]
 //       Writes synthetic ratings as "customer,product,stars" CSV for a real
 //       `credence fit`; prints "ratings R users U items I" on stdout.
@@ -18,14 +27,19 @@
 // dimension d of a row draw is rank + 1 with biases (the bias rides along
 // as one more coordinate), rank without.
 #include <omp.h>
+#include <sys/resource.h>
+#include <sys/wait.h>
+#include <unistd.h>
 
 #include <algorithm>
 #include <chrono>
+#include <cmath>
 #include <cstdint>
 #include <cstdio>
 #include <cstdlib>
 #include <cstring>
 #include <ctime>
+#include <filesystem>
 #include <fstream>
 #include <map>
 #include <stdexcept>
@@ -36,6 +50,7 @@
 
 #include "model/fit/gibbs_sweep.hpp"
 #include "model/fit/sampler.hpp"
+#include "model/math/cpu_level.hpp"
 #include "tests/support/simulate.hpp"
 #include "model/fit/sparse.hpp"
 
@@ -118,24 +133,31 @@ double count_sweep_flops(uint64_t ratings, uint64_t rows, double d) {
     return 2.0 * double(ratings) * (d * (d + 1.0) + 2.0 * d) + double(rows) * (d * d * d / 3.0 + 4.0 * d * d);
 }
 
-// Dense C = A B in double with Eigen: the median rate (2 n^3 flop per
-// product) at each thread count, repetitions interleaved across thread counts.
-std::map<int, double> gemm_rates(int n, const std::vector<int>& thread_counts, int repetitions) {
-    Eigen::MatrixXd a = Eigen::MatrixXd::Random(n, n), b = Eigen::MatrixXd::Random(n, n), c(n, n);
-    std::map<int, std::vector<double>> rates;
-    for (int r = -1; r < repetitions; ++r) {
-        for (int t : thread_counts) {
-            Eigen::setNbThreads(t);
-            const auto start = clock_type::now();
-            c.noalias() = a * b;
-            if (r >= 0) rates[t].push_back(2.0 * double(n) * n * n / seconds_since(start));  // r = -1 warms up
-        }
+// Where this program lives: the gemm_rate tools are built beside it.
+std::filesystem::path tool_dir;
+
+// GEMM rates (GFLOP/s) by precision ("double", "single") and thread count,
+// from one of the gemm_rate tools (bench/gemm_rate.cpp).
+using GemmRates = std::map<std::string, std::map<int, double>>;
+
+GemmRates gemm_rates(const std::string& tool, const std::vector<int>& thread_counts, int n) {
+    std::string threads;
+    for (int t : thread_counts) {
+        if (!threads.empty()) threads.push_back(',');
+        threads.append(std::to_string(t));
     }
-    Eigen::setNbThreads(0);
-    // Keep the result observable so the product is not optimised away.
-    if (!std::isfinite(c.sum())) std::fprintf(stderr, "gemm: non-finite result\n");
-    std::map<int, double> out;
-    for (auto& [t, v] : rates) out[t] = median(v);
+    // Built with append: GCC 12 warns falsely (-Wrestrict) on chains of + here.
+    std::string command = (tool_dir / tool).string();
+    command.append(" --threads ").append(threads).append(" --size ").append(std::to_string(n));
+    FILE* pipe = popen(command.c_str(), "r");
+    if (!pipe) throw std::runtime_error("cannot run " + command);
+    GemmRates out;
+    char precision[16];
+    int t = 0;
+    double rate = 0.0;
+    while (std::fscanf(pipe, "%15s %d %lf", precision, &t, &rate) == 3) out[precision][t] = rate;
+    if (pclose(pipe) != 0 || out["double"].size() != thread_counts.size())
+        throw std::runtime_error(command + " failed");
     return out;
 }
 
@@ -178,6 +200,15 @@ std::map<int, SweepTiming> time_sweeps(const credence::GibbsData& data, const cr
     return out;
 }
 
+credence::FitOptions sweep_options(const Args& args, uint32_t rank) {
+    credence::FitOptions options;
+    options.rank = rank;
+    options.biases = !args.flag("no-biases");
+    options.seed = 11;
+    options.init_scale = 0.5;
+    return options;
+}
+
 int run_speed(const Args& args) {
     const auto sim_options = simulation(args);
     const std::vector<int> ranks = args.list("ranks", "8,16,32");
@@ -197,26 +228,31 @@ int run_speed(const Args& args) {
                 static_cast<unsigned long long>(nnz), by_user.num_rows, by_item.num_rows, sweeps, warmup,
                 biases ? " + 1 (biases on)" : " (biases off)", omp_get_num_procs());
 
-    const std::map<int, double> gemm = gemm_rates(gemm_n, thread_counts, 7);  // flop/s by thread count
-    for (const auto& [t, rate] : gemm)
-        std::printf("gemm: Eigen double %dx%d, %d thread(s): %.2f GFLOP/s (median of 7)\n", gemm_n, gemm_n, t, rate / 1e9);
+    std::printf("kernels: %s\n", credence::cpu_level_description().c_str());
+    const GemmRates native = gemm_rates("gemm_rate_native", thread_counts, gemm_n);
+    const GemmRates portable = gemm_rates("gemm_rate_portable", thread_counts, gemm_n);
+    for (int t : thread_counts)
+        std::printf("gemm %dx%d, %d thread(s), GFLOP/s (median of 7): double %.2f native, %.2f portable; "
+                    "single %.2f native, %.2f portable\n",
+                    gemm_n, gemm_n, t, native.at("double").at(t), portable.at("double").at(t),
+                    native.at("single").at(t), portable.at("single").at(t));
+    std::printf("yardstick: the sampler's arithmetic is double, so each ratio is against double GEMM: "
+                "\"of native\" (Eigen built for this CPU) and \"of portable\" (the product's flags)\n");
+    const std::map<int, double>& gemm = native.at("double");
+    const std::map<int, double>& gemm_portable = portable.at("double");
 
-    std::printf("\n%5s %7s %10s %10s %10s %16s %13s %12s %9s %7s\n", "rank", "threads", "s/sweep", "min s", "cpu s",
-                "rating-sweeps/s", "sampler GF/s", "GEMM GF/s", "ratio", "load1");
+    std::printf("\n%5s %7s %10s %10s %10s %16s %13s %10s %10s %7s\n", "rank", "threads", "s/sweep", "min s", "cpu s",
+                "rating-sweeps/s", "sampler GF/s", "of native", "of portbl", "load1");
     for (int rank : ranks) {
-        credence::FitOptions options;
-        options.rank = static_cast<uint32_t>(rank);
-        options.biases = biases;
-        options.seed = 11;
-        options.init_scale = 0.5;
+        const credence::FitOptions options = sweep_options(args, static_cast<uint32_t>(rank));
         const double d = rank + (biases ? 1 : 0);
         const double flops = count_sweep_flops(nnz, rows, d);
         const auto by_threads = time_sweeps(data, options, thread_counts, warmup, sweeps);
         for (const auto& [t, timing] : by_threads) {
-            const double rate = flops / timing.median_s();
-            std::printf("%5d %7d %10.4f %10.4f %10.4f %16.3g %13.2f %12.2f %8.1f%% %7.2f\n", rank, t, timing.median_s(),
-                        timing.min_s(), timing.cpu_median_s(), double(nnz) / timing.median_s(), rate / 1e9,
-                        gemm.at(t) / 1e9, 100.0 * rate / gemm.at(t), load_average_1min());
+            const double rate = flops / timing.median_s() / 1e9;
+            std::printf("%5d %7d %10.4f %10.4f %10.4f %16.3g %13.2f %9.1f%% %9.1f%% %7.2f\n", rank, t, timing.median_s(),
+                        timing.min_s(), timing.cpu_median_s(), double(nnz) / timing.median_s(), rate,
+                        100.0 * rate / gemm.at(t), 100.0 * rate / gemm_portable.at(t), load_average_1min());
         }
         std::fflush(stdout);
         if (by_threads.count(1) && by_threads.size() > 1) {
@@ -233,6 +269,106 @@ int run_speed(const Args& args) {
                             timing.final_user_factors == one.final_user_factors ? "bit-identical" : "DIFFER");
             }
         }
+    }
+    return 0;
+}
+
+// Wall time of N consecutive sweeps from a fresh state (what a fit's
+// sampling costs, group moves included; no ingest, no writing).
+int run_sweeps(const Args& args) {
+    const auto sim = credence::simulate_ratings(simulation(args));
+    const auto by_user = credence::csr_by_user(sim.ratings);
+    const auto by_item = credence::csr_by_item(sim.ratings);
+    const credence::GibbsData data{&by_user, &by_item, sim.ratings.mean()};
+    const auto rank = static_cast<uint32_t>(args.number("rank", 16));
+    const int threads = static_cast<int>(args.number("threads", 2));
+    const auto sweeps = static_cast<uint32_t>(args.number("sweeps", 200));
+    const credence::FitOptions options = sweep_options(args, rank);
+    credence::GibbsState st = credence::initial_state(data, options, options.seed, 0);
+    const double load_before = load_average_1min();
+    const double cpu0 = process_cpu_s();
+    const auto start = clock_type::now();
+    for (uint32_t s = 0; s < sweeps; ++s)
+        credence::gibbs_sweep(data, options, credence::SweepKey{options.seed, 0, s}, st, threads);
+    const double wall = seconds_since(start), cpu = process_cpu_s() - cpu0;
+    std::printf("run: %u sweeps of %llu ratings at rank %u on %d thread(s): %.2f s wall (%.4f s/sweep), "
+                "%.2f s CPU; load average %.2f before, %.2f after; kernels %s\n",
+                sweeps, static_cast<unsigned long long>(by_user.nnz()), rank, threads, wall, wall / sweeps, cpu,
+                load_before, load_average_1min(), credence::cpu_level_description().c_str());
+    return 0;
+}
+
+// One size of the scale run, in this (child) process: "s/sweep ns/visit ratings users items".
+void scale_child(const Args& args, double millions, int out_fd) {
+    const double grow = std::sqrt(millions);
+    credence::SimulationOptions sim_options = simulation(args);
+    sim_options.users = static_cast<uint32_t>(std::lround(20000 * grow));
+    sim_options.items = static_cast<uint32_t>(std::lround(5000 * grow));
+    sim_options.ratings_per_user = static_cast<uint32_t>(std::lround(50 * grow));
+    const auto sim = credence::simulate_ratings(sim_options);
+    const auto by_user = credence::csr_by_user(sim.ratings);
+    const auto by_item = credence::csr_by_item(sim.ratings);
+    const credence::GibbsData data{&by_user, &by_item, sim.ratings.mean()};
+    const auto rank = static_cast<uint32_t>(args.number("rank", 16));
+    const int threads = static_cast<int>(args.number("threads", 2));
+    const auto sweeps = static_cast<uint32_t>(args.number("sweeps", 5));
+    const credence::FitOptions options = sweep_options(args, rank);
+    credence::GibbsState st = credence::initial_state(data, options, options.seed, 0);
+    credence::gibbs_sweep(data, options, credence::SweepKey{options.seed, 0, 0}, st, threads);  // warm-up
+    std::vector<double> wall;
+    for (uint32_t s = 1; s <= sweeps; ++s) {
+        const auto start = clock_type::now();
+        credence::gibbs_sweep(data, options, credence::SweepKey{options.seed, 0, s}, st, threads);
+        wall.push_back(seconds_since(start));
+    }
+    const double per_sweep = median(wall);
+    const std::string line = std::to_string(per_sweep) + " " + std::to_string(1e9 * per_sweep / (2.0 * by_user.nnz())) +
+                             " " + std::to_string(by_user.nnz()) + " " + std::to_string(by_user.num_rows) + " " +
+                             std::to_string(by_item.num_rows) + "\n";
+    if (write(out_fd, line.data(), line.size()) != static_cast<ssize_t>(line.size())) std::_Exit(3);
+}
+
+int run_scale(const Args& args) {
+    std::printf("scale: rank %llu, %llu thread(s), median of %llu sweeps after one warm-up; each size in its own "
+                "process (peak RSS: synthetic ratings, both layouts, the state)\n",
+                static_cast<unsigned long long>(args.number("rank", 16)),
+                static_cast<unsigned long long>(args.number("threads", 2)),
+                static_cast<unsigned long long>(args.number("sweeps", 5)));
+    std::printf("%10s %8s %8s %10s %14s %12s %9s %7s\n", "ratings", "users", "items", "s/sweep", "ns/rating-visit",
+                "vs smallest", "peak MB", "load1");
+    std::fflush(stdout);
+    double first_ns = 0.0;
+    for (int millions : args.list("sizes", "1,4,16")) {
+        int fds[2];
+        if (pipe(fds) != 0) throw std::runtime_error("scale: pipe failed");
+        const pid_t child = fork();
+        if (child < 0) throw std::runtime_error("scale: fork failed");
+        if (child == 0) {
+            close(fds[0]);
+            try {
+                scale_child(args, millions, fds[1]);
+            } catch (const std::exception& e) {
+                std::fprintf(stderr, "fit_bench scale: %s\n", e.what());
+                std::_Exit(1);
+            }
+            std::_Exit(0);
+        }
+        close(fds[1]);
+        char buffer[256] = {};
+        const ssize_t got = read(fds[0], buffer, sizeof buffer - 1);
+        close(fds[0]);
+        int status = 0;
+        rusage usage{};
+        wait4(child, &status, 0, &usage);
+        if (got <= 0 || !WIFEXITED(status) || WEXITSTATUS(status) != 0)
+            throw std::runtime_error("scale: the child for " + std::to_string(millions) + "M ratings failed");
+        double per_sweep = 0, ns = 0;
+        unsigned long long ratings = 0, users = 0, items = 0;
+        std::sscanf(buffer, "%lf %lf %llu %llu %llu", &per_sweep, &ns, &ratings, &users, &items);
+        if (first_ns == 0.0) first_ns = ns;
+        std::printf("%10llu %8llu %8llu %10.4f %14.2f %11.2fx %9.1f %7.2f\n", ratings, users, items, per_sweep, ns,
+                    ns / first_ns, double(usage.ru_maxrss) * 1024.0 / 1e6, load_average_1min());
+        std::fflush(stdout);
     }
     return 0;
 }
@@ -270,6 +406,8 @@ int run_budget(const Args& args) {
 int main(int argc, char** argv) {
     const std::string usage =
         "usage: fit_bench speed [--users N --items N --per-user N --ranks 8,16,32 --threads 1,2 --sweeps N]\n"
+        "       fit_bench run [--rank K --threads T --sweeps N]\n"
+        "       fit_bench scale [--sizes 1,4,16 --rank K --threads T --sweeps N]\n"
         "       fit_bench csv PATH [--users N --items N --per-user N --seed N]\n"
         "       fit_bench budget --ratings R --users U --items I --rank K --samples S [--no-biases]\n";
     if (argc < 2) {
@@ -279,7 +417,10 @@ int main(int argc, char** argv) {
     try {
         const Args args(argc, argv, 2);
         const std::string mode = argv[1];
+        tool_dir = std::filesystem::path(argv[0]).parent_path();
         if (mode == "speed") return run_speed(args);
+        if (mode == "run") return run_sweeps(args);
+        if (mode == "scale") return run_scale(args);
         if (mode == "csv") return run_csv(args);
         if (mode == "budget") return run_budget(args);
     } catch (const std::exception& e) {

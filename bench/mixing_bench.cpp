@@ -29,6 +29,7 @@
 #include "model/data/ingest.hpp"
 #include "model/fit/convergence_summary.hpp"
 #include "model/fit/sampler.hpp"
+#include "model/predict/mixture.hpp"
 
 namespace {
 
@@ -52,10 +53,10 @@ Headline print_variant(const std::string& name, const FitOptions& o, const FitRe
                        bool all_predictions) {
     Headline h;
     h.slowest_hyper_ess_per_s = INFINITY;
-    const double sweeps = double(o.samples) * o.thin * o.chains;
-    std::printf("\n== %s: %u chains x (%u burn-in + %u x thin %u), %.1f s, %.2f ms/sweep\n", name.c_str(), o.chains,
-                o.burn_in, o.samples, o.thin, fit.seconds,
-                1000.0 * fit.seconds / (double(o.burn_in + o.samples * o.thin) * o.chains));
+    const double sweeps = double(c.draws_per_chain) * o.chains;
+    std::printf("\n== %s: %u chains x %u sweeps (assessed: the last %u), %.1f s, %.2f ms/sweep\n", name.c_str(), o.chains,
+                fit.sweeps_per_chain, c.draws_per_chain, fit.seconds,
+                1000.0 * fit.seconds / (double(fit.sweeps_per_chain) * o.chains));
     std::printf("%-34s %8s %10s %10s %12s %12s\n", "quantity", "R-hat", "bulk ESS", "tail ESS", "ESS/sweep",
                 "ESS/s");
     std::vector<double> pred_ess;
@@ -156,19 +157,23 @@ int main(int argc, char** argv) {
     double fixed_noise = 0.0;
     app.add_option("--fixed-noise-precision", fixed_noise);
     std::string trace_path;
-    bool all_predictions = false;
+    bool all_predictions = false, converged = false;
+    uint64_t split_seed = 0;
+    app.add_flag("--converged", converged, "run each variant until converged (the fit's default) instead of a fixed length");
+    app.add_option("--split-seed", split_seed, "seed of the held-out split (default: --seed)");
     app.add_flag("--all-predictions", all_predictions, "one line per probe prediction, not only min and median");
     app.add_option("--trace", trace_path, "write per-sample scalars (TSV) of the last variant here");
     app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
     CLI11_PARSE(app, argc, argv);
 
+    if (converged) o.run_length = RunLength::converged;
     if (fixed_noise > 0.0) {
         o.sample_noise = false;
         o.fixed_noise_precision = fixed_noise;
     }
     IngestOptions in;
     in.path = ratings;
-    in.rejects_path = "/dev/null";
+    in.rejects_path = "";  // the default place, written only when a row is rejected
     if (!scale.empty()) {
         const auto colon = scale.find(':');
         in.scale = RatingScale{std::stof(scale.substr(0, colon)), std::stof(scale.substr(colon + 1)), true};
@@ -177,7 +182,7 @@ int main(int argc, char** argv) {
     RatingSet train = std::move(data.ratings);
     std::vector<Rating> test;
     if (holdout > 0.0) {
-        HoldoutSplit split = split_holdout(std::move(train), holdout, o.seed);
+        HoldoutSplit split = split_holdout(std::move(train), holdout, split_seed ? split_seed : o.seed);
         train = std::move(split.train);
         test = std::move(split.test);
     }
@@ -201,7 +206,17 @@ int main(int argc, char** argv) {
                 m = std::clamp(m / p.num_samples, double(p.scale.min), double(p.scale.max));
                 se += (r.value - m) * (r.value - m);
             }
-            std::printf("held-out RMSE %.4f on %zu ratings\n", std::sqrt(se / double(test.size())), test.size());
+            double inside = 0.0, lpd = 0.0;
+            std::vector<double> m(p.num_samples);
+            for (const Rating& r : test) {
+                for (uint32_t smp = 0; smp < p.num_samples; ++smp) m[smp] = p.sample_prediction(smp, r.user, r.item);
+                inside += r.value >= mixture_quantile(m, p.noise_precision, 0.05) &&
+                          r.value <= mixture_quantile(m, p.noise_precision, 0.95);
+                lpd += mixture_log_density(m, p.noise_precision, r.value);
+            }
+            std::printf("held-out RMSE %.4f, 90%% coverage %.3f, mean log density %.4f on %zu ratings; %u sweeps per chain (%s)\n",
+                        std::sqrt(se / double(test.size())), inside / double(test.size()), lpd / double(test.size()),
+                        test.size(), fit.sweeps_per_chain, stop_reason_name(fit.stop_reason));
         }
         if (!trace_path.empty()) write_trace(fit.posterior, trace_path);
         std::fflush(stdout);

@@ -1,39 +1,92 @@
 // Helper for scripts/bench-serve (not part of the product):
 //   serve_bench_tool model OUT [items rank samples users]  writes a synthetic posterior
-//   serve_bench_tool bandwidth                             prints streaming read bandwidth, bytes/s
+//   serve_bench_tool topn MODEL [requests [batches]]       in-process top-10 timings: one request alone
+//                                                          (p50, p99 ms) and batches of 8 and 16 (ms per
+//                                                          pass); "batches": batches of 16 only
 //   serve_bench_tool serve CONFIG                          runs the server (when `credence serve` is absent)
+#include <omp.h>
+#include <time.h>
+
+#include <algorithm>
 #include <chrono>
 #include <cstdio>
+#include <memory>
 #include <cstdlib>
 #include <iostream>
 #include <string>
 #include <vector>
 
+#include "model/math/cpu_level.hpp"
 #include "model/posterior/posterior_file.hpp"
+#include "model/predict/predict.hpp"
 #include "tests/support/simulate.hpp"
 #include "server/server.hpp"
 
 namespace {
 
-// Sums a buffer much larger than the caches, several times, and keeps the
-// best pass: that is the rate a scoring pass over item samples could reach.
-double read_bandwidth_bytes_per_s() {
-    const size_t n = size_t(1) << 27;  // 512 MiB of float
-    std::vector<float> data(n, 1.0f);
-    double best = 0.0;
-    volatile float sink = 0.0f;
-    for (int pass = 0; pass < 5; ++pass) {
+double thread_cpu_ms() {
+    timespec ts{};
+    clock_gettime(CLOCK_THREAD_CPUTIME_ID, &ts);
+    return 1e3 * double(ts.tv_sec) + 1e-6 * double(ts.tv_nsec);
+}
+
+double percentile(std::vector<double> v, double q) {
+    std::sort(v.begin(), v.end());
+    return v[std::min(v.size() - 1, static_cast<size_t>(q * double(v.size())))];
+}
+
+// In-process top-10 by mean: the engine alone, without HTTP.
+int topn(const std::string& path, int requests, bool batch_only) {
+    auto posterior = std::make_shared<const credence::Posterior>(credence::read_posterior(path));
+    const credence::PredictionEngine engine(posterior);
+    const uint32_t users = posterior->num_users;
+    credence::RecommendOptions options;
+    options.n = 10;
+    std::vector<double> alone_ms;
+    const double cpu0 = thread_cpu_ms();
+    for (int r = 0; r < (batch_only ? 1 : requests); ++r) {
         const auto start = std::chrono::steady_clock::now();
-        float a0 = 0, a1 = 0, a2 = 0, a3 = 0, a4 = 0, a5 = 0, a6 = 0, a7 = 0;
-        for (size_t i = 0; i < n; i += 8) {
-            a0 += data[i]; a1 += data[i + 1]; a2 += data[i + 2]; a3 += data[i + 3];
-            a4 += data[i + 4]; a5 += data[i + 5]; a6 += data[i + 6]; a7 += data[i + 7];
-        }
-        sink = sink + a0 + a1 + a2 + a3 + a4 + a5 + a6 + a7;
-        const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
-        best = std::max(best, n * sizeof(float) / s);
+        const auto items = engine.recommend(static_cast<uint32_t>(r) % users, options);
+        alone_ms.push_back(std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start).count());
+        if (items.size() != 10) std::printf("?");
     }
-    return best;
+    const double cpu_per_request = (thread_cpu_ms() - cpu0) / (batch_only ? 1 : requests);
+    std::printf("kernels %s; one request alone: p50 %.3f ms, p99 %.3f ms, %.3f ms CPU (%d requests)\n",
+                credence::cpu_level_description().c_str(), percentile(alone_ms, 0.5), percentile(alone_ms, 0.99),
+                cpu_per_request, requests);
+    if (!batch_only) {
+        // The server's lone pass: the reading split between every core.
+        const int cores = omp_get_num_procs();
+        std::vector<double> spread_ms;
+        for (int r = 0; r < requests; ++r) {
+            const std::vector<credence::RecommendRequest> one{{static_cast<uint32_t>(r) % users, options}};
+            const auto start = std::chrono::steady_clock::now();
+            const auto answers = engine.recommend_batch(one, cores);
+            spread_ms.push_back(std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start).count());
+            if (answers[0].items.size() != 10) std::printf("?");
+        }
+        std::printf("one request alone on %d cores: p50 %.3f ms, p99 %.3f ms\n", cores, percentile(spread_ms, 0.5),
+                    percentile(spread_ms, 0.99));
+    }
+    for (size_t batch : {size_t(8), size_t(16)}) {
+        if (batch_only && batch != 16) continue;
+        std::vector<double> pass_ms;
+        const double batch_cpu0 = thread_cpu_ms();
+        int passes = 0;
+        for (int r = 0; r < std::max(4, requests / int(batch)); ++r) {
+            std::vector<credence::RecommendRequest> many(batch);
+            for (size_t b = 0; b < batch; ++b) many[b] = {static_cast<uint32_t>(r * batch + b) % users, options};
+            const auto start = std::chrono::steady_clock::now();
+            const auto answers = engine.recommend_batch(many);
+            pass_ms.push_back(std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start).count());
+            if (answers.size() != batch) std::printf("?");
+            ++passes;
+        }
+        std::printf("batch of %zu: p50 %.3f ms per pass (%.3f ms per request), %.3f ms CPU per pass\n", batch,
+                    percentile(pass_ms, 0.5), percentile(pass_ms, 0.5) / double(batch),
+                    (thread_cpu_ms() - batch_cpu0) / passes);
+    }
+    return 0;
 }
 
 }  // namespace
@@ -60,16 +113,15 @@ int main(int argc, char** argv) {
                         spec.rank, spec.samples, spec.users, static_cast<unsigned long long>(bytes));
             return 0;
         }
-        if (cmd == "bandwidth") {
-            std::printf("%.0f\n", read_bandwidth_bytes_per_s());
-            return 0;
-        }
+        if (cmd == "topn" && argc >= 3)
+            return topn(argv[2], argc > 3 ? std::stoi(argv[3]) : 200, argc > 4 && std::string(argv[4]) == "batches");
         if (cmd == "serve" && argc >= 3)
             return credence::server::run_server(credence::server::load_serve_config(argv[2]));
     } catch (const std::exception& e) {
         std::cerr << "serve_bench_tool: " << e.what() << "\n";
         return 1;
     }
-    std::cerr << "usage: serve_bench_tool model OUT [items rank samples users] | bandwidth | serve CONFIG\n";
+    std::cerr << "usage: serve_bench_tool model OUT [items rank samples users] | "
+                 "topn MODEL [requests] | serve CONFIG\n";
     return 2;
 }

@@ -27,5 +27,6 @@ Runner add_serve_command(CLI::App& app);
 Runner add_compare_command(CLI::App& app);
 Runner add_report_command(CLI::App& app);
 Runner add_delta_command(CLI::App& app);
+Runner add_forget_command(CLI::App& app);
 
 }  // namespace credence::cli

@@ -5,6 +5,7 @@
 #include <cmath>
 #include <filesystem>
 #include <fstream>
+#include <system_error>
 #include <vector>
 
 #include <fmt/format.h>
@@ -60,7 +61,9 @@ std::string csv_field(const std::string& s) {
 
 DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOptions& o) {
     namespace fs = std::filesystem;
-    fs::create_directories(directory);
+    std::error_code ec;
+    fs::create_directories(directory, ec);
+    if (ec) throw FileError("cannot create the folder " + directory + ": " + ec.message() + "; check the path");
     Rng rng = Rng::keyed(o.seed, 0, 0, StreamBlock::simulate, 0);
 
     // Catalogue: each product has a category, a popularity and a taste vector

@@ -23,6 +23,7 @@ struct DemoShopFiles {
 };
 
 // Writes ratings.csv and catalogue.csv into `directory` (created if missing).
+// Throws FileError if the folder cannot be created or a file cannot be written.
 DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOptions& options);
 
 }  // namespace credence::cli

@@ -96,7 +96,7 @@ int run_evaluate(const EvaluateFlags& f) {
 Runner add_evaluate_command(CLI::App& app) {
     auto f = std::make_shared<EvaluateFlags>();
     CLI::App* cmd = app.add_subcommand("evaluate", "Score a posterior file on held-out ratings: accuracy and interval calibration");
-    cmd->add_option("--model,-m", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
+    cmd->add_option("--model,-m", f->model, "Posterior file")->required();
     add_ingest_flags(*cmd, f->ingest);
     cmd->add_flag("--json", f->json, "Print one JSON object instead of a table");
     cmd->add_option("--k", f->k, "List length for precision@k, recall@k and NDCG@k")

@@ -302,6 +302,7 @@ int run_fit(FitFlags& f) {
     const FitOptions options = to_fit_options(f.sampler);
     const Log log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
     ProgressLine progress(f.quiet);
+    for (const auto& note : prepare_posterior_output(f.out)) log(note);  // before any sampling
 
     IngestResult data = read_ratings(f, progress, log);
     const TrainingData d = split_for_validation(f, std::move(data.ratings), options.seed, log);

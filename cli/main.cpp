@@ -27,6 +27,7 @@
 
 #include "cli/commands.hpp"
 #include "generated/credence_version.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/error.hpp"
 
 namespace {
@@ -96,9 +97,20 @@ int run_reporting_errors(const std::string& command, const credence::cli::Runner
 int main(int argc, char** argv) {
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
-    app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion);
-    app.footer("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 3 fit --gate refused the new model, "
-               "70 internal error (a bug).");
+    // The kernels' CPU level is settled before anything runs: a bad
+    // CREDENCE_CPU_LEVEL is a usage error, and --version names the level.
+    std::string cpu_level;
+    try {
+        cpu_level = credence::cpu_level_description();
+    } catch (const credence::OptionError& e) {
+        std::cerr << "credence: " << e.what() << "\n";
+        return kExitUsage;
+    }
+    app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion + "\nkernels: " + cpu_level);
+    const std::string exit_codes =
+        "Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 3 fit --gate refused the new model, "
+        "70 internal error (a bug).";
+    app.footer(exit_codes);
 
     std::map<CLI::App*, credence::cli::Runner> runners;
     auto add = [&](credence::cli::Runner (*adder)(CLI::App&)) {
@@ -117,6 +129,11 @@ int main(int argc, char** argv) {
     add(credence::cli::add_compare_command);
     add(credence::cli::add_report_command);
     add(credence::cli::add_delta_command);
+    add(credence::cli::add_forget_command);
+    // Every subcommand's help, and so its man page, ends with the exit codes
+    // (subcommands start with the footer above; one with its own gets both).
+    for (CLI::App* sub : app.get_subcommands({}))
+        if (sub->get_footer() != exit_codes) sub->footer(sub->get_footer() + "\n\n" + exit_codes);
 
     try {
         app.parse(argc, argv);

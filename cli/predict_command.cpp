@@ -44,7 +44,7 @@ int run_predict(const PredictFlags& f) {
 Runner add_predict_command(CLI::App& app) {
     auto f = std::make_shared<PredictFlags>();
     CLI::App* cmd = app.add_subcommand("predict", "Predicted rating of one user for one item, with sd and credible interval");
-    cmd->add_option("--model,-m", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
+    cmd->add_option("--model,-m", f->model, "Posterior file")->required();
     cmd->add_option("--user,-u", f->user, "User id as in the ratings export")->required();
     cmd->add_option("--item,-i", f->item, "Item id as in the ratings export")->required();
     cmd->add_option("--level", f->level, "Credible interval level")->check(CLI::Range(0.001, 0.999))->capture_default_str();

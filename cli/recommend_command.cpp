@@ -1,12 +1,13 @@
 // credence recommend: top-N from a posterior file through the same
 // prediction engine the server uses, for a customer in the model (--user) or
-// for someone who is not, folded in from a few ratings (--rated), through the
-// same fold-in as the server's POST /v1/recommendations.
+// for someone who is not, folded in exactly from a few ratings (--rated),
+// through the same fold-in as the server's POST /v1/recommendations.
 #include <charconv>
 #include <iostream>
 #include <memory>
 #include <optional>
 #include <sstream>
+#include <string>
 
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
@@ -85,8 +86,9 @@ void print_list(const RecommendFlags& f, const Posterior& p, const std::vector<R
             out["user"] = *f.user;
         } else {
             out["rated"] = f.rated.size();
-            out["seed"] = f.seed;
         }
+        // As the server answers: only a draw ranking has a seed, as a decimal string.
+        if (f.rank_by == "draw") out["seed"] = std::to_string(f.seed);
         std::cout << out.dump(2) << "\n";
         return;
     }
@@ -126,8 +128,8 @@ int run_recommend(const RecommendFlags& f) {
     }
     std::vector<VisitorRating> ratings;
     for (const auto& r : rated) ratings.push_back({find_index(posterior->item_ids, r.item, "item"), r.stars});
-    // The same seed keys the fold-in draws and the --rank-by draw, as in the server.
-    print_list(f, *posterior, recommend_for_visitor(engine, ratings, f.seed, options));
+    // Deterministic but for --rank-by draw, which --seed keys, as in the server.
+    print_list(f, *posterior, recommend_for_visitor(engine, ratings, options));
     return 0;
 }
 
@@ -137,7 +139,7 @@ Runner add_recommend_command(CLI::App& app) {
     auto f = std::make_shared<RecommendFlags>();
     CLI::App* cmd = app.add_subcommand(
         "recommend", "Top-N items for one user, or for a visitor from a few ratings, each with sd and credible interval");
-    cmd->add_option("--model,-m", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
+    cmd->add_option("--model,-m", f->model, "Posterior file")->required();
     cmd->add_option("--user,-u", f->user, "User id as in the ratings export (or give --rated)");
     cmd->add_option("--rated", f->rated,
                     "PRODUCT=STARS: a rating of someone not in the model, folded in; repeat for each product "
@@ -148,7 +150,7 @@ Runner add_recommend_command(CLI::App& app) {
     cmd->add_option("--level", f->level, "Credible interval level")->check(CLI::Range(0.001, 0.999))->capture_default_str();
     cmd->add_option("--items", f->items, "Comma-separated candidate item ids (default: all)");
     cmd->add_flag("--include-rated", f->include_rated, "Also list items the user (or visitor) already rated");
-    cmd->add_option("--seed", f->seed, "Seed of the posterior draw for --rank-by draw and of the --rated fold-in")
+    cmd->add_option("--seed", f->seed, "Seed of the posterior draw for --rank-by draw (the only ranking that draws)")
         ->capture_default_str();
     cmd->add_flag("--json", f->json, "Print JSON");
     return [f] { return run_recommend(*f); };

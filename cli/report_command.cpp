@@ -1,5 +1,6 @@
 // credence report: one self-contained HTML file about a fitted model
 // (report/html_report.hpp).
+#include <filesystem>
 #include <fstream>
 #include <iostream>
 #include <memory>
@@ -52,7 +53,8 @@ int run_report(const ReportFlags& f) {
     auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
     report::ReportInputs in;
     in.posterior = posterior.get();
-    in.model_name = f.model;
+    // The file's name only: a report travels, and names no path on this machine.
+    in.model_name = std::filesystem::path(f.model).filename().string();
     if (!f.validation.empty()) {
         IngestOptions io;
         io.path = f.validation;
@@ -90,10 +92,9 @@ int run_report(const ReportFlags& f) {
 Runner add_report_command(CLI::App& app) {
     auto f = std::make_shared<ReportFlags>();
     CLI::App* cmd = app.add_subcommand("report", "Write a self-contained HTML report: convergence, traces, calibration, uncertainty, rank comparison");
-    cmd->add_option("model", f->model, "Posterior file")->required()->check(CLI::ExistingFile);
-    cmd->add_option("--validation", f->validation, "Held-out ratings file (CSV/TSV, detected) for the calibration section")
-        ->check(CLI::ExistingFile);
-    cmd->add_option("--comparison", f->comparison, "JSON written by credence compare --json")->check(CLI::ExistingFile);
+    cmd->add_option("model", f->model, "Posterior file")->required();
+    cmd->add_option("--validation", f->validation, "Held-out ratings file (CSV/TSV, detected) for the calibration section");
+    cmd->add_option("--comparison", f->comparison, "JSON written by credence compare --json");
     cmd->add_option("--out,-o", f->out, "HTML file to write")->required();
     cmd->add_option("--k", f->k, "List length for the top-k metrics of the validation set")
         ->check(CLI::Range(1u, 10000u))->capture_default_str();

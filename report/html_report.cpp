@@ -21,6 +21,29 @@ namespace credence::report {
 
 namespace {
 
+// The report names no customer: a probe pair (a rated customer-product
+// pair) is shown by its number among the probes.
+std::string probe_name(const ConvergenceSummary& conv, const QuantityConvergence& q) {
+    int k = 0;
+    for (const QuantityConvergence& other : conv.quantities) {
+        if (other.quantity != "prediction") continue;
+        ++k;
+        if (&other == &q) break;
+    }
+    return fmt::format("probe pair {}", k);
+}
+
+// A warning with every probe's label replaced by its number.
+std::string without_ids(const ConvergenceSummary& conv, std::string text) {
+    for (const QuantityConvergence& q : conv.quantities) {
+        if (q.quantity != "prediction") continue;
+        const std::string from = q.label(), to = probe_name(conv, q);
+        for (size_t at = text.find(from); at != std::string::npos; at = text.find(from, at + to.size()))
+            text.replace(at, from.size(), to);
+    }
+    return text;
+}
+
 std::string fixed(double v, int digits) {
     return std::isfinite(v) ? fmt::format("{:.{}f}", v, digits) : std::string("&ndash;");
 }
@@ -256,7 +279,7 @@ std::string probe_traces(const ReportInputs& in, const ConvergenceSummary& conv)
         std::vector<Series> series;
         for (auto& [c, s] : by_chain) series.push_back(std::move(s));
         PlotSpec spec = make_spec(fmt::format("trace-probe-{}", drawn + 1),
-                                  fmt::format("{} \xe2\x86\x92 {}", q.user_id, q.item_id),
+                                  probe_name(conv, q),
                                   "kept sample within chain (count)", "predicted rating (rating units)");
         spec.note = "R-hat " + fixed(q.stats.rhat, 3);
         spec.width_px = 342;
@@ -283,8 +306,8 @@ std::string convergence_table(const ConvergenceSummary& conv) {
                      conv.options.max_rhat, conv.options.min_ess_per_chain);
     if (!conv.warnings.empty() || !conv.advice.empty()) {
         o += "<ul class=\"warnings\">";
-        for (const auto& w : conv.warnings) o += "<li>" + escape_xml(w) + "</li>";
-        for (const auto& a : conv.advice) o += "<li>Advice: " + escape_xml(a) + "</li>";
+        for (const auto& w : conv.warnings) o += "<li>" + escape_xml(without_ids(conv, w)) + "</li>";
+        for (const auto& a : conv.advice) o += "<li>Advice: " + escape_xml(without_ids(conv, a)) + "</li>";
         o += "</ul>";
     }
     const double chains = std::max<double>(1, conv.num_chains);
@@ -299,7 +322,7 @@ std::string convergence_table(const ConvergenceSummary& conv) {
             auto cell = [](bool bad, const std::string& text) {
                 return fmt::format("<td{}>{}</td>", bad ? " class=\"bad\"" : "", text);
             };
-            const std::string name = predictions ? q.user_id + " \xe2\x86\x92 " + q.item_id : q.label();
+            const std::string name = predictions ? probe_name(conv, q) : q.label();
             t += "<tr><td>" + escape_xml(name) + "</td>" +
                  cell(std::isfinite(st.rhat) && st.rhat > conv.options.max_rhat, fixed(st.rhat, 3)) +
                  cell(std::isfinite(st.ess_bulk) && st.ess_bulk < min_ess, fixed(st.ess_bulk, 0)) +

@@ -24,7 +24,7 @@ namespace credence::report {
 
 struct ReportInputs {
     const Posterior* posterior = nullptr;      // required; must pass Posterior::validate()
-    std::string model_name;                    // shown in the header (e.g. the file path)
+    std::string model_name;                    // shown in the header (the file's name; never a path)
     std::optional<EvaluationReport> validation;
     std::string validation_name;               // shown with the calibration section
     std::optional<ComparisonResult> comparison;

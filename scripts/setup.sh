@@ -14,15 +14,22 @@ packages=(
   libtomlplusplus-dev    # config file
   libxxhash-dev          # checksums and data fingerprints
   libomp-dev             # OpenMP (GCC's libgomp comes with g++)
+  help2man               # man pages, written from --help at build time
+  file                   # cpack -G DEB: finds the programs whose libraries become Depends
+  libssl-dev             # OpenSSL: cpp-httplib's TLS client in the exposed-deployment test
   libsqlite3-dev         # --ratings sqlite:PATH
   libpq-dev              # --ratings postgresql://... (libpq)
 )
 # Only the tests and benchmarks need these (scipy is the outside reference for
 # distribution checks; chromium renders the report; wrk drives the serve bench;
-# sqlite3 and postgresql (initdb, pg_ctl) give the database-source tests a real
-# SQLite file and a PostgreSQL server of their own).
+# nginx and openssl run the exposed deployment with a certificate made in the
+# test; clang builds the libFuzzer targets of scripts/fuzz; lintian checks
+# the Debian package; prometheus brings promtool, which checks the example
+# alert rules; sqlite3 and postgresql (initdb, pg_ctl) give the
+# database-source tests a real SQLite file and a PostgreSQL server of their
+# own).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium python3 python3-scipy python3-numpy sqlite3 postgresql)
+  packages+=(wrk chromium python3 python3-scipy python3-numpy nginx openssl clang libclang-rt-dev lintian prometheus sqlite3 postgresql)
 fi
 
 missing=()

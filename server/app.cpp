@@ -1,27 +1,16 @@
 #include "server/app.hpp"
 
+#include <algorithm>
 #include <charconv>
 #include <chrono>
 #include <cmath>
 
-#include <spdlog/sinks/stdout_sinks.h>
-#include <spdlog/spdlog.h>
-
 #include "model/error.hpp"
+#include "server/logging.hpp"
 
 namespace credence::server {
 
 namespace {
-
-std::shared_ptr<spdlog::logger> stderr_logger(const std::string& name) {
-    auto existing = spdlog::get(name);
-    return existing ? existing : spdlog::stderr_logger_mt(name);
-}
-
-std::shared_ptr<spdlog::logger> access_logger() {
-    static const auto logger = stderr_logger("credence.access");
-    return logger;
-}
 
 int hex_value(char c) {
     if (c >= '0' && c <= '9') return c - '0';
@@ -49,10 +38,7 @@ std::string percent_decode(std::string_view s) {
 
 }  // namespace
 
-spdlog::logger& server_log() {
-    static const auto logger = stderr_logger("credence.serve");
-    return *logger;
-}
+spdlog::logger& server_log() { return event_log(); }
 
 std::shared_ptr<const LoadedModel> AppContext::model() const {
     auto m = slot.get();
@@ -60,10 +46,54 @@ std::shared_ptr<const LoadedModel> AppContext::model() const {
     return m;
 }
 
+namespace {
+
+// `model` less every customer in `forgotten` (the same model when none is in it).
+std::shared_ptr<const LoadedModel> less_forgotten(std::shared_ptr<const LoadedModel> model,
+                                                  const std::set<std::string>& forgotten) {
+    std::shared_ptr<const Posterior> posterior = model->posterior;
+    bool changed = false;
+    for (const auto& customer : forgotten) {
+        const auto& ids = posterior->user_ids;
+        const auto at = std::find(ids.begin(), ids.end(), customer);
+        if (at == ids.end()) continue;
+        posterior = std::make_shared<const Posterior>(
+            without_user(*posterior, static_cast<uint32_t>(at - ids.begin())));
+        changed = true;
+    }
+    if (!changed) return model;
+    const double load_ms = model->load_ms;
+    auto next = build_loaded_model(posterior, model->source_path);
+    std::const_pointer_cast<LoadedModel>(next)->load_ms += load_ms;
+    return next;
+}
+
+}  // namespace
+
+AppContext::Forgotten AppContext::forget(const std::string& customer) {
+    std::lock_guard lock(reload_mutex);
+    Forgotten out;
+    out.previous = model();
+    forgotten.insert(customer);
+    const auto user = out.previous->users.find(customer);
+    if (!user) {
+        out.model = out.previous;
+        return out;
+    }
+    out.found = true;
+    out.rated_items = out.previous->posterior->rated_by(*user).size();
+    out.model = build_loaded_model(std::make_shared<const Posterior>(without_user(*out.previous->posterior, *user)),
+                                   out.previous->source_path);
+    slot.set(out.model);
+    server_log().info("dropped a customer from the served model {} (now {}); {} forgotten since start",
+                      out.previous->fingerprint, out.model->fingerprint, forgotten.size());
+    return out;
+}
+
 std::shared_ptr<const LoadedModel> AppContext::reload(const std::string& path) {
     std::lock_guard lock(reload_mutex);
     try {
-        auto next = load_model_file(path);
+        auto next = less_forgotten(load_model_file(path), forgotten);
         slot.set(next);
         metrics.reload_finished(true);
         server_log().info("serving model {} from {} (loaded in {:.1f} ms)", next->fingerprint, path, next->load_ms);
@@ -128,11 +158,13 @@ void write_error_problem(httplib::Response& res, const httplib::Request& req, co
 }  // namespace
 
 httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHandler handler) {
-    return [&ctx, route = std::move(route), handler = std::move(handler)](const httplib::Request& req,
-                                                                          httplib::Response& res) {
+    const uint8_t needed = route_permission(route);
+    return [&ctx, needed, route = std::move(route), handler = std::move(handler)](const httplib::Request& req,
+                                                                                  httplib::Response& res) {
         const auto start = std::chrono::steady_clock::now();
         ctx.metrics.request_started();
         try {
+            ctx.access.check(req, res, needed);
             handler(req, res);
         } catch (const HttpProblem& p) {
             write_problem(res, p, req.target);
@@ -142,14 +174,9 @@ httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHan
         const double latency_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
         const int status = res.status == -1 ? 200 : res.status;
         ctx.metrics.request_finished(route, status, latency_s);
-        if (ctx.options.access_log) {
-            if (ctx.options.log_ids)
-                access_logger()->info("{} {} status={} latency_ms={:.3f} target={}", req.method, route, status,
-                                      latency_s * 1e3, req.target);
-            else
-                access_logger()->info("{} {} status={} latency_ms={:.3f}", req.method, route, status,
-                                      latency_s * 1e3);
-        }
+        if (ctx.options.access_log)
+            log_access(req.method, route, status, latency_s * 1e3,
+                       ctx.options.log_ids ? std::string_view(req.target) : std::string_view());
     };
 }
 
@@ -182,9 +209,13 @@ uint32_t query_count(const httplib::Request& req, const char* name, uint32_t fal
 }
 
 namespace {
+// The model's rule (check_interval_level), answered as a 400 naming the text sent.
 double check_level(double level, const std::string& shown) {
-    if (!(level > 0.0 && level < 1.0))
-        throw bad_request("interval level must be strictly between 0 and 1 (e.g. 0.9), got " + shown);
+    try {
+        check_interval_level(level);
+    } catch (const OptionError& e) {
+        throw bad_request(std::string(e.what()) + " (sent as " + shown + ")");
+    }
     return level;
 }
 }  // namespace
@@ -236,6 +267,8 @@ const char* rank_by_name(RankBy rank_by) {
 }
 
 nlohmann::json parse_json_body(const httplib::Request& req) {
+    if (req.body.empty())
+        throw bad_json("this route needs a JSON object as the request body (Content-Type: application/json)");
     nlohmann::json body = nlohmann::json::parse(req.body, nullptr, /*allow_exceptions=*/false);
     if (body.is_discarded())
         throw bad_json("the request body is not valid JSON; send a JSON object with Content-Type: application/json");

@@ -7,6 +7,7 @@
 #include <memory>
 #include <mutex>
 #include <optional>
+#include <set>
 #include <string>
 #include <string_view>
 #include <vector>
@@ -16,6 +17,7 @@
 #include <spdlog/logger.h>
 
 #include "model/predict/predict.hpp"
+#include "server/access.hpp"
 #include "server/metrics.hpp"
 #include "server/model_slot.hpp"
 #include "server/problem.hpp"
@@ -26,16 +28,28 @@ namespace credence::server {
 struct AppContext {
     ServeOptions options;
     std::string admin_token;  // empty: admin routes are disabled (403)
+    AccessPolicy access;      // API tokens and what each route needs (configured before serving)
     ModelSlot slot;
     Metrics metrics;
-    std::mutex reload_mutex;  // one reload at a time
+    std::mutex reload_mutex;  // one reload or forget at a time; guards forgotten
+    std::set<std::string> forgotten;  // customers dropped by POST /v1/admin/forget since start
     std::atomic<uint64_t> seed_counter{0};
 
     // The current model, or throws the 503 problem.
     std::shared_ptr<const LoadedModel> model() const;
-    // Loads `path` and swaps it in; on failure the old model stays and the
-    // error propagates. Returns the new model.
+    // Loads `path` and swaps it in, less every forgotten customer; on failure
+    // the old model stays and the error propagates. Returns the new model.
     std::shared_ptr<const LoadedModel> reload(const std::string& path);
+
+    struct Forgotten {
+        bool found = false;              // the model had this customer
+        uint64_t rated_items = 0;        // how many products they had rated
+        std::shared_ptr<const LoadedModel> model, previous;
+    };
+    // Drops `customer`'s own factors, bias, id and rated list from the model
+    // being served (swapped in at once) and from every model loaded later by
+    // this process. Throws the 503 problem when no model is loaded.
+    Forgotten forget(const std::string& customer);
     // A fresh seed for requests that did not give one.
     uint64_t next_seed();
 };
@@ -45,8 +59,9 @@ spdlog::logger& server_log();
 
 using RouteHandler = std::function<void(const httplib::Request&, httplib::Response&)>;
 
-// Wraps a handler with metrics, the access log and error mapping
-// (model/error.hpp's taxonomy in HTTP terms):
+// Wraps a handler with the access check (route_permission(route) in
+// server/access.hpp: 401/403 before the handler runs), metrics, the access
+// log and error mapping (model/error.hpp's taxonomy in HTTP terms):
 //   HttpProblem            its own problem response;
 //   credence::OptionError  400 bad-parameter, the message as detail;
 //   credence::DataError    400 bad-data, the message as detail;
@@ -55,7 +70,8 @@ using RouteHandler = std::function<void(const httplib::Request&, httplib::Respon
 //   other credence::Error, std::logic_error (a bug) and anything else:
 //                          500 internal.
 // The 500 and 503 answers carry no internals (no message, no path); the
-// service log gets the message. `route` is the pattern logged and counted.
+// service log gets the message. `route` is the pattern logged and counted;
+// throws std::out_of_range (a bug) when it has no entry in the permission table.
 httplib::Server::Handler wrap_route(AppContext& ctx, std::string route, RouteHandler handler);
 
 // Route groups (one file each).

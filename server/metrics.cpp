@@ -74,6 +74,10 @@ std::string Metrics::render(const LoadedModel* model) const {
            "# TYPE credence_http_requests_in_flight gauge\n"
            "credence_http_requests_in_flight "
         << in_flight_.load() << "\n";
+    out << "# HELP credence_http_connections_refused_total Connections refused with 503 at the connection limit.\n"
+           "# TYPE credence_http_connections_refused_total counter\n"
+           "credence_http_connections_refused_total "
+        << connections_refused_.load() << "\n";
     out << "# HELP credence_model_reloads_total Model reloads, by outcome.\n"
            "# TYPE credence_model_reloads_total counter\n"
            "credence_model_reloads_total{outcome=\"ok\"} "

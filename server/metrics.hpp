@@ -23,6 +23,8 @@ public:
     // `route` is the route pattern (never a raw path, so label sets stay bounded).
     void request_finished(const std::string& route, int status, double latency_s);
     void reload_finished(bool ok);
+    // A connection over the connection limit got 503 and was closed.
+    void connection_refused() { connections_refused_.fetch_add(1, std::memory_order_relaxed); }
 
     // The whole exposition; `model` may be null (no model loaded yet).
     std::string render(const LoadedModel* model) const;
@@ -39,6 +41,7 @@ private:
     std::atomic<int64_t> in_flight_{0};
     std::atomic<uint64_t> reloads_ok_{0};
     std::atomic<uint64_t> reloads_failed_{0};
+    std::atomic<uint64_t> connections_refused_{0};
 };
 
 }  // namespace credence::server

@@ -53,10 +53,13 @@ const char* status_title(int status) {
         case 414: return "URI Too Long";
         case 415: return "Unsupported Media Type";
         case 416: return "Range Not Satisfiable";
+        case 417: return "Expectation Failed";
         case 422: return "Unprocessable Content";
         case 431: return "Request Header Fields Too Large";
         case 500: return "Internal Server Error";
+        case 501: return "Not Implemented";
         case 503: return "Service Unavailable";
+        case 505: return "HTTP Version Not Supported";
         default: return "Error";
     }
 }

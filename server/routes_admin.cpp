@@ -4,6 +4,8 @@
 // inside the configured model directory; without it the current file is
 // re-read. The new model is loaded on this request's thread while other
 // requests keep using the old one; on failure the old one stays (422).
+// POST /v1/admin/forget {"customer": ...}: drops one customer's own factors
+// from the served model at once (same token).
 #include <filesystem>
 
 #include "model/error.hpp"
@@ -75,9 +77,36 @@ void reload_handler(AppContext& ctx, const httplib::Request& req, httplib::Respo
     write_json(res, body, next.get());
 }
 
+// Erasure on request: the customer's own factors leave the served model at
+// once. The product factors still carry their influence until the next fit
+// without their ratings (credence forget, then credence fit).
+void forget_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    check_token(ctx, req, res);
+    const auto body = parse_json_body(req);
+    const auto it = body.find("customer");
+    if (it == body.end()) throw bad_request("the body needs \"customer\": the id to remove from the served model");
+    const std::string customer = json_string(*it, "customer");
+    if (customer.empty()) throw bad_request("customer must not be empty");
+    const AppContext::Forgotten outcome = ctx.forget(customer);
+    write_json(res,
+               {{"customer_found", outcome.found},
+                {"rated_items_removed", outcome.rated_items},
+                {"model", outcome.model->fingerprint},
+                {"previous", outcome.previous->fingerprint},
+                {"complete_after_refit", true},
+                {"note", "the customer's own factors are gone from the served model and stay out of every model this "
+                         "server loads until it restarts; product factors still carry their influence until the "
+                         "next fit: remove their rows with credence forget, refit and reload"}},
+               outcome.model.get());
+}
+
 }  // namespace
 
 void install_admin_routes(httplib::Server& server, AppContext& ctx) {
+    server.Post("/v1/admin/forget", wrap_route(ctx, "/v1/admin/forget",
+                                               [&ctx](const httplib::Request& req, httplib::Response& res) {
+                                                   forget_handler(ctx, req, res);
+                                               }));
     server.Post("/v1/admin/reload", wrap_route(ctx, "/v1/admin/reload",
                                                [&ctx](const httplib::Request& req, httplib::Response& res) {
                                                    reload_handler(ctx, req, res);

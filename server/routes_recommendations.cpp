@@ -1,9 +1,14 @@
 // GET /v1/users/{user}/recommendations: top-N for a known user.
-// POST /v1/recommendations: top-N for a visitor, by fold-in (model/predict/foldin.hpp).
-// Both rank by mean, lower or upper interval bound, or one posterior draw,
-// and give mean, sd and interval for every item. Known users' requests that
-// arrive together share one pass over the item samples (server/topn_batcher.hpp).
+// POST /v1/recommendations: top-N for a visitor, by exact fold-in
+// (model/predict/foldin.hpp): the visitor is integrated out, so the answer
+// is deterministic. Both rank by mean, lower or upper interval bound, or one
+// posterior draw, and give mean, sd and interval for every item. A draw
+// ranking echoes its seed as a decimal string (a 64-bit integer does not
+// survive a JavaScript number). Known users' requests that arrive together
+// share one pass over the item samples (server/topn_batcher.hpp).
 #include <algorithm>
+#include <charconv>
+#include <string>
 #include <vector>
 
 #include "model/error.hpp"
@@ -75,7 +80,7 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
                            {"rank_by", rank_by_name(options.rank_by)},
                            {"level", options.level},
                            {"items", recommendation_list(*model, recs)}};
-    if (options.rank_by == RankBy::draw) body["seed"] = options.draw_seed;
+    if (options.rank_by == RankBy::draw) body["seed"] = std::to_string(options.draw_seed);
     write_json(res, body, model.get());
 }
 
@@ -90,6 +95,19 @@ uint32_t json_count(const nlohmann::json& body, const char* name, uint32_t fallb
     return static_cast<uint32_t>(value);
 }
 
+// A seed in a JSON body: a string of decimal digits (what answers return)
+// or a non-negative integer. Throws a 400 problem otherwise.
+uint64_t json_seed(const nlohmann::json& value) {
+    const char* const expected = "seed must be an unsigned 64-bit integer, preferably as a string of digits (\"42\")";
+    if (value.is_number_unsigned()) return value.get<uint64_t>();
+    if (!value.is_string()) throw bad_request(expected);
+    const std::string& text = value.get_ref<const std::string&>();
+    uint64_t seed = 0;
+    const auto [ptr, ec] = std::from_chars(text.data(), text.data() + text.size(), seed);
+    if (text.empty() || ec != std::errc() || ptr != text.data() + text.size()) throw bad_request(expected);
+    return seed;
+}
+
 void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
     const nlohmann::json body = parse_json_body(req);
     RecommendOptions options;
@@ -100,14 +118,13 @@ void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
         if (!it->is_boolean()) throw bad_request("exclude_rated must be true or false");
         options.exclude_rated = it->get<bool>();
     }
-    uint64_t seed = 0;
-    if (const auto it = body.find("seed"); it != body.end()) {
-        if (!it->is_number_unsigned()) throw bad_request("seed must be an unsigned 64-bit integer");
-        seed = it->get<uint64_t>();
-    } else {
-        seed = ctx.next_seed();
+    // Only a draw ranking uses a seed; without one it gets a fresh one.
+    if (options.rank_by == RankBy::draw) {
+        const auto it = body.find("seed");
+        options.draw_seed = it != body.end() ? json_seed(*it) : ctx.next_seed();
+    } else if (body.contains("seed")) {
+        json_seed(body["seed"]);  // still checked, so a malformed seed is never silently ignored
     }
-    options.draw_seed = seed;
 
     std::vector<std::pair<std::string, double>> rated;
     if (const auto it = body.find("ratings"); it != body.end()) {
@@ -146,14 +163,13 @@ void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Resp
         for (const auto& id : candidate_ids) candidates.push_back(item_index(*model, id));
         options.candidates = std::move(candidates);
     }
-    const auto recs = recommend_for_visitor(model->engine, ratings, seed, options);
-    write_json(res,
-               {{"model", model->fingerprint},
-                {"seed", seed},
-                {"rank_by", rank_by_name(options.rank_by)},
-                {"level", options.level},
-                {"items", recommendation_list(*model, recs)}},
-               model.get());
+    const auto recs = recommend_for_visitor(model->engine, ratings, options);
+    nlohmann::json answer = {{"model", model->fingerprint},
+                             {"rank_by", rank_by_name(options.rank_by)},
+                             {"level", options.level},
+                             {"items", recommendation_list(*model, recs)}};
+    if (options.rank_by == RankBy::draw) answer["seed"] = std::to_string(options.draw_seed);
+    write_json(res, answer, model.get());
 }
 
 }  // namespace

@@ -8,7 +8,10 @@
 
 namespace credence::server {
 
-// Serves until SIGINT or SIGTERM. Prints "listening on http://HOST:PORT" on
+// Serves until SIGINT or SIGTERM, then stops gracefully: the listening
+// socket closes at once (new connections are refused), every request being
+// answered is finished, idle keep-alive connections are closed, and only then
+// does it return. Prints "listening on http://HOST:PORT" on
 // stdout (flushed) once bound, with the real port when options.port == 0.
 // Returns a process exit code (cli/main.cpp): 0 after a clean stop, 1 if
 // binding, the admin token file or the first model load failed, 2 for an

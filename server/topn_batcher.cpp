@@ -8,7 +8,9 @@
 namespace credence::server {
 
 TopNBatcher::TopNBatcher(unsigned lanes, size_t max_batch)
-    : lanes_(lanes ? lanes : std::max(1u, std::thread::hardware_concurrency())), max_batch_(max_batch) {
+    : lanes_(lanes ? lanes : std::max(1u, std::thread::hardware_concurrency())),
+      hardware_threads_(std::max(1u, std::thread::hardware_concurrency())),
+      max_batch_(max_batch) {
     if (max_batch_ == 0) throw std::invalid_argument("top-N batcher needs a batch size of at least 1");
 }
 
@@ -41,12 +43,14 @@ std::vector<Recommendation> TopNBatcher::recommend(const PredictionEngine& engin
         }
         ++running_;
         std::vector<Job*> batch = take_batch();
+        // A pass with the machine to itself reads the samples on every core.
+        const int threads = running_ == 1 && queue_.empty() ? static_cast<int>(hardware_threads_) : 1;
         lock.unlock();
         std::vector<RecommendRequest> requests;
         requests.reserve(batch.size());
         for (const Job* j : batch) requests.push_back(j->request);
         try {
-            auto answers = batch.front()->engine->recommend_batch(requests);
+            auto answers = batch.front()->engine->recommend_batch(requests, threads);
             for (size_t k = 0; k < batch.size(); ++k) batch[k]->answer = std::move(answers[k]);
         } catch (...) {
             for (Job* j : batch) j->answer.error = std::current_exception();

@@ -6,7 +6,9 @@
 // with whatever is already queued; there is no waiting window, so a lone
 // client pays nothing. Requests that arrive while every lane is busy queue
 // and go together in the next pass. Lanes are the requesting threads
-// themselves: no background thread, nothing to start or stop.
+// themselves: no background thread, nothing to start or stop. A pass that
+// runs alone (no other lane busy, nothing queued) splits its reading between
+// all hardware threads, so a lone client's request takes less wall time.
 #pragma once
 #include <condition_variable>
 #include <cstddef>
@@ -51,6 +53,7 @@ private:
     std::vector<Job*> take_batch();
 
     const unsigned lanes_;
+    const unsigned hardware_threads_;
     const size_t max_batch_;
     mutable std::mutex mutex_;
     std::condition_variable finished_;

@@ -16,6 +16,18 @@ namespace {
 // the buffer; enough to recognise the line in a rejects file.
 constexpr size_t kLongLineKeepBytes = 4096;
 
+// The line feeds in [from, to), counting no further than `most`.
+uint64_t count_newlines(const char* from, const char* to, uint64_t most) {
+    uint64_t seen = 0;
+    while (from < to && seen < most) {
+        const void* hit = std::memchr(from, '\n', static_cast<size_t>(to - from));
+        if (!hit) break;
+        ++seen;
+        from = static_cast<const char*>(hit) + 1;
+    }
+    return seen;
+}
+
 // Offset of the first '\n' or '\r' in [from, to), or `to`.
 size_t find_line_end(const char* data, size_t from, size_t to) {
     for (size_t i = from; i < to; ++i)
@@ -31,6 +43,9 @@ const char* describe(CsvProblem problem) {
         case CsvProblem::unterminated_quote: return "unterminated quote (a quoted field never closes)";
         case CsvProblem::text_after_quote: return "text after a closing quote (quote the whole field and double inner quotes)";
         case CsvProblem::record_too_long: return "record too long (an unbalanced quote?)";
+        case CsvProblem::too_many_lines:
+            return "a quoted field runs over too many lines (a stray quote?); the line is skipped and reading "
+                   "resumes on the next";
     }
     return "unknown problem";
 }
@@ -39,6 +54,11 @@ CsvReader::CsvReader(std::FILE* file, std::function<void(std::string_view)> on_b
                      size_t buffer_bytes, size_t max_record_bytes)
     : file_(file), on_bytes_(std::move(on_bytes)), max_record_bytes_(std::max<size_t>(max_record_bytes, 64)) {
     buffer_.resize(std::max(buffer_bytes, 2 * max_record_bytes_));
+}
+
+void CsvReader::set_max_record_lines(uint32_t lines) {
+    if (lines == 0) throw std::invalid_argument("CsvReader: a record spans at least one line");
+    max_record_lines_ = lines;
 }
 
 void CsvReader::set_delimiter(char delimiter) {
@@ -89,6 +109,9 @@ bool CsvReader::next(CsvRecord& record) {
         switch (parse(record)) {
             case Parse::done: return true;
             case Parse::need_more: break;
+            case Parse::malformed:
+                take_first_line(record);
+                return true;
         }
         if (record.problem == CsvProblem::unterminated_quote) {
             take_first_line(record);
@@ -121,21 +144,31 @@ CsvReader::Parse CsvReader::parse(CsvRecord& record) {
         if (pos < end && b[pos] == '"') {
             const size_t content = pos + 1;
             size_t q = content;
+            size_t counted_to = content;   // line feeds before this are in field_newlines
+            uint64_t field_newlines = 0;
             bool doubled = false;
             for (;;) {
                 const void* hit = q < end ? std::memchr(b + q, '"', end - q) : nullptr;
+                const size_t at = hit ? static_cast<size_t>(static_cast<const char*>(hit) - b) : end;
+                // Past the line limit with the field still open: a stray
+                // quote, most likely; give up on this record now.
+                field_newlines += count_newlines(b + counted_to, b + at, max_record_lines_);
+                counted_to = at;
+                if (inner_newlines + field_newlines >= max_record_lines_) {
+                    record.problem = CsvProblem::too_many_lines;
+                    return Parse::malformed;
+                }
                 if (hit == nullptr) {
                     if (eof_) record.problem = CsvProblem::unterminated_quote;
                     return Parse::need_more;
                 }
-                const size_t at = static_cast<size_t>(static_cast<const char*>(hit) - b);
                 if (at + 1 == end && !eof_) return Parse::need_more;  // "" or " + delimiter? not known yet
                 if (at + 1 < end && b[at + 1] == '"') {
                     doubled = true;
                     q = at + 2;
                     continue;
                 }
-                inner_newlines += static_cast<uint64_t>(std::count(b + content, b + at, '\n'));
+                inner_newlines += field_newlines;
                 if (doubled) {
                     const size_t offset = scratch_.size();
                     for (size_t i = content; i < at; ++i) {
@@ -182,6 +215,7 @@ CsvReader::Parse CsvReader::parse(CsvRecord& record) {
         for (const auto& s : spans_)
             record.fields.emplace_back((s.in_scratch ? scratch_.data() : b) + s.offset, s.length);
         record.raw = std::string_view(b + begin_, raw_end - begin_);
+        record.end_line = line_ + inner_newlines;
         begin_ = pos;
         line_ += 1 + inner_newlines;
         return Parse::done;
@@ -192,6 +226,7 @@ CsvReader::Parse CsvReader::parse(CsvRecord& record) {
 // after that line, reading ahead (and discarding) if the line outgrew the buffer.
 void CsvReader::take_first_line(CsvRecord& record) {
     record.fields.clear();
+    record.end_line = record.line;
     const char* b = buffer_.data();
     size_t stop = find_line_end(b, begin_, end_);
     if (stop < end_ || eof_) {

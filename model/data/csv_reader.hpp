@@ -6,11 +6,11 @@
 //
 // A malformed record is reported, not repaired: the record comes back with a
 // `problem` set, its first physical line as `raw`, and no fields, and reading
-// resumes at the next physical line, so a stray quote that never closes (or
-// not within max_record_bytes) costs one line rather than the rest of the
-// file. A stray quote that a later quote does close cannot be told from a
-// quoted line break: the lines between become one record, usually with the
-// wrong field count.
+// resumes at the next physical line, so a stray quote that never closes, or
+// not within max_record_lines lines or max_record_bytes bytes, costs one line
+// rather than the rest of the file. A stray quote that a later quote closes
+// within max_record_lines cannot be told from a quoted line break: those few
+// lines become one record (the ingest rejects an id holding a line break).
 #pragma once
 #include <cstddef>
 #include <cstdint>
@@ -28,6 +28,7 @@ enum class CsvProblem {
     unterminated_quote,   // input ended inside a quoted field
     text_after_quote,     // e.g. "abc"x, : characters between a closing quote and the delimiter
     record_too_long,      // longer than max_record_bytes (usually an unbalanced quote)
+    too_many_lines,       // a quoted field runs over more than max_record_lines physical lines
 };
 
 // A short human phrase for a problem ("unterminated quote", ...).
@@ -41,6 +42,7 @@ struct CsvRecord {
     // (several physical lines when a quoted field spans lines).
     std::string_view raw;
     uint64_t line = 0;                // 1-based physical line where the record starts
+    uint64_t end_line = 0;            // physical line where it ends (== line unless a quoted field spans lines)
     CsvProblem problem = CsvProblem::none;
 };
 
@@ -48,6 +50,7 @@ class CsvReader {
 public:
     static constexpr size_t default_buffer_bytes = size_t{4} << 20;
     static constexpr size_t default_max_record_bytes = size_t{1} << 20;
+    static constexpr uint32_t default_max_record_lines = 8;
 
     // Needs: `file` open for reading; it is not owned and not closed.
     // `on_bytes` (optional) sees every byte read from the file exactly once,
@@ -69,6 +72,11 @@ public:
     void set_delimiter(char delimiter);
     char delimiter() const { return delimiter_; }
 
+    // Most physical lines one record may span (a quoted field with line
+    // breaks); a record that would span more is malformed (too_many_lines).
+    // Throws std::invalid_argument for 0.
+    void set_max_record_lines(uint32_t lines);
+
     // Reads the next record into `record`; false at end of input. A blank
     // line comes back as a record with one empty field and an empty raw.
     // Throws FileError (message starting "read failed") if the file cannot
@@ -79,7 +87,7 @@ public:
     bool had_bom() const { return had_bom_; }
 
 private:
-    enum class Parse { done, need_more };
+    enum class Parse { done, need_more, malformed };
     struct FieldSpan {
         bool in_scratch;
         size_t offset;
@@ -99,6 +107,7 @@ private:
     bool had_bom_ = false;
     char delimiter_ = ',';
     size_t max_record_bytes_;
+    uint32_t max_record_lines_ = default_max_record_lines;
     uint64_t line_ = 1;
     uint64_t bytes_read_ = 0;
     std::vector<FieldSpan> spans_;

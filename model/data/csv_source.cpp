@@ -1,6 +1,7 @@
 #include "model/data/csv_source.hpp"
 
 #include <cerrno>
+#include <algorithm>
 #include <cstring>
 #include <filesystem>
 
@@ -13,6 +14,33 @@ namespace credence {
 namespace {
 
 bool blank_text(std::string_view s) { return s.find_first_not_of(" \t") == std::string_view::npos; }
+
+// Refuses text that is not UTF-8 (or ASCII) by name: UTF-16 and UTF-32 by
+// their byte-order mark or their pattern of NUL bytes, anything else with NUL
+// bytes as binary. Unicode Standard section 23.8 gives the byte-order marks.
+void check_encoding(std::string_view sample, const std::string& name) {
+    auto starts = [&](std::string_view mark) { return sample.substr(0, mark.size()) == mark; };
+    std::string encoding;
+    if (starts(std::string_view("\xFF\xFE\0\0", 4))) encoding = "UTF-32 (little-endian)";
+    else if (starts(std::string_view("\0\0\xFE\xFF", 4))) encoding = "UTF-32 (big-endian)";
+    else if (starts("\xFF\xFE")) encoding = "UTF-16 (little-endian)";
+    else if (starts("\xFE\xFF")) encoding = "UTF-16 (big-endian)";
+    else {
+        // Without a mark: ASCII text in UTF-16 has every other byte zero. A
+        // few stray NUL bytes are left to the rows they are in (rejected).
+        size_t even = 0, odd = 0;
+        const size_t n = std::min<size_t>(sample.size(), 4096);
+        for (size_t i = 0; i < n; ++i)
+            if (sample[i] == '\0') ++(i % 2 ? odd : even);
+        if (odd * 3 > n) encoding = "UTF-16 (little-endian)";
+        else if (even * 3 > n) encoding = "UTF-16 (big-endian)";
+        else if ((odd + even) * 10 > n)
+            throw DataError(fmt::format("{} holds NUL bytes: it is not a text export; check the path", name));
+    }
+    if (!encoding.empty())
+        throw DataError(fmt::format("{} is {} text; save it as UTF-8 (for example: iconv -f UTF-16 -t UTF-8 in > out)",
+                                    name, encoding));
+}
 
 }  // namespace
 
@@ -40,6 +68,7 @@ CsvSource::CsvSource(const std::string& path, std::optional<char> delimiter,
         if (progress_) progress_(bytes_done_, bytes_total_);
     });
     try {
+        check_encoding(reader_->peek(), name_);
         if (delimiter) {
             reader_->set_delimiter(*delimiter);
             return;
@@ -74,6 +103,7 @@ bool CsvSource::next(SourceRow& row) {
     row.is_null.clear();
     row.raw = record_.raw;
     row.position = record_.line;
+    row.end_position = record_.end_line;
     row.problem = record_.problem == CsvProblem::none ? std::string_view() : std::string_view(describe(record_.problem));
     row.blank = record_.problem == CsvProblem::none && blank_text(record_.raw);
     return true;

@@ -308,6 +308,7 @@ private:
                 case '\n': line_ += "\\n"; break;
                 case '\r': line_ += "\\r"; break;
                 case '\\': line_ += "\\\\"; break;
+                case '\0': line_ += "\\0"; break;
                 default: line_ += c;
             }
         }
@@ -414,6 +415,7 @@ private:
                                   bool has_header, size_t fallback_index, std::vector<size_t>& taken,
                                   uint64_t line) const;
     void take_row(const SourceRow& row);
+    void clear_stale_rejects();
     void reject(uint64_t line, const std::string& reason, std::string_view raw);
     void merge_and_sort(std::vector<Rating>& ratings, std::vector<double> timestamps);
 
@@ -549,48 +551,61 @@ void Ingest::take_row(const SourceRow& row) {
     const auto& fields = row.fields;
     const std::string_view raw = row.raw;
     const uint64_t line = row.position;
+    const uint64_t lines = row.end_position - row.position + 1;
     ++summary_.rows_read;
-    if (!row.problem.empty()) return reject(line, std::string(row.problem), raw);
+    summary_.row_lines += lines;
+    // A rejected row over several lines names them all, and counts them.
+    const std::string span = lines > 1 ? fmt::format(" (lines {}-{})", row.position, row.end_position) : std::string();
+    auto reject_row = [&](const std::string& reason) {
+        summary_.rejected_lines += lines;
+        reject(line, reason + span, raw);
+    };
+    if (!row.problem.empty()) return reject_row(std::string(row.problem));
     if (fields.size() != expected_fields_)
-        return reject(line, fmt::format("expected {} fields, found {}", expected_fields_, fields.size()), raw);
+        return reject_row(fmt::format("expected {} fields, found {}", expected_fields_, fields.size()));
     auto null = [&](size_t column) { return !row.is_null.empty() && row.is_null[column]; };
-    if (null(columns_.user)) return reject(line, "NULL user id", raw);
+    if (null(columns_.user)) return reject_row("NULL user id");
     const auto user = trim(fields[columns_.user]);
-    if (user.empty()) return reject(line, "empty user id", raw);
-    if (null(columns_.item)) return reject(line, "NULL item id", raw);
+    if (user.empty()) return reject_row("empty user id");
+    if (null(columns_.item)) return reject_row("NULL item id");
     const auto item = trim(fields[columns_.item]);
-    if (item.empty()) return reject(line, "empty item id", raw);
-    if (null(columns_.rating)) return reject(line, "NULL rating", raw);
+    if (item.empty()) return reject_row("empty item id");
+    // An id never holds a line break or a quote: in a file such a field is a
+    // stray quote swallowing the lines after it. The rule holds for every
+    // source, so the same rows are kept whatever they came from.
+    for (const auto& [what, id] : {std::pair{"user", user}, std::pair{"item", item}}) {
+        if (id.find_first_of("\r\n") != std::string_view::npos)
+            return reject_row(fmt::format("{} id holds a line break (a stray quote?)", what));
+        if (id.find('"') != std::string_view::npos)
+            return reject_row(fmt::format("{} id holds a double quote (a stray quote?)", what));
+        if (id.find('\0') != std::string_view::npos) return reject_row(fmt::format("{} id holds a NUL byte", what));
+    }
+    if (null(columns_.rating)) return reject_row("NULL rating");
     const auto rating_text = trim(fields[columns_.rating]);
-    if (rating_text.empty()) return reject(line, "empty rating", raw);
+    if (rating_text.empty()) return reject_row("empty rating");
     const auto rating = parse_number(rating_text);
     if (!rating) {
         std::string with_point(rating_text);
         std::replace(with_point.begin(), with_point.end(), ',', '.');
         const bool decimal_comma = with_point != rating_text && parse_number(with_point).has_value();
-        return reject(line,
-                      fmt::format("rating {} is not a number{}", shown(rating_text),
-                                  decimal_comma ? " (decimal comma? write 4.5, not 4,5)" : ""),
-                      raw);
+        return reject_row(fmt::format("rating {} is not a number{}", shown(rating_text),
+                                      decimal_comma ? " (decimal comma? write 4.5, not 4,5)" : ""));
     }
     const auto value = static_cast<float>(*rating);
     if (!std::isfinite(*rating) || !std::isfinite(value))
-        return reject(line, fmt::format("rating {} is not finite", shown(rating_text)), raw);
+        return reject_row(fmt::format("rating {} is not finite", shown(rating_text)));
     if (options_.scale && (value < options_.scale->min || value > options_.scale->max))
-        return reject(line, fmt::format("rating {} is outside the declared scale {} to {}", shown(rating_text),
-                                        options_.scale->min, options_.scale->max),
-                      raw);
+        return reject_row(fmt::format("rating {} is outside the declared scale {} to {}", shown(rating_text),
+                                      options_.scale->min, options_.scale->max));
     double timestamp = 0.0;
     if (columns_.timestamp) {
-        if (null(*columns_.timestamp)) return reject(line, "NULL timestamp", raw);
+        if (null(*columns_.timestamp)) return reject_row("NULL timestamp");
         const auto text = trim(fields[*columns_.timestamp]);
-        if (text.empty()) return reject(line, "empty timestamp", raw);
+        if (text.empty()) return reject_row("empty timestamp");
         const auto parsed = parse_timestamp(text);
         if (!parsed)
-            return reject(line,
-                          fmt::format("timestamp {} is neither a number of epoch seconds nor an ISO-8601 date",
-                                      shown(text)),
-                          raw);
+            return reject_row(
+                fmt::format("timestamp {} is neither a number of epoch seconds nor an ISO-8601 date", shown(text)));
         timestamp = *parsed;
     }
     // Ids are interned only for kept rows, so rejects never create users or items.
@@ -677,6 +692,24 @@ std::unique_ptr<RowSource> Ingest::open_source() const {
     return std::make_unique<CsvSource>(options_.path, options_.delimiter, options_.progress);
 }
 
+// A rejects file at the rejects path was written by an earlier run when this
+// run rejected nothing: remove it, or say why it stays. Only a regular file
+// is ever removed: a rejects path naming a device (/dev/null), a pipe or a
+// folder is the caller's to keep.
+void Ingest::clear_stale_rejects() {
+    const std::string& path = rejects_.path();
+    std::error_code ec;
+    if (summary_.rejected > 0 || path.empty()) return;
+    const auto status = std::filesystem::status(path, ec);
+    if (std::filesystem::is_directory(status)) {
+        summary_.stale_rejects = fmt::format("left {} (a folder, not a rejects file)", path);
+        return;
+    }
+    if (!std::filesystem::is_regular_file(status)) return;
+    if (std::filesystem::remove(path, ec)) summary_.stale_rejects = "removed " + path;
+    else summary_.stale_rejects = fmt::format("left {} ({})", path, ec ? ec.message() : "not removed");
+}
+
 // Whether the first row is a header: as declared; yes when a column is
 // named; otherwise yes when its rating field is not a number.
 bool Ingest::detect_header(const std::vector<std::string>& first) const {
@@ -716,6 +749,7 @@ void Ingest::read_rows(RowSource& source) {
     expected_fields_ = first.size();
     keep_timestamps_ = columns_.timestamp.has_value() && options_.duplicates == DuplicatePolicy::latest;
 
+    if (!names && has_header) summary_.header_lines = row.end_position - row.position + 1;
     if (!names && !has_header) take_row(row);
     while (source.next(row)) {
         if (row.blank) {
@@ -724,6 +758,7 @@ void Ingest::read_rows(RowSource& source) {
         }
         take_row(row);
     }
+    summary_.lines_read = summary_.header_lines + summary_.blank_lines + summary_.row_lines;
 }
 
 // After the last row: too many rejects, nothing kept, or too many ratings.
@@ -769,6 +804,7 @@ IngestResult Ingest::run() {
     read_rows(*source_);
     rejects_.close();
     if (summary_.rejected > 0) summary_.rejects_path = rejects_.path();
+    clear_stale_rejects();
     const SourceFacts facts = source_->facts();
     summary_.fingerprint = facts.fingerprint;
 
@@ -786,6 +822,11 @@ std::string describe(const IngestSummary& s) {
     if (s.rejected > 0)
         out += s.rejects_path.empty() ? " (rejects not saved)" : fmt::format(" (rejects in {})", s.rejects_path);
     if (s.blank_lines > 0) out += fmt::format("; skipped {} blank lines", s.blank_lines);
+    if (s.row_lines != s.rows_read)
+        out += fmt::format("; {} lines: {} header, {} blank, {} in rows ({} in rejected rows)", s.lines_read,
+                           s.header_lines, s.blank_lines, s.row_lines, s.rejected_lines);
+    if (!s.stale_rejects.empty())
+        out += fmt::format("; {}: a rejects file from an earlier run", s.stale_rejects);
     return out;
 }
 

@@ -18,9 +18,19 @@
 //
 // Rejects file: TSV with a header line "line<TAB>reason<TAB>record" ("row"
 // for a query: the 1-based result row, and the record as column=value
-// pairs); line is the 1-based physical line where the record starts; a tab, CR, LF or
-// backslash inside reason or record is written as \t, \r, \n or \\ (so one
-// reject is one line).
+// pairs); line is the 1-based physical line where the record starts (a
+// reason names the span "lines A-B" of a record over several lines); a tab,
+// CR, LF, NUL or backslash inside reason or record is written as \t, \r, \n,
+// \0 or \\ (so one reject is one line and the file holds no NUL byte). A run
+// that rejects nothing removes a rejects file left at that path by an
+// earlier run.
+//
+// Lines: a quoted field may hold line breaks, but a record spanning more than
+// 8 lines is taken for a stray quote: its first line is rejected and reading
+// resumes on the next. An id (customer or product) holding a line break or a
+// double quote is rejected with the lines it covers, whatever the source. A
+// file in UTF-16 or UTF-32 (by its byte-order mark or its NUL bytes) is
+// refused by name.
 //
 // Memory: the input streams through one 4 MiB buffer; each kept row costs
 // 12 bytes while reading (+8 for its timestamp under the latest policy) and
@@ -44,25 +54,25 @@ enum class DuplicatePolicy {
 };
 
 struct IngestOptions {
-    std::string path;                   // file to read; "-" is standard input; "sqlite:FILE"; "postgresql://..."
-    std::string query;                  // the SELECT for a database (required there, refused for a file)
-    std::optional<char> delimiter;      // nullopt: detect from the first line (',', '\t', ';' or '|')
-    std::optional<bool> has_header;     // nullopt: detect (first row has a non-numeric rating field;
+    std::string path{};                   // file to read; "-" is standard input; "sqlite:FILE"; "postgresql://..."
+    std::string query{};                  // the SELECT for a database (required there, refused for a file)
+    std::optional<char> delimiter{};      // nullopt: detect from the first line (',', '\t', ';' or '|')
+    std::optional<bool> has_header{};     // nullopt: detect (first row has a non-numeric rating field;
                                         // naming any column implies a header)
     // Columns by header name (exact, else ignoring case and punctuation) or by
     // 0-based index given as digits ("0", "2"). Defaults: with a header, the
     // header name that matches user/customer/buyer/..., item/product/sku/...,
     // rating/score/stars/... (a header with no match is a DataError naming the
     // option to pass, never a guess); without a header, indices 0, 1, 2.
-    std::string user_column;     // --customer-column
-    std::string item_column;     // --product-column
-    std::string rating_column;   // --rating-column
+    std::string user_column{};     // --customer-column
+    std::string item_column{};     // --product-column
+    std::string rating_column{};   // --rating-column
     // Empty: none, unless the header has "timestamp"/"time"/"date"/... .
     // Values: epoch seconds (any finite number) or ISO-8601 YYYY-MM-DD with an
     // optional [T ]hh:mm[:ss[.fff]] and Z/+hh:mm offset (a date alone is
     // midnight UTC); anything else is rejected.
-    std::string timestamp_column;
-    std::optional<RatingScale> scale;   // declared scale: ratings outside are rejected
+    std::string timestamp_column{};
+    std::optional<RatingScale> scale{};   // declared scale: ratings outside are rejected
     DuplicatePolicy duplicates = DuplicatePolicy::latest;
     // In [0, 1]. Above this the ingest throws DataError. Below 0.5, a file whose first
     // 1000+ rows are mostly rejected stops early (a wrong delimiter or column).
@@ -70,24 +80,34 @@ struct IngestOptions {
     // Empty: "<path>.rejects.tsv" when any row is rejected ("-" input: none;
     // sqlite:FILE: "FILE.rejects.tsv"; PostgreSQL: "<database>.rejects.tsv"
     // in the working directory).
-    std::string rejects_path;
+    std::string rejects_path{};
     // Called after each buffer fill (every 4 MiB) with bytes consumed so far
     // and total (0 if unknown); for a database every 65,536 rows with rows
     // read and 0.
-    std::function<void(uint64_t bytes_done, uint64_t bytes_total)> progress;
+    std::function<void(uint64_t bytes_done, uint64_t bytes_total)> progress{};
 };
 
 struct IngestSummary {
-    uint64_t rows_read = 0;        // data rows (header excluded, blank lines excluded)
+    uint64_t rows_read = 0;        // data rows (records; header excluded, blank lines excluded)
     uint64_t kept = 0;             // ratings in the result
     uint64_t rejected = 0;         // rows written to the rejects file
     uint64_t merged_duplicates = 0;// rows folded into another by the duplicate policy
     uint64_t blank_lines = 0;      // skipped, not counted as rows
+    // Physical lines: a row whose quoted field holds line breaks covers several.
+    uint64_t lines_read = 0;       // every line of the file (header, blank lines and rows)
+    uint64_t header_lines = 0;     // lines of the header row (0 without one)
+    uint64_t row_lines = 0;        // lines covered by rows
+    uint64_t rejected_lines = 0;   // lines covered by rejected rows (part of row_lines)
     std::string rejects_path;      // where rejects went ("" if none)
+    // A rejects file from an earlier run at the rejects path when this run
+    // rejected nothing: "removed" or "left (<reason>)"; empty when there was none.
+    std::string stale_rejects;
     char delimiter = ',';          // 0 for a database
     bool had_header = false;
     std::string fingerprint;       // xxh3-64 hex of the file bytes (of a query's column names and rows), for the posterior's metadata
-    // rows_read == kept + rejected + merged_duplicates always holds.
+    // rows_read == kept + rejected + merged_duplicates and
+    // lines_read == header_lines + blank_lines + row_lines always hold (for
+    // a query a row is one line and there is no header line).
 };
 
 struct IngestResult {
@@ -115,7 +135,10 @@ struct IngestResult {
 // The scale is the declared one (declared = true) or the observed min/max.
 IngestResult ingest_ratings(const IngestOptions& options);
 
-// Human summary, one line: "read 1000 rows: kept 990, rejected 4, merged 6 duplicates (rejects in x.rejects.tsv)".
+// Human summary, one line: "read 1000 rows: kept 990, rejected 4, merged 6
+// duplicates (rejects in x.rejects.tsv)", then "; 1003 lines: 1 header, 2
+// blank, 1000 in rows (5 in rejected rows)" when rows span several lines or
+// lines were skipped, and what became of a stale rejects file.
 std::string describe(const IngestSummary& summary);
 
 }  // namespace credence

@@ -67,6 +67,7 @@ void QueryRowBuilder::finish_row(SourceRow& row) {
     row.is_null = nulls_;
     row.raw = raw_;
     row.position = rows_;
+    row.end_position = rows_;
     row.problem = {};
     row.blank = false;
 }

@@ -30,6 +30,9 @@ struct SourceRow {
     // database row as "column=value; ..." (NULL written as NULL).
     std::string_view raw;
     uint64_t position = 0;      // 1-based: physical line (file) or result row (query)
+    // Where the row ends: the last physical line of a file's record whose
+    // quoted field spans lines; == position otherwise (always for a query).
+    uint64_t end_position = 0;
     std::string_view problem;   // why a file's record is unreadable (static text); empty when fine
     bool blank = false;         // a blank line of a file: skipped and counted, not a row
 };

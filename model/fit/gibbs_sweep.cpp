@@ -4,14 +4,19 @@
 
 #include <algorithm>
 #include <cmath>
+#include <cstdlib>
+#include <cstring>
 #include <limits>
+#include <new>
 #include <stdexcept>
 #include <string>
 
+#include "model/math/cpu_level.hpp"
 #include "model/math/distributions.hpp"
 #include "model/error.hpp"
 #include "model/fit/group_moves.hpp"
 #include "model/fit/normal_wishart.hpp"
+#include "model/fit/row_kernels.hpp"
 
 namespace credence {
 
@@ -35,11 +40,6 @@ struct SidePass {
     double* sse_rows;         // per-row squared error with the new draws; null to skip
 };
 
-// Ratings of one row are gathered in blocks of this many columns, so the
-// per-thread buffer stays small (d x 2048 doubles) even for a row with
-// millions of ratings, while each block is still large enough for SYRK speed.
-constexpr Eigen::Index gather_block = 2048;
-
 void start_row(const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_precision_mean,
                RowWorkspace& work) {
     work.p = prior_precision;
@@ -53,6 +53,13 @@ void add_ratings(const Eigen::Ref<const Eigen::MatrixXd>& x, const Eigen::Ref<co
     work.rhs.noalias() += tau * (x * y);
 }
 
+std::string not_positive_definite(const RowContext& context, double smallest_diagonal) {
+    return "sampler: chain " + std::to_string(context.chain) + ", sweep " + std::to_string(context.sweep) + ", " +
+           context.side + " row " + std::to_string(context.row) +
+           ": the conditional precision is not positive definite " + "or the draw is not finite (smallest diagonal " +
+           std::to_string(smallest_diagonal) + "); check the data for extreme values and the prior and noise options";
+}
+
 void finish_row(Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::VectorXd& out) {
     work.llt.compute(work.p);
     if (work.llt.info() == Eigen::Success && work.llt.matrixLLT().diagonal().allFinite()) {
@@ -60,45 +67,45 @@ void finish_row(Rng& rng, const RowContext& context, RowWorkspace& work, Eigen::
         draw_normal_from_precision_factor(rng, work.mean, work.llt.matrixLLT(), out);
         if (out.allFinite()) return;
     }
-    throw NumericError("sampler: chain " + std::to_string(context.chain) + ", sweep " +
-                       std::to_string(context.sweep) + ", " + context.side + " row " +
-                       std::to_string(context.row) + ": the conditional precision is not positive definite " +
-                       "or the draw is not finite (smallest diagonal " +
-                       std::to_string(work.p.diagonal().minCoeff()) +
-                       "); check the data for extreme values and the prior and noise options");
+    throw NumericError(not_positive_definite(context, work.p.diagonal().minCoeff()));
 }
 
-// Per-thread scratch of a row pass. The gathered block is (d + 1) x n: the
-// other side's factors (and a 1 for the bias) with the target as the last
-// row, so one SYRK into the (d + 1) x (d + 1) lower triangle of `gram` yields
-// both X X^T (top-left d x d) and (X y)^T (row d): the right-hand side costs
-// no separate pass over the block.
-struct PassWorkspace {
-    Eigen::MatrixXd xy;    // [d + 1][gather_block], column-major, one column per rating
-    Eigen::MatrixXd gram;  // [d + 1][d + 1], lower triangle
-    Eigen::VectorXd w, residual;
-    RowWorkspace row;
+// Per-thread scratch of the row kernels: 64-byte aligned, zero-filled once.
+struct KernelScratch {
+    double* data = nullptr;
+    explicit KernelScratch(uint32_t rank) {
+        const size_t bytes = (row_kernels::scratch_doubles(rank) * sizeof(double) + 63) / 64 * 64;
+        data = static_cast<double*>(std::aligned_alloc(64, bytes));
+        if (!data) throw std::bad_alloc();
+        std::memset(data, 0, bytes);
+    }
+    ~KernelScratch() { std::free(data); }
+    KernelScratch(const KernelScratch&) = delete;
+    KernelScratch& operator=(const KernelScratch&) = delete;
 };
 
-// Writes column j of the block: the other row's factors, its bias slot and the target.
-inline void gather_rating(const SidePass& s, const CsrMatrix& csr, uint64_t at, double g, uint32_t rank, bool biases,
-                          double* column) {
-    const uint32_t other = csr.index[at];
-    const float* f = s.other_factors + static_cast<size_t>(other) * rank;
-    for (uint32_t k = 0; k < rank; ++k) column[k] = f[k];
-    double target = double(csr.value[at]) - g;
-    if (biases) {
-        column[rank] = 1.0;
-        target -= s.other_bias[other];
-    }
-    column[rank + (biases ? 1 : 0)] = target;
-}
-
+// Draws every row of one side with the active level's kernels
+// (model/fit/row_kernels.hpp); rows in parallel, each from its own stream.
 void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_mean,
                double tau, double g, uint32_t rank, bool biases, const SweepKey& key, int threads) {
     const Eigen::Index d = rank + (biases ? 1 : 0);
     const Eigen::VectorXd prior_pm = prior_precision * prior_mean;
+    const Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> prior_rows = prior_precision;
     const CsrMatrix& csr = *s.csr;
+    row_kernels::SideData side;
+    side.offsets = csr.offsets.data();
+    side.index = csr.index.data();
+    side.value = csr.value.data();
+    side.nnz = csr.nnz();
+    side.other_factors = s.other_factors;
+    side.other_bias = s.other_bias;
+    side.rank = rank;
+    side.biases = biases;
+    side.global_mean = g;
+    side.tau = tau;
+    side.prior_precision = prior_rows.data();
+    side.prior_pm = prior_pm.data();
+    const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
     const auto rows = static_cast<int64_t>(csr.num_rows);
     // The first failure by row order wins, so the message does not depend on scheduling.
     int64_t failed_row = std::numeric_limits<int64_t>::max();
@@ -107,57 +114,25 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
 
 #pragma omp parallel num_threads(team)
     {
-        PassWorkspace ws;
-        ws.xy.resize(d + 1, gather_block);
-        ws.gram.resize(d + 1, d + 1);
-        ws.w.resize(d);
-        ws.residual.resize(gather_block);
-        ws.row.p.setZero(d, d);  // only the lower triangle is written and read
-        ws.row.rhs.resize(d);
-        Eigen::VectorXd out(d);
+        KernelScratch scratch(rank);
+        std::vector<double> normals(static_cast<size_t>(d));
 #pragma omp for schedule(dynamic, 32)
         for (int64_t row = 0; row < rows; ++row) {
-            const uint64_t begin = csr.offsets[row], end = csr.offsets[row + 1];
-            const bool one_block = end - begin <= uint64_t(gather_block);
-            ws.gram.setZero();
-            for (uint64_t block = begin; block < end; block += gather_block) {
-                const auto n = static_cast<Eigen::Index>(std::min<uint64_t>(gather_block, end - block));
-                for (Eigen::Index j = 0; j < n; ++j) gather_rating(s, csr, block + j, g, rank, biases, &ws.xy(0, j));
-                ws.gram.selfadjointView<Eigen::Lower>().rankUpdate(ws.xy.leftCols(n));  // SYRK
-            }
-            ws.row.p.triangularView<Eigen::Lower>() = prior_precision;
-            ws.row.p.triangularView<Eigen::Lower>() += tau * ws.gram.topLeftCorner(d, d);
-            ws.row.rhs = prior_pm + tau * ws.gram.row(d).head(d).transpose();
             Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, s.block, static_cast<uint64_t>(row));
-            try {
-                finish_row(rng, RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, ws.row, out);
-            } catch (const NumericError& e) {
+            for (double& z : normals) z = rng.normal();
+            double smallest_diagonal = 0.0;
+            const bool ok = kernels.draw_row(side, static_cast<uint64_t>(row), normals.data(), scratch.data,
+                                             s.factors + static_cast<size_t>(row) * rank,
+                                             biases ? s.bias + row : nullptr, s.sse_rows ? s.sse_rows + row : nullptr,
+                                             &smallest_diagonal);
+            if (!ok) {
+                const std::string message = not_positive_definite(
+                    RowContext{key.chain, key.sweep, s.side, static_cast<uint64_t>(row)}, smallest_diagonal);
 #pragma omp critical(credence_row_failure)
                 if (row < failed_row) {
                     failed_row = row;
-                    failure = e.what();
+                    failure = message;
                 }
-                continue;
-            }
-            float* mine = s.factors + static_cast<size_t>(row) * rank;
-            for (uint32_t k = 0; k < rank; ++k) mine[k] = static_cast<float>(out[k]);
-            if (biases) s.bias[row] = static_cast<float>(out[rank]);
-            if (s.sse_rows) {
-                // Residuals with the stored float32 values, as predictions will see them.
-                for (uint32_t k = 0; k < rank; ++k) ws.w[k] = mine[k];
-                if (biases) ws.w[rank] = s.bias[row];
-                double sse = 0.0;
-                for (uint64_t block = begin; block < end; block += gather_block) {
-                    const auto n = static_cast<Eigen::Index>(std::min<uint64_t>(gather_block, end - block));
-                    if (!one_block)  // a long row: the block buffer holds only its last part
-                        for (Eigen::Index j = 0; j < n; ++j)
-                            gather_rating(s, csr, block + j, g, rank, biases, &ws.xy(0, j));
-                    auto r = ws.residual.head(n);
-                    r = ws.xy.block(d, 0, 1, n).transpose();
-                    r.noalias() -= ws.xy.topLeftCorner(d, n).transpose() * ws.w;
-                    sse += r.squaredNorm();
-                }
-                s.sse_rows[row] = sse;
             }
         }
     }

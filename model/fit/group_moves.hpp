@@ -35,4 +35,60 @@ namespace credence {
 // precision is not positive definite. Serial: O((U + I) K^2) work.
 void apply_group_moves(const FitOptions& options, const SweepKey& key, GibbsState& state);
 
+// ---- The moves one at a time. apply_group_moves() is exactly the
+// composition below; each move is split into its conditional (what to draw,
+// computed from the state and the prior) and its transformation (how a drawn
+// group element moves the state). The joint-distribution test
+// (tests/model/fit/test_sampler.cpp) uses these to break one move at a time
+// and show that it notices. All need a state as for apply_group_moves();
+// none throws unless stated.
+
+// A Gaussian conditional in information form: precision P and h = P * mean.
+struct ShiftConditional {
+    Eigen::MatrixXd precision;  // K x K (1 x 1 for the bias shift), symmetric
+    Eigen::VectorXd precision_mean;
+};
+
+// The user shift's d (precision beta0 Lambda_U + lambda_c sum_i V_i V_i^T,
+// precision-mean -beta0 Lambda_U mu_U + lambda_c sum_i c_i V_i); the item
+// shift's e mirrors it. Need biases.
+ShiftConditional user_shift_conditional(const FitOptions& options, const GibbsState& state);
+ShiftConditional item_shift_conditional(const FitOptions& options, const GibbsState& state);
+// U_u += d (every u), mu_U += d, c_i -= d . V_i (every i); and the mirror.
+void shift_users(GibbsState& state, const Eigen::VectorXd& d);
+void shift_items(GibbsState& state, const Eigen::VectorXd& e);
+
+// The bias shift's a (1 x 1): precision lambda_b U + lambda_c I,
+// precision-mean -lambda_b sum b + lambda_c sum c. Needs biases.
+ShiftConditional bias_shift_conditional(const GibbsState& state);
+// b_u += a, c_i -= a.
+void shift_biases(GibbsState& state, double a);
+
+// Draws x ~ Normal(P^-1 h, P^-1) from `rng`. Throws NumericError (naming
+// the key's chain and sweep and `move`) when P is not positive definite.
+Eigen::VectorXd draw_shift(const ShiftConditional& conditional, Rng& rng, const SweepKey& key, const char* move);
+
+// Scaling of factor coordinate k (U[:, k] *= s, V[:, k] /= s): t = s^2 has
+// log(t) = log_eta + y with y ~ exp(-omega cosh y) (needs k < K).
+struct ScaleConditional {
+    double log_eta = 0.0;  // log sqrt(Lambda_U,kk / Lambda_V,kk)
+    double omega = 1.0;    // sqrt(Lambda_U,kk Lambda_V,kk) / w0_scale
+};
+ScaleConditional scale_conditional(const FitOptions& options, const GibbsState& state, uint32_t k);
+// Draws y with density proportional to exp(-omega cosh y); needs omega > 0.
+double draw_log_symmetric_gig(Rng& rng, double omega);
+// U[:, k] *= s, V[:, k] /= s, with mu and Lambda mapped alike (needs s > 0).
+void scale_factor_axis(GibbsState& state, uint32_t k, double s);
+
+// Shear A = I + c e_i e_j^T (i != j, both < K): c ~ Normal(mean, sd^2).
+struct ShearConditional {
+    double mean = 0.0;  // (Lambda_U,ij - Lambda_V,ij) / (Lambda_U,ii + Lambda_V,jj)
+    double sd = 1.0;    // sqrt(w0_scale / (Lambda_U,ii + Lambda_V,jj))
+};
+ShearConditional shear_conditional(const FitOptions& options, const GibbsState& state, uint32_t i, uint32_t j);
+// U[:, i] += c U[:, j], V[:, j] -= c V[:, i], with mu and Lambda mapped alike.
+void shear_factor_axes(GibbsState& state, uint32_t i, uint32_t j, double c);
+// Makes Lambda_U and Lambda_V exactly symmetric again after the maps.
+void symmetrize_precisions(GibbsState& state);
+
 }  // namespace credence

@@ -2,6 +2,7 @@
 
 #include <stdexcept>
 #include <string>
+#include <vector>
 
 #include "model/math/distributions.hpp"
 #include "model/error.hpp"
@@ -17,13 +18,22 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
     for (uint64_t r = 0; r < count; ++r)
         for (uint32_t k = 0; k < dim; ++k) st.mean[k] += rows[r * dim + k];
     st.mean /= st.n;
-    Eigen::VectorXd d(dim);
+    // Row-major lower triangle in a plain buffer, so the inner loop runs
+    // over contiguous entries and vectorizes (each entry still sums its
+    // terms in row order). A sampler sweep calls this on every factor row.
+    std::vector<double> d(dim), lower(size_t(dim) * dim, 0.0);
+    const double* mean = st.mean.data();
     for (uint64_t r = 0; r < count; ++r) {
-        for (uint32_t k = 0; k < dim; ++k) d[k] = rows[r * dim + k] - st.mean[k];
-        for (uint32_t j = 0; j < dim; ++j)
-            for (uint32_t k = 0; k <= j; ++k) st.scatter(j, k) += d[j] * d[k];
+        const float* row = rows + r * dim;
+        for (uint32_t k = 0; k < dim; ++k) d[k] = row[k] - mean[k];
+        for (uint32_t j = 0; j < dim; ++j) {
+            double* out = lower.data() + size_t(j) * dim;
+            const double dj = d[j];
+            for (uint32_t k = 0; k <= j; ++k) out[k] += dj * d[k];
+        }
     }
-    st.scatter.triangularView<Eigen::StrictlyUpper>() = st.scatter.transpose();
+    for (uint32_t j = 0; j < dim; ++j)
+        for (uint32_t k = 0; k <= j; ++k) st.scatter(j, k) = st.scatter(k, j) = lower[size_t(j) * dim + k];
     return st;
 }
 

@@ -80,9 +80,21 @@ struct Posterior {
     // Mean of the rating under sample s (no noise): global mean + biases + u.v
     float sample_prediction(uint32_t s, uint32_t u, uint32_t i) const;
 
-    // Checks every size and invariant above; throws FormatError naming the
-    // first one that fails. Called by the file reader and by tests.
+    // Checks every size and invariant above, and that every stored number is
+    // finite (precisions positive, precision matrices with a positive
+    // diagonal); throws FormatError naming the first one that fails and its
+    // section. Called by the file reader and by tests.
     void validate() const;
 };
+
+// A copy of `p` without one user: their id, factors, bias and rated list
+// are gone, so nothing personal to them remains, and users after them move
+// down one index. Everything else is copied unchanged: the item factors,
+// biases and hyperparameters still carry that user's influence on the fit
+// until the model is refitted without their ratings. Probe pairs of that
+// user leave the convergence figures (diagnostics_json) and their id leaves
+// its warnings. Throws std::out_of_range for an index beyond the model (a
+// caller maps ids first, so that is a bug).
+Posterior without_user(const Posterior& p, uint32_t user);
 
 }  // namespace credence

@@ -7,20 +7,25 @@
 #include "model/posterior/posterior_file.hpp"
 
 #include <fcntl.h>
+#include <signal.h>
 #include <sys/stat.h>
 #include <unistd.h>
 #include <xxhash.h>
 
 #include <atomic>
 #include <bit>
+#include <cctype>
 #include <cerrno>
+#include <csignal>
 #include <cstring>
+#include <mutex>
 #include <filesystem>
 #include <limits>
 #include <optional>
 #include <stdexcept>
 #include <string_view>
 #include <unordered_set>
+#include <utility>
 #include <vector>
 
 #include <nlohmann/json.hpp>
@@ -162,6 +167,59 @@ std::string encode_metadata(const Posterior& p) {
     return out;
 }
 
+// ---- temporary files and signals
+//
+// While a temporary file exists its path sits in one of these slots; SIGINT
+// and SIGTERM then unlink every listed file before the signal takes its
+// previous course (re-raised with the handler that was there before). The
+// handler only reads the slots and calls unlink, sigaction and raise, which
+// are async-signal-safe (POSIX.1-2017 section 2.4.3).
+constexpr int kTempSlots = 16;
+std::atomic<const char*> g_temp_paths[kTempSlots];
+std::mutex g_signal_mutex;       // guards g_temp_files_open and the saved actions
+int g_temp_files_open = 0;
+struct sigaction g_previous_int {};
+struct sigaction g_previous_term {};
+
+extern "C" void remove_temporaries_then_reraise(int sig) {
+    for (auto& slot : g_temp_paths)
+        if (const char* path = slot.exchange(nullptr)) ::unlink(path);
+    ::sigaction(sig, sig == SIGINT ? &g_previous_int : &g_previous_term, nullptr);
+    ::raise(sig);
+}
+
+// Lists `path` for the handler (installing it for the first file); returns
+// the slot, or -1 when every slot is taken (the file is then only removed by
+// the destructor or by a later write to the same target).
+int watch_temporary(const char* path) {
+    std::lock_guard lock(g_signal_mutex);
+    int slot = -1;
+    for (int k = 0; k < kTempSlots && slot < 0; ++k) {
+        const char* empty = nullptr;
+        if (g_temp_paths[k].compare_exchange_strong(empty, path)) slot = k;
+    }
+    if (slot >= 0 && g_temp_files_open++ == 0) {
+        struct sigaction ours {};
+        ours.sa_handler = remove_temporaries_then_reraise;
+        sigemptyset(&ours.sa_mask);
+        ::sigaction(SIGINT, &ours, &g_previous_int);
+        ::sigaction(SIGTERM, &ours, &g_previous_term);
+    }
+    return slot;
+}
+
+void unwatch_temporary(int slot) {
+    if (slot < 0) return;
+    std::lock_guard lock(g_signal_mutex);
+    g_temp_paths[slot].store(nullptr);
+    if (--g_temp_files_open == 0) {
+        ::sigaction(SIGINT, &g_previous_int, nullptr);
+        ::sigaction(SIGTERM, &g_previous_term, nullptr);
+    }
+}
+
+std::string temporary_prefix(const std::string& base) { return "." + base + ".tmp-"; }
+
 // Owns the temporary file until commit; removes it on destruction otherwise.
 class TempFile {
 public:
@@ -169,11 +227,15 @@ public:
         static std::atomic<uint64_t> counter{0};
         for (int attempt = 0; attempt < 64; ++attempt) {
             const uint64_t n = counter.fetch_add(1);
-            path_ = dir / ("." + base + ".tmp-" + std::to_string(::getpid()) + "-" + std::to_string(n));
+            path_ = dir / (temporary_prefix(base) + std::to_string(::getpid()) + "-" + std::to_string(n));
+            path_text_ = path_.string();
+            slot_ = watch_temporary(path_text_.c_str());
             // 0666 so the final file gets the usual umask-derived permissions.
             fd_ = ::open(path_.c_str(), O_WRONLY | O_CREAT | O_EXCL | O_CLOEXEC, 0666);
             if (fd_ >= 0) return;
-            if (errno != EEXIST) break;
+            const int err = errno;
+            unwatch_temporary(std::exchange(slot_, -1));
+            if (err != EEXIST) break;
         }
         throw FileError("cannot create a temporary file in " + dir.string() + ": " + errno_text(errno));
     }
@@ -182,6 +244,7 @@ public:
     ~TempFile() {
         if (fd_ >= 0) ::close(fd_);
         if (!committed_) ::unlink(path_.c_str());
+        unwatch_temporary(slot_);
     }
 
     void write_all(const void* data, uint64_t bytes) {
@@ -214,9 +277,24 @@ public:
 
 private:
     std::filesystem::path path_;
+    std::string path_text_;  // the path the signal handler sees (stable while listed)
     int fd_ = -1;
+    int slot_ = -1;
     bool committed_ = false;
 };
+
+// A temporary file of `base` (".<base>.tmp-<pid>-<n>") and the process that
+// wrote it; nullopt for any other name.
+std::optional<pid_t> temporary_writer(const std::string& name, const std::string& base) {
+    const std::string prefix = temporary_prefix(base);
+    if (name.rfind(prefix, 0) != 0) return std::nullopt;
+    const std::string rest = name.substr(prefix.size());
+    const size_t dash = rest.find('-');
+    if (dash == 0 || dash == std::string::npos) return std::nullopt;
+    for (size_t k = 0; k < rest.size(); ++k)
+        if (k != dash && !std::isdigit(static_cast<unsigned char>(rest[k]))) return std::nullopt;
+    return static_cast<pid_t>(std::stoll(rest.substr(0, dash)));
+}
 
 void sync_directory(const std::filesystem::path& dir) {
     const int fd = ::open(dir.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
@@ -733,6 +811,47 @@ Posterior read_posterior_file(const std::string& path) {
 }
 
 }  // namespace
+
+std::vector<std::string> prepare_posterior_output(const std::string& path) {
+    namespace fs = std::filesystem;
+    const fs::path target(path);
+    fs::path dir = target.parent_path();
+    if (dir.empty()) dir = ".";
+    const std::string base = target.filename().string();
+    const auto refuse = [&](const std::string& why) {
+        throw FileError("cannot write " + path + ": " + why + "; choose another --out");
+    };
+    if (base.empty() || base == "." || base == "..") refuse("the path does not name a file");
+    std::error_code ec;
+    if (!fs::is_directory(dir, ec)) refuse("directory " + dir.string() + " does not exist");
+    if (fs::exists(target, ec) && !fs::is_regular_file(target, ec)) refuse("it exists and is not a regular file");
+
+    // Temporary files of this target left by processes that no longer run.
+    std::vector<std::string> notes;
+    for (const auto& entry : fs::directory_iterator(dir, ec)) {
+        const auto writer = temporary_writer(entry.path().filename().string(), base);
+        if (!writer || *writer == ::getpid()) continue;
+        const uint64_t bytes = entry.is_regular_file(ec) ? entry.file_size(ec) : 0;
+        if (::kill(*writer, 0) == 0 || errno != ESRCH) {
+            notes.push_back("left " + entry.path().string() + ": process " + std::to_string(*writer) +
+                            " that is writing it still runs");
+        } else if (fs::remove(entry.path(), ec)) {
+            notes.push_back("removed " + entry.path().string() + " (" + std::to_string(bytes) +
+                            " bytes), a temporary file left by an interrupted write (process " +
+                            std::to_string(*writer) + ")");
+        } else {
+            notes.push_back("could not remove " + entry.path().string() + ", a temporary file left by an "
+                            "interrupted write: " + ec.message());
+        }
+    }
+    // Can a file be created (and so renamed) in the directory? Try it.
+    const fs::path probe = dir / (temporary_prefix(base) + std::to_string(::getpid()) + "-probe");
+    const int fd = ::open(probe.c_str(), O_WRONLY | O_CREAT | O_EXCL | O_CLOEXEC, 0600);
+    if (fd < 0) refuse("cannot create files in " + dir.string() + " (" + errno_text(errno) + ")");
+    ::close(fd);
+    ::unlink(probe.c_str());
+    return notes;
+}
 
 uint64_t write_posterior(const Posterior& posterior, const std::string& path) {
     check_writable(posterior);

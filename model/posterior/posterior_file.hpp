@@ -4,6 +4,7 @@
 #pragma once
 #include <cstdint>
 #include <string>
+#include <vector>
 
 #include "model/posterior/posterior.hpp"
 
@@ -13,7 +14,9 @@ inline constexpr uint32_t kPosteriorFormatVersion = 1;
 
 // Writes `posterior` to `path` atomically: bytes go to a temporary file in
 // the same directory, which is flushed, fsync'd and renamed over `path` (and
-// the directory fsync'd). On any failure the temporary file is removed, the
+// the directory fsync'd). SIGINT or SIGTERM during the write remove the
+// temporary file before the signal takes effect (the previous handler, or
+// the default, then runs). On any failure the temporary file is removed, the
 // previous file under `path` (if any) is untouched, and FileError is thrown
 // ("cannot write <path>: <reason>"). A posterior that fails
 // Posterior::validate(), repeats an id or carries invalid JSON is refused
@@ -21,6 +24,15 @@ inline constexpr uint32_t kPosteriorFormatVersion = 1;
 // caller: the sampler builds consistent posteriors). Returns the number of
 // bytes written.
 uint64_t write_posterior(const Posterior& posterior, const std::string& path);
+
+// Prepares `path` for write_posterior before the work that produces the
+// posterior (a fit checks its --out before sampling): the directory exists,
+// a file can be created in it, and `path` is not a directory or other
+// non-regular file. Removes temporary files of this target left by writers
+// that no longer run (killed outright) and returns one line per such file:
+// what was removed, or left and why. Throws FileError ("cannot write
+// <path>: ...; choose another --out") when the file could not be written.
+std::vector<std::string> prepare_posterior_output(const std::string& path);
 
 // Reads and fully validates a posterior file: magic, version, section table,
 // every section's checksum and size, and Posterior::validate(). Throws

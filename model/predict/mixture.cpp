@@ -2,7 +2,7 @@
 //
 // Mixture quantiles: every component quantile q_s = m_s + z_p / sqrt(tau_s)
 // has F_s(q_s) = p, so F(min_s q_s) <= p <= F(max_s q_s) for the mixture CDF F
-// (an average of the F_s). That bracket is refined by Newton steps on F,
+// (an average of the F_s). That bracket is refined by Halley steps on F,
 // falling back to bisection whenever a step leaves the bracket. Upper-half
 // probabilities are solved on the mirrored mixture so that 1 - p never
 // suffers cancellation.
@@ -16,15 +16,14 @@
 #include <string>
 #include <vector>
 
-#include "model/predict/mixture.hpp"
-
 #include "model/math/standard_normal.hpp"
 
 namespace credence {
 
 namespace {
 
-void check_sizes(std::span<const double> m, std::span<const float> tau) {
+template <class Precision>
+void check_sizes(std::span<const double> m, std::span<const Precision> tau) {
     if (m.empty() || m.size() != tau.size())
         throw std::invalid_argument("mixture needs as many noise precisions as means, and at least one (got " +
                                     std::to_string(m.size()) + " means, " + std::to_string(tau.size()) +
@@ -34,7 +33,8 @@ void check_sizes(std::span<const double> m, std::span<const float> tau) {
 // Solves mean_s Phi(sqrt(tau_s) * (y - sign * m_s)) = target for y. With
 // sign = -1 this is the mirrored mixture, whose CDF at -x is the survival
 // function of the original at x.
-double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, double sign, double target) {
+template <class Precision>
+double solve_mixture_cdf(std::span<const double> m, std::span<const Precision> tau, double sign, double target) {
     const size_t S = m.size();
     const double inv_S = 1.0 / static_cast<double>(S);
     const double z = normal_quantile(target);
@@ -50,36 +50,42 @@ double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, 
         start += q;
     }
     start *= inv_S;
-    // F(y) - target, and with it the derivative when Newton needs it.
-    auto eval = [&](double y, double& density) {
-        double cdf = 0.0, pdf = 0.0;
+    // F(y) - target, with its first and second derivatives (the density and
+    // its slope: d/dy phi(t) = -sqrt(tau) t phi(t)).
+    auto eval = [&](double y, double& density, double& slope) {
+        double cdf = 0.0, pdf = 0.0, dpdf = 0.0;
         for (size_t s = 0; s < S; ++s) {
             const double st = root_tau[s];
             const double t = st * (y - sign * m[s]);
             cdf += normal_cdf(t);
-            pdf += st * std::exp(-0.5 * t * t);
+            const double g = st * std::exp(-0.5 * t * t);
+            pdf += g;
+            dpdf -= st * t * g;
         }
-        density = pdf * inv_S / std::sqrt(2.0 * std::numbers::pi);
+        const double scale = inv_S / std::sqrt(2.0 * std::numbers::pi);
+        density = pdf * scale;
+        slope = dpdf * scale;
         return cdf * inv_S - target;
     };
-    auto excess = [&](double y) {
-        double cdf = 0.0;
-        for (size_t s = 0; s < S; ++s) cdf += normal_cdf(root_tau[s] * (y - sign * m[s]));
-        return cdf * inv_S - target;
-    };
-    // The bracket is exact in real arithmetic; widen it if rounding in the
-    // component quantiles put it a hair off.
-    double dens;
-    for (double step = 1e-12 * (1.0 + std::abs(lo)); excess(lo) > 0.0; step *= 2.0) lo -= step;
-    for (double step = 1e-12 * (1.0 + std::abs(hi)); excess(hi) < 0.0; step *= 2.0) hi += step;
+    // The bracket is exact in real arithmetic; each component quantile is
+    // off by a few roundings (a few 2^-53 relative), so a margin of 1e-12
+    // relative holds the root without evaluating F at the ends.
+    lo -= 1e-12 * (1.0 + std::abs(lo));
+    hi += 1e-12 * (1.0 + std::abs(hi));
     double y = start;
     for (int iter = 0; iter < 200; ++iter) {
         const double tol = 1e-11 * (1.0 + std::abs(y));
         if (hi - lo <= tol) return 0.5 * (lo + hi);
-        const double f = eval(y, dens);
+        double dens, slope;
+        const double f = eval(y, dens, slope);
         if (f == 0.0) return y;
         (f < 0.0 ? lo : hi) = y;
-        double next = dens > 0.0 ? y - f / dens : std::numeric_limits<double>::quiet_NaN();
+        // Halley's step (cubic convergence; Press et al., Numerical Recipes,
+        // 3rd ed., section 9.4, recalled from memory), Newton's where its denominator is not
+        // positive, bisection where either leaves the bracket.
+        const double halley = 2.0 * dens * dens - f * slope;
+        double next = dens > 0.0 ? (halley > 0.0 ? y - 2.0 * f * dens / halley : y - f / dens)
+                                 : std::numeric_limits<double>::quiet_NaN();
         if (!(next > lo && next < hi)) next = 0.5 * (lo + hi);
         if (std::abs(next - y) <= tol) return next;
         y = next;
@@ -87,16 +93,8 @@ double solve_mixture_cdf(std::span<const double> m, std::span<const float> tau, 
     return y;
 }
 
-}  // namespace
-
-double mixture_mean(std::span<const double> m) {
-    if (m.empty()) throw std::invalid_argument("mixture needs at least one component");
-    double sum = 0.0;
-    for (double v : m) sum += v;
-    return sum / static_cast<double>(m.size());
-}
-
-double mixture_sd(std::span<const double> m, std::span<const float> tau) {
+template <class Precision>
+double sd_of(std::span<const double> m, std::span<const Precision> tau) {
     check_sizes(m, tau);
     // Law of total variance: mean noise variance + spread of the means
     // (two-pass, so no cancellation).
@@ -109,7 +107,8 @@ double mixture_sd(std::span<const double> m, std::span<const float> tau) {
     return std::sqrt((spread + noise) / static_cast<double>(m.size()));
 }
 
-double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x) {
+template <class Precision>
+double cdf_of(std::span<const double> m, std::span<const Precision> tau, double x) {
     check_sizes(m, tau);
     double sum = 0.0;
     for (size_t s = 0; s < m.size(); ++s)
@@ -117,13 +116,36 @@ double mixture_cdf(std::span<const double> m, std::span<const float> tau, double
     return sum / static_cast<double>(m.size());
 }
 
-double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p) {
+template <class Precision>
+double quantile_of(std::span<const double> m, std::span<const Precision> tau, double p) {
     check_sizes(m, tau);
     if (!(p > 0.0 && p < 1.0))
         throw std::invalid_argument("mixture quantile needs a probability strictly between 0 and 1, got " +
                                     std::to_string(p));
     if (p <= 0.5) return solve_mixture_cdf(m, tau, 1.0, p);
     return -solve_mixture_cdf(m, tau, -1.0, 1.0 - p);
+}
+
+}  // namespace
+
+double mixture_mean(std::span<const double> m) {
+    if (m.empty()) throw std::invalid_argument("mixture needs at least one component");
+    double sum = 0.0;
+    for (double v : m) sum += v;
+    return sum / static_cast<double>(m.size());
+}
+
+double mixture_sd(std::span<const double> m, std::span<const float> tau) { return sd_of(m, tau); }
+double mixture_sd(std::span<const double> m, std::span<const double> precision) { return sd_of(m, precision); }
+double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x) { return cdf_of(m, tau, x); }
+double mixture_cdf(std::span<const double> m, std::span<const double> precision, double x) {
+    return cdf_of(m, precision, x);
+}
+double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p) {
+    return quantile_of(m, tau, p);
+}
+double mixture_quantile(std::span<const double> m, std::span<const double> precision, double p) {
+    return quantile_of(m, precision, p);
 }
 
 double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x) {

@@ -1,7 +1,8 @@
 // The posterior predictive mixture of one rating: the equal-weight mixture
 // over kept samples s of Normal(m[s], 1/tau[s]). Used by the prediction
-// engine, population answers, evaluation, comparison and the report.
-// Quantiles are exact (bracket and Newton/bisection; see mixture.cpp).
+// engine, population answers, evaluation, comparison and the report; the
+// visitor fold-in (model/predict/foldin.hpp) passes per-component precisions
+// in double. Quantiles are exact (bracket and Halley/Newton/bisection; see mixture.cpp).
 #pragma once
 #include <span>
 
@@ -17,5 +18,12 @@ double mixture_sd(std::span<const double> m, std::span<const float> tau);
 double mixture_cdf(std::span<const double> m, std::span<const float> tau, double x);
 double mixture_quantile(std::span<const double> m, std::span<const float> tau, double p);
 double mixture_log_density(std::span<const double> m, std::span<const float> tau, double x);
+
+// The same for components whose precisions are doubles (each component's
+// own 1 / variance, e.g. 1 / (parameter variance + noise variance)); the
+// same requirements and throws.
+double mixture_sd(std::span<const double> m, std::span<const double> precision);
+double mixture_cdf(std::span<const double> m, std::span<const double> precision, double x);
+double mixture_quantile(std::span<const double> m, std::span<const double> precision, double p);
 
 }  // namespace credence

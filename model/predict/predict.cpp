@@ -29,6 +29,8 @@
 #include <stdexcept>
 #include <string>
 
+#include <fmt/format.h>
+
 #include "model/error.hpp"
 #include "model/math/standard_normal.hpp"
 #include "model/math/random.hpp"
@@ -37,14 +39,20 @@
 
 namespace credence {
 
+// The level is a request value (a flag, a query parameter): a bad one is the
+// user's to fix. Both tail probabilities must be strictly inside (0, 1) as
+// doubles: a level within about 1e-16 of 1 makes (1 + level)/2 round to 1,
+// whose quantile is infinite.
+void check_interval_level(double level) {
+    if (!(level > 0.0 && level < 1.0 && 0.5 * (1.0 + level) < 1.0 && 0.5 * (1.0 - level) > 0.0))
+        throw OptionError(fmt::format("interval level must be strictly between 0 and 1 (e.g. 0.9) and "
+                                      "(1 + level)/2 must be below 1 in double precision; got {:.17g}",
+                                      level));
+}
+
 namespace {
 
-// The level and n are request values (a flag, a query parameter): a bad one
-// is the user's to fix.
-void check_level(double level) {
-    if (!(level > 0.0 && level < 1.0))
-        throw OptionError("interval level must be strictly between 0 and 1 (e.g. 0.9), got " + std::to_string(level));
-}
+void check_level(double level) { check_interval_level(level); }
 
 double clip(const Posterior& p, double x) {
     return std::clamp(x, static_cast<double>(p.scale.min), static_cast<double>(p.scale.max));
@@ -64,36 +72,6 @@ Prediction prediction_from(const Posterior& p, std::span<const double> m, double
 // (1e-11 relative, model/predict/mixture.cpp).
 double pad(double x) { return 1e-8 * (1.0 + std::abs(x)); }
 
-// The candidate items of one request, ascending and unique.
-std::vector<uint32_t> candidate_pool(const Posterior& p, std::span<const uint32_t> exclude,
-                                     const RecommendOptions& options) {
-    const uint32_t I = p.num_items;
-    std::vector<uint32_t> pool;
-    if (options.candidates) {
-        pool = *options.candidates;
-        for (uint32_t i : pool)
-            if (i >= I)
-                throw std::invalid_argument("candidate item index " + std::to_string(i) + " is beyond the model's " +
-                                            std::to_string(I) + " items");
-        std::sort(pool.begin(), pool.end());
-        pool.erase(std::unique(pool.begin(), pool.end()), pool.end());
-    } else {
-        pool.resize(I);
-        for (uint32_t i = 0; i < I; ++i) pool[i] = i;
-    }
-    if (options.exclude_rated && !exclude.empty()) {
-        std::vector<char> excluded(I, 0);
-        for (uint32_t i : exclude) {
-            if (i >= I)
-                throw std::invalid_argument("excluded item index " + std::to_string(i) + " is beyond the model's " +
-                                            std::to_string(I) + " items");
-            excluded[i] = 1;
-        }
-        std::erase_if(pool, [&](uint32_t i) { return excluded[i] != 0; });
-    }
-    return pool;
-}
-
 // One validated request, ready to screen and select.
 struct Plan {
     Viewer viewer;
@@ -111,11 +89,9 @@ struct Plan {
 // Validates the options and fills `plan` (reusing its buffers). Throws like recommend().
 void make_plan(const Posterior& p, const Viewer& viewer, std::span<const uint32_t> exclude,
                const RecommendOptions& options, Plan& plan) {
-    if (options.n == 0) throw OptionError("the number of recommendations n must be at least 1");
-    check_level(options.level);
     plan.viewer = viewer;
     plan.options = &options;
-    plan.pool = candidate_pool(p, exclude, options);
+    plan.pool = request_candidates(p, exclude, options);
     const uint32_t S = p.num_samples;
     const std::span<const float> tau(p.noise_precision);
     plan.by_quantile = options.rank_by == RankBy::lower || options.rank_by == RankBy::upper;
@@ -131,7 +107,7 @@ void make_plan(const Posterior& p, const Viewer& viewer, std::span<const uint32_
     // A pool of a quarter of the catalogue or more costs about a full pass.
     plan.full_pass = !draw && plan.pool.size() * 4 >= p.num_items;
     // Thompson sampling over the mean: one kept sample, uniformly chosen.
-    plan.drawn = draw ? static_cast<uint32_t>(Rng::keyed(options.draw_seed, 0, 0, StreamBlock::serve, 0).below(S)) : 0;
+    plan.drawn = draw ? drawn_sample(options.draw_seed, S) : 0;
 }
 
 void prepare_job(const Plan& plan, ScreenJob& job) {
@@ -232,7 +208,11 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
 // server has many threads, so each keeps only a few jobs' buffers, and no
 // large quantile rows ([I][S] floats) between requests.
 struct Scratch {
-    static constexpr size_t kKeptJobs = 4;
+    // Jobs kept between requests: as many as a batch holds (server/config.hpp's
+    // default batch is 16) while their summaries stay small, so a busy lane
+    // does not allocate and fault in fresh pages for every pass.
+    static constexpr size_t kKeptJobs = 16;
+    static constexpr size_t kKeptJobBytes = size_t(4) << 20;
     static constexpr size_t kKeptRowBytes = size_t(8) << 20;
 
     std::vector<Plan> plans;
@@ -242,7 +222,12 @@ struct Scratch {
         if (jobs.size() < n) jobs.resize(n);
     }
     void trim() {
-        if (jobs.size() > kKeptJobs) jobs.resize(kKeptJobs);
+        size_t keep = 0, bytes = 0;
+        for (; keep < jobs.size() && keep < kKeptJobs; ++keep) {
+            bytes += (jobs[keep].sum.capacity() + jobs[keep].magnitude.capacity()) * sizeof(double);
+            if (bytes > kKeptJobBytes) break;
+        }
+        if (jobs.size() > keep) jobs.resize(std::max<size_t>(keep, 1));
         if (plans.size() > kKeptJobs) plans.resize(kKeptJobs);
         for (ScreenJob& job : jobs)
             if (job.rows.capacity() * sizeof(float) > kKeptRowBytes) std::vector<float>().swap(job.rows);
@@ -275,6 +260,41 @@ std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const 
 
 }  // namespace
 
+std::vector<uint32_t> request_candidates(const Posterior& p, std::span<const uint32_t> exclude,
+                                         const RecommendOptions& options) {
+    if (options.n == 0) throw OptionError("the number of recommendations n must be at least 1");
+    check_level(options.level);
+    const uint32_t I = p.num_items;
+    std::vector<uint32_t> pool;
+    if (options.candidates) {
+        pool = *options.candidates;
+        for (uint32_t i : pool)
+            if (i >= I)
+                throw std::invalid_argument("candidate item index " + std::to_string(i) + " is beyond the model's " +
+                                            std::to_string(I) + " items");
+        std::sort(pool.begin(), pool.end());
+        pool.erase(std::unique(pool.begin(), pool.end()), pool.end());
+    } else {
+        pool.resize(I);
+        for (uint32_t i = 0; i < I; ++i) pool[i] = i;
+    }
+    if (options.exclude_rated && !exclude.empty()) {
+        std::vector<char> excluded(I, 0);
+        for (uint32_t i : exclude) {
+            if (i >= I)
+                throw std::invalid_argument("excluded item index " + std::to_string(i) + " is beyond the model's " +
+                                            std::to_string(I) + " items");
+            excluded[i] = 1;
+        }
+        std::erase_if(pool, [&](uint32_t i) { return excluded[i] != 0; });
+    }
+    return pool;
+}
+
+uint32_t drawn_sample(uint64_t draw_seed, uint32_t samples) {
+    return static_cast<uint32_t>(Rng::keyed(draw_seed, 0, 0, StreamBlock::serve, 0).below(samples));
+}
+
 PredictionEngine::PredictionEngine(std::shared_ptr<const Posterior> posterior) : posterior_(std::move(posterior)) {
     if (!posterior_) throw std::invalid_argument("prediction engine needs a posterior");
     max_item_norm_ = max_item_norms(*posterior_);
@@ -304,7 +324,8 @@ std::vector<Recommendation> PredictionEngine::recommend(uint32_t user, const Rec
     return rank_for_viewer(p, max_item_norm_, known_user(p, user), p.rated_by(user), options);
 }
 
-std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests) const {
+std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests,
+                                                               int threads) const {
     const Posterior& p = *posterior_;
     const size_t count = requests.size();
     std::vector<RecommendAnswer> answers(count);
@@ -337,7 +358,7 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
             screen_alone(p, max_item_norm_, s.plans[k], s.jobs[k]);
         }
     }
-    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared);
+    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads);
     for (size_t k = 0; k < count; ++k) {
         if (!planned[k]) continue;
         try {

@@ -64,6 +64,23 @@ struct RecommendAnswer {
     std::exception_ptr error;  // null on success
 };
 
+// The candidate items of one request, ascending and unique: the request's
+// candidates (or every item) minus `exclude` when options.exclude_rated.
+// Used by the engine and by the visitor fold-in. Throws OptionError for
+// n == 0 or a level outside (0, 1); std::invalid_argument for a candidate or
+// excluded index beyond the model (callers map ids first: a bug).
+std::vector<uint32_t> request_candidates(const Posterior& posterior, std::span<const uint32_t> exclude,
+                                         const RecommendOptions& options);
+
+// The kept sample a RankBy::draw request ranks by: uniform over the S > 0
+// samples, keyed by the draw seed (Rng::keyed(seed, 0, 0, StreamBlock::serve, 0)).
+uint32_t drawn_sample(uint64_t draw_seed, uint32_t samples);
+
+// Checks an interval level: strictly between 0 and 1, with (1 - level)/2 and
+// (1 + level)/2 strictly inside (0, 1) in double precision (so a level within
+// about 1e-16 of 1 is refused). Throws OptionError quoting the level.
+void check_interval_level(double level);
+
 class PredictionEngine {
 public:
     // Needs a non-null posterior that passes Posterior::validate(); throws
@@ -91,8 +108,10 @@ public:
     // requests[k].options), or holds what it would have thrown. Requests that
     // rank by mean, lower or upper over most of the catalogue share one pass
     // over the item samples, which reads the model from memory once for all
-    // of them. Never throws for a bad request; std::bad_alloc may escape.
-    std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests) const;
+    // of them; `threads` > 1 splits that pass between OpenMP threads (the
+    // answers are the same bits for any value). Never throws for a bad
+    // request; std::bad_alloc may escape.
+    std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests, int threads = 1) const;
 
     // Top-n for a visitor described by per-sample factors and biases (fold-in):
     // visitor_factors is [S][K], visitor_bias is [S] (zeros without biases),

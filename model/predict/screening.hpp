@@ -59,7 +59,11 @@ struct ScreenJob {
 
 // Screens every item of the model (summary index = item index) for every
 // job in one pass over the item samples. Needs shift.size() == S where given.
-void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs);
+// `threads` > 1 splits the catalogue's tiles between that many OpenMP
+// threads (more memory bandwidth for one pass); the summaries are the same
+// bits for any value.
+void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs,
+                      int threads = 1);
 
 // Screens only the `pool` items (summary index = position in pool) for one
 // job: cheaper than a full pass when the pool is a small part of the catalogue.

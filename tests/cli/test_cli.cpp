@@ -3,13 +3,19 @@
 // bad input handled by clear messages and exit codes.
 #include <catch2/catch.hpp>
 
+#include <sys/wait.h>
+#include <unistd.h>
+
 #include <algorithm>
+#include <cctype>
+#include <chrono>
 #include <filesystem>
 #include <fstream>
 #include <iterator>
 #include <map>
 #include <memory>
 #include <optional>
+#include <set>
 #include <sstream>
 #include <string>
 #include <tuple>
@@ -20,6 +26,7 @@
 #include <nlohmann/json.hpp>
 
 #include "model/assess/compare.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/fit/sampler.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/foldin.hpp"
@@ -29,6 +36,10 @@
 #include "tests/support/server_process.hpp"
 
 using namespace credence::testing;
+using credence::cpu_level_description;
+using credence::cpu_level_name;
+using credence::CpuLevel;
+using credence::detected_cpu_level;
 namespace fs = std::filesystem;
 using nlohmann::json;
 
@@ -105,6 +116,57 @@ std::string shown(const T& value) {
     return s.str();
 }
 
+// The subcommands `credence --help` lists, in its order.
+std::vector<std::string> subcommands_from_help() {
+    const auto help = run_credence("--help");
+    REQUIRE(help.exit_code == 0);
+    std::vector<std::string> names;
+    std::istringstream in(help.out);
+    std::string line;
+    while (std::getline(in, line) && line != "Subcommands:") {}
+    while (std::getline(in, line) && !line.empty()) {
+        std::istringstream words(line);
+        std::string name;
+        words >> name;
+        names.push_back(name);
+    }
+    REQUIRE(!names.empty());
+    return names;
+}
+
+// The long option names in a help text: the first "--name" of each entry line.
+std::set<std::string> long_options(const std::string& help) {
+    std::set<std::string> names;
+    std::istringstream in(help);
+    for (std::string line; std::getline(in, line);) {
+        if (line.rfind("  -", 0) != 0) continue;
+        const auto at = line.find("--");
+        if (at == std::string::npos) continue;
+        const auto end = line.find_first_of(" =,", at);
+        names.insert(line.substr(at, end == std::string::npos ? std::string::npos : end - at));
+    }
+    return names;
+}
+
+// A gzip-compressed man page as roff text, with roff's escaped hyphens ("\-") as "-".
+std::string man_page_text(const fs::path& page) {
+    std::string text;
+    // Built with append: GCC 12 warns falsely (-Wrestrict) on "literal" + string.
+    std::string command = "gzip -dc ";
+    command.append(quoted(page));
+    FILE* pipe = popen(command.c_str(), "r");
+    REQUIRE(pipe);
+    char buffer[4096];
+    for (size_t got; (got = fread(buffer, 1, sizeof buffer, pipe)) > 0;) text.append(buffer, got);
+    REQUIRE(pclose(pipe) == 0);
+    std::string unescaped;
+    for (size_t k = 0; k < text.size(); ++k) {
+        if (text[k] == '\\' && k + 1 < text.size() && text[k + 1] == '-') continue;  // "\-" -> "-"
+        unescaped.push_back(text[k]);
+    }
+    return unescaped;
+}
+
 size_t count_lines(const fs::path& p) {
     std::ifstream in(p);
     size_t n = 0;
@@ -143,10 +205,29 @@ TEST_CASE("fit turns a demo export into a posterior file and accounts for every 
     CHECK(meta.at("credence_version") == CREDENCE_PROJECT_VERSION);
 }
 
-TEST_CASE("--version prints exactly the version that CMakeLists.txt declares") {
+TEST_CASE("--version prints exactly the version that CMakeLists.txt declares and the kernels' CPU level") {
     const auto r = run_credence("--version");
     CHECK(r.exit_code == 0);
-    CHECK(r.out == std::string("credence ") + CREDENCE_PROJECT_VERSION + "\n");
+    const std::string level = cpu_level_description();
+    CHECK(r.out == std::string("credence ") + CREDENCE_PROJECT_VERSION + "\nkernels: " + level + "\n");
+}
+
+TEST_CASE("CREDENCE_CPU_LEVEL lowers the kernels' level, and a level the CPU cannot run is a usage error") {
+    const auto baseline = run_credence_with_env("CREDENCE_CPU_LEVEL=x86-64", "--version");
+    CHECK(baseline.exit_code == 0);
+    const std::string detected = cpu_level_name(detected_cpu_level());
+    const std::string expected = detected_cpu_level() == CpuLevel::baseline
+                                     ? "kernels: x86-64 (detected x86-64)"
+                                     : "kernels: x86-64 (detected " + detected + ", capped by CREDENCE_CPU_LEVEL)";
+    CHECK(baseline.out.find(expected) != std::string::npos);
+    const auto unknown = run_credence_with_env("CREDENCE_CPU_LEVEL=x86-64-v9", "--version");
+    CHECK(unknown.exit_code == 2);
+    CHECK(unknown.err.find("CREDENCE_CPU_LEVEL='x86-64-v9' names no CPU level") != std::string::npos);
+    if (detected_cpu_level() < CpuLevel::v4) {
+        const auto above = run_credence_with_env("CREDENCE_CPU_LEVEL=x86-64-v4", "--version");
+        CHECK(above.exit_code == 2);
+        CHECK(above.err.find("is above what this CPU runs") != std::string::npos);
+    }
 }
 
 TEST_CASE("fit and compare declare the same sampler flags with the same help and their own defaults") {
@@ -312,55 +393,76 @@ TEST_CASE("recommend --rated folds in a visitor exactly as the server and the of
         rated_flags += " --rated " + word(ids[r.item] + "=" + fmt::format("{}", r.rating));
         server_ratings.push_back({{"item", ids[r.item]}, {"rating", r.rating}});
     }
-    const auto cli = run_credence("recommend --model " + quoted(d.model) + rated_flags +
-                                  " -n 6 --rank-by lower --seed 4242 --json");
-    INFO(cli.err);
-    REQUIRE(cli.exit_code == 0);
-    const auto got = json::parse(cli.out);
-    CHECK(got.at("rated") == 3);
-    CHECK(got.at("seed") == 4242);
-    const auto& items = got.at("items");
-    REQUIRE(items.size() == 6);
-
-    // Offline: the same model function on the same file, ratings and seed.
     const credence::PredictionEngine engine(posterior);
-    const credence::RecommendOptions options{
-        .n = 6, .rank_by = credence::RankBy::lower, .candidates = std::nullopt, .draw_seed = 4242};
-    const auto want = credence::recommend_for_visitor(engine, ratings, 4242, options);
-    REQUIRE(want.size() == 6);
-    for (size_t k = 0; k < want.size(); ++k) {
-        INFO("position " << k);
-        CHECK(items[k].at("item") == ids[want[k].item]);
-        // JSON numbers round-trip doubles exactly, so equality is bitwise.
-        CHECK(items[k].at("score").get<double>() == want[k].score);
-        CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
-        CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
-        CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
-        CHECK(items[k].at("upper").get<double>() == want[k].prediction.upper);
-    }
-
-    // The server: POST /v1/recommendations with the same ratings and seed.
     ServerProcess server(scratch_dir("cli-foldin-server"), d.model);
     auto client = server.client();
-    const json request = {{"ratings", server_ratings}, {"n", 6}, {"rank_by", "lower"}, {"seed", 4242}};
-    const auto answer = client->Post("/v1/recommendations", request.dump(), "application/json");
-    REQUIRE(answer);
-    INFO(answer->body);
-    REQUIRE(answer->status == 200);
-    const auto served = json::parse(answer->body).at("items");
-    REQUIRE(served.size() == items.size());
-    for (size_t k = 0; k < served.size(); ++k) {
-        INFO("position " << k);
-        for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"}) CHECK(served[k].at(key) == items[k].at(key));
+    for (const char* rank_by : {"lower", "draw"}) {
+        INFO("--rank-by " << rank_by);
+        const auto cli = run_credence("recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by " +
+                                      rank_by + " --seed 4242 --json");
+        INFO(cli.err);
+        REQUIRE(cli.exit_code == 0);
+        const auto got = json::parse(cli.out);
+        CHECK(got.at("rated") == 3);
+        // As the server: only a draw ranking carries its seed, as a string.
+        if (std::string(rank_by) == "draw") {
+            CHECK(got.at("seed") == "4242");
+        } else {
+            CHECK_FALSE(got.contains("seed"));
+        }
+        const auto& items = got.at("items");
+        REQUIRE(items.size() == 6);
+
+        // Offline: the same model function on the same file, ratings and seed.
+        const credence::RecommendOptions options{
+            .n = 6,
+            .rank_by = std::string(rank_by) == "draw" ? credence::RankBy::draw : credence::RankBy::lower,
+            .candidates = std::nullopt,
+            .draw_seed = 4242};
+        const auto want = credence::recommend_for_visitor(engine, ratings, options);
+        REQUIRE(want.size() == 6);
+        for (size_t k = 0; k < want.size(); ++k) {
+            INFO("position " << k);
+            CHECK(items[k].at("item") == ids[want[k].item]);
+            // JSON numbers round-trip doubles exactly, so equality is bitwise.
+            CHECK(items[k].at("score").get<double>() == want[k].score);
+            CHECK(items[k].at("mean").get<double>() == want[k].prediction.mean);
+            CHECK(items[k].at("sd").get<double>() == want[k].prediction.sd);
+            CHECK(items[k].at("lower").get<double>() == want[k].prediction.lower);
+            CHECK(items[k].at("upper").get<double>() == want[k].prediction.upper);
+        }
+
+        // The server: POST /v1/recommendations with the same ratings and seed.
+        const json request = {{"ratings", server_ratings}, {"n", 6}, {"rank_by", rank_by}, {"seed", "4242"}};
+        const auto answer = client->Post("/v1/recommendations", request.dump(), "application/json");
+        REQUIRE(answer);
+        INFO(answer->body);
+        REQUIRE(answer->status == 200);
+        const auto served = json::parse(answer->body);
+        REQUIRE(served.at("items").size() == items.size());
+        for (size_t k = 0; k < items.size(); ++k) {
+            INFO("position " << k);
+            for (const char* key : {"item", "score", "mean", "sd", "lower", "upper"})
+                CHECK(served.at("items")[k].at(key) == items[k].at(key));
+        }
+        CHECK(served.contains("seed") == got.contains("seed"));
+        if (got.contains("seed")) CHECK(served.at("seed") == got.at("seed"));
     }
 
+    // Deterministic: without --seed, two runs print the same bytes.
+    const std::string plain = "recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by upper --json";
+    const auto first = run_credence(plain), second = run_credence(plain);
+    REQUIRE(first.exit_code == 0);
+    CHECK(first.out == second.out);
+
     // The text form names the visitor and lists the same products in order.
-    const auto text = run_credence("recommend --model " + quoted(d.model) + rated_flags +
-                                   " -n 6 --rank-by lower --seed 4242");
+    const auto text = run_credence("recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by lower");
     REQUIRE(text.exit_code == 0);
     CHECK(text.out.find("a visitor with 3 rating(s)") != std::string::npos);
+    const auto listed = json::parse(
+        run_credence("recommend --model " + quoted(d.model) + rated_flags + " -n 6 --rank-by lower --json").out);
     size_t at = 0;
-    for (const auto& item : items) {
+    for (const auto& item : listed.at("items")) {
         at = text.out.find(item.at("item").get<std::string>(), at);
         CHECK(at != std::string::npos);
     }
@@ -459,6 +561,33 @@ TEST_CASE("bad input gives an actionable message and a failing exit code") {
     }
 }
 
+TEST_CASE("fit learns it cannot write --out before sampling, and cleans up after a killed fit") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto dir = scratch_dir("cli-fit-out");
+    // A burn-in that would take minutes: the answer must come before it.
+    const auto start = std::chrono::steady_clock::now();
+    const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --run-length fixed --burn-in 1000000 --out " +
+                                quoted(dir / "missing-dir" / "shop.posterior"));
+    const double seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+    CHECK(r.exit_code == 1);
+    CHECK(r.err.find("missing-dir") != std::string::npos);
+    CHECK(r.err.find("choose another --out") != std::string::npos);
+    CHECK(seconds < 10.0);
+
+    // A temporary file that a killed fit left (its process is gone) is removed and reported.
+    const pid_t child = fork();
+    if (child == 0) _exit(0);
+    waitpid(child, nullptr, 0);
+    const auto stale = dir / (".shop.posterior.tmp-" + std::to_string(child) + "-0");
+    std::ofstream(stale) << std::string(4096, 'x');
+    const auto fit = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --out " +
+                                  quoted(dir / "shop.posterior") + " --rank 2 --run-length fixed --burn-in 4 --samples 4 --chains 1");
+    CHECK(fit.exit_code == 0);
+    CHECK_FALSE(fs::exists(stale));
+    CHECK(fit.err.find("removed " + stale.string() + " (4096 bytes)") != std::string::npos);
+}
+
 TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage") {
     // The codes are listed in cli/main.cpp. 70 (internal error) is only ever
     // the result of a bug, so no well-formed command line can reach it.
@@ -529,6 +658,50 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
         CHECK(unwritable.err.find("could not write") != std::string::npos);
         CHECK(unwritable.err.find("r.html") != std::string::npos);
     }
+    SECTION("a file that is missing or cannot be written exits 1 for every subcommand, and names it") {
+        const std::string missing_model = quoted(dir / "missing.posterior");
+        const std::string missing_ratings = quoted(dir / "missing.csv");
+        // Each subcommand's command line, and the file its message must name.
+        const std::map<std::string, std::pair<std::string, std::string>> commands = {
+            {"fit", {"fit --ratings " + missing_ratings + " --out " + quoted(dir / "never.posterior"), "missing.csv"}},
+            {"evaluate", {"evaluate --model " + missing_model + " --ratings " + ratings, "missing.posterior"}},
+            {"predict", {"predict --model " + missing_model + " --user c-00007 --item tea-0001", "missing.posterior"}},
+            {"recommend", {"recommend --model " + missing_model + " --user c-00007", "missing.posterior"}},
+            {"inspect", {"inspect " + missing_model, "missing.posterior"}},
+            {"serve", {"serve --config " + quoted(dir / "missing.toml") + " --model " + model, "missing.toml"}},
+            {"demo-data", {"demo-data --out-dir " + quoted(dir / "a-file.csv" / "shop"), "a-file.csv"}},
+            {"compare", {"compare --ratings " + missing_ratings, "missing.csv"}},
+            {"report", {"report " + missing_model + " --out " + quoted(dir / "never.html"), "missing.posterior"}},
+            {"forget", {"forget --ratings " + missing_ratings + " --customer c-00007", "missing.csv"}},
+            {"delta", {"delta " + missing_model + " " + model, "missing.posterior"}},
+        };
+        std::ofstream(dir / "a-file.csv") << "customer,sku,stars\n";  // not a folder to write into
+        for (const auto& sub : subcommands_from_help()) {
+            INFO(sub);
+            REQUIRE(commands.count(sub) == 1);  // every subcommand is covered
+            const auto& [command, named] = commands.at(sub);
+            const auto r = run_credence(command);
+            INFO(r.err);
+            CHECK(r.exit_code == 1);
+            CHECK(r.err.find(named) != std::string::npos);
+        }
+        // Served: a model that cannot be read stops serve with 1 too.
+        const auto serve = run_credence("serve --port 0 --model " + missing_model);
+        INFO(serve.err);
+        CHECK(serve.exit_code == 1);
+        CHECK(serve.err.find("missing.posterior") != std::string::npos);
+        CHECK_FALSE(fs::exists(dir / "never.posterior"));
+        CHECK_FALSE(fs::exists(dir / "never.html"));
+    }
+    SECTION("every subcommand's --help exits 0 and ends with the exit codes") {
+        for (const auto& sub : subcommands_from_help()) {
+            const auto r = run_credence(sub + " --help");
+            INFO(sub << "\n" << r.err);
+            CHECK(r.exit_code == 0);
+            CHECK(r.out.find("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 3 fit --gate refused "
+                             "the new model, 70 internal error") != std::string::npos);
+        }
+    }
     SECTION("--help and --version exit 0 and print to stdout") {
         const auto help = run_credence("--help");
         CHECK(help.exit_code == 0);
@@ -541,6 +714,39 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
         CHECK(version.exit_code == 0);
         CHECK(version.out.find(std::string("credence ") + CREDENCE_PROJECT_VERSION) != std::string::npos);
     }
+}
+
+TEST_CASE("every subcommand has a man page, written from its --help, naming every option") {
+    // The build writes the pages after linking credence (cmake/man_pages.cmake).
+    const fs::path man_dir = fs::path(CREDENCE_BUILD_DIR) / "man";
+    const auto subcommands = subcommands_from_help();
+    const std::string main_page = man_page_text(man_dir / "credence.1.gz");
+    CHECK(main_page.find(".TH CREDENCE \"1\"") != std::string::npos);
+    for (const auto& sub : subcommands) {
+        INFO(sub);
+        CHECK(main_page.find(sub) != std::string::npos);
+        const fs::path page = man_dir / ("credence-" + sub + ".1.gz");
+        REQUIRE(fs::exists(page));
+        const std::string text = man_page_text(page);
+        std::string title = "credence-" + sub;
+        std::transform(title.begin(), title.end(), title.begin(), [](unsigned char c) { return std::toupper(c); });
+        CHECK(text.find(".TH " + title + " \"1\"") != std::string::npos);
+        CHECK(text.find(".SH NAME\ncredence-" + sub + " - ") != std::string::npos);
+        CHECK(text.find(std::string("\"credence ") + CREDENCE_PROJECT_VERSION + "\"") != std::string::npos);
+        CHECK(text.find("Exit codes: 0 ok") != std::string::npos);
+        const auto help = run_credence(sub + " --help");
+        REQUIRE(help.exit_code == 0);
+        const auto options = long_options(help.out);
+        CHECK(options.count("--help") == 1);
+        for (const auto& option : options) {
+            INFO(option);
+            CHECK(text.find(option) != std::string::npos);
+        }
+    }
+    // No page for a subcommand that does not exist.
+    size_t pages = 0;
+    for (const auto& entry : fs::directory_iterator(man_dir)) pages += entry.path().extension() == ".gz";
+    CHECK(pages == subcommands.size() + 1);
 }
 
 TEST_CASE("columns are chosen with --customer-column and --product-column") {

@@ -27,7 +27,7 @@ struct Answer {
 Answer answer_of(const RouteHandler& handler) {
     AppContext ctx;
     ctx.options.access_log = false;
-    const auto wrapped = wrap_route(ctx, "/v1/probe", handler);
+    const auto wrapped = wrap_route(ctx, "/v1/model", handler);
     httplib::Request req;
     req.method = "GET";
     req.path = "/v1/probe";

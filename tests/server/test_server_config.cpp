@@ -1,10 +1,13 @@
 // Tests for server/config: the documented config file parses to the
-// documented defaults, values override, and mistakes are reported by key.
+// documented defaults, values override (file, then CREDENCE_SERVE_<KEY>
+// variables, then flags), and mistakes are reported by key or variable.
 #include <catch2/catch.hpp>
 
+#include <cctype>
 #include <cstdlib>
 #include <fstream>
 #include <limits>
+#include <map>
 #include <set>
 #include <stdexcept>
 #include <string>
@@ -16,6 +19,7 @@
 #include "model/error.hpp"
 #include "server/config.hpp"
 #include "tests/support/paths.hpp"
+#include "tests/support/run_command.hpp"
 
 using namespace credence;
 using namespace credence::server;
@@ -131,7 +135,9 @@ TEST_CASE("validation checks values from flags and defaults against the same tab
         ServeOptions o = ok;
         if (const auto* text = std::get_if<std::string ServeOptions::*>(&key.field)) {
             o.*(*text) = "";
-            if (key.if_empty.empty()) CHECK_NOTHROW(validate_serve_options(o));
+            if (!key.choices.empty())  // a choice key: the empty string is not one of its choices
+                CHECK_THROWS_WITH(validate_serve_options(o), Catch::Contains(std::string(key.name) + " is ''"));
+            else if (key.if_empty.empty()) CHECK_NOTHROW(validate_serve_options(o));
             else CHECK_THROWS_WITH(validate_serve_options(o), Catch::Contains(std::string(key.name) + " is empty"));
         } else if (key.min > 0) {
             // Every integer with a lower bound above 0: 0 is refused by name.
@@ -191,4 +197,87 @@ TEST_CASE("the admin token comes from a file or the environment, trimmed") {
     o.admin_token_file = (dir / "missing").string();
     CHECK_THROWS_AS(resolve_admin_token(o), Error);
     ::unsetenv("CREDENCE_TEST_TOKEN_VAR");
+}
+
+TEST_CASE("every key can be set from its CREDENCE_SERVE_ variable, over the config file") {
+    // A value for each key that differs from what the file below sets.
+    std::map<std::string, std::string> env;
+    ServeOptions from_file;
+    from_file.model_path = "from-file.posterior";
+    for (const auto& key : serve_config_keys()) {
+        const std::string variable = serve_environment_variable(key);
+        INFO(key.name);
+        std::string upper;
+        for (char c : key.name) upper.push_back(static_cast<char>(std::toupper(static_cast<unsigned char>(c))));
+        CHECK(variable == "CREDENCE_SERVE_" + upper);
+        std::visit(
+            [&](auto member) {
+                using T = std::remove_cvref_t<decltype(from_file.*member)>;
+                if constexpr (std::is_same_v<T, std::string>) env[variable] = "env-" + std::string(key.name);
+                else if constexpr (std::is_same_v<T, bool>) env[variable] = from_file.*member ? "false" : "true";
+                else env[variable] = std::to_string(from_file.*member == key.min ? key.max : key.min);
+            },
+            key.field);
+    }
+    const auto lookup = [&](const char* name) -> const char* {
+        const auto it = env.find(name);
+        return it == env.end() ? nullptr : it->second.c_str();
+    };
+    const ServeOptions applied = apply_serve_environment(from_file, lookup);
+    for (const auto& key : serve_config_keys()) {
+        INFO(key.name);
+        CHECK(serve_config_value(key, applied) == env.at(serve_environment_variable(key)));
+        CHECK(serve_config_value(key, applied) != serve_config_value(key, from_file));
+    }
+    // No variables: the file's values stay.
+    const ServeOptions untouched = apply_serve_environment(from_file, [](const char*) -> const char* { return nullptr; });
+    for (const auto& key : serve_config_keys()) CHECK(serve_config_value(key, untouched) == serve_config_value(key, from_file));
+}
+
+TEST_CASE("a variable of the wrong kind or out of range is refused by name, with what it sets") {
+    auto fails_with = [](const std::string& variable, const std::string& value, const std::string& needle) {
+        try {
+            apply_serve_environment(ServeOptions{}, [&](const char* name) -> const char* {
+                return name == variable ? value.c_str() : nullptr;
+            });
+            FAIL("accepted " << variable << "=" << value);
+        } catch (const OptionError& e) {
+            INFO(e.what());
+            CHECK(std::string(e.what()).find(variable + "=" + value) != std::string::npos);
+            CHECK(std::string(e.what()).find(needle) != std::string::npos);
+        }
+    };
+    fails_with("CREDENCE_SERVE_PORT", "70000", "outside [0, 65535]");
+    fails_with("CREDENCE_SERVE_PORT", "-1", "outside [0, 65535]");
+    fails_with("CREDENCE_SERVE_PORT", "80x", "must be an integer in [0, 65535]");
+    fails_with("CREDENCE_SERVE_PORT", "", "must be an integer");
+    fails_with("CREDENCE_SERVE_MAX_N", "0", "outside [1, ");
+    fails_with("CREDENCE_SERVE_LOG_JSON", "yes", "must be true or false");
+    fails_with("CREDENCE_SERVE_ACCESS_LOG", "1", "must be true or false");
+}
+
+TEST_CASE("credence serve reads the environment after its config file and before its flags") {
+    const auto dir = credence::testing::scratch_dir("server_config_env");
+    const auto config = write_file(dir, "serve.toml", "[serve]\nmax_n = 20\n");
+    // An impossible value from the environment stops serve before it binds, as
+    // a usage error naming the variable: so the program reads it.
+    ::setenv("CREDENCE_SERVE_MAX_N", "0", 1);
+    const auto refused = credence::testing::run_credence("serve --config " + credence::testing::quoted(config) +
+                                                         " --model " + credence::testing::quoted(dir / "none"));
+    ::unsetenv("CREDENCE_SERVE_MAX_N");
+    INFO(refused.err);
+    CHECK(refused.exit_code == 2);
+    CHECK(refused.err.find("CREDENCE_SERVE_MAX_N=0") != std::string::npos);
+    // A flag wins over the variable: the model named by --model is the one
+    // that fails to load (exit 1, a file problem), not the variable's.
+    ::setenv("CREDENCE_SERVE_MODEL", (dir / "from-env.posterior").c_str(), 1);
+    ::setenv("CREDENCE_SERVE_PORT", "0", 1);
+    const auto flag_wins = credence::testing::run_credence("serve --model " +
+                                                           credence::testing::quoted(dir / "from-flag.posterior"));
+    ::unsetenv("CREDENCE_SERVE_MODEL");
+    ::unsetenv("CREDENCE_SERVE_PORT");
+    INFO(flag_wins.err);
+    CHECK(flag_wins.exit_code == 1);
+    CHECK(flag_wins.err.find("from-flag.posterior") != std::string::npos);
+    CHECK(flag_wins.err.find("from-env.posterior") == std::string::npos);
 }

@@ -10,7 +10,9 @@
 #include <memory>
 #include <set>
 #include <sstream>
+#include <thread>
 
+#include "model/math/cpu_level.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/foldin.hpp"
 #include "model/predict/predict.hpp"
@@ -200,6 +202,8 @@ TEST_CASE("bad prediction requests get problem documents") {
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs": 3})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 1.0})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 0})"), 400);
+    // Within 1e-16 of 1, (1 + level)/2 rounds to 1 in double precision: a 400, never a 500.
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": 0.9999999999999999})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[)" + pair + R"(], "level": "high"})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[{"user": 7, "item": "sku-00000"}]})"), 400);
     require_problem(post(*c, "/v1/predictions", "/v1/predictions", R"({"pairs":[{"user": "cust-00000"}]})"), 400);
@@ -235,6 +239,12 @@ TEST_CASE("user top-N equals the offline engine for every ranking") {
             REQUIRE(a.status == 200);
             CHECK(a.body["user"] == p.user_ids[u]);
             CHECK(a.body["rank_by"] == rank_by);
+            // A draw ranking echoes its seed as a string (JavaScript-safe); no other ranking has one.
+            if (o.rank_by == RankBy::draw) {
+                CHECK(a.body["seed"] == "99");
+            } else {
+                CHECK_FALSE(a.body.contains("seed"));
+            }
             REQUIRE(a.body["items"].size() == want.size());
             for (size_t k = 0; k < want.size(); ++k) {
                 CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
@@ -275,33 +285,55 @@ TEST_CASE("bad recommendation requests get problem documents") {
     require_problem(get(*c, kUserRoute, "/v1/users/cust%zz/recommendations"), 400);
 }
 
-TEST_CASE("visitor fold-in matches the offline fold-in and engine") {
+TEST_CASE("visitor fold-in matches the offline exact fold-in for every ranking, and identical requests get identical bytes") {
     auto& f = fixture();
     auto c = f.server->client();
     const Posterior& p = *f.posterior;
     const std::vector<VisitorRating> ratings = {{10, 5.0}, {11, 1.5}, {5, 4.0}};
-    RecommendOptions o;
-    o.n = 6;
-    o.rank_by = RankBy::lower;
-    const auto visitor = fold_in_visitor(p, ratings, 1234);
-    const auto want = f.engine->recommend_for_factors(visitor.factors, visitor.bias, std::vector<uint32_t>{5, 10, 11}, o);
-    const json req = {{"ratings", json::array({{{"item", "sku-00010"}, {"rating", 5.0}},
-                                               {{"item", "sku-00011"}, {"rating", 1.5}},
-                                               {{"item", kOddItem}, {"rating", 4}}})},
-                      {"n", 6},
-                      {"rank_by", "lower"},
-                      {"seed", 1234}};
-    auto a = post(*c, "/v1/recommendations", "/v1/recommendations", req.dump());
-    INFO(a.text);
-    REQUIRE(a.status == 200);
-    CHECK(a.body["seed"] == 1234);
-    REQUIRE(a.body["items"].size() == want.size());
-    for (size_t k = 0; k < want.size(); ++k) {
-        CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
-        require_same_prediction(a.body["items"][k], want[k].prediction);
+    const json rated = json::array({{{"item", "sku-00010"}, {"rating", 5.0}},
+                                    {{"item", "sku-00011"}, {"rating", 1.5}},
+                                    {{"item", kOddItem}, {"rating", 4}}});
+    for (const char* rank_by : {"mean", "lower", "upper", "draw"}) {
+        INFO(rank_by);
+        RecommendOptions o;
+        o.n = 6;
+        o.level = 0.8;
+        o.rank_by = server::parse_rank_by(rank_by);
+        o.draw_seed = 18446744073709551557ull;  // beyond 2^53: only a string carries it intact
+        const auto want = recommend_for_visitor(*f.engine, ratings, o);
+        json req = {{"ratings", rated}, {"n", 6}, {"level", 0.8}, {"rank_by", rank_by}};
+        if (o.rank_by == RankBy::draw) req["seed"] = "18446744073709551557";
+        auto a = post(*c, "/v1/recommendations", "/v1/recommendations", req.dump());
+        INFO(a.text);
+        REQUIRE(a.status == 200);
+        REQUIRE(a.body["items"].size() == want.size());
+        for (size_t k = 0; k < want.size(); ++k) {
+            CHECK(a.body["items"][k]["item"] == p.item_ids[want[k].item]);
+            CHECK(a.body["items"][k]["score"].get<double>() == want[k].score);
+            require_same_prediction(a.body["items"][k], want[k].prediction);
+        }
+        // Deterministic: a second identical request gets the same bytes.
+        CHECK(post(*c, "/v1/recommendations", "/v1/recommendations", req.dump()).text == a.text);
+        if (o.rank_by == RankBy::draw) {
+            CHECK(a.body["seed"] == "18446744073709551557");
+        } else {
+            CHECK_FALSE(a.body.contains("seed"));
+        }
     }
-    // Same seed, same answer; no ratings at all is a valid (prior) visitor.
-    CHECK(post(*c, "/v1/recommendations", "/v1/recommendations", req.dump()).text == a.text);
+    // Without a seed, a draw ranking gets a fresh one and says which, as a
+    // string that reproduces the answer; an integer seed is accepted too.
+    auto fresh = post(*c, "/v1/recommendations", "/v1/recommendations",
+                      json({{"ratings", rated}, {"rank_by", "draw"}}).dump());
+    REQUIRE(fresh.status == 200);
+    REQUIRE(fresh.body["seed"].is_string());
+    const auto again = post(*c, "/v1/recommendations", "/v1/recommendations",
+                            json({{"ratings", rated}, {"rank_by", "draw"}, {"seed", fresh.body["seed"]}}).dump());
+    CHECK(again.body["items"] == fresh.body["items"]);
+    const auto as_integer = post(*c, "/v1/recommendations", "/v1/recommendations",
+                                 json({{"ratings", rated}, {"rank_by", "draw"}, {"seed", 77}}).dump());
+    REQUIRE(as_integer.status == 200);
+    CHECK(as_integer.body["seed"] == "77");
+    // No ratings at all is a valid (prior) visitor.
     auto cold = post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": 3})");
     REQUIRE(cold.status == 200);
     CHECK(cold.body["items"].size() == 3);
@@ -313,7 +345,13 @@ TEST_CASE("visitor fold-in matches the offline fold-in and engine") {
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
                          R"({"ratings":[{"item":"sku-00001","rating":3},{"item":"sku-00001","rating":4}]})"), 400);
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"n": -2})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"rank_by": "draw", "seed": "abc"})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"rank_by": "draw", "seed": -4})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"rank_by": "draw", "seed": 1.5})"), 400);
+    // A malformed seed is refused even when the ranking does not use it.
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", R"({"seed": "abc"})"), 400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations",
+                         R"({"seed": "99999999999999999999999"})"), 400);
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations", "nope"), 400);
 }
 
@@ -440,6 +478,123 @@ TEST_CASE("admin reload needs the token, stays inside the model directory and su
     CHECK(back.body["model"] == before);
 }
 
+TEST_CASE("the model description names no customer and no file path") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    auto model = get(*c, "/v1/model", "/v1/model");
+    REQUIRE(model.status == 200);
+    CHECK_FALSE(model.body.contains("source"));
+    CHECK(model.text.find(f.dir.string()) == std::string::npos);
+    CHECK(model.text.find("shop.posterior") == std::string::npos);
+    for (const auto& id : f.posterior->user_ids) {
+        INFO(id);
+        CHECK(model.text.find("\"" + id + "\"") == std::string::npos);
+    }
+}
+
+TEST_CASE("admin forget drops a customer's own factors at once, and they stay out after a reload") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const Posterior& p = *f.posterior;
+    const uint32_t u = 9;
+    const std::string customer = p.user_ids[u];
+    const auto bearer = httplib::Headers{{"Authorization", "Bearer " + kToken}};
+    REQUIRE(get(*c, kUserRoute, user_path(customer)).status == 200);
+    require_problem(post(*c, "/v1/admin/forget", "/v1/admin/forget", json{{"customer", customer}}.dump()), 401);
+    require_problem(post(*c, "/v1/admin/forget", "/v1/admin/forget", "{}", bearer), 400);
+
+    auto gone = post(*c, "/v1/admin/forget", "/v1/admin/forget", json{{"customer", customer}}.dump(), bearer);
+    INFO(gone.text);
+    REQUIRE(gone.status == 200);
+    CHECK(gone.body["customer_found"] == true);
+    CHECK(gone.body["rated_items_removed"] == p.rated_by(u).size());
+    CHECK(gone.body["complete_after_refit"] == true);
+    CHECK(gone.body["model"] != gone.body["previous"]);
+    require_problem(get(*c, kUserRoute, user_path(customer)), 404);
+    auto model = get(*c, "/v1/model", "/v1/model");
+    CHECK(model.body["users"] == p.num_users - 1);
+    CHECK(model.body["items"] == p.num_items);
+    // Others are answered from the same item samples as before.
+    RecommendOptions o;
+    o.n = 5;
+    const auto want = f.engine->recommend(u + 1, o);
+    auto other = get(*c, kUserRoute, user_path(p.user_ids[u + 1]) + "?n=5");
+    REQUIRE(other.status == 200);
+    for (size_t k = 0; k < want.size(); ++k) require_same_prediction(other.body["items"][k], want[k].prediction);
+
+    // A reload of the unchanged file keeps the customer out; forgetting again is harmless.
+    REQUIRE(post(*c, "/v1/admin/reload", "/v1/admin/reload", "", bearer).status == 200);
+    require_problem(get(*c, kUserRoute, user_path(customer)), 404);
+    auto again = post(*c, "/v1/admin/forget", "/v1/admin/forget", json{{"customer", customer}}.dump(), bearer);
+    REQUIRE(again.status == 200);
+    CHECK(again.body["customer_found"] == false);
+}
+
+TEST_CASE("API tokens: permissions per route, no customer's history to a token without customers, rotation") {
+    auto& f = fixture();
+    const fs::path dir = scratch_dir("server_http_tokens");
+    const std::string shop = "shop-web-secret-0123456789abcdef0123456789";
+    const std::string widget = "widget-secret-0123456789abcdef0123456789ab";
+    const std::string ops = "ops-secret-0123456789abcdef0123456789abcde";
+    std::ofstream(dir / "tokens") << "shop-web read,customers " << shop << "\nwidget read " << widget
+                                  << "\nops metrics " << ops << "\n";
+    ServerProcess server(dir, f.model_path,
+                         "read_auth = \"required\"\napi_tokens_file = \"" + (dir / "tokens").string() + "\"\n");
+    auto c = server.client();
+    const auto as = [](const std::string& token) { return httplib::Headers{{"Authorization", "Bearer " + token}}; };
+    const auto get_as = [&](const std::string& pattern, const std::string& target, const std::string& token) {
+        return to_answer(c->Get(target.c_str(), as(token)), "get", pattern);
+    };
+    CHECK(get(*c, "/v1/health", "/v1/health").status == 200);
+    CHECK(get(*c, "/v1/ready", "/v1/ready").status == 200);
+    CHECK(get(*c, "/v1/openapi.json", "/v1/openapi.json").status == 200);
+
+    auto anonymous = c->Get("/v1/model");
+    REQUIRE(anonymous);
+    CHECK(anonymous->status == 401);
+    CHECK(anonymous->get_header_value("WWW-Authenticate").rfind("Bearer", 0) == 0);
+    answered_routes().insert({"get", "/v1/model", 401});
+    require_problem(get_as("/v1/model", "/v1/model", "not-a-valid-token-at-all"), 401);
+    CHECK(get_as("/v1/model", "/v1/model", widget).status == 200);
+    CHECK(get_as("/v1/items", "/v1/items?n=3", widget).status == 200);
+    CHECK(to_answer(c->Post("/v1/recommendations", as(widget), R"({"n": 3})", "application/json"), "post",
+                    "/v1/recommendations")
+              .status == 200);
+
+    // Without the customers permission, a known and an unknown customer get
+    // the same refusal: nothing tells who is a customer or what they rated.
+    const auto known = get_as(kUserRoute, user_path("cust-00001") + "?exclude_rated=false", widget);
+    const auto unknown = get_as(kUserRoute, user_path("cust-stranger") + "?exclude_rated=false", widget);
+    require_problem(known, 403);
+    require_problem(unknown, 403);
+    CHECK(known.body["detail"] == unknown.body["detail"]);
+    CHECK(known.body["type"] == unknown.body["type"]);
+    require_problem(get_as(kUserRoute, user_path("cust-00001") + "?items=sku-00002", widget), 403);
+    require_problem(to_answer(c->Post("/v1/predictions", as(widget),
+                                      R"({"pairs":[{"user":"cust-00001","item":"sku-00002"}]})", "application/json"),
+                              "post", "/v1/predictions"),
+                    403);
+    CHECK(get_as(kUserRoute, user_path("cust-00001"), shop).status == 200);
+    require_problem(get_as(kUserRoute, user_path("cust-stranger"), shop), 404);
+
+    require_problem(get_as("/metrics", "/metrics", widget), 403);
+    CHECK(get_as("/metrics", "/metrics", ops).status == 200);
+    require_problem(get_as("/metrics", "/metrics", ""), 401);
+
+    // Rotation: a new secret for the widget, read on SIGHUP; the old one stops working.
+    const std::string rotated = "widget-rotated-0123456789abcdef0123456789";
+    std::ofstream(dir / "tokens") << "shop-web read,customers " << shop << "\nwidget-2 read " << rotated << "\n";
+    server.signal(SIGHUP);
+    int status_old = 0, status_new = 0;
+    for (int k = 0; k < 100 && !(status_old == 401 && status_new == 200); ++k) {
+        std::this_thread::sleep_for(std::chrono::milliseconds(50));
+        status_old = c->Get("/v1/model", as(widget))->status;
+        status_new = c->Get("/v1/model", as(rotated))->status;
+    }
+    CHECK(status_old == 401);
+    CHECK(status_new == 200);
+}
+
 TEST_CASE("metrics are Prometheus text with requests, latency, in-flight and model") {
     auto& f = fixture();
     auto c = f.server->client();
@@ -495,4 +650,11 @@ TEST_CASE("every route and status the server answered is described in openapi.js
     }
     // Each route answered at least once when the whole file runs.
     CHECK(checked > 0);
+}
+
+TEST_CASE("the server's start-up log names the CPU level its kernels run at") {
+    auto& f = fixture();
+    const std::string log = f.server->log();
+    INFO(log);
+    CHECK(log.find("kernels " + credence::cpu_level_description()) != std::string::npos);
 }

@@ -26,13 +26,15 @@ struct CommandResult {
 };
 
 // `args` is appended to the binary's path as shell words; quote them yourself.
-// stdin is /dev/null, so the program sees no terminal.
-inline CommandResult run_credence(const std::string& args) {
+// stdin is /dev/null, so the program sees no terminal. `environment`, when
+// not empty, is "NAME=value ..." words for env(1), set for this run only.
+inline CommandResult run_credence_with_env(const std::string& environment, const std::string& args) {
     static int counter = 0;
     const auto err_path = std::filesystem::temp_directory_path() /
                           ("credence-test-stderr-" + std::to_string(::getpid()) + "-" + std::to_string(counter++));
     // Built with append: GCC 12 warns falsely (-Wrestrict) on chains of "'" + string.
     std::string command;
+    if (!environment.empty()) command.append("env ").append(environment).append(" ");
     command.append(quoted(credence_binary())).append(" ").append(args).append(" </dev/null 2>").append(quoted(err_path));
     CommandResult r;
     FILE* pipe = popen(command.c_str(), "r");
@@ -49,6 +51,8 @@ inline CommandResult run_credence(const std::string& args) {
     std::filesystem::remove(err_path);
     return r;
 }
+
+inline CommandResult run_credence(const std::string& args) { return run_credence_with_env("", args); }
 
 
 }  // namespace credence::testing

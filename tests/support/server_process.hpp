@@ -33,7 +33,8 @@ namespace credence::testing {
 class ServerProcess {
 public:
     // `settings`: extra [serve] keys as TOML lines ("max_batch = 50"); the
-    // model, host 127.0.0.1 and port 0 are always set. `binary`: the program
+    // model, host 127.0.0.1 and port 0 are always set, threads = 4 unless
+    // the settings name threads. `binary`: the program
     // to run, the built one unless a test runs a copy elsewhere.
     ServerProcess(const std::filesystem::path& dir, const std::filesystem::path& model,
                   const std::string& settings = "", const std::filesystem::path& binary = credence_binary()) {
@@ -41,8 +42,8 @@ public:
         log_ = dir / "server.log";
         {
             std::ofstream cfg(config_);
-            cfg << "[serve]\nmodel = \"" << model.string() << "\"\nhost = \"127.0.0.1\"\nport = 0\nthreads = 4\n"
-                << settings << "\n";
+            cfg << "[serve]\nmodel = \"" << model.string() << "\"\nhost = \"127.0.0.1\"\nport = 0\n"
+                << (settings.find("threads =") == std::string::npos ? "threads = 4\n" : "") << settings << "\n";
         }
         int out[2];
         if (pipe(out) != 0) throw std::runtime_error("pipe failed");
@@ -82,6 +83,14 @@ public:
     int stop() {
         if (pid_ <= 0) return exit_code_;
         ::kill(pid_, SIGTERM);
+        return wait_for_exit();
+    }
+
+    // Waits up to 10 s for the process to end by itself (after a signal the
+    // test sent), then kills it. The exit code, or -1 if it was killed or
+    // ended by a signal.
+    int wait_for_exit() {
+        if (pid_ <= 0) return exit_code_;
         int status = 0;
         for (int k = 0; k < 200; ++k) {
             if (waitpid(pid_, &status, WNOHANG) == pid_) {

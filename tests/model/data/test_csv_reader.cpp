@@ -210,3 +210,50 @@ TEST_CASE("delimiter detection") {
     CHECK_FALSE(detect_delimiter("justoneword\nanother\n").has_value());
     CHECK_FALSE(detect_delimiter("").has_value());
 }
+
+TEST_CASE("a quoted field running over more lines than the limit costs its first line; the rest is read") {
+    // A stray quote opens a field on line 2 and a quote 20 lines later would
+    // close it: with the limit of 8 lines, line 2 is reported and reading
+    // resumes on line 3.
+    std::string text = "a,b,1\nc,\"d,2\n";
+    for (int k = 0; k < 20; ++k) text.append("u").append(std::to_string(k)).append(",i,3\n");
+    text += "x,y\",4\n";
+    auto f = memory_file(text);
+    CsvReader reader(f.get(), {}, 1 << 16, 1 << 12);
+    CsvRecord r;
+    std::vector<std::pair<uint64_t, CsvProblem>> seen;
+    std::vector<uint64_t> ends;
+    while (reader.next(r)) {
+        seen.emplace_back(r.line, r.problem);
+        ends.push_back(r.end_line);
+    }
+    REQUIRE(seen.size() == 23);
+    CHECK(seen[1] == std::pair<uint64_t, CsvProblem>{2, CsvProblem::too_many_lines});
+    for (size_t k = 2; k < seen.size(); ++k) {
+        CHECK(seen[k].first == k + 1);
+        CHECK(seen[k].second == CsvProblem::none);
+        CHECK(ends[k] == k + 1);
+    }
+}
+
+TEST_CASE("a quoted line break within the limit keeps the record whole and gives its last line") {
+    auto f = memory_file("id,note\n1,\"two\nlines\nthree\"\n2,x\n");
+    CsvReader reader(f.get(), {}, 1 << 16, 1 << 12);
+    reader.set_max_record_lines(3);
+    CsvRecord r;
+    REQUIRE(reader.next(r));
+    REQUIRE(reader.next(r));
+    CHECK(r.problem == CsvProblem::none);
+    CHECK(r.line == 2);
+    CHECK(r.end_line == 4);
+    REQUIRE(reader.next(r));
+    CHECK(r.line == 5);
+    CHECK_THROWS_AS(reader.set_max_record_lines(0), std::invalid_argument);
+    // One line more than the limit is malformed.
+    auto g = memory_file("1,\"a\nb\nc\nd\"\n");
+    CsvReader strict(g.get(), {}, 1 << 16, 1 << 12);
+    strict.set_max_record_lines(3);
+    REQUIRE(strict.next(r));
+    CHECK(r.problem == CsvProblem::too_many_lines);
+    CHECK(r.end_line == 1);
+}

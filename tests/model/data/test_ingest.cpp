@@ -2,6 +2,7 @@
 // reason with its line number, duplicate policies, the reject limit, the
 // accounting invariant on messy input, the fingerprint, and the open dataset.
 #include <catch2/catch.hpp>
+#include <sys/stat.h>
 
 #include <algorithm>
 #include <cinttypes>
@@ -65,6 +66,8 @@ bool sorted_unique(const RatingSet& set) {
 
 void check_accounting(const IngestSummary& s) {
     CHECK(s.rows_read == s.kept + s.rejected + s.merged_duplicates);
+    CHECK(s.lines_read == s.header_lines + s.blank_lines + s.row_lines);
+    CHECK(s.rejected_lines >= s.rejected);
 }
 
 }  // namespace
@@ -231,7 +234,7 @@ TEST_CASE("every reject reason is written with its physical line number and raw 
         "ben,lamp,-inf,1700000000\n"                         // 8 infinite
         "ben,lamp,9,1700000000\n"                            // 9 outside scale
         "ben,lamp,3,yesterday\n"                             // 10 bad timestamp
-        "ben,\"tea\ncup\",3,1700000000\n"                    // 11-12 kept (id with a line break)
+        "ben,\"tea\ncup\",3,1700000000\n"                    // 11-12 an id with a line break
         "ben,\"mug\"x,3,1700000000\n"                        // 13 text after quote
         "\n"                                                 // 14 blank
         "ben,vase,,1700000000\n"                             // 15 empty rating
@@ -246,17 +249,17 @@ TEST_CASE("every reject reason is written with its physical line number and raw 
     const auto result = ingest_ratings(o);
     const auto& s = result.summary;
     CHECK(s.rows_read == 16);
-    CHECK(s.kept == 2);
-    CHECK(s.rejected == 14);
+    CHECK(s.kept == 1);
+    CHECK(s.rejected == 15);
     CHECK(s.blank_lines == 1);
     check_accounting(s);
     CHECK(s.rejects_path == path.string() + ".rejects.tsv");
-    CHECK(value_of(result.ratings, "ben", "tea\ncup") == 3.0f);
+    CHECK(std::isnan(value_of(result.ratings, "ben", "tea\ncup")));
     CHECK(result.ratings.scale.declared);
     CHECK(result.ratings.scale.max == 5.0f);
 
     const auto lines = read_lines(s.rejects_path);
-    REQUIRE(lines.size() == 15);
+    REQUIRE(lines.size() == 16);
     CHECK(lines[0] == "line\treason\trecord");
     const std::vector<std::pair<std::string, std::string>> expected{
         {"3", "expected 4 fields, found 3"},
@@ -267,6 +270,7 @@ TEST_CASE("every reject reason is written with its physical line number and raw 
         {"8", "rating '-inf' is not finite"},
         {"9", "rating '9' is outside the declared scale 1 to 5"},
         {"10", "timestamp 'yesterday' is neither a number of epoch seconds nor an ISO-8601 date"},
+        {"11", "item id holds a line break (a stray quote?) (lines 11-12)"},
         {"13", "text after a closing quote"},
         {"15", "empty rating"},
         {"16", "rating '1e39' is not finite"},
@@ -280,7 +284,7 @@ TEST_CASE("every reject reason is written with its physical line number and raw 
     }
     // The raw record is the last column, with tabs and backslashes escaped.
     CHECK(lines[1] == "3\texpected 4 fields, found 3\tben,lamp,4");
-    CHECK(lines[14] == "19\tunterminated quote (a quoted field never closes)\tcara,\"vase\\\\\\tpot,2,1700000000");
+    CHECK(lines[15] == "19\tunterminated quote (a quoted field never closes)\tcara,\"vase\\\\\\tpot,2,1700000000");
 }
 
 TEST_CASE("a decimal comma is named in the reason") {
@@ -404,7 +408,7 @@ TEST_CASE("accounting adds up on randomly corrupted input") {
             item = "set " + std::to_string(item_n) + ", boxed";
             item_field = "\"" + item + "\"";
         } else if (item_n % 10 == 1) {
-            item = "two\nline " + std::to_string(item_n);
+            item = "two\nline " + std::to_string(item_n);  // an id with a line break: rejected
             item_field = "\"" + item + "\"";
         }
         const float value = half_stars(rng) / 2.0f;
@@ -422,7 +426,9 @@ TEST_CASE("accounting adds up on randomly corrupted input") {
             case 5: record = user + "," + item_field + ",7," + time; break;           // outside scale
             case 6: record = user + "," + item_field + "," + rating + ",soon"; break; // bad timestamp
             case 7: record = "\"" + user + "\"!," + item_field + "," + rating + "," + time; break;  // text after quote
-            default: record = user + "," + item_field + "," + rating + "," + time; is_bad = false;
+            default:
+                record = user + "," + item_field + "," + rating + "," + time;
+                is_bad = item_n % 10 == 1;
         }
         text += record + "\n";
         if (is_bad) {
@@ -560,4 +566,144 @@ TEST_CASE("the open ratings dataset ingests completely") {
     CHECK(result.ratings.scale.max == 5.0f);
     CHECK_FALSE(result.ratings.scale.declared);
     CHECK(sorted_unique(result.ratings));
+}
+
+TEST_CASE("a stray quote closed 40,000 lines later in a 114,316-row export costs two rows, not 40,000") {
+    const auto dir = testing::scratch_dir("ingest_stray_quote");
+    constexpr int kRows = 114316, kStray = 30000, kClose = kStray + 40000;
+    std::string text = "customer,product,rating\n";
+    text.reserve(kRows * 24);
+    for (int k = 0; k < kRows; ++k) {
+        const std::string user = std::string("c-").append(std::to_string(k));
+        const std::string item = std::string("p-").append(std::to_string(k % 977));
+        const std::string rating = std::to_string(1 + k % 5);
+        text.append(user).append(k == kStray ? ",\"" : ",").append(item);  // the stray quote opens a field
+        text.append(k == kClose ? "\"," : ",").append(rating).append("\n");  // a quote that would close it
+    }
+    const auto path = write_file(dir, "export.csv", text);
+    const IngestResult r = ingest_ratings(options_for(path));
+    const IngestSummary& s = r.summary;
+    CHECK(s.rows_read == kRows);
+    CHECK(s.rejected == 2);
+    CHECK(s.kept == kRows - 2);
+    CHECK(s.merged_duplicates == 0);
+    CHECK(s.rows_read == s.kept + s.rejected + s.merged_duplicates);
+    // Lines, counted independently from the bytes: one per line feed.
+    const auto lines = static_cast<uint64_t>(std::count(text.begin(), text.end(), '\n'));
+    CHECK(s.lines_read == lines);
+    CHECK(s.lines_read == s.header_lines + s.blank_lines + s.row_lines);
+    CHECK(s.rejected_lines == 2);
+    const auto rejects = read_lines(s.rejects_path);
+    REQUIRE(rejects.size() == 3);
+    CHECK(rejects[1].rfind(std::to_string(kStray + 2) + "\t", 0) == 0);  // line 1 is the header
+    CHECK(rejects[1].find("too many lines") != std::string::npos);
+    CHECK(rejects[2].rfind(std::to_string(kClose + 2) + "\t", 0) == 0);
+    CHECK(rejects[2].find("double quote") != std::string::npos);
+    CHECK(value_of(r.ratings, std::string("c-").append(std::to_string(kStray + 1)),
+                   std::string("p-").append(std::to_string((kStray + 1) % 977))) ==
+          static_cast<float>(1 + (kStray + 1) % 5));
+}
+
+TEST_CASE("an id holding a line break is rejected with the lines it spans, and the lines add up") {
+    const auto dir = testing::scratch_dir("ingest_id_line_break");
+    const std::string text = "user,item,rating\nu1,i1,4\n\"u\n2\",i2,3\nu3,\"note\",5\n\nu4,i4,2\n";
+    const auto path = write_file(dir, "export.csv", text);
+    auto o = options_for(path);
+    o.max_reject_fraction = 0.5;
+    const IngestResult r = ingest_ratings(o);
+    const IngestSummary& s = r.summary;
+    CHECK(s.rows_read == 4);
+    CHECK(s.kept == 3);
+    CHECK(s.rejected == 1);
+    CHECK(s.rejected_lines == 2);
+    CHECK(s.blank_lines == 1);
+    CHECK(s.header_lines == 1);
+    CHECK(s.lines_read == static_cast<uint64_t>(std::count(text.begin(), text.end(), '\n')));
+    CHECK(s.lines_read == s.header_lines + s.blank_lines + s.row_lines);
+    const auto rejects = read_lines(s.rejects_path);
+    REQUIRE(rejects.size() == 2);
+    CHECK(rejects[1].find("user id holds a line break") != std::string::npos);
+    CHECK(rejects[1].find("(lines 3-4)") != std::string::npos);
+    CHECK(describe(s).find("7 lines: 1 header, 1 blank, 5 in rows (2 in rejected rows)") != std::string::npos);
+}
+
+TEST_CASE("UTF-16 and UTF-32 input is named, with or without a byte-order mark") {
+    const auto dir = testing::scratch_dir("ingest_utf16");
+    const std::string ascii = "user,item,rating\nu1,i1,4\n";
+    auto utf16 = [&](bool little) {
+        std::string out;
+        for (char c : ascii) out += little ? std::string{c, '\0'} : std::string{'\0', c};
+        return out;
+    };
+    const std::vector<std::pair<std::string, std::string>> cases = {
+        {"\xFF\xFE" + utf16(true), "UTF-16 (little-endian)"},
+        {"\xFE\xFF" + utf16(false), "UTF-16 (big-endian)"},
+        {utf16(true), "UTF-16 (little-endian)"},
+        {utf16(false), "UTF-16 (big-endian)"},
+        {std::string("\xFF\xFE\0\0", 4) + "u\0\0\0", "UTF-32 (little-endian)"},
+    };
+    for (const auto& [bytes, name] : cases) {
+        const auto path = write_file(dir, "export.csv", bytes);
+        INFO(name);
+        try {
+            ingest_ratings(options_for(path));
+            FAIL("accepted");
+        } catch (const DataError& e) {
+            CHECK(std::string(e.what()).find(name) != std::string::npos);
+            CHECK(std::string(e.what()).find("UTF-8") != std::string::npos);
+        }
+    }
+    const auto binary = write_file(dir, "export.bin", std::string("u,i,r\n\x01\x02\0\x03,\0,\0\n", 13));
+    CHECK_THROWS_WITH(ingest_ratings(options_for(binary)), Catch::Contains("NUL bytes"));
+}
+
+TEST_CASE("a rejects file never holds a raw NUL byte") {
+    const auto dir = testing::scratch_dir("ingest_rejects_nul");
+    std::string text = "user,item,rating\n";
+    for (int k = 0; k < 300; ++k) text.append("u").append(std::to_string(k)).append(",i,4\n");
+    text += std::string("u-bad,i\0x,nope\n", 15);
+    const auto path = write_file(dir, "export.csv", text);
+    const IngestResult r = ingest_ratings(options_for(path));
+    REQUIRE(r.summary.rejected == 1);
+    std::ifstream in(r.summary.rejects_path, std::ios::binary);
+    const std::string bytes((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    CHECK(bytes.find('\0') == std::string::npos);
+    CHECK(bytes.find("i\\0x") != std::string::npos);
+    CHECK(bytes.find("item id holds a NUL byte") != std::string::npos);
+}
+
+TEST_CASE("a run that rejects nothing removes the rejects file of an earlier run, or says it left it") {
+    const auto dir = testing::scratch_dir("ingest_stale_rejects");
+    std::string good = "user,item,rating\n";
+    for (int k = 0; k < 200; ++k) good.append("u").append(std::to_string(k)).append(",i,4\n");
+    const auto path = write_file(dir, "export.csv", good + "u-x,i,none\n");
+    const auto first = ingest_ratings(options_for(path));
+    REQUIRE(first.summary.rejected == 1);
+    REQUIRE(fs::exists(first.summary.rejects_path));
+    CHECK(first.summary.stale_rejects.empty());
+
+    write_file(dir, "export.csv", good);
+    const auto second = ingest_ratings(options_for(path));
+    CHECK(second.summary.rejected == 0);
+    CHECK_FALSE(fs::exists(path.string() + ".rejects.tsv"));
+    CHECK(second.summary.stale_rejects == "removed " + path.string() + ".rejects.tsv");
+    CHECK(describe(second.summary).find("removed " + path.string() + ".rejects.tsv: a rejects file from an earlier run") !=
+          std::string::npos);
+
+    // A rejects path that cannot be removed is reported, not ignored.
+    IngestOptions o = options_for(path);
+    o.rejects_path = (dir / "rejects-dir").string();
+    fs::create_directories(dir / "rejects-dir" / "inside");
+    const auto third = ingest_ratings(o);
+    CHECK(third.summary.stale_rejects.rfind("left " + o.rejects_path + " (", 0) == 0);
+    CHECK(fs::exists(dir / "rejects-dir"));
+
+    // A rejects path that is not a regular file (a pipe here; /dev/null in a
+    // script) is never removed: only files an earlier run wrote are.
+    o.rejects_path = (dir / "rejects-pipe").string();
+    fs::remove(o.rejects_path);
+    REQUIRE(mkfifo(o.rejects_path.c_str(), 0600) == 0);
+    const auto fourth = ingest_ratings(o);
+    CHECK(fourth.summary.stale_rejects.empty());
+    CHECK(fs::is_fifo(o.rejects_path));
 }

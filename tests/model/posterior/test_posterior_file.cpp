@@ -8,17 +8,20 @@
 #include <signal.h>
 #include <sys/resource.h>
 #include <sys/stat.h>
+#include <sys/wait.h>
 #include <unistd.h>
 #include <xxhash.h>
 
 #include <algorithm>
 #include <cmath>
+#include <csignal>
 #include <cstdio>
 #include <cstring>
 #include <filesystem>
 #include <fstream>
 #include <stdexcept>
 #include <string>
+#include <tuple>
 #include <vector>
 
 #include "model/error.hpp"
@@ -33,6 +36,7 @@ using credence::FormatError;
 using credence::Posterior;
 using credence::read_posterior;
 using credence::write_posterior;
+using credence::prepare_posterior_output;
 using credence::SimulatedPosteriorOptions;
 using credence::testing::scratch_dir;
 
@@ -211,19 +215,124 @@ TEST_CASE("round trip is exact for every field, with and without biases") {
     }
 }
 
-TEST_CASE("empty JSON documents, empty ids and special float values survive") {
+TEST_CASE("empty JSON documents, empty ids, negative zero and denormals survive") {
     const auto dir = scratch_dir("posterior_file_special");
     Posterior p = make_posterior({.users = 3, .items = 2, .rank = 2, .samples = 2, .chains = 1, .biases = true});
     p.fit_metadata_json = "{}";
     p.diagnostics_json = "[]";
     p.user_ids[1] = "";
     p.user_factors[0] = -0.0f;
-    p.user_factors[1] = std::nanf("");
-    p.item_factors[0] = std::numeric_limits<float>::infinity();
     p.item_factors[1] = std::numeric_limits<float>::denorm_min();
     const auto path = dir / "special.posterior";
     write_posterior(p, path.string());
     require_identical(p, read_posterior(path.string()));
+}
+
+TEST_CASE("a file with valid checksums and a NaN or infinite number is refused naming the section") {
+    const auto dir = scratch_dir("posterior_file_nonfinite");
+    const auto path = dir / "model.posterior";
+    write_posterior(make_posterior({.users = 4, .items = 5, .rank = 2, .samples = 2, .chains = 1, .biases = true}),
+                    path.string());
+    const auto sections = split_sections(slurp(path));
+    const auto index_of = [&](uint32_t id) {
+        for (size_t k = 0; k < sections.size(); ++k)
+            if (sections[k].id == id) return k;
+        FAIL("no section " << id);
+        return size_t{0};
+    };
+    // Section ids from FORMAT.md section 5.
+    const std::vector<std::tuple<uint32_t, size_t, float, std::string>> cases = {
+        {5, 3, std::nanf(""), "section user_factors holds NaN"},
+        {6, 0, std::numeric_limits<float>::infinity(), "section item_factors holds an infinite value"},
+        {7, 1, -std::numeric_limits<float>::infinity(), "section user_bias holds an infinite value"},
+        {8, 2, std::nanf(""), "section item_bias holds NaN"},
+        {10, 1, std::nanf(""), "section user_mu holds NaN"},
+        {11, 0, 0.0f, "section user_lambda of sample 0 has a diagonal entry that is not positive"},
+        {13, 1, std::nanf(""), "section item_lambda holds NaN"},
+        {14, 0, -1.0f, "section user_bias_precision holds"},
+        {15, 1, std::numeric_limits<float>::infinity(), "section item_bias_precision holds an infinite value"},
+        {9, 0, std::nanf(""), "noise precision of sample 0 is not a positive finite number"},
+    };
+    for (const auto& [id, at, value, message] : cases) {
+        INFO(message);
+        auto edited = sections;
+        std::memcpy(edited[index_of(id)].data.data() + at * 4, &value, 4);
+        spit(path, assemble(edited));
+        require_format_error(path, message);
+    }
+}
+
+TEST_CASE("the writer refuses NaN or infinite numbers and creates nothing") {
+    const auto dir = scratch_dir("posterior_file_write_nonfinite");
+    Posterior p = make_posterior({.users = 3, .items = 2, .rank = 2, .samples = 2, .chains = 1, .biases = true});
+    p.item_factors[1] = std::numeric_limits<float>::infinity();
+    CHECK_THROWS_AS(write_posterior(p, (dir / "x.posterior").string()), std::invalid_argument);
+    CHECK(fs::is_empty(dir));
+}
+
+TEST_CASE("an output is checked before the work: missing directory, a directory, an unwritable place") {
+    const auto dir = scratch_dir("posterior_file_prepare");
+    CHECK(prepare_posterior_output((dir / "ok.posterior").string()).empty());
+    CHECK(fs::is_empty(dir));  // the probe file is gone
+    CHECK_THROWS_WITH(prepare_posterior_output((dir / "missing" / "x.posterior").string()),
+                      Catch::Contains("does not exist") && Catch::Contains("choose another --out"));
+    fs::create_directories(dir / "taken.posterior");
+    CHECK_THROWS_WITH(prepare_posterior_output((dir / "taken.posterior").string()),
+                      Catch::Contains("is not a regular file"));
+    // /proc takes no new files, even for root.
+    CHECK_THROWS_WITH(prepare_posterior_output("/proc/credence-test.posterior"),
+                      Catch::Contains("cannot create files in /proc"));
+}
+
+TEST_CASE("temporary files of writers that no longer run are removed, of running ones reported") {
+    const auto dir = scratch_dir("posterior_file_stale");
+    const pid_t child = fork();
+    if (child == 0) _exit(0);
+    waitpid(child, nullptr, 0);  // a process id that no longer runs
+    const auto dead = dir / (".shop.posterior.tmp-" + std::to_string(child) + "-3");
+    const auto alive = dir / (".shop.posterior.tmp-" + std::to_string(getppid()) + "-0");
+    const auto other = dir / ".other.posterior.tmp-1-0";
+    spit(dead, Bytes(1000, 7));
+    spit(alive, Bytes(10, 7));
+    spit(other, Bytes(10, 7));
+    const auto notes = prepare_posterior_output((dir / "shop.posterior").string());
+    REQUIRE(notes.size() == 2);
+    CHECK_FALSE(fs::exists(dead));
+    CHECK(fs::exists(alive));
+    CHECK(fs::exists(other));  // another target's: not ours to judge
+    const std::string all = notes[0] + "\n" + notes[1];
+    CHECK(all.find("removed " + dead.string() + " (1000 bytes)") != std::string::npos);
+    CHECK(all.find("left " + alive.string() + ": process " + std::to_string(getppid())) != std::string::npos);
+}
+
+TEST_CASE("SIGINT or SIGTERM during a write leave no temporary file behind") {
+    const auto dir = scratch_dir("posterior_file_signal");
+    const Posterior big = make_posterior({.users = 1500, .items = 1500, .rank = 16, .samples = 60, .chains = 1});
+    for (int sig : {SIGINT, SIGTERM}) {
+        const pid_t child = fork();
+        if (child == 0) {
+            // As in the program: the default actions (Catch's handlers are inherited otherwise).
+            std::signal(SIGINT, SIG_DFL);
+            std::signal(SIGTERM, SIG_DFL);
+            for (int k = 0; k < 200; ++k) write_posterior(big, (dir / "big.posterior").string());
+            _exit(0);
+        }
+        // Wait until a temporary file exists, then signal.
+        bool writing = false;
+        for (int k = 0; k < 2000 && !writing; ++k) {
+            for (const auto& e : fs::directory_iterator(dir))
+                writing = writing || e.path().filename().string().find(".tmp-") != std::string::npos;
+            if (!writing) usleep(1000);
+        }
+        REQUIRE(writing);
+        kill(child, sig);
+        int status = 0;
+        waitpid(child, &status, 0);
+        INFO("signal " << sig);
+        CHECK(WIFSIGNALED(status));
+        CHECK(WTERMSIG(status) == sig);
+        for (const auto& e : fs::directory_iterator(dir)) CHECK(e.path().filename().string() == "big.posterior");
+    }
 }
 
 TEST_CASE("the file layout follows FORMAT.md") {

@@ -1,10 +1,13 @@
 // Tests for model/predict/foldin: the visitor's draws follow the exact
-// Gaussian conditional of each kept sample, ratings are checked, and the
-// visitor's top-N is the engine's answer for the folded-in factors.
+// Gaussian conditional of each kept sample, ratings are checked, the exact
+// (integrated) predictive matches a Monte Carlo estimate over many draws,
+// answers are deterministic, and the visitor's top-N is exact for every
+// ranking.
 #include <catch2/catch.hpp>
 
 #include <algorithm>
 #include <cmath>
+#include <iterator>
 #include <limits>
 #include <memory>
 #include <optional>
@@ -15,6 +18,7 @@
 
 #include "model/error.hpp"
 #include "model/predict/foldin.hpp"
+#include "model/predict/mixture.hpp"
 #include "model/predict/predict.hpp"
 #include "tests/support/simulate.hpp"
 
@@ -188,23 +192,264 @@ TEST_CASE("visitor ratings outside the scale, rated twice or naming no item are 
     CHECK_NOTHROW(check_visitor_ratings(p, std::vector<VisitorRating>{}));
 }
 
-TEST_CASE("a visitor's top-N is the engine's answer for the folded-in factors, rated items excluded") {
+// ---- Exact fold-in: the visitor integrated out.
+
+namespace {
+
+// The per-sample predictive of a rating of `item` for a visitor whose draw
+// under sample s is (x, b): g + c_i + b + x . V_i.
+double drawn_mean(const Posterior& p, const VisitorFactors& v, uint32_t s, uint32_t item) {
+    double m = double(p.global_mean) + p.item_bias_of(s, item) + v.bias[s];
+    for (uint32_t k = 0; k < p.rank; ++k) m += double(v.factors[s * p.rank + k]) * p.item_factor(s, item)[k];
+    return m;
+}
+
+double phi(double z) { return 0.5 * std::erfc(-z / std::sqrt(2.0)); }
+
+// Every candidate's exact score, sorted: higher first, then lower index.
+std::vector<std::pair<uint32_t, double>> brute_force_ranking(const Posterior& p, const VisitorPosterior& v,
+                                                             const std::vector<uint32_t>& pool, RankBy rank_by,
+                                                             double level) {
+    std::vector<std::pair<uint32_t, double>> all;
+    std::vector<double> means, precisions;
+    for (uint32_t i : pool) {
+        visitor_components(p, v, i, means, precisions);
+        const double score = rank_by == RankBy::mean    ? mixture_mean(means)
+                             : rank_by == RankBy::lower ? mixture_quantile(means, precisions, 0.5 * (1.0 - level))
+                                                        : mixture_quantile(means, precisions, 0.5 * (1.0 + level));
+        all.emplace_back(i, score);
+    }
+    std::sort(all.begin(), all.end(), [](const auto& a, const auto& b) {
+        return a.second > b.second || (a.second == b.second && a.first < b.first);
+    });
+    return all;
+}
+
+}  // namespace
+
+// The exact answer against a Monte Carlo estimate from many visitor draws:
+// under each sample the visitor's draws x_n give ratings Normal(m_s(x_n),
+// 1/tau_s), so averaging over n = 20000 draws (fold_in_visitor, seeds
+// 1..n) estimates the integrated predictive. Tolerances are 4 Monte Carlo
+// standard errors: sd/sqrt(n) for means, var sqrt(2/(n-1)) for the variance
+// of a normal, and for the mixture's variance and CDF the sd over draws of
+// the per-draw quantity (mean over samples), divided by sqrt(n).
+TEST_CASE("the exact visitor predictive matches a Monte Carlo estimate over many visitor draws") {
+    for (const bool biases : {true, false}) {
+        INFO("biases " << biases);
+        const Posterior p = simulate_posterior(
+            {.users = 6, .items = 30, .rank = 3, .samples = 6, .chains = 2, .biases = biases, .seed = 12});
+        const std::vector<VisitorRating> ratings = {{4, 4.5}, {9, 2.0}, {21, 3.5}};
+        const VisitorPosterior exact = fold_in(p, ratings);
+        const uint32_t S = p.num_samples;
+        const int n = 20000;
+        const uint32_t items[] = {0, 4, 17, 29};  // 4 was rated
+        const double level = 0.8;
+        struct Accumulator {
+            std::vector<double> sum, sum_sq;  // per sample: m_s(x)
+            double var_sum = 0, var_sum_sq = 0, cdf_lo_sum = 0, cdf_lo_sq = 0, cdf_hi_sum = 0, cdf_hi_sq = 0;
+        };
+        std::vector<Accumulator> acc(std::size(items));
+        std::vector<std::vector<double>> means(std::size(items)), precisions(std::size(items));
+        std::vector<Prediction> predicted;
+        std::vector<double> q_lo, q_hi;  // unclipped interval bounds
+        for (size_t j = 0; j < std::size(items); ++j) {
+            visitor_components(p, exact, items[j], means[j], precisions[j]);
+            predicted.push_back(predict_for_visitor(p, exact, items[j], level));
+            q_lo.push_back(mixture_quantile(means[j], precisions[j], 0.5 * (1.0 - level)));
+            q_hi.push_back(mixture_quantile(means[j], precisions[j], 0.5 * (1.0 + level)));
+            acc[j].sum.assign(S, 0.0);
+            acc[j].sum_sq.assign(S, 0.0);
+        }
+        for (int draw = 1; draw <= n; ++draw) {
+            const VisitorFactors v = fold_in_visitor(p, ratings, uint64_t(draw));
+            for (size_t j = 0; j < std::size(items); ++j) {
+                const double mu = mixture_mean(means[j]);
+                double var = 0, lo = 0, hi = 0;
+                for (uint32_t s = 0; s < S; ++s) {
+                    const double m = drawn_mean(p, v, s, items[j]);
+                    acc[j].sum[s] += m;
+                    acc[j].sum_sq[s] += m * m;
+                    const double noise_var = 1.0 / p.noise_precision[s];
+                    var += ((m - mu) * (m - mu) + noise_var) / S;
+                    lo += phi((q_lo[j] - m) / std::sqrt(noise_var)) / S;
+                    hi += phi((q_hi[j] - m) / std::sqrt(noise_var)) / S;
+                }
+                acc[j].var_sum += var, acc[j].var_sum_sq += var * var;
+                acc[j].cdf_lo_sum += lo, acc[j].cdf_lo_sq += lo * lo;
+                acc[j].cdf_hi_sum += hi, acc[j].cdf_hi_sq += hi * hi;
+            }
+        }
+        auto mc = [&](double sum, double sum_sq) {
+            const double mean = sum / n;
+            return std::pair{mean, std::sqrt(std::max(0.0, sum_sq / n - mean * mean) / n)};
+        };
+        for (size_t j = 0; j < std::size(items); ++j) {
+            INFO("item " << items[j]);
+            for (uint32_t s = 0; s < S; ++s) {
+                INFO("sample " << s);
+                const double mean = acc[j].sum[s] / n, var = acc[j].sum_sq[s] / n - mean * mean;
+                const double want_var = 1.0 / precisions[j][s] - 1.0 / p.noise_precision[s];
+                CHECK(std::abs(mean - means[j][s]) < 4 * std::sqrt(want_var / n));
+                CHECK(std::abs(var - want_var) < 4 * want_var * std::sqrt(2.0 / (n - 1)));
+            }
+            // Mixture moments: the Prediction's sd against the Monte Carlo variance.
+            const auto [var, var_se] = mc(acc[j].var_sum, acc[j].var_sum_sq);
+            CHECK(std::abs(predicted[j].sd * predicted[j].sd - var) < 4 * var_se);
+            // Quantiles: the Monte Carlo CDF at the exact interval bounds is
+            // (1 -+ level) / 2; the Prediction carries them clipped to the scale.
+            CHECK(predicted[j].lower == std::clamp(q_lo[j], double(p.scale.min), double(p.scale.max)));
+            CHECK(predicted[j].upper == std::clamp(q_hi[j], double(p.scale.min), double(p.scale.max)));
+            CHECK(predicted[j].mean == std::clamp(mixture_mean(means[j]), double(p.scale.min), double(p.scale.max)));
+            const auto [lo, lo_se] = mc(acc[j].cdf_lo_sum, acc[j].cdf_lo_sq);
+            const auto [hi, hi_se] = mc(acc[j].cdf_hi_sum, acc[j].cdf_hi_sq);
+            CHECK(std::abs(lo - 0.1) < 4 * lo_se);
+            CHECK(std::abs(hi - 0.9) < 4 * hi_se);
+        }
+    }
+}
+
+TEST_CASE("the visitor's components: the reference mean with the conditional mean factor, and y' P^-1 y + 1/tau") {
+    const Posterior p = simulate_posterior({.users = 5, .items = 12, .rank = 2, .samples = 3, .chains = 1, .seed = 4});
+    const std::vector<VisitorRating> ratings = {{3, 4.0}, {7, 2.5}, {11, 5.0}, {0, 1.0}};
+    const VisitorPosterior v = fold_in(p, ratings);
+    // The same precision and mean as in the draw test above (Bishop 2006,
+    // eqs. 3.50-3.51), written out and inverted explicitly.
+    for (uint32_t s = 0; s < p.num_samples; ++s) {
+        Eigen::Matrix3d P = Eigen::Matrix3d::Zero();
+        Eigen::Vector3d mu0 = Eigen::Vector3d::Zero();
+        for (uint32_t a = 0; a < 2; ++a) {
+            mu0(a) = p.user_mu[s * 2 + a];
+            for (uint32_t b = 0; b < 2; ++b) P(a, b) = p.user_lambda[(s * 2 + a) * 2 + b];
+        }
+        P(2, 2) = p.user_bias_precision[s];
+        Eigen::Vector3d h = P * mu0;
+        for (const auto& r : ratings) {
+            const Eigen::Vector3d y(p.item_factor(s, r.item)[0], p.item_factor(s, r.item)[1], 1.0);
+            P += p.noise_precision[s] * y * y.transpose();
+            h += p.noise_precision[s] * (r.rating - p.global_mean - p.item_bias_of(s, r.item)) * y;
+        }
+        const Eigen::Matrix3d cov = P.inverse();
+        const Eigen::Vector3d mean = cov * h;
+        CHECK(v.factor_mean[s * 2] == Approx(mean(0)).epsilon(1e-6));
+        CHECK(v.factor_mean[s * 2 + 1] == Approx(mean(1)).epsilon(1e-6));
+        CHECK(v.bias_mean[s] == Approx(mean(2)).epsilon(1e-6));
+        for (uint32_t i : {0u, 5u, 11u}) {
+            std::vector<double> means, precisions;
+            visitor_components(p, v, i, means, precisions);
+            const Eigen::Vector3d y(p.item_factor(s, i)[0], p.item_factor(s, i)[1], 1.0);
+            CHECK(means[s] == Approx(p.global_mean + p.item_bias_of(s, i) + mean.dot(y)).epsilon(1e-6));
+            CHECK(1.0 / precisions[s] == Approx(y.dot(cov * y) + 1.0 / p.noise_precision[s]).epsilon(1e-10));
+        }
+    }
+}
+
+TEST_CASE("a visitor's answers are deterministic: no seed enters a mean, lower or upper ranking") {
+    auto p = std::make_shared<const Posterior>(
+        simulate_posterior({.users = 10, .items = 60, .rank = 3, .samples = 8, .chains = 2, .seed = 6}));
+    const PredictionEngine engine(p);
+    const std::vector<VisitorRating> ratings = {{17, 4.5}, {2, 1.0}, {30, 3.0}};
+    for (const RankBy rank_by : {RankBy::mean, RankBy::lower, RankBy::upper}) {
+        const RecommendOptions a{.n = 8, .rank_by = rank_by, .candidates = std::nullopt, .draw_seed = 1};
+        const RecommendOptions b{.n = 8, .rank_by = rank_by, .candidates = std::nullopt, .draw_seed = 2};
+        const auto first = recommend_for_visitor(engine, ratings, a);
+        REQUIRE(first.size() == 8);
+        CHECK(first == recommend_for_visitor(engine, ratings, a));
+        CHECK(first == recommend_for_visitor(engine, ratings, b));
+    }
+    // A draw ranking is deterministic per seed, and seeds differ.
+    const RecommendOptions d7{.n = 60, .rank_by = RankBy::draw, .exclude_rated = false, .candidates = std::nullopt,
+                              .draw_seed = 7};
+    const auto seven = recommend_for_visitor(engine, ratings, d7);
+    CHECK(seven == recommend_for_visitor(engine, ratings, d7));
+    bool some_seed_differs = false;
+    for (uint64_t seed = 8; seed < 12 && !some_seed_differs; ++seed) {
+        RecommendOptions other = d7;
+        other.draw_seed = seed;
+        some_seed_differs = recommend_for_visitor(engine, ratings, other) != seven;
+    }
+    CHECK(some_seed_differs);
+}
+
+TEST_CASE("a visitor's top-N by mean, lower and upper is exactly the sorted exact scores") {
+    // Duplicated items tie exactly; ties break by item index.
+    SimulatedPosteriorOptions spec{.users = 10, .items = 400, .rank = 4, .samples = 12, .chains = 2, .seed = 9};
+    spec.duplicate_items = 20;
+    auto p = std::make_shared<const Posterior>(simulate_posterior(spec));
+    const PredictionEngine engine(p);
+    const std::vector<VisitorRating> ratings = {{17, 4.5}, {2, 1.0}, {300, 3.0}, {385, 5.0}};
+    const VisitorPosterior v = fold_in(*p, ratings);
+    for (const RankBy rank_by : {RankBy::mean, RankBy::lower, RankBy::upper})
+        for (const bool restricted : {false, true}) {
+            INFO("rank_by " << int(rank_by) << ", candidates " << restricted);
+            RecommendOptions o{.n = 15, .rank_by = rank_by, .level = 0.8, .candidates = std::nullopt};
+            std::vector<uint32_t> pool;
+            if (restricted) {
+                o.candidates = std::vector<uint32_t>{};
+                for (uint32_t i = 0; i < 400; i += 7) o.candidates->push_back(i);
+                o.candidates->push_back(17);  // rated: still excluded
+            }
+            for (uint32_t i = 0; i < 400; ++i)
+                if (i != 2 && i != 17 && i != 300 && i != 385 && (!restricted || i % 7 == 0)) pool.push_back(i);
+            const auto want = brute_force_ranking(*p, v, pool, rank_by, o.level);
+            const auto got = recommend_for_visitor(engine, ratings, o);
+            REQUIRE(got.size() == 15);
+            for (size_t k = 0; k < got.size(); ++k) {
+                INFO("position " << k);
+                CHECK(got[k].item == want[k].first);
+                CHECK(got[k].score == want[k].second);
+                CHECK(got[k].prediction == predict_for_visitor(*p, v, got[k].item, o.level));
+            }
+        }
+}
+
+TEST_CASE("a visitor's draw ranking uses one kept sample and one visitor draw under it") {
+    auto p = std::make_shared<const Posterior>(
+        simulate_posterior({.users = 10, .items = 50, .rank = 3, .samples = 9, .chains = 1, .seed = 3}));
+    const PredictionEngine engine(p);
+    const std::vector<VisitorRating> ratings = {{5, 2.0}, {8, 4.0}};
+    const RecommendOptions o{.n = 10, .rank_by = RankBy::draw, .candidates = std::nullopt, .draw_seed = 4242};
+    const uint32_t s = drawn_sample(o.draw_seed, p->num_samples);
+    const VisitorFactors draw = fold_in_visitor(*p, ratings, o.draw_seed);
+    const VisitorPosterior v = fold_in(*p, ratings);
+    std::vector<std::pair<uint32_t, double>> want;
+    for (uint32_t i = 0; i < 50; ++i)
+        if (i != 5 && i != 8) want.emplace_back(i, drawn_mean(*p, draw, s, i));
+    std::sort(want.begin(), want.end(), [](const auto& a, const auto& b) {
+        return a.second > b.second || (a.second == b.second && a.first < b.first);
+    });
+    const auto got = recommend_for_visitor(engine, ratings, o);
+    REQUIRE(got.size() == 10);
+    for (size_t k = 0; k < got.size(); ++k) {
+        INFO("position " << k);
+        CHECK(got[k].item == want[k].first);
+        // Two summation orders of the same double sum.
+        CHECK(got[k].score == Approx(want[k].second).epsilon(1e-12));
+        // The carried answer is the exact mixture, not the draw.
+        CHECK(got[k].prediction == predict_for_visitor(*p, v, got[k].item, o.level));
+    }
+}
+
+TEST_CASE("a visitor's rated items are excluded unless asked for, and bad options are refused") {
     auto p = std::make_shared<const Posterior>(
         simulate_posterior({.users = 10, .items = 40, .rank = 3, .samples = 8, .chains = 2, .seed = 6}));
     const PredictionEngine engine(p);
     const std::vector<VisitorRating> ratings = {{17, 4.5}, {2, 1.0}, {30, 3.0}};
-    RecommendOptions o{.n = 7, .rank_by = RankBy::upper, .candidates = std::nullopt};
-    const auto v = fold_in_visitor(*p, ratings, 99);
-    const auto got = recommend_for_visitor(engine, ratings, 99, o);
-    CHECK(got == engine.recommend_for_factors(v.factors, v.bias, std::vector<uint32_t>{2, 17, 30}, o));
-    REQUIRE(got.size() == 7);
-    for (const auto& r : got) CHECK((r.item != 2 && r.item != 17 && r.item != 30));
-    // With exclude_rated off, the rated items compete like any other.
-    o.exclude_rated = false;
-    o.n = 40;
-    const auto all = recommend_for_visitor(engine, ratings, 99, o);
-    CHECK(all.size() == 40);
-    CHECK(all == engine.recommend_for_factors(v.factors, v.bias, std::vector<uint32_t>{}, o));
-    // Another seed draws another visitor.
-    CHECK(fold_in_visitor(*p, ratings, 100).factors != v.factors);
+    for (const RankBy rank_by : {RankBy::mean, RankBy::lower, RankBy::upper, RankBy::draw}) {
+        RecommendOptions o{.n = 40, .rank_by = rank_by, .candidates = std::nullopt};
+        const auto some = recommend_for_visitor(engine, ratings, o);
+        CHECK(some.size() == 37);
+        for (const auto& r : some) CHECK((r.item != 2 && r.item != 17 && r.item != 30));
+        o.exclude_rated = false;
+        CHECK(recommend_for_visitor(engine, ratings, o).size() == 40);
+        o.n = 0;
+        CHECK_THROWS_AS(recommend_for_visitor(engine, ratings, o), OptionError);
+        o.n = 5;
+        o.level = 1.0;
+        CHECK_THROWS_AS(recommend_for_visitor(engine, ratings, o), OptionError);
+    }
+    // No ratings: the prior visitor, still deterministic.
+    const RecommendOptions cold{.n = 5, .rank_by = RankBy::lower, .candidates = std::nullopt};
+    CHECK(recommend_for_visitor(engine, {}, cold) == recommend_for_visitor(engine, {}, cold));
+    CHECK_THROWS_AS(predict_for_visitor(*p, fold_in(*p, ratings), 40, 0.9), std::out_of_range);
 }

@@ -150,3 +150,32 @@ TEST_CASE("mixture helpers reject malformed input") {
     CHECK_THROWS_AS(mixture_quantile(m, std::vector<float>{1.0f, 1.0f}, 0.0), std::invalid_argument);
     CHECK_THROWS_AS(mixture_mean(std::vector<double>{}), std::invalid_argument);
 }
+
+// The visitor fold-in passes per-component precisions in double (each
+// component's own variance). With precisions that a float holds exactly, the
+// double entry points must give the float ones' answers bit for bit (one
+// implementation); a precision a float cannot hold is checked against the
+// normal's closed-form quantile.
+TEST_CASE("mixtures with double precisions answer as with float ones, and per-component variances count") {
+    Rng rng(31);
+    std::vector<double> m;
+    std::vector<float> tau;
+    std::vector<double> precision;
+    for (int s = 0; s < 40; ++s) {
+        m.push_back(3.0 + rng.normal());
+        tau.push_back(static_cast<float>(0.5 + rng.uniform()));
+        precision.push_back(tau.back());
+    }
+    CHECK(mixture_sd(m, precision) == mixture_sd(m, tau));
+    CHECK(mixture_cdf(m, precision, 3.3) == mixture_cdf(m, tau, 3.3));
+    for (double p : {0.05, 0.3, 0.5, 0.9})
+        CHECK(mixture_quantile(m, precision, p) == mixture_quantile(m, tau, p));
+    // One component with precision 1/(0.1^2 + 0.3^2) that float cannot hold
+    // exactly: its 95% point is mean + 1.6448536 sd (standard normal table,
+    // recalled from memory).
+    const double variance = 0.01 + 0.09;
+    const std::vector<double> one = {2.0}, one_precision = {1.0 / variance};
+    CHECK(mixture_quantile(one, one_precision, 0.95) == Approx(2.0 + 1.6448536 * std::sqrt(variance)).epsilon(1e-8));
+    CHECK(mixture_sd(one, one_precision) == Approx(std::sqrt(variance)).epsilon(1e-14));
+    CHECK_THROWS_AS(mixture_quantile(one, std::vector<double>{}, 0.5), std::invalid_argument);
+}

@@ -1,0 +1,445 @@
+#include "model/fit/row_kernels.hpp"
+
+// Compiled once per level (CMakeLists.txt: CREDENCE_KERNEL_LEVEL 0, 1, 2 with
+// -march=x86-64, x86-64-v3, x86-64-v4 and -ffp-contract=off). Everything here
+// has internal linkage and the file includes no library header with inline
+// functions, so no out-of-line copy built for one level can be linked into
+// another's callers (tests/model/fit/test_row_kernels.cpp checks the
+// symbols). Why the levels give the same bits: model/fit/row_kernels.hpp.
+
+#ifndef CREDENCE_KERNEL_LEVEL
+#define CREDENCE_KERNEL_LEVEL 0
+#endif
+#if CREDENCE_KERNEL_LEVEL > 0
+#include <immintrin.h>
+#else
+// The baseline build alone also holds the level switch (ordinary code).
+#include <stdexcept>
+#include <string>
+#endif
+
+namespace credence::row_kernels {
+
+namespace {
+
+// Native vector of doubles for the level; a panel is 8 doubles at every level.
+#if CREDENCE_KERNEL_LEVEL == 2
+constexpr int kLanes = 8;
+constexpr int kTileRows = 16;       // accumulators per tile: 16 zmm of 32
+constexpr int kFirstTileRows = 16;  // and 2 more for s and t
+const char* const kLevelName = "x86-64-v4";
+#elif CREDENCE_KERNEL_LEVEL == 1
+constexpr int kLanes = 4;
+constexpr int kTileRows = 6;        // 12 ymm of 16
+constexpr int kFirstTileRows = 4;   // 8, and 4 for s and t
+const char* const kLevelName = "x86-64-v3";
+#else
+constexpr int kLanes = 2;
+constexpr int kTileRows = 3;        // 12 xmm of 16
+constexpr int kFirstTileRows = 1;   // 4, and 8 for s and t
+const char* const kLevelName = "x86-64";
+#endif
+constexpr int kPanel = 8;
+constexpr int kPerPanel = kPanel / kLanes;
+
+typedef double Vec __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(kLanes * sizeof(double))));
+
+#define CREDENCE_INLINE inline __attribute__((always_inline))
+
+CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>(p); }
+CREDENCE_INLINE void store(double* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
+// Every lane x (not Vec{} + x, which must compute 0 + x for x = -0).
+CREDENCE_INLINE Vec splat(double x) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    return reinterpret_cast<Vec>(_mm512_set1_pd(x));
+#elif CREDENCE_KERNEL_LEVEL == 1
+    return reinterpret_cast<Vec>(_mm256_set1_pd(x));
+#else
+    return Vec{x, x};
+#endif
+}
+
+// c + a b where a b is exact in double (both factors float32 values or 1):
+// one rounding, so fused and unfused agree bit for bit.
+CREDENCE_INLINE Vec add_exact_product(Vec a, Vec b, Vec c) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    return reinterpret_cast<Vec>(_mm512_fmadd_pd(reinterpret_cast<__m512d>(a), reinterpret_cast<__m512d>(b),
+                                                 reinterpret_cast<__m512d>(c)));
+#elif CREDENCE_KERNEL_LEVEL == 1
+    return reinterpret_cast<Vec>(_mm256_fmadd_pd(reinterpret_cast<__m256d>(a), reinterpret_cast<__m256d>(b),
+                                                 reinterpret_cast<__m256d>(c)));
+#else
+    return a * b + c;
+#endif
+}
+
+constexpr size_t pad8(size_t n) { return (n + 7) / 8 * 8; }
+
+// The scratch layout (scratch_doubles in the header counts the same).
+struct Scratch {
+    double* x;      // [kGatherRows][p] gathered factor rows, widened
+    double* y;      // [kGatherRows] targets r - g - other bias
+    double* gram;   // [rank][p] F, upper triangle by panels
+    double* s;      // [p] sum x
+    double* t;      // [p] sum y x
+    double* a;      // [d][ld] precision, then its Cholesky factor U, upper triangles
+    double* u;      // [d][ld] (the first ld hold 1 / U[j][j])
+    double* rhs;    // [ld]
+    double* c;      // [ld]
+    double* w;      // [ld] the stored draw, widened
+    double* spare;  // [ld]
+    size_t p, ld;
+};
+
+Scratch layout(double* base, uint32_t rank) {
+    Scratch s;
+    s.p = pad8(rank);
+    s.ld = pad8(rank + 1);
+    s.x = base;
+    s.y = s.x + size_t(kGatherRows) * s.p;
+    s.gram = s.y + kGatherRows;
+    s.s = s.gram + size_t(rank) * s.p;
+    s.t = s.s + s.p;
+    s.a = s.t + s.p;
+    s.u = s.a + size_t(rank + 1) * s.ld;
+    s.rhs = s.u + size_t(rank + 1) * s.ld;
+    s.c = s.rhs + s.ld;
+    s.w = s.c + s.ld;
+    s.spare = s.w + s.ld;
+    return s;
+}
+
+// How far ahead the gather prefetches the other side's rows (ratings).
+constexpr uint64_t kPrefetchAhead = 16;
+
+// The row's rank, fixed at compile time for the common ranks (KK > 0) so
+// loops unroll and vectorize without remainders; KK == 0 reads it at run time.
+template <uint32_t KK>
+CREDENCE_INLINE uint32_t rank_of(const SideData& side) {
+    return KK > 0 ? KK : side.rank;
+}
+
+// Gathers ratings [first, first + n) into x (rows of p doubles; columns past
+// rank stay zero) and y; adds the targets to sum_y in rating order.
+template <uint32_t KK>
+void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, double& sum_y) {
+    const uint32_t K = rank_of<KK>(side);
+    const float* factors = side.other_factors;
+    const uint64_t prefetch_end = side.nnz > kPrefetchAhead ? side.nnz - kPrefetchAhead : 0;
+    for (uint32_t r = 0; r < n; ++r) {
+        const uint64_t at = first + r;
+        if (at < prefetch_end) {
+            const uint32_t ahead = side.index[at + kPrefetchAhead];
+            const float* f = factors + size_t(ahead) * K;
+            __builtin_prefetch(f);
+            __builtin_prefetch(f + K - 1);
+            if (side.other_bias) __builtin_prefetch(side.other_bias + ahead);
+        }
+        const uint32_t other = side.index[at];
+        const float* f = factors + size_t(other) * K;
+        double* row = s.x + size_t(r) * s.p;
+        for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<double>(f[k]);
+        double target = static_cast<double>(side.value[at]) - side.global_mean;
+        if (side.other_bias) target -= static_cast<double>(side.other_bias[other]);
+        s.y[r] = target;
+        sum_y += target;
+    }
+}
+
+// gram rows [k0, k0 + M) of the panel at col0 += sum over the n gathered rows
+// of x[k] x[col0 .. col0 + 8), each entry summed in rating order (from zero
+// when `first`). The first tile of a panel (EXTRAS) also sums s += x and
+// t += y x for the panel's columns, t with a separate multiply and add.
+template <int M, bool EXTRAS>
+void tile(const Scratch& s, const double* x, const double* y, uint32_t n, uint32_t k0, uint32_t col0, bool first) {
+    const size_t p = s.p;
+    Vec acc[M][kPerPanel], sums[kPerPanel], cross[kPerPanel];
+    for (int i = 0; i < M; ++i)
+        for (int q = 0; q < kPerPanel; ++q)
+            acc[i][q] = first ? Vec{} : load(s.gram + (k0 + i) * p + col0 + q * kLanes);
+    if constexpr (EXTRAS)
+        for (int q = 0; q < kPerPanel; ++q) {
+            sums[q] = first ? Vec{} : load(s.s + col0 + q * kLanes);
+            cross[q] = first ? Vec{} : load(s.t + col0 + q * kLanes);
+        }
+    for (uint32_t r = 0; r < n; ++r) {
+        const double* row = x + size_t(r) * p;
+        const double* rows_k = row + k0;
+        Vec v[kPerPanel];
+        for (int q = 0; q < kPerPanel; ++q) v[q] = load(row + col0 + q * kLanes);
+        for (int i = 0; i < M; ++i) {
+            const Vec b = splat(rows_k[i]);
+            for (int q = 0; q < kPerPanel; ++q) acc[i][q] = add_exact_product(b, v[q], acc[i][q]);
+        }
+        if constexpr (EXTRAS) {
+            const Vec target = splat(y[r]);
+            for (int q = 0; q < kPerPanel; ++q) {
+                sums[q] = sums[q] + v[q];
+                const Vec product = target * v[q];
+                cross[q] = cross[q] + product;
+            }
+        }
+    }
+    for (int i = 0; i < M; ++i)
+        for (int q = 0; q < kPerPanel; ++q) store(s.gram + (k0 + i) * p + col0 + q * kLanes, acc[i][q]);
+    if constexpr (EXTRAS)
+        for (int q = 0; q < kPerPanel; ++q) {
+            store(s.s + col0 + q * kLanes, sums[q]);
+            store(s.t + col0 + q * kLanes, cross[q]);
+        }
+}
+
+template <int M, bool EXTRAS>
+void tile_upto(int m, const Scratch& s, const double* x, const double* y, uint32_t n, uint32_t k0, uint32_t col0,
+               bool first) {
+    if constexpr (M > 0) {
+        if (m == M) return tile<M, EXTRAS>(s, x, y, n, k0, col0, first);
+        return tile_upto<M - 1, EXTRAS>(m, s, x, y, n, k0, col0, first);
+    }
+}
+
+// Rows of a block that stay in L1 while every tile of it is summed.
+constexpr size_t kBlockDoubles = 2048;  // 16 KiB
+
+// Adds n gathered ratings (the first of the row when `first`) to F (by
+// panels), s and t.
+template <uint32_t KK>
+void accumulate(const SideData& side, const Scratch& s, uint32_t n, bool first) {
+    const uint32_t K = rank_of<KK>(side);
+    const size_t p = s.p;
+    const uint32_t block = static_cast<uint32_t>(kBlockDoubles / p > 8 ? kBlockDoubles / p : 8);
+    for (uint32_t r0 = 0; r0 < n; r0 += block) {
+        const uint32_t len = n - r0 < block ? n - r0 : block;
+        const double* x = s.x + size_t(r0) * p;
+        const double* y = s.y + r0;
+        const bool zero = first && r0 == 0;
+        // The upper triangle: rows [0, min(col0 + 8, K)) of each panel.
+        for (uint32_t col0 = 0; col0 < K; col0 += kPanel) {
+            const uint32_t rows = col0 + kPanel < K ? col0 + kPanel : K;
+            const int m0 = static_cast<int>(rows < uint32_t(kFirstTileRows) ? rows : kFirstTileRows);
+            tile_upto<kFirstTileRows, true>(m0, s, x, y, len, 0, col0, zero);
+            for (uint32_t k0 = m0; k0 < rows; k0 += kTileRows) {
+                const int m = static_cast<int>(rows - k0 < uint32_t(kTileRows) ? rows - k0 : kTileRows);
+                tile_upto<kTileRows, false>(m, s, x, y, len, k0, col0, zero);
+            }
+        }
+    }
+}
+
+// Sums the row's statistics and forms P's upper triangle in s.a (row-major,
+// ld) and rhs. Returns P's smallest diagonal entry.
+template <uint32_t KK, bool BIASES>
+double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
+    const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
+    const size_t p = s.p, ld = s.ld;
+    double sum_y = 0.0;
+    const uint64_t begin = side.offsets[row], end = side.offsets[row + 1];
+    if (begin == end) {  // no ratings: the prior alone (F, s, t are zero)
+        for (size_t i = 0; i < size_t(K) * p; ++i) s.gram[i] = 0.0;
+        for (size_t i = 0; i < p; ++i) s.s[i] = s.t[i] = 0.0;
+    }
+    for (uint64_t at = begin; at < end; at += kGatherRows) {
+        const uint32_t n = static_cast<uint32_t>(end - at < kGatherRows ? end - at : kGatherRows);
+        gather<KK>(side, at, n, s, sum_y);
+        accumulate<KK>(side, s, n, at == begin);
+    }
+    const double tau = side.tau, count = static_cast<double>(end - begin);
+    double smallest = 0.0;
+    for (uint32_t i = 0; i < d; ++i) {
+        double* a = s.a + i * ld;
+        const double* prior = side.prior_precision + size_t(i) * d;
+        const double* gram = s.gram + size_t(i) * p;
+        // The lower part is never a result; zeroed a vector at a time (the
+        // last store reaches past i, into entries the next loop writes).
+        for (uint32_t k = 0; k < i; k += kLanes) store(a + k, Vec{});
+        for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * gram[k];
+        for (size_t k = d; k < ld; ++k) a[k] = 0.0;  // padding
+        if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
+        s.rhs[i] = side.prior_pm[i] + tau * (i < K ? s.t[i] : sum_y);
+        if (i == 0 || a[i] < smallest) smallest = a[i];
+    }
+    return smallest;
+}
+
+CREDENCE_INLINE bool finite(double v) { return v - v == 0.0; }
+
+// Cholesky P = U^T U of the upper triangle of a (row-major, ld), in place;
+// inv[j] = 1 / U[j][j]. Symmetric elimination first (a[i][k] -= a[j][i]
+// a[j][k] / a[j][j], right-looking, every entry updated in the order of j as
+// the textbook sums would be: Golub & Van Loan, Matrix Computations, 4th
+// ed., sections 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square
+// roots stay off the chain of dependent pivots. Rows are contiguous, so the
+// updates vectorize across entries. False if a pivot is not positive and finite.
+template <uint32_t DD>
+bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
+    const uint32_t d = DD > 0 ? DD : d_runtime;
+    // Each row update runs over whole 8-double blocks from the one holding
+    // column j + 1 to ld: the extra entries are row i's lower part and
+    // padding, which are never read as results (form_conditional zeroes
+    // them, so they stay finite), and the loops need no remainders.
+    for (uint32_t j = 0; j < d; ++j) {
+        const double* uj = a + j * ld;
+        const double pivot = uj[j];
+        if (!(pivot > 0.0) || !finite(pivot)) return false;
+        const double r = 1.0 / pivot;
+        const size_t from = (j + 1) / 8 * 8;
+        for (uint32_t i = j + 1; i < d; ++i) {
+            const double f = uj[i] * r;
+            double* ai = a + i * ld;
+            for (size_t k = from; k < ld; ++k) ai[k] = ai[k] - f * uj[k];
+        }
+    }
+    for (uint32_t j = 0; j < d; ++j) {
+        double* uj = a + j * ld;
+        const double l = __builtin_sqrt(uj[j]);
+        const double q = 1.0 / l;
+        inv[j] = q;
+        for (size_t k = j / 8 * 8; k < ld; ++k) uj[k] = uj[k] * q;
+        uj[j] = l;
+    }
+    return true;
+}
+
+// out = U^-1 (U^-T rhs + z): the mean P^-1 rhs plus U^-1 z, whose covariance
+// is (U^T U)^-1 = P^-1.
+template <uint32_t DD>
+void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* inv, const double* z, double* out) {
+    const uint32_t d = DD > 0 ? DD : d_runtime;
+    const size_t ld = s.ld;
+    double* c = s.c;
+    for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
+    for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
+        const double cj = c[j] * inv[j];
+        c[j] = cj;
+        const double* uj = s.a + j * ld;
+        for (uint32_t i = j + 1; i < d; ++i) c[i] = c[i] - uj[i] * cj;
+    }
+    for (uint32_t i = 0; i < d; ++i) c[i] = c[i] + z[i];
+    for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
+        const double xi = c[i] * inv[i];
+        out[i] = xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - s.a[k * ld + i] * xi;
+    }
+}
+
+// Squared residuals of n gathered ratings with the stored row w (bias in w[K]).
+template <uint32_t KK, bool BIASES>
+double residuals(const SideData& side, const Scratch& s, uint32_t n) {
+    const uint32_t K = rank_of<KK>(side);
+    double sse = 0.0;
+    for (uint32_t r = 0; r < n; ++r) {
+        const double* x = s.x + size_t(r) * s.p;
+        double prediction = BIASES ? s.w[K] : 0.0;
+        for (uint32_t k = 0; k < K; ++k) prediction = prediction + x[k] * s.w[k];
+        const double e = s.y[r] - prediction;
+        sse = sse + e * e;
+    }
+    return sse;
+}
+
+template <uint32_t KK, bool BIASES>
+void conditional_for(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs) {
+    const Scratch s = layout(scratch, side.rank);
+    form_conditional<KK, BIASES>(side, row, s);
+    const uint32_t d = side.rank + (BIASES ? 1 : 0);
+    for (uint32_t i = 0; i < d; ++i) {
+        rhs[i] = s.rhs[i];
+        for (uint32_t k = i; k < d; ++k) precision[size_t(i) * d + k] = precision[size_t(k) * d + i] = s.a[i * s.ld + k];
+    }
+}
+
+template <uint32_t KK, bool BIASES>
+bool draw_row_for(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
+                  float* bias, double* sse, double* smallest_diagonal) {
+    constexpr uint32_t DD = KK > 0 ? KK + (BIASES ? 1 : 0) : 0;
+    const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
+    const Scratch s = layout(scratch, K);
+    const double smallest = form_conditional<KK, BIASES>(side, row, s);
+    double* out = s.spare;
+    double* inv = s.u;
+    bool ok = cholesky<DD>(s.a, inv, d, s.ld);
+    if (ok) {
+        solve_and_draw<DD>(s, d, inv, normals, out);
+        for (uint32_t i = 0; i < d; ++i) ok = ok && finite(out[i]);
+    }
+    if (!ok) {
+        *smallest_diagonal = smallest;
+        return false;
+    }
+    for (uint32_t k = 0; k < K; ++k) {
+        factor[k] = static_cast<float>(out[k]);
+        s.w[k] = static_cast<double>(factor[k]);
+    }
+    if (BIASES) {
+        *bias = static_cast<float>(out[K]);
+        s.w[K] = static_cast<double>(*bias);
+    }
+    if (sse) {
+        // Residuals with the values as stored, as predictions will see them.
+        // A row that fitted in one gather still has its block in s.x.
+        const uint64_t begin = side.offsets[row], end = side.offsets[row + 1];
+        double total = 0.0;
+        if (end - begin <= kGatherRows) {
+            total = residuals<KK, BIASES>(side, s, static_cast<uint32_t>(end - begin));
+        } else {
+            double unused = 0.0;
+            for (uint64_t at = begin; at < end; at += kGatherRows) {
+                const uint32_t n = static_cast<uint32_t>(end - at < kGatherRows ? end - at : kGatherRows);
+                gather<KK>(side, at, n, s, unused);
+                total = total + residuals<KK, BIASES>(side, s, n);
+            }
+        }
+        *sse = total;
+    }
+    return true;
+}
+
+template <uint32_t KK>
+bool draw_row_rank(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
+                   float* bias, double* sse, double* smallest_diagonal) {
+    return side.biases ? draw_row_for<KK, true>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal)
+                       : draw_row_for<KK, false>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+}
+
+bool draw_row(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor, float* bias,
+              double* sse, double* smallest_diagonal) {
+    switch (side.rank) {
+        case 8: return draw_row_rank<8>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        case 16: return draw_row_rank<16>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        case 32: return draw_row_rank<32>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        default: return draw_row_rank<0>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+    }
+}
+
+// The conditional alone (tests compare it between levels): one generic path.
+void conditional(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs) {
+    if (side.biases) conditional_for<0, true>(side, row, scratch, precision, rhs);
+    else conditional_for<0, false>(side, row, scratch, precision, rhs);
+}
+
+}  // namespace
+
+#if CREDENCE_KERNEL_LEVEL == 2
+extern const Table table_v4 = {kLevelName, conditional, draw_row};
+#elif CREDENCE_KERNEL_LEVEL == 1
+extern const Table table_v3 = {kLevelName, conditional, draw_row};
+#else
+extern const Table table_baseline = {kLevelName, conditional, draw_row};
+
+// Chosen in the baseline build only, which every CPU runs.
+const Table& table_for(CpuLevel level) {
+    switch (static_cast<int>(level)) {
+        case 0: return table_baseline;
+#if CREDENCE_KERNEL_MAX_LEVEL >= 1
+        case 1: return table_v3;
+#endif
+#if CREDENCE_KERNEL_MAX_LEVEL >= 2
+        case 2: return table_v4;
+#endif
+        default: break;
+    }
+    throw std::invalid_argument("row kernels: no table for CPU level " + std::to_string(static_cast<int>(level)));
+}
+#endif
+
+}  // namespace credence::row_kernels

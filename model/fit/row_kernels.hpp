@@ -1,0 +1,95 @@
+// The sampler's hot loop, one row draw at a time, compiled once per x86-64
+// level (model/math/cpu_level.hpp) and called by gibbs_sweep through the
+// table of the active level. Internal to model/fit.
+//
+// A row draw (model/fit/sampler.hpp for the model): gather the other side's
+// factor rows of the row's ratings (float32 state, widened to double), sum
+// the exact Gaussian conditional's statistics F = sum x x^T, s = sum x,
+// t = sum y x, sum y and n, form the precision
+//     P = prior_precision + tau [[F, s], [s^T, n]]     (the bias block only with biases)
+// and rhs = prior_pm + tau [t; sum y], factor P = L L^T (Cholesky, double),
+// and draw mean + L^-T z = L^-T (L^-1 rhs + z) for standard normals z.
+// Optionally the squared residuals of the row's ratings with the new row as
+// stored (rounded to float32), for the noise precision's conditional.
+//
+// Same bits at every level. Every product summed into F and s is of two
+// float32 values widened to double (or of one and 1.0), so it is exact in
+// double, and a fused multiply-add rounds it exactly as a multiply then add
+// does; each entry is summed over the ratings in rating order at every
+// level (vector lanes run across entries, never across ratings). The terms
+// of t (y is a double) use a separate multiply and add. The Cholesky
+// factorization, the solves and the residuals vectorize across independent
+// entries only, and the kernels are compiled with -ffp-contract=off. So the
+// levels differ in speed alone; tests/model/fit/test_row_kernels.cpp checks
+// it bit for bit.
+#pragma once
+#include <cstddef>
+#include <cstdint>
+
+namespace credence {
+enum class CpuLevel : int;  // model/math/cpu_level.hpp
+}
+
+namespace credence::row_kernels {
+
+// One side's row pass as the kernels see it. Borrowed: every pointer must
+// stay valid while the kernels run.
+struct SideData {
+    const uint64_t* offsets = nullptr;        // [rows + 1]: the ratings of row r are [offsets[r], offsets[r + 1])
+    const uint32_t* index = nullptr;          // [nnz]: the other side's row of each rating
+    const float* value = nullptr;             // [nnz]
+    uint64_t nnz = 0;
+    const float* other_factors = nullptr;     // [other rows][rank]
+    const float* other_bias = nullptr;        // [other rows]; null without biases
+    uint32_t rank = 0;
+    bool biases = false;
+    double global_mean = 0.0;
+    double tau = 0.0;                         // noise precision
+    const double* prior_precision = nullptr;  // [d][d] row-major, symmetric, d = rank + (biases ? 1 : 0)
+    const double* prior_pm = nullptr;         // [d]: prior precision times prior mean
+};
+
+// Ratings gathered at once; a longer row is gathered in parts (and, for the
+// residuals, gathered again).
+inline constexpr uint32_t kGatherRows = 2048;
+
+// Doubles in a row's gathered factor block: rank rounded up to 8 (one
+// 64-byte line per gathered rating). Always inlined: the kernel files are
+// compiled once per level and must not share an out-of-line copy.
+[[gnu::always_inline]] inline constexpr size_t padded(size_t n) { return (n + 7) / 8 * 8; }
+
+// Doubles of scratch one thread needs (for any level): allocate them
+// 64-byte aligned and zero-filled once, then reuse for every row.
+[[gnu::always_inline]] inline constexpr size_t scratch_doubles(uint32_t rank) {
+    const size_t p = padded(rank), ld = padded(rank + 1);
+    return kGatherRows * p + kGatherRows + rank * p + 2 * p + 2 * (rank + 1) * ld + 4 * ld;
+}
+
+struct Table {
+    const char* level;  // cpu_level_name of the level it was compiled for
+
+    // The row's conditional: writes precision[d][d] (row-major, both
+    // triangles) and rhs[d]. Needs scratch as scratch_doubles(rank) says.
+    void (*conditional)(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs);
+
+    // Draws row `row` with normals[d] standard normals: writes factor[rank]
+    // and, with biases, *bias, rounded to float32; when sse is not null,
+    // *sse = the row's sum of squared residuals with those stored values.
+    // Returns false, writing nothing but *smallest_diagonal (P's smallest
+    // diagonal entry), when P is not positive definite or the draw is not
+    // finite.
+    bool (*draw_row)(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
+                     float* bias, double* sse, double* smallest_diagonal);
+};
+
+// One table per compiled level (the v3 and v4 tables exist only when
+// CMake compiled those levels; model/fit/gibbs_sweep.cpp picks one).
+extern const Table table_baseline;
+extern const Table table_v3;
+extern const Table table_v4;
+
+// The table for `level`: needs a level this build compiled and this CPU
+// runs (detected_cpu_level() and below); std::invalid_argument otherwise.
+const Table& table_for(CpuLevel level);
+
+}  // namespace credence::row_kernels

@@ -1,0 +1,346 @@
+// Tests for the sampler's row kernels (model/fit/row_kernels): every CPU
+// level this machine runs gives the same bits (the conditional, the draws,
+// the residuals, whole sweeps at any thread count), the conditional agrees
+// with a long-double reference within its rounding bound, a draw is the
+// conditional mean plus L^-T z, and a precision that is not positive
+// definite is reported.
+#include <catch2/catch.hpp>
+
+#include <cmath>
+#include <cstdlib>
+#include <cstring>
+#include <vector>
+
+#include <Eigen/Dense>
+
+#include "model/error.hpp"
+#include "model/fit/gibbs_sweep.hpp"
+#include "model/fit/row_kernels.hpp"
+#include "model/fit/sparse.hpp"
+#include "model/math/cpu_level.hpp"
+#include "tests/support/simulate.hpp"
+
+using namespace credence;
+
+namespace {
+
+constexpr double kUnit = 0x1.0p-53;  // unit roundoff of double
+
+// Higham, Accuracy and Stability of Numerical Algorithms (2nd ed.), section 3.1.
+double gamma_n(double n) { return n * kUnit / (1.0 - n * kUnit); }
+
+struct AlignedScratch {
+    double* data;
+    explicit AlignedScratch(uint32_t rank) {
+        const size_t bytes = (row_kernels::scratch_doubles(rank) * sizeof(double) + 63) / 64 * 64;
+        data = static_cast<double*>(std::aligned_alloc(64, bytes));
+        std::memset(data, 0, bytes);
+    }
+    ~AlignedScratch() { std::free(data); }
+};
+
+// Restores the active level however a test ends.
+struct LevelGuard {
+    CpuLevel saved = active_cpu_level();
+    ~LevelGuard() { set_cpu_level(saved); }
+};
+
+// Ratings with rows of every kind: empty rows are impossible (ids come from
+// ratings), short rows, and with `long_rows` a side whose rows are longer
+// than one gather (row_kernels::kGatherRows).
+RatingSet ratings_for(bool long_rows) {
+    SimulationOptions so;
+    if (long_rows) {
+        so.users = row_kernels::kGatherRows + 300;
+        so.items = 3;
+        so.density = 1.0;
+    } else {
+        so.users = 50;
+        so.items = 30;
+        so.density = 0.3;
+    }
+    so.rank = 3;
+    so.bias_sd = 0.3;
+    so.seed = 17;
+    return simulate_ratings(so).ratings;
+}
+
+// A random symmetric positive definite prior precision (diagonally dominant).
+Eigen::MatrixXd random_prior(Eigen::Index d, uint64_t seed) {
+    Rng rng(seed);
+    Eigen::MatrixXd a(d, d);
+    for (Eigen::Index i = 0; i < d; ++i)
+        for (Eigen::Index j = 0; j <= i; ++j) a(i, j) = a(j, i) = 0.3 * rng.normal();
+    for (Eigen::Index i = 0; i < d; ++i) a(i, i) = std::abs(a(i, i)) + 0.5 * double(d);
+    return a;
+}
+
+struct Side {
+    Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> prior;
+    Eigen::VectorXd pm;
+    row_kernels::SideData data;
+};
+
+Side make_side(const CsrMatrix& csr, const GibbsState& st, bool by_user, uint32_t rank, bool biases, double g) {
+    Side s;
+    const Eigen::Index d = rank + (biases ? 1 : 0);
+    s.prior = random_prior(d, 5 + rank);
+    Rng rng(9);
+    s.pm.resize(d);
+    for (Eigen::Index i = 0; i < d; ++i) s.pm[i] = rng.normal();
+    auto& o = s.data;
+    o.offsets = csr.offsets.data();
+    o.index = csr.index.data();
+    o.value = csr.value.data();
+    o.nnz = csr.nnz();
+    o.other_factors = by_user ? st.item_factors.data() : st.user_factors.data();
+    o.other_bias = biases ? (by_user ? st.item_bias.data() : st.user_bias.data()) : nullptr;
+    o.rank = rank;
+    o.biases = biases;
+    o.global_mean = g;
+    o.tau = 1.7;
+    o.prior_precision = s.prior.data();
+    o.prior_pm = s.pm.data();
+    return s;
+}
+
+// The gathered row as the model defines it: x = [f; 1] (the 1 with biases)
+// and y = r - g - other bias, in long double.
+void gathered(const row_kernels::SideData& side, uint64_t at, std::vector<long double>& x, long double& y) {
+    const uint32_t other = side.index[at];
+    x.assign(side.rank + (side.biases ? 1 : 0), 1.0L);
+    for (uint32_t k = 0; k < side.rank; ++k) x[k] = side.other_factors[size_t(other) * side.rank + k];
+    y = static_cast<long double>(static_cast<double>(side.value[at]) - side.global_mean);
+    if (side.biases) y = static_cast<long double>(static_cast<double>(y) - double(side.other_bias[other]));
+}
+
+}  // namespace
+
+TEST_CASE("every CPU level forms the same conditional, bit for bit, within rounding of a long-double reference") {
+    for (const bool long_rows : {false, true}) {
+        const RatingSet rs = ratings_for(long_rows);
+        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
+        const GibbsData data{&by_user, &by_item, rs.mean()};
+        // Ranks below, at and past the 8-double panels, with and without biases.
+        for (const uint32_t rank : {3u, 8u, 16u, 17u}) {
+            for (const bool biases : {true, false}) {
+                FitOptions o;
+                o.rank = rank;
+                o.biases = biases;
+                o.init_scale = 0.7;
+                const GibbsState st = initial_state(data, o, 3, 0);
+                for (const bool user_side : {true, false}) {
+                    const CsrMatrix& csr = user_side ? by_user : by_item;
+                    const Side side = make_side(csr, st, user_side, rank, biases, data.global_mean);
+                    const size_t d = rank + (biases ? 1 : 0);
+                    AlignedScratch scratch(rank);
+                    for (uint32_t row = 0; row < csr.num_rows; row += std::max(1u, csr.num_rows / 5)) {
+                        std::vector<double> p0(d * d), r0(d);
+                        row_kernels::table_baseline.conditional(side.data, row, scratch.data, p0.data(), r0.data());
+                        for (CpuLevel level : supported_cpu_levels()) {
+                            std::vector<double> p(d * d), r(d);
+                            row_kernels::table_for(level).conditional(side.data, row, scratch.data, p.data(), r.data());
+                            INFO("level " << cpu_level_name(level) << " rank " << rank << " row " << row);
+                            CHECK(std::memcmp(p.data(), p0.data(), d * d * sizeof(double)) == 0);
+                            CHECK(std::memcmp(r.data(), r0.data(), d * sizeof(double)) == 0);
+                        }
+                        // Reference: P = prior + tau sum x x^T, rhs = pm + tau sum y x,
+                        // in long double. Each double entry is a sum of n + 2 rounded
+                        // terms, so within gamma_{n+2} times the sum of the terms'
+                        // magnitudes (Higham, section 3.1), twice for the product by tau.
+                        const uint64_t begin = csr.offsets[row], end = csr.offsets[row + 1];
+                        const double n = double(end - begin);
+                        std::vector<long double> pr(d * d, 0.0L), pa(d * d, 0.0L), rr(d, 0.0L), ra(d, 0.0L);
+                        std::vector<long double> x;
+                        long double y;
+                        for (uint64_t at = begin; at < end; ++at) {
+                            gathered(side.data, at, x, y);
+                            for (size_t i = 0; i < d; ++i) {
+                                rr[i] += y * x[i];
+                                ra[i] += std::abs(y * x[i]);
+                                for (size_t j = 0; j < d; ++j) {
+                                    pr[i * d + j] += x[i] * x[j];
+                                    pa[i * d + j] += std::abs(x[i] * x[j]);
+                                }
+                            }
+                        }
+                        const long double tau = side.data.tau;
+                        for (size_t i = 0; i < d; ++i) {
+                            for (size_t j = 0; j < d; ++j) {
+                                const long double exact = side.prior(i, j) + tau * pr[i * d + j];
+                                const double bound =
+                                    gamma_n(n + 3) * double(std::abs(side.prior(i, j)) + tau * pa[i * d + j]);
+                                CHECK(double(std::abs(p0[i * d + j] - exact)) <= bound);
+                            }
+                            const long double exact = side.pm[i] + tau * rr[i];
+                            CHECK(double(std::abs(r0[i] - exact)) <= gamma_n(n + 4) * double(std::abs(side.pm[i]) + tau * ra[i]));
+                        }
+                    }
+                }
+            }
+        }
+    }
+}
+
+TEST_CASE("a row draw is the conditional mean plus L^-T z, up to the float32 rounding of the stored row") {
+    const RatingSet rs = ratings_for(false);
+    const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
+    const GibbsData data{&by_user, &by_item, rs.mean()};
+    FitOptions o;
+    o.rank = 8;
+    o.init_scale = 0.7;
+    const GibbsState st = initial_state(data, o, 3, 0);
+    const Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
+    const size_t d = o.rank + 1;
+    AlignedScratch scratch(o.rank);
+    for (CpuLevel level : supported_cpu_levels()) {
+        const auto& kernels = row_kernels::table_for(level);
+        for (uint32_t row = 0; row < 5; ++row) {
+            std::vector<double> pv(d * d), rv(d);
+            kernels.conditional(side.data, row, scratch.data, pv.data(), rv.data());
+            const Eigen::Map<const Eigen::MatrixXd> p(pv.data(), Eigen::Index(d), Eigen::Index(d));
+            const Eigen::Map<const Eigen::VectorXd> rhs(rv.data(), Eigen::Index(d));
+            const Eigen::VectorXd mean = p.llt().solve(rhs);
+            const Eigen::MatrixXd cov = p.inverse();
+            // Draws with z = 0 (the mean) and z = scale e_k (the mean plus
+            // scale times column k of L^-T). Stored as float32: each entry
+            // within 2^-24 of its magnitude; the double solve adds at most
+            // d kappa(P) 2^-53 relative (Higham, Theorem 10.4 and section 7.1),
+            // far below that here (kappa < 100; 1e-11 allows for it).
+            const double scale = 1000.0;
+            Eigen::MatrixXd deviations(d, d);
+            std::vector<float> f(o.rank);
+            float b = 0.0f;
+            double smallest = 0.0;
+            std::vector<double> z(d, 0.0);
+            REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
+            Eigen::VectorXd at_zero(d);
+            for (size_t k = 0; k < o.rank; ++k) at_zero[k] = f[k];
+            at_zero[o.rank] = b;
+            for (size_t k = 0; k < d; ++k)
+                CHECK(std::abs(at_zero[k] - mean[k]) <= 0x1.0p-24 * std::abs(mean[k]) + 1e-11 * (1.0 + mean.norm()));
+            for (size_t k = 0; k < d; ++k) {
+                std::fill(z.begin(), z.end(), 0.0);
+                z[k] = scale;
+                REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
+                for (size_t i = 0; i < o.rank; ++i) deviations(i, k) = (f[i] - mean[i]) / scale;
+                deviations(o.rank, k) = (b - mean[o.rank]) / scale;
+            }
+            // Columns of L^-T: D D^T = L^-T L^-1 = P^-1. Each stored entry
+            // is off by at most 2^-24 |x| / scale + |mean error| / scale, so
+            // each product entry by at most 2 d max|D| max(err); 4x margin.
+            const double entry_error = (0x1.0p-24 * (mean.cwiseAbs().maxCoeff() + scale * deviations.cwiseAbs().maxCoeff()) +
+                                        1e-11 * (1.0 + mean.norm())) / scale;
+            const double tolerance = 4.0 * 2.0 * double(d) * deviations.cwiseAbs().maxCoeff() * entry_error;
+            CHECK((deviations * deviations.transpose() - cov).cwiseAbs().maxCoeff() <= tolerance);
+        }
+    }
+}
+
+TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two") {
+    const LevelGuard guard;
+    for (const bool long_rows : {false, true}) {
+        const RatingSet rs = ratings_for(long_rows);
+        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
+        const GibbsData data{&by_user, &by_item, rs.mean()};
+        for (const uint32_t rank : {5u, 16u}) {
+            FitOptions o;
+            o.rank = rank;
+            auto run = [&](CpuLevel level, int threads) {
+                set_cpu_level(level);
+                GibbsState st = initial_state(data, o, 21, 1);
+                for (uint32_t sweep = 0; sweep < 3; ++sweep) gibbs_sweep(data, o, SweepKey{21, 1, sweep}, st, threads);
+                return st;
+            };
+            const GibbsState reference = run(CpuLevel::baseline, 1);
+            for (CpuLevel level : supported_cpu_levels()) {
+                for (int threads : {1, 2}) {
+                    INFO("level " << cpu_level_name(level) << ", " << threads << " thread(s), rank " << rank);
+                    const GibbsState st = run(level, threads);
+                    CHECK(st.user_factors == reference.user_factors);
+                    CHECK(st.item_factors == reference.item_factors);
+                    CHECK(st.user_bias == reference.user_bias);
+                    CHECK(st.item_bias == reference.item_bias);
+                    CHECK(st.sse == reference.sse);
+                    CHECK(st.noise_precision == reference.noise_precision);
+                }
+            }
+        }
+    }
+}
+
+TEST_CASE("the residuals a draw returns are the squared errors of the row as stored") {
+    for (const bool long_rows : {false, true}) {
+        const RatingSet rs = ratings_for(long_rows);
+        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
+        const GibbsData data{&by_user, &by_item, rs.mean()};
+        FitOptions o;
+        o.rank = 6;
+        o.init_scale = 0.7;
+        const GibbsState st = initial_state(data, o, 3, 0);
+        const Side side = make_side(by_item, st, false, o.rank, true, data.global_mean);
+        AlignedScratch scratch(o.rank);
+        std::vector<double> z(o.rank + 1, 0.3);
+        for (CpuLevel level : supported_cpu_levels()) {
+            for (uint32_t row = 0; row < by_item.num_rows; row += std::max(1u, by_item.num_rows / 4)) {
+                std::vector<float> f(o.rank);
+                float b = 0.0f;
+                double sse = -1.0, smallest = 0.0;
+                REQUIRE(row_kernels::table_for(level).draw_row(side.data, row, z.data(), scratch.data, f.data(), &b,
+                                                               &sse, &smallest));
+                // Reference in long double; the kernel's double sum of n squared
+                // residuals, each from d + 2 operations, is within
+                // gamma_{n + d + 2} of the sum of the terms' magnitudes (Higham 3.1).
+                long double exact = 0.0L, magnitude = 0.0L;
+                std::vector<long double> x;
+                long double y;
+                for (uint64_t at = by_item.offsets[row]; at < by_item.offsets[row + 1]; ++at) {
+                    gathered(side.data, at, x, y);
+                    long double prediction = b, size = std::abs(static_cast<long double>(b));
+                    for (uint32_t k = 0; k < o.rank; ++k) {
+                        prediction += x[k] * f[k];
+                        size += std::abs(x[k] * f[k]);
+                    }
+                    exact += (y - prediction) * (y - prediction);
+                    magnitude += (std::abs(y) + size) * (std::abs(y) + size);
+                }
+                const double n = double(by_item.row_size(row));
+                CHECK(double(std::abs(sse - exact)) <= 2.0 * gamma_n(n + o.rank + 3) * double(magnitude));
+            }
+        }
+    }
+}
+
+TEST_CASE("a precision that is not positive definite is reported with its smallest diagonal at every level") {
+    const RatingSet rs = ratings_for(false);
+    const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
+    const GibbsData data{&by_user, &by_item, rs.mean()};
+    FitOptions o;
+    o.rank = 4;
+    const GibbsState st = initial_state(data, o, 3, 0);
+    Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
+    side.prior(2, 2) = -1e6;  // no data can lift it
+    AlignedScratch scratch(o.rank);
+    std::vector<double> z(o.rank + 1, 0.0);
+    for (CpuLevel level : supported_cpu_levels()) {
+        std::vector<float> f(o.rank, 42.0f);
+        float b = 42.0f;
+        double smallest = 0.0;
+        CHECK_FALSE(row_kernels::table_for(level).draw_row(side.data, 0, z.data(), scratch.data, f.data(), &b, nullptr,
+                                                           &smallest));
+        CHECK(smallest < -9e5);
+        CHECK(f[0] == 42.0f);  // nothing written
+        CHECK(b == 42.0f);
+    }
+}
+
+TEST_CASE("the CPU level cannot be set above what this CPU runs") {
+    const LevelGuard guard;
+    for (CpuLevel level : supported_cpu_levels()) {
+        set_cpu_level(level);
+        CHECK(active_cpu_level() == level);
+        CHECK(std::string(row_kernels::table_for(level).level) == cpu_level_name(level));
+    }
+    if (detected_cpu_level() < CpuLevel::v4) CHECK_THROWS_AS(set_cpu_level(CpuLevel::v4), OptionError);
+    CHECK(std::string(cpu_level_name(CpuLevel::v3)) == "x86-64-v3");
+}
