@@ -12,6 +12,11 @@ namespace credence::cli {
 
 using Runner = std::function<int()>;
 
+// The exit code a runner returns itself, beside those main derives from
+// exceptions (0, 1, 2, 70; the table is in cli/main.cpp): fit --gate
+// refused to replace the live model.
+inline constexpr int kExitGateRefused = 3;
+
 Runner add_fit_command(CLI::App& app);
 Runner add_evaluate_command(CLI::App& app);
 Runner add_predict_command(CLI::App& app);
@@ -21,6 +26,7 @@ Runner add_demo_data_command(CLI::App& app);
 Runner add_serve_command(CLI::App& app);
 Runner add_compare_command(CLI::App& app);
 Runner add_report_command(CLI::App& app);
+Runner add_delta_command(CLI::App& app);
 Runner add_forget_command(CLI::App& app);
 
 }  // namespace credence::cli

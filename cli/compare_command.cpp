@@ -66,7 +66,10 @@ int run_compare(const CompareFlags& f) {
     if (!f.quiet) std::cerr << describe(data.summary) << "\n";
     if (data.ratings.size() == 0) throw DataError("no ratings left to compare models on");
     auto log = [&](const std::string& line) { if (!f.quiet) std::cerr << line << "\n"; };
-    const ComparisonResult result = compare_models(data.ratings, o, log);
+    ComparisonResult result = compare_models(data.ratings, o, log);
+    result.data_fingerprint = data.summary.fingerprint;
+    result.settings["data"] = {{"source", f.ingest.path}, {"ratings", data.ratings.size()}};
+    if (!f.ingest.query.empty()) result.settings["data"]["query"] = f.ingest.query;
     if (f.json) std::cout << to_json(result).dump(2) << "\n";
     else std::cout << format_table(result);
     return 0;

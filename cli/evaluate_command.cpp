@@ -9,6 +9,7 @@
 #include "cli/ingest_flags.hpp"
 #include "model/assess/evaluate.hpp"
 #include "model/data/ingest.hpp"
+#include "model/error.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/predict.hpp"
 
@@ -25,29 +26,33 @@ struct EvaluateFlags {
     bool no_ranking = false;
 };
 
-int run_evaluate(const EvaluateFlags& f) {
-    auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
-    IngestOptions options = to_ingest_options(f.ingest);
-    IngestResult test = ingest_ratings(options);
-    PredictionEngine engine(posterior);
-    EvaluationOptions eo;
-    eo.ranking = !f.no_ranking;
-    eo.ranking_k = f.k;
-    eo.relevance_threshold = f.relevance_threshold;
-    EvaluationReport report = evaluate(engine, test.ratings, eo);
-    nlohmann::json j = to_json(report);
-    if (f.json) {
-        std::cout << j.dump(2) << "\n";
-        return 0;
-    }
-    std::cerr << describe(test.summary) << "\n";
+// Nothing scored: every pair had a customer or a product the model does not know.
+void require_scored(const EvaluationReport& report, const std::string& model, const std::string& ratings) {
+    if (report.rated > 0) return;
+    throw DataError(fmt::format("{}: none of the {} ratings could be scored ({} with a customer and {} with a product "
+                                "that {} does not know); check that the file belongs to this model",
+                                ratings, report.unknown_users + report.unknown_items, report.unknown_users,
+                                report.unknown_items, model));
+}
+
+void print_table(const EvaluationReport& report) {
+    const BaselineFigures& b = report.baseline;
+    auto base = [&](double v) { return b.available ? fmt::format("{:>10.4f}", v) : fmt::format("{:>10}", "-"); };
     std::cout << fmt::format("scored {} ratings ({} pairs with an unknown user, {} with an unknown item skipped)\n",
                              report.rated, report.unknown_users, report.unknown_items);
-    std::cout << fmt::format("  RMSE  {:.4f}\n  MAE   {:.4f}\n  mean log predictive density  {:.4f}\n",
-                             report.rmse, report.mae, report.mean_log_predictive_density);
-    std::cout << "  interval coverage (share of ratings inside the central interval):\n";
-    for (const auto& [level, share] : report.coverage)
-        std::cout << fmt::format("    {:>5}  {:.3f}\n", level, share);
+    std::cout << fmt::format("  {:<30} {:>10} {:>10}\n", "", "model", "baseline");
+    std::cout << fmt::format("  {:<30} {:>10.4f} {}\n", "RMSE", report.rmse, base(b.rmse));
+    std::cout << fmt::format("  {:<30} {:>10.4f} {}\n", "MAE", report.mae, base(b.mae));
+    std::cout << fmt::format("  {:<30} {:>10.4f} {}\n", "mean log predictive density",
+                             report.mean_log_predictive_density, base(b.mean_log_predictive_density));
+    for (const auto& [level, share] : report.coverage) {
+        const auto it = b.coverage.find(level);
+        std::cout << fmt::format("  {:<30} {:>10.3f} {}\n", fmt::format("coverage of the {} interval", level), share,
+                                 b.available && it != b.coverage.end() ? fmt::format("{:>10.3f}", it->second)
+                                                                       : fmt::format("{:>10}", "-"));
+    }
+    std::cout << (b.available ? "  baseline: each product's mean training rating, spread by the pooled residual sd\n"
+                              : "  baseline: not stored in this model file (refit to add it)\n");
     const PitHistogram& h = report.pit_histogram;
     std::cout << fmt::format("  PIT histogram ({} bins; uniform when calibrated; chi-square {:.1f} on {} df):\n   ",
                              h.counts.size(), h.chi_square, h.degrees_of_freedom);
@@ -62,6 +67,27 @@ int run_evaluate(const EvaluateFlags& f) {
             std::cout << fmt::format("    {:<6} {:>12.4f} {:>10.4f} {:>9.4f} {:>10.4f} {:>10}\n", mode, m.precision_at_k,
                                      m.recall_at_k, m.ndcg_at_k, m.catalogue_coverage, m.users_evaluated);
     }
+}
+
+int run_evaluate(const EvaluateFlags& f) {
+    auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
+    IngestOptions options = to_ingest_options(f.ingest);
+    IngestResult test = ingest_ratings(options);
+    PredictionEngine engine(posterior);
+    EvaluationOptions eo;
+    eo.ranking = !f.no_ranking;
+    eo.ranking_k = f.k;
+    eo.relevance_threshold = f.relevance_threshold;
+    EvaluationReport report = evaluate(engine, test.ratings, eo);
+    require_scored(report, f.model, f.ingest.path);
+    // Warnings go to stderr in both forms, so they are seen even when the JSON is piped on.
+    for (const auto& w : report.warnings) std::cerr << "warning: " << w << "\n";
+    if (f.json) {
+        std::cout << to_json(report).dump(2) << "\n";
+        return 0;
+    }
+    std::cerr << describe(test.summary) << "\n";
+    print_table(report);
     return 0;
 }
 

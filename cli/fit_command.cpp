@@ -1,8 +1,14 @@
-// credence fit: ratings export in, posterior file out.
+// credence fit: ratings export (a file or a database query) in, posterior
+// file out; with the analyst's retraining loop around it: a held-out check
+// stored in the file, a warm start from the live model, a refit on every
+// rating after the check, and a gate that refuses to replace the live model
+// when the new one is worse or did not converge (exit code 3, cli/main.cpp).
 #include <cmath>
 #include <ctime>
+#include <filesystem>
 #include <functional>
 #include <iostream>
+#include <memory>
 #include <optional>
 
 #include <fmt/format.h>
@@ -13,14 +19,17 @@
 #include "cli/progress.hpp"
 #include "cli/sampler_flags.hpp"
 #include "generated/credence_version.hpp"
-#include "model/fit/convergence_summary.hpp"
-#include "model/error.hpp"
-#include "model/data/holdout.hpp"
 #include "model/assess/evaluate.hpp"
+#include "model/assess/release_gate.hpp"
 #include "model/data/catalogue.hpp"
+#include "model/data/holdout.hpp"
 #include "model/data/ingest.hpp"
-#include "model/posterior/posterior_file.hpp"
+#include "model/error.hpp"
+#include "model/fit/convergence_summary.hpp"
 #include "model/fit/sampler.hpp"
+#include "model/fit/warm_start.hpp"
+#include "model/posterior/posterior_file.hpp"
+#include "model/predict/predict.hpp"
 
 namespace credence::cli {
 
@@ -33,6 +42,10 @@ struct FitFlags {
     std::optional<double> holdout;
     std::string validation_path;
     std::string catalogue_path;
+    std::string holdout_out;
+    bool refit_on_all = false;
+    std::string warm_start;
+    bool gate = false;
     bool quiet = false;
 };
 
@@ -77,11 +90,29 @@ std::string progress_line(const FitProgress& p, FitProgress& last_checkpoint) {
 // Prints one line on stderr unless --quiet.
 using Log = std::function<void(const std::string&)>;
 
-// ---- 1. The ratings export, read with a progress line.
+// Flags that only make sense together, checked before any work.
+void check_flags(const FitFlags& f) {
+    if (f.holdout && !(*f.holdout > 0.0 && *f.holdout < 1.0))
+        throw OptionError("--holdout must be strictly between 0 and 1");
+    if (f.holdout && !f.validation_path.empty())
+        throw OptionError("--holdout and --validation are alternatives; give one");
+    if (!f.holdout_out.empty() && !f.holdout)
+        throw OptionError("--holdout-out writes the ratings --holdout sets aside; add --holdout 0.1 (for example)");
+    if (f.refit_on_all && !f.holdout)
+        throw OptionError("--refit-on-all refits on the ratings --holdout set aside; add --holdout 0.1 (for example)");
+    if (f.gate && !f.holdout && f.validation_path.empty())
+        throw OptionError("--gate compares the new model with the live one on held-out ratings; add --holdout 0.1 "
+                          "(for example) or --validation FILE");
+    if (!f.warm_start.empty() && !std::filesystem::exists(f.warm_start))
+        throw FileError(fmt::format("--warm-start {}: no such file; give the live model's posterior file", f.warm_start));
+}
+
+// ---- 1. The ratings, read with a progress line.
 IngestResult read_ratings(const FitFlags& f, ProgressLine& progress, const Log& log) {
     IngestOptions ingest_options = to_ingest_options(f.ingest);
     ingest_options.progress = [&](uint64_t done, uint64_t total) {
         if (total > 0) progress.update(fmt::format("reading {}: {:.0f}%", f.ingest.path, 100.0 * done / total));
+        else progress.update(fmt::format("reading {}: {} rows", f.ingest.path, done));
     };
     IngestResult data = ingest_ratings(ingest_options);
     progress.finish();
@@ -102,6 +133,7 @@ struct TrainingData {
 void read_validation_file(const FitFlags& f, TrainingData& d, const Log& log) {
     IngestFlags vflags = f.ingest;
     vflags.path = f.validation_path;
+    vflags.query.clear();
     vflags.rejects_path.clear();
     IngestResult v = ingest_ratings(to_ingest_options(vflags));
     MappedRatings mapped = map_onto(v.ratings, d.train.users, d.train.items);
@@ -130,8 +162,29 @@ TrainingData split_for_validation(const FitFlags& f, RatingSet&& ratings, uint64
     return d;
 }
 
+// The validation ratings as a rating set of their own (the training ids).
+RatingSet validation_set(const TrainingData& d) {
+    RatingSet v;
+    v.users = d.train.users;
+    v.items = d.train.items;
+    v.scale = d.train.scale;
+    v.ratings = d.validation;
+    return v;
+}
+
+// Every rating again, held-out ones included, sorted by (user, item) as
+// ingest returns them.
+RatingSet all_ratings(const TrainingData& d) {
+    RatingSet all = validation_set(d);
+    all.ratings.insert(all.ratings.end(), d.train.ratings.begin(), d.train.ratings.end());
+    std::sort(all.ratings.begin(), all.ratings.end(),
+              [](const Rating& a, const Rating& b) { return a.user != b.user ? a.user < b.user : a.item < b.item; });
+    return all;
+}
+
 // ---- 3. The Gibbs sampler, one progress line per sweep.
-FitResult sample_posterior(const TrainingData& d, const FitOptions& options, ProgressLine& progress, const Log& log) {
+FitResult sample_posterior(const RatingSet& train, const std::vector<Rating>& validation, const FitOptions& options,
+                           const WarmStart* start, const std::string& what, ProgressLine& progress, const Log& log) {
     const std::string length =
         options.run_length == RunLength::converged
             ? fmt::format("until R-hat <= {} and ESS >= {} per chain (at most {} sweeps per chain{}), keeping {} draws per chain",
@@ -139,23 +192,86 @@ FitResult sample_posterior(const TrainingData& d, const FitOptions& options, Pro
                           options.max_seconds > 0 ? fmt::format(" or {:.0f} s", options.max_seconds) : "", options.samples)
             : fmt::format("{} burn-in + {} kept x thin {} sweeps per chain", options.burn_in, options.samples,
                           options.thin);
-    log(fmt::format("fitting rank {} on {} ratings ({} customers, {} products), {} chains: {}", options.rank,
-                    d.train.size(), d.train.users.size(), d.train.items.size(), options.chains, length));
+    log(fmt::format("{} rank {} on {} ratings ({} customers, {} products), {} chains{}: {}", what, options.rank,
+                    train.size(), train.users.size(), train.items.size(), options.chains,
+                    start ? " from a warm start" : "", length));
     FitProgress last_checkpoint;
-    FitResult result = fit_bpmf(d.train, options, d.validation.empty() ? nullptr : &d.validation,
+    FitResult result = fit_bpmf(train, options, validation.empty() ? nullptr : &validation,
                                 [&](const FitProgress& p) {
                                     const std::string line = progress_line(p, last_checkpoint);
                                     progress.update(line, p.checkpoint);
                                     // Without a terminal, one log line per checkpoint instead.
                                     if (p.checkpoint && !progress.active()) log(line);
-                                });
+                                },
+                                start);
     progress.finish();
     return result;
 }
 
-// ---- 4. What the file records about its making, beside the sampler's own
+// The old model's draws as the chains' start, with what changed since.
+std::optional<WarmStart> warm_start(const FitFlags& f, const RatingSet& train, const FitOptions& options,
+                                    const Log& log) {
+    if (f.warm_start.empty()) return std::nullopt;
+    const Posterior old = read_posterior(f.warm_start);
+    WarmStart w = warm_start_from(old, f.warm_start, train, options);
+    const auto& r = w.record;
+    log(fmt::format("warm start from {}: {} customers and {} products kept, {} and {} new, {} and {} dropped; "
+                    "burn-in {}",
+                    f.warm_start, r["customers_kept"].get<uint64_t>(), r["products_kept"].get<uint64_t>(),
+                    r["customers_new"].get<uint64_t>(), r["products_new"].get<uint64_t>(),
+                    r["customers_dropped"].get<uint64_t>(), r["products_dropped"].get<uint64_t>(),
+                    r["burn_in_rule"].get<std::string>()));
+    return w;
+}
+
+// ---- 4. The held-out check: the model and the product-mean baseline on
+// the validation ratings; printed and stored in the file.
+nlohmann::json held_out_figures(const Posterior& posterior, const TrainingData& d, const Log& log) {
+    if (d.validation.empty()) return nullptr;
+    EvaluationOptions eo;
+    eo.ranking = false;
+    const auto shared = std::shared_ptr<const Posterior>(&posterior, [](const Posterior*) {});
+    const EvaluationReport r = evaluate(PredictionEngine(shared), validation_set(d), eo);
+    auto number = [](double v) { return std::isfinite(v) ? nlohmann::json(v) : nlohmann::json(nullptr); };
+    const BaselineFigures& b = r.baseline;
+    nlohmann::json j = {{"ratings", r.rated},
+                        {"rmse", number(r.rmse)},
+                        {"mae", number(r.mae)},
+                        {"mean_log_predictive_density", number(r.mean_log_predictive_density)},
+                        {"coverage", r.coverage}};
+    if (b.available)
+        j["baseline"] = {{"kind", "product_mean"},
+                         {"rmse", number(b.rmse)},
+                         {"mae", number(b.mae)},
+                         {"mean_log_predictive_density", number(b.mean_log_predictive_density)},
+                         {"coverage", b.coverage}};
+    const double cover90 = r.coverage.count("0.9") ? r.coverage.at("0.9") : NAN;
+    log(fmt::format("held-out check on {} ratings: RMSE {:.4f} (product-mean baseline {:.4f}), mean log predictive "
+                    "density {:.4f} (baseline {:.4f}), 90% interval coverage {:.3f}",
+                    r.rated, r.rmse, b.available ? b.rmse : NAN, r.mean_log_predictive_density,
+                    b.available ? b.mean_log_predictive_density : NAN, cover90));
+    return j;
+}
+
+// ---- 5. The gate: the checked model against the live one at --out, on the
+// held-out ratings (judge_release applies the rule).
+std::optional<PairedAccuracy> live_accuracy(const FitFlags& f, const Posterior& checked, const TrainingData& d,
+                                            const Log& log) {
+    if (!std::filesystem::exists(f.out)) return std::nullopt;
+    const Posterior live = read_posterior(f.out);
+    PairedAccuracy a = paired_accuracy(live, checked, validation_set(d));
+    log(fmt::format("gate: on {} held-out ratings both models know and neither was trained on ({} skipped for an "
+                    "unknown id, {} as training pairs): mean log predictive density {:.4f} live, {:.4f} new "
+                    "(difference {:+.4f}, SE {:.4f}); RMSE {:.4f} live, {:.4f} new",
+                    a.compared, a.unknown, a.trained, a.before_log_density, a.after_log_density,
+                    a.log_density_difference, a.log_density_difference_se, a.before_rmse, a.after_rmse));
+    return a;
+}
+
+// ---- 6. What the file records about its making, beside the sampler's own
 // metadata: data fingerprint and counts, version, time, validation.
-void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSummary& summary, const TrainingData& d) {
+void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSummary& summary, const TrainingData& d,
+                      const nlohmann::json& figures, const nlohmann::json& extra) {
     nlohmann::json meta = nlohmann::json::parse(posterior.fit_metadata_json, nullptr, false);
     if (meta.is_discarded() || !meta.is_object()) meta = nlohmann::json::object();
     meta["data_fingerprint"] = summary.fingerprint;
@@ -167,33 +283,23 @@ void add_fit_metadata(Posterior& posterior, const FitFlags& f, const IngestSumma
                                        {"rejected", summary.rejected},
                                        {"merged_duplicates", summary.merged_duplicates},
                                        {"training_ratings", d.train.size()}});
+    if (!f.ingest.query.empty()) meta["data"]["query"] = f.ingest.query;
     meta["validation"] = d.validation_meta;
+    if (!figures.is_null()) meta["validation"]["figures"] = figures;
+    meta.update(extra);
     posterior.fit_metadata_json = meta.dump();
 }
 
-// ---- 4a. How the finished posterior does on the validation ratings (held
-// out or given), stored beside the split so /v1/model and inspect --json
-// can show calibration: RMSE and MAE of the clipped mean, mean log
-// predictive density and the coverage of central intervals (model/assess/evaluate.hpp).
-void add_validation_figures(Posterior& posterior, const TrainingData& d) {
-    if (d.validation.empty()) return;
-    RatingSet held;
-    held.users = d.train.users;
-    held.items = d.train.items;
-    held.ratings = d.validation;
-    held.scale = d.train.scale;
-    // The engine only reads the posterior while this function runs: share it without owning it.
-    const PredictionEngine engine(std::shared_ptr<const Posterior>(std::shared_ptr<void>(), &posterior));
-    EvaluationOptions options;
-    options.ranking = false;
-    const nlohmann::json figures = to_json(evaluate(engine, held, options));
-    nlohmann::json meta = nlohmann::json::parse(posterior.fit_metadata_json);
-    for (const char* key : {"rmse", "mae", "mean_log_predictive_density", "coverage", "rated"})
-        if (figures.contains(key)) meta["validation"][key] = figures[key];
-    posterior.fit_metadata_json = meta.dump();
+uint64_t write_file(const Posterior& p, const std::string& path, const FitResult& r) {
+    const uint64_t bytes = write_posterior(p, path);
+    const auto& trace = r.trace;
+    std::cout << fmt::format("wrote {} ({:.1f} MB): {} kept samples from {} chains in {}; final train RMSE {:.4f}\n",
+                             path, bytes / 1e6, p.num_samples, p.num_chains, format_duration(r.seconds),
+                             trace.train_rmse.empty() ? NAN : trace.train_rmse.back());
+    return bytes;
 }
 
-// ---- 4b. Names and categories from the catalogue for every product the
+// ---- 6b. Names and categories from the catalogue for every product the
 // model knows; catalogue rows for products without ratings are counted, not kept.
 void attach_catalogue(Posterior& posterior, const Catalogue& catalogue, const Log& log) {
     posterior.item_names.assign(posterior.num_items, "");
@@ -215,26 +321,9 @@ void attach_catalogue(Posterior& posterior, const Catalogue& catalogue, const Lo
                     posterior.num_items, catalogue.products.size() - named));
 }
 
-// ---- 5. Convergence figures, then the file. The figures travel with the
-// model (inspect, /v1/model, report).
-void write_model(FitResult& result, const std::string& out) {
-    std::cerr << describe_verdict(result);
-
-    const uint64_t bytes = write_posterior(result.posterior, out);
-    const auto& trace = result.trace;
-    std::cout << fmt::format("wrote {} ({:.1f} MB): {} kept samples from {} chains in {}; final train RMSE {:.4f}\n",
-                             out, bytes / 1e6, result.posterior.num_samples, result.posterior.num_chains,
-                             format_duration(result.seconds),
-                             trace.train_rmse.empty() ? NAN : trace.train_rmse.back());
-}
-
 int run_fit(FitFlags& f) {
-    if (f.holdout && !(*f.holdout > 0.0 && *f.holdout < 1.0))
-        throw OptionError("--holdout must be strictly between 0 and 1");
-    if (f.holdout && !f.validation_path.empty())
-        throw OptionError("--holdout and --validation are alternatives; give one");
+    check_flags(f);
     const FitOptions options = to_fit_options(f.sampler);
-
     const Log log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
     ProgressLine progress(f.quiet);
     for (const auto& note : prepare_posterior_output(f.out)) log(note);  // before any sampling
@@ -248,11 +337,56 @@ int run_fit(FitFlags& f) {
     }
     IngestResult data = read_ratings(f, progress, log);
     const TrainingData d = split_for_validation(f, std::move(data.ratings), options.seed, log);
-    FitResult result = sample_posterior(d, options, progress, log);
-    add_fit_metadata(result.posterior, f, data.summary, d);
-    add_validation_figures(result.posterior, d);
+    const std::optional<WarmStart> start = warm_start(f, d.train, options, log);
+    FitResult result = sample_posterior(d.train, d.validation, options, start ? &*start : nullptr, "fitting",
+                                        progress, log);
+    std::cerr << describe_verdict(result);
+    const nlohmann::json figures = held_out_figures(result.posterior, d, log);
+    if (!f.holdout_out.empty()) {
+        write_ratings_csv(d.validation, d.train.users, d.train.items, f.holdout_out);
+        log(fmt::format("wrote the {} held-out ratings to {}", d.validation.size(), f.holdout_out));
+    }
+    std::vector<std::string> verdicts{result.convergence.verdict};
+    nlohmann::json extra = nlohmann::json::object();
+
+    // The accuracy is the checked fit's: a refit has seen the held-out ratings.
+    std::optional<PairedAccuracy> accuracy;
+    if (f.gate) accuracy = live_accuracy(f, result.posterior, d, log);
+    if (f.refit_on_all) {
+        // The check is done; the served model uses every rating, starting
+        // where the checked fit ended (the same ids, a few more ratings).
+        const RatingSet all = all_ratings(d);
+        const WarmStart from_check = warm_start_from(result.posterior, "the held-out check fit", all, options);
+        FitResult refit = sample_posterior(all, {}, options, &from_check, "refitting on every rating:", progress, log);
+        std::cerr << describe_verdict(refit);
+        verdicts.push_back(refit.convergence.verdict);
+        extra["refit_on_all"] = {{"ratings", all.size()},
+                                 {"checked_fit_verdict", result.convergence.verdict},
+                                 {"checked_fit_sweeps_per_chain", result.sweeps_per_chain},
+                                 {"note", "the held-out figures are those of the fit without the held-out ratings; "
+                                          "this model was refitted on every rating after that check"}};
+        result = std::move(refit);
+    }
+    std::optional<GateDecision> decision;
+    if (f.gate) {
+        decision = judge_release(accuracy ? &*accuracy : nullptr, verdicts);
+        for (const auto& n : decision->notes) log("gate: " + n);
+    }
+    if (decision) extra["gate"] = decision->record;
+    add_fit_metadata(result.posterior, f, data.summary, d, figures, extra);
     if (catalogue) attach_catalogue(result.posterior, *catalogue, log);
-    write_model(result, f.out);
+    if (decision && !decision->pass) {
+        const std::string candidate = f.out + ".candidate";
+        write_file(result.posterior, candidate, result);
+        std::cerr << fmt::format("gate: refused to replace {}:\n", f.out);
+        for (const auto& r : decision->reasons) std::cerr << "  - " << r << "\n";
+        std::cerr << fmt::format("gate: the live model {} is unchanged; the new one is in {} (compare them with "
+                                 "credence delta {} {})\n",
+                                 f.out, candidate, f.out, candidate);
+        return kExitGateRefused;
+    }
+    if (decision) log("gate: passed; replacing " + f.out);
+    write_file(result.posterior, f.out, result);
     return 0;
 }
 
@@ -260,14 +394,19 @@ int run_fit(FitFlags& f) {
 
 Runner add_fit_command(CLI::App& app) {
     auto f = std::make_shared<FitFlags>();
-    CLI::App* cmd = app.add_subcommand("fit", "Fit the model to a ratings export by Gibbs sampling and write a posterior file");
+    CLI::App* cmd = app.add_subcommand("fit", "Fit the model to a ratings export or database query by Gibbs sampling and write a posterior file");
     add_ingest_flags(*cmd, f->ingest);
     cmd->add_option("--out,-o", f->out, "Posterior file to write (replaced atomically)")->required();
     add_sampler_flags(*cmd, f->sampler, RankFlag::one);
-    cmd->add_option("--holdout", f->holdout, "Hold out this share of ratings to report validation RMSE while fitting")->check(CLI::Range(0.0, 1.0));
-    cmd->add_option("--validation", f->validation_path, "Ratings file scored by the running posterior mean while fitting");
+    cmd->add_option("--holdout", f->holdout, "Hold out this share of ratings: scored while fitting and after, figures stored in the file")->check(CLI::Range(0.0, 1.0));
     cmd->add_option("--catalogue", f->catalogue_path,
                     "Product catalogue CSV (product id, name, optional category) stored in the posterior so answers show names");
+    cmd->add_option("--validation", f->validation_path, "Ratings file scored while fitting and after (instead of --holdout)");
+    cmd->add_option("--holdout-out", f->holdout_out, "Write the held-out ratings here (CSV) for evaluate and report --validation");
+    cmd->add_flag("--refit-on-all", f->refit_on_all, "After the held-out check, refit on every rating and write that model");
+    cmd->add_option("--warm-start", f->warm_start, "Start the chains from this earlier posterior file of the same model (e.g. the live one)");
+    cmd->add_flag("--gate", f->gate, "Replace --out only if the new model converged and is not worse than the model now in --out "
+                                     "on held-out ratings (by more than 2 paired SE); otherwise write <out>.candidate and exit 3");
     cmd->add_flag("--quiet,-q", f->quiet, "No progress or summary on stderr");
     return [f] { return run_fit(*f); };
 }

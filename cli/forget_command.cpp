@@ -2,9 +2,10 @@
 // from a CSV/TSV ratings export (RFC 4180 records, read with CsvReader) and
 // reports how many rows and physical lines went. The file is rewritten
 // through a temporary file in the same directory and renamed over the
-// original, so a failure leaves it as it was. CSV exports only: Credence has
-// no database source yet. Erasure is complete only after a refit (README,
-// "Security and privacy").
+// original, so a failure leaves it as it was. CSV exports only: a database
+// source (sqlite:PATH, postgresql://) is read-only to Credence, so forget
+// refuses it and says to delete the rows in the database. Erasure is
+// complete only after a refit (README, "Security and privacy").
 #include <unistd.h>
 
 #include <charconv>
@@ -16,6 +17,8 @@
 
 #include "cli/commands.hpp"
 #include "model/data/csv_reader.hpp"
+#include "model/data/postgresql_source.hpp"
+#include "model/data/sqlite_source.hpp"
 #include "model/error.hpp"
 
 namespace credence::cli {
@@ -85,6 +88,10 @@ Outcome copy_without(const ForgetFlags& f, std::FILE* in, std::FILE* out) {
 
 int run_forget(const ForgetFlags& f) {
     if (f.customer.empty()) throw OptionError("--customer must not be empty");
+    if (is_sqlite_source(f.path) || is_postgresql_source(f.path))
+        throw OptionError("--ratings names a database; Credence only reads databases (read-only, through --query), "
+                          "so delete the customer's rows there (DELETE ... WHERE <customer column> = the id), then "
+                          "refit and reload; POST /v1/admin/forget drops the customer from the served model at once");
     File in(std::fopen(f.path.c_str(), "rb"), &std::fclose);
     if (!in) throw FileError(f.path + ": cannot open for reading");
     const std::filesystem::path target(f.path);

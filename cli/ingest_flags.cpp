@@ -22,7 +22,12 @@ void refuse_renamed(CLI::App& cmd, const std::string& old_name, const std::strin
 }  // namespace
 
 void add_ingest_flags(CLI::App& cmd, IngestFlags& f, const std::string& ratings_flag) {
-    cmd.add_option(ratings_flag, f.path, "Ratings export, CSV or TSV ('-' for standard input)")->required();
+    cmd.add_option(ratings_flag, f.path,
+                   "Ratings: a CSV or TSV export ('-' for standard input), sqlite:PATH, or a postgresql:// URI "
+                   "(the password from PGPASSWORD or a password file, never the URI)")
+        ->required();
+    cmd.add_option("--query", f.query,
+                   "For a database: the SELECT returning the ratings (columns chosen as for a file)");
     cmd.add_option("--delimiter", f.delimiter, "Field delimiter: ',', ';', '|' or 'tab' (default: detected)");
     auto* nh = cmd.add_flag("--no-header", f.no_header, "The first row is data, not column names");
     cmd.add_flag("--header", f.header, "The first row is column names (default: detected)")->excludes(nh);
@@ -55,6 +60,7 @@ float parse_float(const std::string& s, const std::string& what) {
 IngestOptions to_ingest_options(const IngestFlags& f) {
     IngestOptions o;
     o.path = f.path;
+    o.query = f.query;
     if (!f.delimiter.empty()) {
         if (f.delimiter == "tab" || f.delimiter == "\\t" || f.delimiter == "\t") o.delimiter = '\t';
         else if (f.delimiter.size() == 1 && std::string(",;|").find(f.delimiter[0]) != std::string::npos)

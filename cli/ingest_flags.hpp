@@ -1,6 +1,6 @@
-// The rating-file flags shared by every subcommand that reads ratings
-// (fit, evaluate, compare): delimiter, header, columns, scale, duplicates,
-// rejects. Column flags use the shop's words (--customer-column,
+// The rating-source flags shared by every subcommand that reads ratings
+// (fit, evaluate, compare): the file or database and its query, delimiter,
+// header, columns, scale, duplicates, rejects. Column flags use the shop's words (--customer-column,
 // --product-column); the earlier --user-column and --item-column are refused
 // with a usage error that names the new flag.
 #pragma once
@@ -13,6 +13,7 @@ namespace credence::cli {
 
 struct IngestFlags {
     std::string path;
+    std::string query;       // --query: the SELECT for a database source
     std::string delimiter;   // "", ",", "tab", ";", "|"
     bool no_header = false;
     bool header = false;

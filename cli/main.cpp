@@ -11,6 +11,10 @@
 //       subcommand, missing or malformed value, a value outside its range;
 //       CLI11's message is printed, its own codes 105, 106, 109, ... are not
 //       used), and credence::OptionError (an option value that cannot work).
+//    3  refused: fit --gate did not replace the live model, because the new
+//       one did not converge or is worse on held-out ratings by more than two
+//       standard errors of the paired difference (kExitGateRefused in
+//       cli/commands.hpp; the new model is written beside it as .candidate).
 //   70  internal error: std::logic_error and its children (a broken
 //       precondition between modules) and any other unexpected exception.
 //       This is a bug in credence, never the user's doing; the message says
@@ -104,7 +108,8 @@ int main(int argc, char** argv) {
     }
     app.set_version_flag("--version", std::string("credence ") + credence::kCredenceVersion + "\nkernels: " + cpu_level);
     const std::string exit_codes =
-        "Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error (a bug).";
+        "Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 3 fit --gate refused the new model, "
+        "70 internal error (a bug).";
     app.footer(exit_codes);
 
     std::map<CLI::App*, credence::cli::Runner> runners;
@@ -123,6 +128,7 @@ int main(int argc, char** argv) {
     add(credence::cli::add_demo_data_command);
     add(credence::cli::add_compare_command);
     add(credence::cli::add_report_command);
+    add(credence::cli::add_delta_command);
     add(credence::cli::add_forget_command);
     // Every subcommand's help, and so its man page, ends with the exit codes
     // (subcommands start with the footer above; one with its own gets both).

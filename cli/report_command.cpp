@@ -30,6 +30,25 @@ struct ReportFlags {
     uint32_t k = 10;
 };
 
+// A comparison is evidence about a model only when it was made on the data
+// the model was fitted to: the data fingerprints must match.
+void require_same_data(const ComparisonResult& c, const Posterior& p, const std::string& comparison,
+                       const std::string& model) {
+    const auto meta = nlohmann::json::parse(p.fit_metadata_json, nullptr, false);
+    const std::string fitted = meta.is_object() ? meta.value("data_fingerprint", std::string()) : std::string();
+    if (c.data_fingerprint.empty())
+        throw DataError(fmt::format("{} records no data fingerprint (written by an older credence compare), so it "
+                                    "cannot be matched to {}; rerun credence compare --json on the model's ratings",
+                                    comparison, model));
+    if (fitted.empty())
+        throw DataError(fmt::format("{} records no data fingerprint, so {} cannot be matched to it; refit the model",
+                                    model, comparison));
+    if (c.data_fingerprint != fitted)
+        throw DataError(fmt::format("{} was made on other data (fingerprint {}) than {} was fitted to ({}); rerun "
+                                    "credence compare --json on the model's ratings",
+                                    comparison, c.data_fingerprint, model, fitted));
+}
+
 int run_report(const ReportFlags& f) {
     auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
     report::ReportInputs in;
@@ -57,13 +76,14 @@ int run_report(const ReportFlags& f) {
         } catch (const FormatError& e) {
             throw FormatError(f.comparison + ": " + e.what());
         }
+        require_same_data(*in.comparison, *posterior, f.comparison, f.model);
     }
     const std::string html = report::render_html_report(in);
     std::ofstream out(f.out, std::ios::binary | std::ios::trunc);
     out << html;
     out.close();
     if (!out) throw FileError("could not write " + f.out + " (check the directory exists and is writable)");
-    std::cout << fmt::format("wrote {} ({:.0f} KB)\n", f.out, html.size() / 1024.0);
+    std::cout << fmt::format("wrote {} ({:.0f} KB)\n{}\n", f.out, html.size() / 1024.0, report::fitness_verdict(in));
     return 0;
 }
 

@@ -8,7 +8,9 @@
 
 #include <algorithm>
 #include <cmath>
+#include <ctime>
 #include <map>
+#include <optional>
 #include <stdexcept>
 
 #include "model/fit/convergence_summary.hpp"
@@ -92,6 +94,7 @@ td { white-space:nowrap; }
 .grid.tables { gap:28px; align-items:flex-start; }
 tr.pick td { background:#eef4fa; font-weight:600; }
 ul.warnings { color:var(--bad); margin:6px 0; padding-left:20px; font-size:13px; }
+p.verdict { font-size:15px; font-weight:600; margin:4px 0 10px; }
 footer { color:var(--muted); font-size:12px; text-align:center; padding:8px 0 30px; }
 )CSS";
 
@@ -126,6 +129,89 @@ std::string overview(const ReportInputs& in, const ConvergenceSummary& conv, con
                      escape_xml(conv.verdict == "not_converged" ? "not converged"
                                 : conv.verdict == "not_assessable" ? "not assessable" : conv.verdict));
     o += "</div></section>\n";
+    return o;
+}
+
+// ---- provenance and the verdict on fitness for use
+
+std::string meta_text(const nlohmann::json& meta, std::initializer_list<const char*> path) {
+    const nlohmann::json* at = &meta;
+    for (const char* key : path) {
+        if (!at->is_object() || !at->contains(key)) return "&ndash;";
+        at = &(*at)[key];
+    }
+    if (at->is_string()) return escape_xml(at->get<std::string>());
+    if (at->is_null()) return "&ndash;";
+    return escape_xml(at->dump());
+}
+
+std::string utc_now() {
+    const std::time_t now = std::time(nullptr);
+    std::tm tm{};
+    gmtime_r(&now, &tm);
+    char buf[32];
+    std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
+    return buf;
+}
+
+std::string provenance(const nlohmann::json& meta, const std::string& verdict_line) {
+    const bool fixed = meta_text(meta, {"run_length", "mode"}) == "fixed";
+    std::string o = "<section id=\"provenance\"><h2>Provenance</h2>";
+    o += fmt::format("<p class=\"verdict\" id=\"fitness\">{}</p><div class=\"facts\">", escape_xml(verdict_line));
+    auto fact = [&](const std::string& label, const std::string& value) {
+        o += fmt::format("<div><b>{}</b>{}</div>", value, label);
+    };
+    fact("model created (UTC)", meta_text(meta, {"created_at"}));
+    fact("report written (UTC)", utc_now());
+    fact("Credence version", meta_text(meta, {"credence_version"}));
+    fact("seed", meta_text(meta, {"seed"}));
+    fact("sweeps per chain", meta_text(meta, {"sweeps_per_chain"}));
+    fact("burn-in (sweeps per chain)", meta_text(meta, {"run_length", "burn_in"}));
+    fact(fixed ? "kept draws per chain, thin" : "kept draws per chain",
+         fixed ? meta_text(meta, {"options", "samples"}) + ", " + meta_text(meta, {"options", "thin"})
+               : meta_text(meta, {"options", "samples"}));
+    fact("run length", meta_text(meta, {"run_length", "mode"}) + " (" + meta_text(meta, {"run_length", "stop_reason"}) + ")");
+    fact("start", meta_text(meta, {"start", "kind"}));
+    fact("data fingerprint", "<code>" + meta_text(meta, {"data_fingerprint"}) + "</code>");
+    o += "</div></section>\n";
+    return o;
+}
+
+// The held-out figures the fit stored (fit --holdout), beside the baseline.
+std::string stored_held_out(const nlohmann::json& meta) {
+    if (!meta.contains("validation") || !meta["validation"].is_object() || !meta["validation"].contains("figures"))
+        return {};
+    const auto& v = meta["validation"];
+    const auto& f = v["figures"];
+    auto num = [](const nlohmann::json& j, const char* key) {
+        return j.is_object() && j.contains(key) && j[key].is_number() ? j[key].get<double>() : NAN;
+    };
+    const nlohmann::json base = f.contains("baseline") ? f["baseline"] : nlohmann::json::object();
+    auto cover = [&](const nlohmann::json& j) {
+        return j.is_object() && j.contains("coverage") && j["coverage"].contains("0.9") &&
+                       j["coverage"]["0.9"].is_number()
+                   ? j["coverage"]["0.9"].get<double>()
+                   : NAN;
+    };
+    std::string o = "<section id=\"held-out\"><h2>Held-out check</h2>";
+    o += fmt::format("<p class=\"note\">Stored by the fit: {} ratings {} were set aside before fitting and scored "
+                     "afterwards.{}</p>",
+                     meta_text(f, {"ratings"}),
+                     v.value("kind", "") == "holdout" ? fmt::format("({} of the export)", meta_text(v, {"fraction"}))
+                                                      : std::string("(a separate file)"),
+                     meta.contains("refit_on_all") ? " The served model was then refitted on every rating." : "");
+    o += "<table class=\"held-out\"><thead><tr><th>figure</th><th>model</th><th>product-mean baseline</th></tr>"
+         "</thead><tbody>";
+    o += fmt::format("<tr><td>RMSE (rating units)</td><td>{}</td><td>{}</td></tr>", fixed(num(f, "rmse"), 4),
+                     fixed(num(base, "rmse"), 4));
+    o += fmt::format("<tr><td>MAE (rating units)</td><td>{}</td><td>{}</td></tr>", fixed(num(f, "mae"), 4),
+                     fixed(num(base, "mae"), 4));
+    o += fmt::format("<tr><td>mean log predictive density (nats)</td><td>{}</td><td>{}</td></tr>",
+                     fixed(num(f, "mean_log_predictive_density"), 4),
+                     fixed(num(base, "mean_log_predictive_density"), 4));
+    o += fmt::format("<tr><td>90% interval coverage</td><td>{}</td><td>{}</td></tr>", fixed(cover(f), 3),
+                     fixed(cover(base), 3));
+    o += "</tbody></table></section>\n";
     return o;
 }
 
@@ -444,13 +530,72 @@ std::string comparison(const ComparisonResult& c) {
                          s.biases ? "on" : "off", s.parameters, fixed(s.mean_log_predictive_density, 4),
                          fixed(s.mean_log_predictive_density_se, 4), fixed(s.difference_to_best, 4),
                          fixed(s.difference_se, 4), fixed(s.rmse, 4), fixed(s.coverage, 3),
-                         fixed(s.waic_elpd_per_rating, 4), fixed(s.p_waic, 0));
+                         fixed(s.waic_elpd_per_rating, 4) + (s.waic_reliable() ? "" : " *"), fixed(s.p_waic, 0));
     }
-    o += "</tbody></table></section>\n";
+    o += "</tbody></table>";
+    bool unreliable = false;
+    for (const ConfigScore& s : c.configs) unreliable = unreliable || !s.waic_reliable();
+    if (unreliable)
+        o += "<p class=\"note\" id=\"waic-unreliable\">* WAIC is unreliable there: some training ratings have a "
+             "log-likelihood variance over samples above 0.4 (Vehtari, Gelman &amp; Gabry 2017); judge by the held-out "
+             "log density.</p>";
+    o += "</section>\n";
     return o;
 }
 
+struct HeldOut {
+    double rmse = NAN, lpd = NAN, base_rmse = NAN, base_lpd = NAN;
+    uint64_t ratings = 0;
+    std::string where;
+};
+
+// The held-out figures the verdict judges by: a --validation report, else
+// those the fit stored.
+std::optional<HeldOut> held_out_for_verdict(const ReportInputs& in, const nlohmann::json& meta) {
+    if (in.validation && in.validation->rated > 0) {
+        const EvaluationReport& r = *in.validation;
+        return HeldOut{r.rmse, r.mean_log_predictive_density, r.baseline.available ? r.baseline.rmse : NAN,
+                       r.baseline.available ? r.baseline.mean_log_predictive_density : NAN, r.rated,
+                       "the validation file"};
+    }
+    if (!meta.contains("validation") || !meta["validation"].is_object() || !meta["validation"].contains("figures"))
+        return std::nullopt;
+    const auto& f = meta["validation"]["figures"];
+    auto num = [](const nlohmann::json& j, const char* key) {
+        return j.is_object() && j.contains(key) && j[key].is_number() ? j[key].get<double>() : NAN;
+    };
+    const nlohmann::json base = f.contains("baseline") ? f["baseline"] : nlohmann::json::object();
+    return HeldOut{num(f, "rmse"), num(f, "mean_log_predictive_density"), num(base, "rmse"),
+                   num(base, "mean_log_predictive_density"), f.value("ratings", uint64_t{0}),
+                   "the ratings the fit held out"};
+}
+
 }  // namespace
+
+std::string fitness_verdict(const ReportInputs& in) {
+    if (!in.posterior) throw std::invalid_argument("fitness_verdict: no posterior given");
+    const nlohmann::json meta = parse_or_empty(in.posterior->fit_metadata_json);
+    const ConvergenceSummary conv = stored_or_recomputed_convergence(*in.posterior);
+    if (conv.verdict != "converged")
+        return fmt::format("Not fit for use: the chains {} (max R-hat {}, min bulk ESS per chain {}); see the advice "
+                           "under Convergence.",
+                           conv.verdict == "not_assessable" ? "could not be assessed" : "did not converge",
+                           fixed(conv.max_rhat, 3), fixed(conv.min_ess_bulk_per_chain, 0));
+    const auto h = held_out_for_verdict(in, meta);
+    if (!h)
+        return "Converged, accuracy unchecked: no held-out ratings were scored; fit with --holdout or pass "
+               "--validation before serving this model.";
+    if (!std::isfinite(h->base_rmse) || !std::isfinite(h->base_lpd))
+        return fmt::format("Converged; on {} ratings of {} RMSE {} and mean log density {}, with no baseline to "
+                           "compare (refit to store one).",
+                           h->ratings, h->where, fixed(h->rmse, 4), fixed(h->lpd, 4));
+    const bool better = h->rmse < h->base_rmse && h->lpd > h->base_lpd;
+    return fmt::format("{}: converged, and on {} ratings of {} it {} the product-mean baseline (RMSE {} against {}, "
+                       "mean log density {} against {}).",
+                       better ? "Fit for use" : "Not fit for use", h->ratings, h->where,
+                       better ? "beats" : "does not beat", fixed(h->rmse, 4), fixed(h->base_rmse, 4),
+                       fixed(h->lpd, 4), fixed(h->base_lpd, 4));
+}
 
 std::string render_html_report(const ReportInputs& in) {
     if (!in.posterior) throw std::invalid_argument("render_html_report: no posterior given");
@@ -465,7 +610,9 @@ std::string render_html_report(const ReportInputs& in) {
     html += fmt::format("<header><h1>Credence model report</h1><div class=\"sub\">{} &middot; rank {} &middot; {} kept "
                         "samples from {} chains</div></header>\n<main>\n",
                         escape_xml(in.model_name), p.rank, p.num_samples, p.num_chains);
+    html += provenance(meta, fitness_verdict(in));
     html += overview(in, conv, meta);
+    html += stored_held_out(meta);
     html += convergence_table(conv);
     html += sweep_traces(meta);
     html += probe_traces(in, conv);

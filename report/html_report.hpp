@@ -7,6 +7,8 @@
 //     the probe predictions over kept samples (probes as chosen by
 //     model/fit/convergence_summary.hpp);
 //   - the R-hat / ESS table and verdict (summarize_convergence);
+//   - the held-out check the fit stored (fit --holdout), beside the
+//     product-mean baseline;
 //   - the calibration curve and PIT histogram of a validation set, if given;
 //   - predictive sd against the number of training ratings per item;
 //   - the rank comparison table and plot, if a comparison is given.
@@ -28,6 +30,13 @@ struct ReportInputs {
     std::optional<ComparisonResult> comparison;
     uint32_t max_probe_plots = 6;              // probe prediction traces drawn (of up to 20 probes)
 };
+
+// One line on whether the model is fit for use, from its convergence
+// verdict and the held-out figures (a --validation report, else those the
+// fit stored): "Fit for use: ...", "Not fit for use: ..." (not converged,
+// or no better than the product-mean baseline on held-out ratings) or
+// "Converged, accuracy unchecked: ..." (no held-out figures). Plain text.
+std::string fitness_verdict(const ReportInputs& inputs);
 
 // Returns the whole HTML document. Throws std::invalid_argument when
 // posterior is null (a bug in the caller; so is any error of the plot writer,

@@ -17,6 +17,8 @@ packages=(
   help2man               # man pages, written from --help at build time
   file                   # cpack -G DEB: finds the programs whose libraries become Depends
   libssl-dev             # OpenSSL: cpp-httplib's TLS client in the exposed-deployment test
+  libsqlite3-dev         # --ratings sqlite:PATH
+  libpq-dev              # --ratings postgresql://... (libpq)
 )
 # Only the tests and benchmarks need these (scipy is the outside reference for
 # distribution checks; chromium renders the report, and with chromium-driver
@@ -24,9 +26,11 @@ packages=(
 # nginx and openssl run the exposed deployment with a certificate made in the
 # test; clang builds the libFuzzer targets of scripts/fuzz; lintian checks
 # the Debian package; prometheus brings promtool, which checks the example
-# alert rules).
+# alert rules; sqlite3 and postgresql (initdb, pg_ctl) give the
+# database-source tests a real SQLite file and a PostgreSQL server of their
+# own).
 if [[ "${CREDENCE_SETUP_EXTRAS:-1}" == 1 ]]; then
-  packages+=(wrk chromium chromium-driver python3 python3-selenium python3-scipy python3-numpy nginx openssl clang libclang-rt-dev lintian prometheus)
+  packages+=(wrk chromium chromium-driver python3 python3-selenium python3-scipy python3-numpy nginx openssl clang libclang-rt-dev lintian prometheus sqlite3 postgresql)
 fi
 
 missing=()

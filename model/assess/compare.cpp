@@ -82,6 +82,7 @@ struct SplitScore {
     std::vector<double> lpd, squared_error, inside;
     double waic_elpd_per_rating = 0.0, waic_se_per_rating = 0.0, p_waic = 0.0;
     uint64_t waic_high_variance = 0;
+    uint64_t waic_ratings = 0;
     double seconds = 0.0;
 };
 
@@ -146,6 +147,7 @@ void score_waic(const Posterior& p, const RatingSet& train, SplitScore& out) {
         p_total += p_i[k];
         out.waic_high_variance += p_i[k] > 0.4;
     }
+    out.waic_ratings = N;
     out.waic_elpd_per_rating = total / n;
     out.waic_se_per_rating = std::sqrt(n) * sd_of(elpd) / n;
     out.p_waic = p_total;
@@ -260,6 +262,7 @@ ComparisonResult compare_models(const RatingSet& ratings, const CompareOptions& 
                 c.waic_se_per_rating += s.waic_se_per_rating / K;
                 c.p_waic += s.p_waic / K;
                 c.waic_high_variance_ratings += s.waic_high_variance;
+                c.waic_training_ratings += s.waic_ratings;
                 c.held_out_ratings += s.lpd.size();
                 c.fit_seconds += s.seconds;
             }
@@ -284,6 +287,23 @@ ComparisonResult compare_models(const RatingSet& ratings, const CompareOptions& 
     }
     result.rule = "the model with the fewest parameters whose held-out mean log predictive density is within one "
                   "standard error (of the paired difference) of the best";
+    const FitOptions& f = options.fit;
+    result.settings = {{"ranks", ranks},
+                       {"folds", result.folds},
+                       {"holdout_fraction", result.holdout_fraction},
+                       {"both_bias_settings", options.both_bias_settings},
+                       {"coverage_level", options.coverage_level},
+                       {"split_seed", options.split_seed},
+                       {"fit",
+                        {{"run_length", f.run_length == RunLength::converged ? "converged" : "fixed"},
+                         {"burn_in", f.burn_in},
+                         {"samples", f.samples},
+                         {"thin", f.thin},
+                         {"max_sweeps", f.max_sweeps},
+                         {"chains", f.chains},
+                         {"seed", f.seed},
+                         {"biases", f.biases},
+                         {"sample_noise", f.sample_noise}}}};
     return result;
 }
 
@@ -305,7 +325,9 @@ nlohmann::json to_json(const ComparisonResult& result) {
                             {{"elpd_per_rating", number(c.waic_elpd_per_rating)},
                              {"se_per_rating", number(c.waic_se_per_rating)},
                              {"p_waic", number(c.p_waic)},
-                             {"high_variance_ratings", c.waic_high_variance_ratings}}},
+                             {"high_variance_ratings", c.waic_high_variance_ratings},
+                             {"training_ratings", c.waic_training_ratings},
+                             {"reliable", c.waic_reliable()}}},
                            {"held_out_ratings", c.held_out_ratings},
                            {"fit_seconds", c.fit_seconds}});
     return {{"folds", result.folds},
@@ -314,7 +336,9 @@ nlohmann::json to_json(const ComparisonResult& result) {
             {"best", result.best},
             {"recommended", result.recommended},
             {"rule", result.rule},
-            {"configs", configs}};
+            {"configs", configs},
+            {"settings", result.settings},
+            {"data_fingerprint", result.data_fingerprint}};
 }
 
 ComparisonResult comparison_from_json(const nlohmann::json& j) {
@@ -355,10 +379,13 @@ ComparisonResult comparison_from_json(const nlohmann::json& j) {
             s.waic_se_per_rating = num(w, "se_per_rating");
             s.p_waic = num(w, "p_waic");
             s.waic_high_variance_ratings = get(w, "high_variance_ratings").get<uint64_t>();
+            s.waic_training_ratings = w.value("training_ratings", uint64_t{0});
             s.held_out_ratings = get(c, "held_out_ratings").get<uint64_t>();
             s.fit_seconds = num(c, "fit_seconds");
             r.configs.push_back(s);
         }
+        r.settings = j.value("settings", nlohmann::json::object());
+        r.data_fingerprint = j.value("data_fingerprint", std::string());
     } catch (const nlohmann::json::exception& e) {
         throw FormatError(std::string("comparison file: a key has the wrong type: ") + e.what());
     }
@@ -375,15 +402,24 @@ std::string format_table(const ComparisonResult& result) {
         const ConfigScore& x = result.configs[c];
         std::string mark = c == result.recommended ? "  <- recommended" : "";
         if (c == result.best) mark += c == result.recommended ? ", best" : "  <- best";
-        out += fmt::format("{:>5} {:>6} {:>10} {:>11.4f} ({:.4f}) {:>9.4f} ({:.4f}) {:>8.4f} ({:.4f}) {:>9.3f} ({:.3f}) {:>8.4f}{}\n",
+        out += fmt::format("{:>5} {:>6} {:>10} {:>11.4f} ({:.4f}) {:>9.4f} ({:.4f}) {:>8.4f} ({:.4f}) {:>9.3f} ({:.3f}) {:>8.4f}{}{}\n",
                            x.rank, x.biases ? "on" : "off", x.parameters, x.mean_log_predictive_density,
                            x.mean_log_predictive_density_se, x.difference_to_best, x.difference_se, x.rmse, x.rmse_se,
-                           x.coverage, x.coverage_se, x.waic_elpd_per_rating, mark);
+                           x.coverage, x.coverage_se, x.waic_elpd_per_rating, x.waic_reliable() ? " " : "*", mark);
     }
     out += result.folds >= 2 ? fmt::format("{} folds; SEs across folds.\n", result.folds)
                              : fmt::format("one holdout of {:.0f}% of the ratings; SEs across held-out ratings.\n",
                                            100 * result.holdout_fraction);
     out += "Recommended: " + result.rule + ".\n";
+    std::string unreliable;
+    for (const ConfigScore& x : result.configs)
+        if (!x.waic_reliable())
+            unreliable += fmt::format("{}rank {} ({} of {} ratings)", unreliable.empty() ? "" : ", ", x.rank,
+                                      x.waic_high_variance_ratings, x.waic_training_ratings);
+    if (!unreliable.empty())
+        out += "* WAIC is unreliable for " + unreliable +
+               ": those training ratings have a log-likelihood variance over samples above 0.4 (Vehtari, Gelman & "
+               "Gabry 2017); judge by the held-out log density, not by WAIC.\n";
     return out;
 }
 

@@ -27,7 +27,13 @@
 // as the held-out mean log density, and averaged over splits. Ratings with
 // p_i > 0.4 make WAIC unreliable (Vehtari, Gelman & Gabry 2017, "Practical
 // Bayesian model evaluation using leave-one-out cross-validation and WAIC",
-// Statistics and Computing 27); their count is reported.
+// Statistics and Computing 27); their count is reported and any such rating
+// marks the configuration's WAIC unreliable (flagged in the table and the
+// JSON; the held-out log density is then the figure to judge by).
+//
+// Provenance: the result records the settings it was made with and (set by
+// the caller that read the ratings) the data fingerprint, so a report can
+// refuse a comparison made on other data.
 //
 // Recommendation (the one-standard-error rule; Hastie, Tibshirani & Friedman,
 // "The Elements of Statistical Learning", 2nd ed., section 7.10): the best
@@ -85,6 +91,8 @@ struct ConfigScore {
     double waic_se_per_rating = 0.0;   // SE(elpd_waic) / n_train, mean over splits
     double p_waic = 0.0;               // effective number of parameters, mean over splits
     uint64_t waic_high_variance_ratings = 0;  // ratings with p_i > 0.4, summed over splits
+    uint64_t waic_training_ratings = 0;       // training ratings WAIC was computed on, summed over splits
+    bool waic_reliable() const { return waic_high_variance_ratings == 0; }
     uint64_t held_out_ratings = 0;     // summed over splits
     double fit_seconds = 0.0;          // summed over splits
 };
@@ -97,6 +105,8 @@ struct ComparisonResult {
     size_t best = 0;                   // index into configs
     size_t recommended = 0;
     std::string rule;                  // one sentence stating how `recommended` was chosen
+    nlohmann::json settings = nlohmann::json::object();  // ranks, splits, seed and the fit options used
+    std::string data_fingerprint;      // of the ratings compared (ingest's); empty when unknown
 };
 
 // Needs ratings sorted by (user, item) without duplicate pairs (as ingest
@@ -113,16 +123,20 @@ ComparisonResult compare_models(const RatingSet& ratings, const CompareOptions& 
 // recommended (indices), rule, configs [{rank, biases, parameters,
 // mean_log_predictive_density, ..._se, rmse, rmse_se, coverage, coverage_se,
 // difference_to_best, difference_se, waic {elpd_per_rating, se_per_rating,
-// p_waic, high_variance_ratings}, held_out_ratings, fit_seconds}].
+// p_waic, high_variance_ratings, training_ratings, reliable},
+// held_out_ratings, fit_seconds}], settings, data_fingerprint.
 // Non-finite figures are null.
 nlohmann::json to_json(const ComparisonResult& result);
 
 // Reads what to_json wrote (for the report). Throws FormatError naming the
 // first missing or mistyped key, or a best/recommended index out of range.
+// settings, data_fingerprint and waic.training_ratings may be absent (a
+// file written before they were recorded): empty / 0.
 ComparisonResult comparison_from_json(const nlohmann::json& j);
 
 // A fixed-width text table with one row per configuration, the best and
-// recommended rows marked, and the rule underneath.
+// recommended rows marked, unreliable WAIC figures starred, and the rule and
+// a note on WAIC underneath.
 std::string format_table(const ComparisonResult& result);
 
 }  // namespace credence

@@ -11,8 +11,10 @@
 #include <limits>
 #include <optional>
 
+#include "model/data/product_means.hpp"
 #include "model/error.hpp"
 #include "model/math/random.hpp"
+#include "model/math/standard_normal.hpp"
 
 namespace credence {
 
@@ -141,6 +143,63 @@ PairScores score_pairs(const PredictionEngine& engine, const RatingSet& test, co
     return out;
 }
 
+bool trained_on(const Posterior& p, uint32_t u, uint32_t i) {
+    const auto rated = p.rated_by(u);
+    return std::binary_search(rated.begin(), rated.end(), i);
+}
+
+// The stored product-mean baseline on the rated pairs of `test`.
+BaselineFigures score_baseline(const Posterior& p, const RatingSet& test, const EvaluationOptions& options,
+                               const std::vector<std::optional<uint32_t>>& user_of,
+                               const std::vector<std::optional<uint32_t>>& item_of) {
+    BaselineFigures out;
+    const auto meta = nlohmann::json::parse(p.fit_metadata_json, nullptr, false);
+    if (meta.is_discarded() || !meta.is_object() || !meta.contains("baseline")) return out;
+    const auto b = baseline_from_json(meta["baseline"], p.num_items);
+    if (!b) return out;
+    out.available = true;
+    const double lo = p.scale.min, hi = p.scale.max, sd = b->residual_sd;
+    double sq = 0.0, abs = 0.0, lpd = 0.0, n = 0.0;
+    std::vector<double> inside(options.coverage_levels.size(), 0.0);
+    for (const Rating& r : test.ratings) {
+        if (!user_of[r.user] || !item_of[r.item]) continue;
+        const double mean = b->item_mean[*item_of[r.item]], x = r.value;
+        const double e = std::clamp(mean, lo, hi) - x;
+        sq += e * e;
+        abs += std::abs(e);
+        const double z = (x - mean) / sd;
+        lpd += -0.5 * z * z - std::log(sd) - 0.5 * std::log(2.0 * 3.14159265358979323846);
+        for (size_t l = 0; l < inside.size(); ++l) {
+            const double half = sd * normal_quantile(0.5 * (1.0 + options.coverage_levels[l]));
+            inside[l] += std::clamp(mean - half, lo, hi) <= x && x <= std::clamp(mean + half, lo, hi);
+        }
+        ++n;
+    }
+    const double nan = std::numeric_limits<double>::quiet_NaN();
+    out.rmse = n > 0 ? std::sqrt(sq / n) : nan;
+    out.mae = n > 0 ? abs / n : nan;
+    out.mean_log_predictive_density = n > 0 ? lpd / n : nan;
+    for (size_t l = 0; l < inside.size(); ++l)
+        out.coverage[level_key(options.coverage_levels[l])] = n > 0 ? inside[l] / n : nan;
+    return out;
+}
+
+// What a reader of the figures must know: pairs the model was trained on,
+// and a file most of whose ratings could not be scored.
+std::vector<std::string> honesty_warnings(const EvaluationReport& r, size_t rows) {
+    std::vector<std::string> out;
+    if (r.in_training > 0)
+        out.push_back(fmt::format("{} of the {} scored ratings ({:.1f}%) are (customer, product) pairs the model was "
+                                  "trained on; their figures flatter it: score ratings it has not seen (fit "
+                                  "--holdout-out writes the held-out ones)",
+                                  r.in_training, r.rated, 100.0 * double(r.in_training) / double(r.rated)));
+    if (rows > 0 && 2 * r.rated < rows)
+        out.push_back(fmt::format("only {} of the {} ratings could be scored ({} with a customer and {} with a product "
+                                  "the model does not know); the figures describe a small part of the file",
+                                  r.rated, rows, r.unknown_users, r.unknown_items));
+    return out;
+}
+
 }  // namespace
 
 std::vector<double> EvaluationOptions::default_curve_levels() {
@@ -173,6 +232,7 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
             continue;
         }
         ++report.rated;
+        report.in_training += trained_on(p, *user_of[test.ratings[k].user], *item_of[test.ratings[k].item]);
         sq += abs_error[k] * abs_error[k];
         abs += abs_error[k];
         lpd += log_density[k];
@@ -190,6 +250,8 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
     report.mean_log_predictive_density = report.rated ? lpd / n : nan;
     for (size_t l = 0; l < L; ++l)
         report.coverage[level_key(options.coverage_levels[l])] = report.rated ? covered[l] / n : nan;
+    report.warnings = honesty_warnings(report, N);
+    report.baseline = score_baseline(p, test, options, user_of, item_of);
     report.pit_histogram = pit_histogram(report.pit, options.pit_bins);
     report.coverage_curve = coverage_from_pit(report.pit, options.curve_levels);
     if (options.ranking) {
@@ -217,8 +279,23 @@ nlohmann::json to_json(const EvaluationReport& report) {
                         {"rated", report.rated},
                         {"unknown_users", report.unknown_users},
                         {"unknown_items", report.unknown_items},
+                        {"in_training", report.in_training},
+                        {"warnings", report.warnings},
                         {"pit_histogram", to_json(report.pit_histogram)},
                         {"coverage_curve", to_json(report.coverage_curve)}};
+    {
+        nlohmann::json base_coverage = nlohmann::json::object();
+        for (const auto& [level, share] : report.baseline.coverage) base_coverage[level] = number(share);
+        j["baseline"] = report.baseline.available
+                            ? nlohmann::json{{"available", true},
+                                             {"kind", "product_mean"},
+                                             {"rmse", number(report.baseline.rmse)},
+                                             {"mae", number(report.baseline.mae)},
+                                             {"mean_log_predictive_density",
+                                              number(report.baseline.mean_log_predictive_density)},
+                                             {"coverage", base_coverage}}
+                            : nlohmann::json{{"available", false}};
+    }
     if (!report.ranking.empty()) {
         nlohmann::json modes = nlohmann::json::object();
         for (const auto& [mode, m] : report.ranking)

@@ -11,6 +11,11 @@
 // counts as relevant when its rating is >= relevance_threshold, an absolute
 // value in rating units (default 4.0: "liked" on a 1..5 scale; pick a value
 // that means the same on other scales). Gains are graded (the rating).
+//
+// Honesty: the report counts scored pairs the model was trained on (the
+// posterior's rated-items lists) and warns about them and about a file most
+// of whose ratings cannot be scored; and it scores the product-mean baseline
+// (model/data/product_means.hpp, stored by the fit) on the same pairs.
 #pragma once
 #include <cstdint>
 #include <map>
@@ -46,6 +51,15 @@ struct RankingByMode {
     RankingMetrics metrics;
 };
 
+// The product-mean baseline scored on the model's pairs: the prediction
+// Normal(product mean, residual sd^2), mean clipped to the scale as the
+// model's is, intervals central and clipped.
+struct BaselineFigures {
+    bool available = false;  // false when the posterior stores no baseline (fitted by an older version)
+    double rmse = 0.0, mae = 0.0, mean_log_predictive_density = 0.0;
+    std::map<std::string, double> coverage;  // as EvaluationReport::coverage
+};
+
 struct EvaluationReport {
     // Over the rated pairs. rmse and mae use the predictive mean clipped to
     // the scale (what a client is shown); the log density is of the unclipped
@@ -64,6 +78,9 @@ struct EvaluationReport {
     uint64_t rated = 0;
     uint64_t unknown_users = 0;
     uint64_t unknown_items = 0;
+    uint64_t in_training = 0;          // rated pairs that are among the model's training pairs
+    std::vector<std::string> warnings; // pairs in training; most ratings not scorable
+    BaselineFigures baseline;
     // Probability integral transform F(r) of each rated pair under its
     // unclipped predictive mixture, in test-set order; uniform on (0, 1) when
     // the model is calibrated.
@@ -86,7 +103,8 @@ struct EvaluationReport {
 EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options);
 
 // Keys: rmse, mae, mean_log_predictive_density, coverage {"0.5": ...},
-// rated, unknown_users, unknown_items (NaN metrics become null);
+// rated, unknown_users, unknown_items, in_training, warnings, baseline
+// {available, rmse, mae, mean_log_predictive_density, coverage} (NaN metrics become null);
 // pit_histogram {counts, total, chi_square, degrees_of_freedom};
 // coverage_curve [{level, inside, total, coverage, standard_error}];
 // ranking {k, relevance_threshold, gain, modes: {"mean": {precision_at_k,

@@ -1,10 +1,16 @@
 #include "model/data/holdout.hpp"
 
+#include <cerrno>
+#include <charconv>
 #include <cmath>
+#include <cstdio>
+#include <cstring>
+#include <filesystem>
 #include <numeric>
 #include <stdexcept>
 #include <string>
 
+#include "model/error.hpp"
 #include "model/math/random.hpp"
 
 namespace credence {
@@ -55,6 +61,53 @@ MappedRatings map_onto(const RatingSet& other, const IdMap& reference_users, con
         else out.ratings.push_back({u, i, r.value});
     }
     return out;
+}
+
+namespace {
+
+void append_csv_field(std::string& line, const std::string& field) {
+    const bool quote = field.find_first_of(",\"\r\n") != std::string::npos || field.empty() ||
+                       field.front() == ' ' || field.front() == '\t' || field.back() == ' ' || field.back() == '\t';
+    if (!quote) {
+        line += field;
+        return;
+    }
+    line += '"';
+    for (char c : field) {
+        if (c == '"') line += '"';
+        line += c;
+    }
+    line += '"';
+}
+
+}  // namespace
+
+void write_ratings_csv(const std::vector<Rating>& ratings, const IdMap& users, const IdMap& items,
+                       const std::string& path) {
+    const std::string tmp = path + ".tmp";
+    std::FILE* f = std::fopen(tmp.c_str(), "wb");
+    if (!f) throw FileError("cannot write " + path + ": " + std::strerror(errno) + "; check the folder exists and is writable");
+    std::string line = "customer,product,rating\n";
+    bool ok = std::fwrite(line.data(), 1, line.size(), f) == line.size();
+    for (const Rating& r : ratings) {
+        line.clear();
+        append_csv_field(line, users.names().at(r.user));
+        line += ',';
+        append_csv_field(line, items.names().at(r.item));
+        line += ',';
+        char number[32];
+        const auto [end, ec] = std::to_chars(number, number + sizeof number, r.value);
+        line.append(number, ec == std::errc() ? end : number);
+        line += '\n';
+        ok = ok && std::fwrite(line.data(), 1, line.size(), f) == line.size();
+    }
+    ok = std::fclose(f) == 0 && ok;
+    std::error_code ec;
+    if (ok) std::filesystem::rename(tmp, path, ec);
+    if (!ok || ec) {
+        std::filesystem::remove(tmp, ec);
+        throw FileError("cannot write " + path + "; check the disk and the folder's permissions");
+    }
 }
 
 }  // namespace credence

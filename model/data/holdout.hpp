@@ -1,7 +1,10 @@
-// Seeded train/validation splits of a RatingSet, and mapping a separately
-// ingested rating file onto a training set's ids.
+// Seeded train/validation splits of a RatingSet, mapping a separately
+// ingested rating file onto a training set's ids, and writing held-out
+// ratings back out as a CSV file that ingest reads (fit --holdout-out, for
+// evaluate and report --validation).
 #pragma once
 #include <cstdint>
+#include <string>
 #include <vector>
 
 #include "model/data/ratings.hpp"
@@ -28,5 +31,14 @@ struct MappedRatings {
 
 // Re-expresses `other`'s ratings in `reference`'s id space by external id.
 MappedRatings map_onto(const RatingSet& other, const IdMap& reference_users, const IdMap& reference_items);
+
+// Writes `ratings` (indices into `users` and `items`) to `path` as CSV with
+// the header customer,product,rating: ids quoted as RFC 4180 says when they
+// hold a comma, quote, line break or surrounding blanks; each rating in the
+// shortest text that reads back as the same float. Written to a temporary
+// file renamed over `path`. Throws FileError naming the path when it cannot
+// be written; std::out_of_range for an index beyond the maps (a bug).
+void write_ratings_csv(const std::vector<Rating>& ratings, const IdMap& users, const IdMap& items,
+                       const std::string& path);
 
 }  // namespace credence

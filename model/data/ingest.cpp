@@ -20,7 +20,9 @@
 #include <fmt/format.h>
 #include <xxhash.h>
 
-#include "model/data/csv_reader.hpp"
+#include "model/data/csv_source.hpp"
+#include "model/data/postgresql_source.hpp"
+#include "model/data/sqlite_source.hpp"
 #include "model/error.hpp"
 
 namespace credence {
@@ -263,6 +265,8 @@ private:
 class RejectsFile {
 public:
     explicit RejectsFile(std::string path) : path_(std::move(path)) {}
+    // "line" for a file, "row" for a query: the first column's name.
+    void set_position_unit(const char* unit) { unit_ = unit; }
     RejectsFile(const RejectsFile&) = delete;
     RejectsFile& operator=(const RejectsFile&) = delete;
     ~RejectsFile() {
@@ -276,7 +280,8 @@ public:
             if (!file_)
                 throw FileError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path",
                                             path_, std::strerror(errno)));
-            std::fputs("line\treason\trecord\n", file_);
+            std::fputs(unit_, file_);
+            std::fputs("\treason\trecord\n", file_);
         }
         line_.clear();
         line_ += std::to_string(line);
@@ -309,6 +314,7 @@ private:
         }
     }
     std::string path_;
+    const char* unit_ = "line";
     std::FILE* file_ = nullptr;
     std::string line_;
 };
@@ -384,29 +390,37 @@ public:
 private:
     static std::string rejects_path(const IngestOptions& o) {
         if (!o.rejects_path.empty()) return o.rejects_path;
+        if (is_sqlite_source(o.path)) return sqlite_rejects_path(o.path);
+        if (is_postgresql_source(o.path)) return postgresql_rejects_path(o.path);
         return o.path == "-" ? std::string() : o.path + ".rejects.tsv";
     }
-    std::string where(uint64_t line) const { return fmt::format("{}, line {}", display_path(), line); }
-    std::string display_path() const { return options_.path == "-" ? std::string("standard input") : options_.path; }
+    // Position 0 stands for the column names a query declares.
+    std::string where(uint64_t position) const {
+        if (position == 0) return fmt::format("{} (the query's columns)", display_path());
+        return fmt::format("{}, {} {}", display_path(), source_->position_unit(), position);
+    }
+    std::string display_path() const {
+        if (source_) return source_->name();
+        return options_.path == "-" ? std::string("standard input") : options_.path;
+    }
 
     void check_options() const;
-    std::FILE* open_input(uint64_t& bytes_total) const;
-    void choose_delimiter(CsvReader& reader);
+    std::unique_ptr<RowSource> open_source() const;
     bool detect_header(const std::vector<std::string>& first) const;
-    void read_rows(CsvReader& reader);
+    void read_rows(RowSource& source);
     void check_outcome() const;
     IngestResult finish();
     Columns resolve_columns(const std::vector<std::string>& first, bool has_header, uint64_t line) const;
     std::optional<size_t> resolve(const std::string& spec, const ColumnRole& role, const std::vector<std::string>& first,
                                   bool has_header, size_t fallback_index, std::vector<size_t>& taken,
                                   uint64_t line) const;
-    void take_row(const CsvRecord& record);
-    void check_encoding(std::string_view sample) const;
+    void take_row(const SourceRow& row);
     void clear_stale_rejects();
     void reject(uint64_t line, const std::string& reason, std::string_view raw);
     void merge_and_sort(std::vector<Rating>& ratings, std::vector<double> timestamps);
 
     const IngestOptions& options_;
+    std::unique_ptr<RowSource> source_;
     RejectsFile rejects_;
     IngestSummary summary_;
     RatingSet set_;
@@ -422,6 +436,14 @@ private:
 
 void Ingest::check_options() const {
     if (options_.path.empty()) throw OptionError("no ratings file given; pass a path, or - for standard input");
+    const bool database = is_sqlite_source(options_.path) || is_postgresql_source(options_.path);
+    if (database && options_.query.empty())
+        throw OptionError(fmt::format("{} is a database: pass --query with the SELECT that returns the ratings",
+                                      options_.path));
+    if (!database && !options_.query.empty())
+        throw OptionError(fmt::format("--query applies to a database (sqlite:PATH or postgresql://...), not to the "
+                                      "file {}; drop --query or name the database",
+                                      options_.path));
     if (options_.delimiter && (*options_.delimiter == '"' || *options_.delimiter == '\r' || *options_.delimiter == '\n'))
         throw OptionError("--delimiter cannot be a quote or a line break; pass one of , tab ; |");
     if (!(options_.max_reject_fraction >= 0.0 && options_.max_reject_fraction <= 1.0))
@@ -513,36 +535,44 @@ void Ingest::reject(uint64_t line, const std::string& reason, std::string_view r
         summary_.rejected * 2 > summary_.rows_read) {
         rejects_.close();
         throw DataError(fmt::format(
-            "{}: stopped after rejecting {} of the first {} rows (first {}); the delimiter ('{}') or the columns "
-            "are probably wrong{}; pass --delimiter, --header/--no-header or the column options",
+            "{}: stopped after rejecting {} of the first {} rows (first {}); {} are probably wrong{}; pass {}",
             where(line), summary_.rejected, summary_.rows_read, first_reject_,
-            summary_.delimiter == '\t' ? std::string("\\t") : std::string(1, summary_.delimiter),
-            rejects_.path().empty() ? std::string() : "; see " + rejects_.path()));
+            summary_.delimiter == 0 ? std::string("the columns or the query")
+                                    : fmt::format("the delimiter ('{}') or the columns",
+                                                  summary_.delimiter == '\t' ? std::string("\\t")
+                                                                              : std::string(1, summary_.delimiter)),
+            rejects_.path().empty() ? std::string() : "; see " + rejects_.path(),
+            summary_.delimiter == 0 ? "the column options or another --query"
+                                    : "--delimiter, --header/--no-header or the column options"));
     }
 }
 
-void Ingest::take_row(const CsvRecord& record) {
-    const auto& fields = record.fields;
-    const std::string_view raw = record.raw;
-    const uint64_t line = record.line;
-    const uint64_t lines = record.end_line - record.line + 1;
+void Ingest::take_row(const SourceRow& row) {
+    const auto& fields = row.fields;
+    const std::string_view raw = row.raw;
+    const uint64_t line = row.position;
+    const uint64_t lines = row.end_position - row.position + 1;
     ++summary_.rows_read;
     summary_.row_lines += lines;
     // A rejected row over several lines names them all, and counts them.
-    const std::string span = lines > 1 ? fmt::format(" (lines {}-{})", record.line, record.end_line) : std::string();
+    const std::string span = lines > 1 ? fmt::format(" (lines {}-{})", row.position, row.end_position) : std::string();
     auto reject_row = [&](const std::string& reason) {
         summary_.rejected_lines += lines;
         reject(line, reason + span, raw);
     };
-    if (record.problem != CsvProblem::none) return reject_row(describe(record.problem));
+    if (!row.problem.empty()) return reject_row(std::string(row.problem));
     if (fields.size() != expected_fields_)
         return reject_row(fmt::format("expected {} fields, found {}", expected_fields_, fields.size()));
+    auto null = [&](size_t column) { return !row.is_null.empty() && row.is_null[column]; };
+    if (null(columns_.user)) return reject_row("NULL user id");
     const auto user = trim(fields[columns_.user]);
     if (user.empty()) return reject_row("empty user id");
+    if (null(columns_.item)) return reject_row("NULL item id");
     const auto item = trim(fields[columns_.item]);
     if (item.empty()) return reject_row("empty item id");
-    // An id never holds a line break or a quote: such a field is a stray
-    // quote swallowing the lines after it.
+    // An id never holds a line break or a quote: in a file such a field is a
+    // stray quote swallowing the lines after it. The rule holds for every
+    // source, so the same rows are kept whatever they came from.
     for (const auto& [what, id] : {std::pair{"user", user}, std::pair{"item", item}}) {
         if (id.find_first_of("\r\n") != std::string_view::npos)
             return reject_row(fmt::format("{} id holds a line break (a stray quote?)", what));
@@ -550,6 +580,7 @@ void Ingest::take_row(const CsvRecord& record) {
             return reject_row(fmt::format("{} id holds a double quote (a stray quote?)", what));
         if (id.find('\0') != std::string_view::npos) return reject_row(fmt::format("{} id holds a NUL byte", what));
     }
+    if (null(columns_.rating)) return reject_row("NULL rating");
     const auto rating_text = trim(fields[columns_.rating]);
     if (rating_text.empty()) return reject_row("empty rating");
     const auto rating = parse_number(rating_text);
@@ -568,6 +599,7 @@ void Ingest::take_row(const CsvRecord& record) {
                                       options_.scale->min, options_.scale->max));
     double timestamp = 0.0;
     if (columns_.timestamp) {
+        if (null(*columns_.timestamp)) return reject_row("NULL timestamp");
         const auto text = trim(fields[*columns_.timestamp]);
         if (text.empty()) return reject_row("empty timestamp");
         const auto parsed = parse_timestamp(text);
@@ -651,67 +683,13 @@ void Ingest::merge_and_sort(std::vector<Rating>& ratings, std::vector<double> ti
     }
 }
 
-// Opens the ratings file (standard input for "-"); sets bytes_total to its
-// size when known (0 otherwise) for progress.
-std::FILE* Ingest::open_input(uint64_t& bytes_total) const {
-    const bool from_stdin = options_.path == "-";
-    std::error_code ec;
-    if (!from_stdin && std::filesystem::is_directory(options_.path, ec))
-        throw FileError(fmt::format("{} is a directory; pass the ratings file inside it", options_.path));
-    std::FILE* file = from_stdin ? stdin : std::fopen(options_.path.c_str(), "rb");
-    if (!file)
-        throw FileError(fmt::format("cannot open {}: {}; check the path", options_.path, std::strerror(errno)));
-    bytes_total = 0;
-    if (!from_stdin) {
-        const auto size = std::filesystem::file_size(options_.path, ec);
-        if (!ec) bytes_total = size;
-    }
-    return file;
-}
-
-// The delimiter given, or the one detected from the first lines.
-void Ingest::choose_delimiter(CsvReader& reader) {
-    if (options_.delimiter) {
-        reader.set_delimiter(*options_.delimiter);
-    } else {
-        const auto sample = reader.peek();
-        const auto detected = detect_delimiter(sample);
-        if (!detected && sample.find_first_not_of(" \t\r\n") == std::string_view::npos)
-            throw DataError(fmt::format("{} has no rows; check the path", display_path()));
-        if (!detected)
-            throw DataError(fmt::format("{}: cannot tell the delimiter: the first line has no ',', tab, ';' or '|'; "
-                                        "pass --delimiter",
-                                        where(1)));
-        reader.set_delimiter(*detected);
-    }
-    summary_.delimiter = reader.delimiter();
-}
-
-// Refuses text that is not UTF-8 (or ASCII) by name: UTF-16 and UTF-32 by
-// their byte-order mark or their pattern of NUL bytes, anything else with NUL
-// bytes as binary. Unicode Standard section 23.8 gives the byte-order marks.
-void Ingest::check_encoding(std::string_view sample) const {
-    auto starts = [&](std::string_view mark) { return sample.substr(0, mark.size()) == mark; };
-    std::string encoding;
-    if (starts(std::string_view("\xFF\xFE\0\0", 4))) encoding = "UTF-32 (little-endian)";
-    else if (starts(std::string_view("\0\0\xFE\xFF", 4))) encoding = "UTF-32 (big-endian)";
-    else if (starts("\xFF\xFE")) encoding = "UTF-16 (little-endian)";
-    else if (starts("\xFE\xFF")) encoding = "UTF-16 (big-endian)";
-    else {
-        // Without a mark: ASCII text in UTF-16 has every other byte zero. A
-        // few stray NUL bytes are left to the rows they are in (rejected).
-        size_t even = 0, odd = 0;
-        const size_t n = std::min<size_t>(sample.size(), 4096);
-        for (size_t i = 0; i < n; ++i)
-            if (sample[i] == '\0') ++(i % 2 ? odd : even);
-        if (odd * 3 > n) encoding = "UTF-16 (little-endian)";
-        else if (even * 3 > n) encoding = "UTF-16 (big-endian)";
-        else if ((odd + even) * 10 > n)
-            throw DataError(fmt::format("{} holds NUL bytes: it is not a text export; check the path", display_path()));
-    }
-    if (!encoding.empty())
-        throw DataError(fmt::format("{} is {} text; save it as UTF-8 (for example: iconv -f UTF-16 -t UTF-8 in > out)",
-                                    display_path(), encoding));
+// The source the path names: sqlite:PATH, a postgresql:// URI, else a file
+// ("-": standard input).
+std::unique_ptr<RowSource> Ingest::open_source() const {
+    if (is_sqlite_source(options_.path)) return open_sqlite_source(options_.path, options_.query, options_.progress);
+    if (is_postgresql_source(options_.path))
+        return open_postgresql_source(options_.path, options_.query, options_.progress);
+    return std::make_unique<CsvSource>(options_.path, options_.delimiter, options_.progress);
 }
 
 // A rejects file at the rejects path was written by an earlier run when this
@@ -744,36 +722,41 @@ bool Ingest::detect_header(const std::vector<std::string>& first) const {
     return rating_index < first.size() && !parse_number(first[rating_index]).has_value();
 }
 
-// The first non-blank row fixes the columns (and is data unless it is a
-// header); every later row is kept, rejected or merged.
-void Ingest::read_rows(CsvReader& reader) {
-    check_encoding(reader.peek());
-    choose_delimiter(reader);
-    CsvRecord record;
-    auto blank = [](const CsvRecord& r) { return r.problem == CsvProblem::none && trim(r.raw).empty(); };
-    bool got = false;
-    while ((got = reader.next(record)) && blank(record)) ++summary_.blank_lines;
-    if (!got) throw DataError(fmt::format("{} has no rows; check the path", display_path()));
-    if (record.problem != CsvProblem::none)
-        throw DataError(fmt::format("{}: {}; the first row must be readable to find the columns; fix that line",
-                                    where(record.line), describe(record.problem)));
-
+// The columns come from the names a query declares, or from a file's first
+// non-blank row (data unless it is a header); every later row is kept,
+// rejected or merged.
+void Ingest::read_rows(RowSource& source) {
+    SourceRow row;
     std::vector<std::string> first;
-    for (auto f : record.fields) first.emplace_back(trim(f));
-    const bool has_header = detect_header(first);
+    uint64_t first_position = 0;
+    bool has_header = true;
+    const auto names = source.column_names();
+    if (names) {
+        first = *names;
+    } else {
+        bool got = false;
+        while ((got = source.next(row)) && row.blank) ++summary_.blank_lines;
+        if (!got) throw DataError(fmt::format("{} has no rows; check the path", display_path()));
+        if (!row.problem.empty())
+            throw DataError(fmt::format("{}: {}; the first row must be readable to find the columns; fix that line",
+                                        where(row.position), row.problem));
+        for (auto f : row.fields) first.emplace_back(trim(f));
+        has_header = detect_header(first);
+        first_position = row.position;
+    }
     summary_.had_header = has_header;
-    columns_ = resolve_columns(first, has_header, record.line);
+    columns_ = resolve_columns(first, has_header, first_position);
     expected_fields_ = first.size();
     keep_timestamps_ = columns_.timestamp.has_value() && options_.duplicates == DuplicatePolicy::latest;
 
-    if (has_header) summary_.header_lines = record.end_line - record.line + 1;
-    else take_row(record);
-    while (reader.next(record)) {
-        if (blank(record)) {
+    if (!names && has_header) summary_.header_lines = row.end_position - row.position + 1;
+    if (!names && !has_header) take_row(row);
+    while (source.next(row)) {
+        if (row.blank) {
             ++summary_.blank_lines;
             continue;
         }
-        take_row(record);
+        take_row(row);
     }
     summary_.lines_read = summary_.header_lines + summary_.blank_lines + summary_.row_lines;
 }
@@ -815,35 +798,15 @@ IngestResult Ingest::finish() {
 
 IngestResult Ingest::run() {
     check_options();
-    uint64_t bytes_total = 0;
-    std::FILE* file = open_input(bytes_total);
-    std::unique_ptr<std::FILE, int (*)(std::FILE*)> owned(options_.path == "-" ? nullptr : file, &std::fclose);
-
-    std::unique_ptr<XXH3_state_t, XXH_errorcode (*)(XXH3_state_t*)> hash(XXH3_createState(), &XXH3_freeState);
-    if (!hash) throw std::bad_alloc();
-    XXH3_64bits_reset(hash.get());
-    uint64_t bytes_done = 0;
-    CsvReader reader(file, [&](std::string_view chunk) {
-        XXH3_64bits_update(hash.get(), chunk.data(), chunk.size());
-        bytes_done += chunk.size();
-        if (options_.progress) options_.progress(bytes_done, bytes_total);
-    });
-
-    try {
-        read_rows(reader);
-    } catch (const FileError& e) {
-        // The reader does not know the file's name; everything else names it already.
-        if (std::string_view(e.what()).starts_with("read failed"))
-            throw FileError(fmt::format("{}: {}; check the file", display_path(), e.what()));
-        throw;
-    }
+    source_ = open_source();
+    rejects_.set_position_unit(source_->position_unit());
+    summary_.delimiter = source_->facts().delimiter.value_or(0);
+    read_rows(*source_);
     rejects_.close();
     if (summary_.rejected > 0) summary_.rejects_path = rejects_.path();
     clear_stale_rejects();
-
-    char hex[17];
-    std::snprintf(hex, sizeof hex, "%016llx", static_cast<unsigned long long>(XXH3_64bits_digest(hash.get())));
-    summary_.fingerprint = hex;
+    const SourceFacts facts = source_->facts();
+    summary_.fingerprint = facts.fingerprint;
 
     check_outcome();
     return finish();

@@ -1,4 +1,5 @@
-// Rating ingest: a CSV/TSV export in, a validated RatingSet out, and nothing
+// Rating ingest: a CSV/TSV export, a SQLite database or a PostgreSQL query
+// in (model/data/row_source.hpp), a validated RatingSet out, and nothing
 // lost silently. Every row read is either kept, rejected (written to the
 // rejects file with its line number and reason) or merged into another row
 // by the duplicate policy; the summary's counts add up to rows read.
@@ -9,18 +10,27 @@
 // only the line it opens on; one that a later quote closes (within 1 MiB)
 // makes one malformed record of the lines between (see model/data/csv_reader.hpp).
 //
-// Rejects file: TSV with a header line "line<TAB>reason<TAB>record"; line is
-// the 1-based physical line where the record starts (a reason names the span
-// "lines A-B" of a record over several lines); a tab, CR, LF, NUL or
-// backslash inside reason or record is written as \t, \r, \n, \0 or \\ (so
-// one reject is one line and the file holds no NUL byte). A run that rejects
-// nothing removes a rejects file left at that path by an earlier run.
+// Databases: `path` "sqlite:FILE" or a "postgresql://" URI, with `query`
+// the SELECT whose result columns are chosen by name or index as a file's
+// header columns are; a NULL customer, product, rating or timestamp is
+// rejected like an empty one ("NULL rating"). Rows stream (a SQLite
+// statement stepped row by row, libpq's single-row mode).
+//
+// Rejects file: TSV with a header line "line<TAB>reason<TAB>record" ("row"
+// for a query: the 1-based result row, and the record as column=value
+// pairs); line is the 1-based physical line where the record starts (a
+// reason names the span "lines A-B" of a record over several lines); a tab,
+// CR, LF, NUL or backslash inside reason or record is written as \t, \r, \n,
+// \0 or \\ (so one reject is one line and the file holds no NUL byte). A run
+// that rejects nothing removes a rejects file left at that path by an
+// earlier run.
 //
 // Lines: a quoted field may hold line breaks, but a record spanning more than
 // 8 lines is taken for a stray quote: its first line is rejected and reading
 // resumes on the next. An id (customer or product) holding a line break or a
-// double quote is rejected with the lines it covers. A file in UTF-16 or
-// UTF-32 (by its byte-order mark or its NUL bytes) is refused by name.
+// double quote is rejected with the lines it covers, whatever the source. A
+// file in UTF-16 or UTF-32 (by its byte-order mark or its NUL bytes) is
+// refused by name.
 //
 // Memory: the input streams through one 4 MiB buffer; each kept row costs
 // 12 bytes while reading (+8 for its timestamp under the latest policy) and
@@ -44,31 +54,37 @@ enum class DuplicatePolicy {
 };
 
 struct IngestOptions {
-    std::string path;                   // file to read; "-" is standard input
-    std::optional<char> delimiter;      // nullopt: detect from the first line (',', '\t', ';' or '|')
-    std::optional<bool> has_header;     // nullopt: detect (first row has a non-numeric rating field;
+    std::string path{};                   // file to read; "-" is standard input; "sqlite:FILE"; "postgresql://..."
+    std::string query{};                  // the SELECT for a database (required there, refused for a file)
+    std::optional<char> delimiter{};      // nullopt: detect from the first line (',', '\t', ';' or '|')
+    std::optional<bool> has_header{};     // nullopt: detect (first row has a non-numeric rating field;
                                         // naming any column implies a header)
     // Columns by header name (exact, else ignoring case and punctuation) or by
     // 0-based index given as digits ("0", "2"). Defaults: with a header, the
     // header name that matches user/customer/buyer/..., item/product/sku/...,
     // rating/score/stars/... (a header with no match is a DataError naming the
     // option to pass, never a guess); without a header, indices 0, 1, 2.
-    std::string user_column;     // --customer-column
-    std::string item_column;     // --product-column
-    std::string rating_column;   // --rating-column
+    std::string user_column{};     // --customer-column
+    std::string item_column{};     // --product-column
+    std::string rating_column{};   // --rating-column
     // Empty: none, unless the header has "timestamp"/"time"/"date"/... .
     // Values: epoch seconds (any finite number) or ISO-8601 YYYY-MM-DD with an
     // optional [T ]hh:mm[:ss[.fff]] and Z/+hh:mm offset (a date alone is
     // midnight UTC); anything else is rejected.
-    std::string timestamp_column;
-    std::optional<RatingScale> scale;   // declared scale: ratings outside are rejected
+    std::string timestamp_column{};
+    std::optional<RatingScale> scale{};   // declared scale: ratings outside are rejected
     DuplicatePolicy duplicates = DuplicatePolicy::latest;
     // In [0, 1]. Above this the ingest throws DataError. Below 0.5, a file whose first
     // 1000+ rows are mostly rejected stops early (a wrong delimiter or column).
     double max_reject_fraction = 0.01;
-    std::string rejects_path;           // empty: "<path>.rejects.tsv" when any row is rejected ("-" input: none)
-    // Called after each buffer fill (every 4 MiB) with bytes consumed so far and total (0 if unknown).
-    std::function<void(uint64_t bytes_done, uint64_t bytes_total)> progress;
+    // Empty: "<path>.rejects.tsv" when any row is rejected ("-" input: none;
+    // sqlite:FILE: "FILE.rejects.tsv"; PostgreSQL: "<database>.rejects.tsv"
+    // in the working directory).
+    std::string rejects_path{};
+    // Called after each buffer fill (every 4 MiB) with bytes consumed so far
+    // and total (0 if unknown); for a database every 65,536 rows with rows
+    // read and 0.
+    std::function<void(uint64_t bytes_done, uint64_t bytes_total)> progress{};
 };
 
 struct IngestSummary {
@@ -86,11 +102,12 @@ struct IngestSummary {
     // A rejects file from an earlier run at the rejects path when this run
     // rejected nothing: "removed" or "left (<reason>)"; empty when there was none.
     std::string stale_rejects;
-    char delimiter = ',';
+    char delimiter = ',';          // 0 for a database
     bool had_header = false;
-    std::string fingerprint;       // xxh3-64 hex of the file bytes, for the posterior's metadata
+    std::string fingerprint;       // xxh3-64 hex of the file bytes (of a query's column names and rows), for the posterior's metadata
     // rows_read == kept + rejected + merged_duplicates and
-    // lines_read == header_lines + blank_lines + row_lines always hold.
+    // lines_read == header_lines + blank_lines + row_lines always hold (for
+    // a query a row is one line and there is no header line).
 };
 
 struct IngestResult {
@@ -101,14 +118,18 @@ struct IngestResult {
 // Reads the file in a streaming pass. Throws
 //   OptionError  for options that cannot work: no path, a quote or line break
 //                as delimiter, max_reject_fraction outside [0, 1], a declared
-//                scale that is empty or not finite;
-//   FileError    when the file is a directory or cannot be opened or read, or
-//                the rejects file cannot be written;
+//                scale that is empty or not finite, a database without a
+//                query or a file with one, a PostgreSQL URI that holds a
+//                password (it belongs in PGPASSWORD or a password file);
+//   FileError    when the file is a directory or cannot be opened or read,
+//                the database cannot be opened or reached, or the rejects
+//                file cannot be written;
 //   DataError    when the columns cannot be found in the file (a named column
 //                is absent, an index is out of range, no default matches),
 //                nothing is kept, more than 2^32 - 1 ratings or ids, or the
 //                reject fraction exceeds max_reject_fraction (the message
-//                gives counts, the first reject and the rejects path).
+//                gives counts, the first reject and the rejects path), or
+//                the database refuses the query.
 // Every message names the file and the option to change. Ratings in the result are sorted by (user, item) and
 // unique; ids are interned in order of first appearance among kept rows.
 // The scale is the declared one (declared = true) or the observed min/max.

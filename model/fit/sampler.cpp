@@ -17,10 +17,12 @@
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
 
+#include "model/data/product_means.hpp"
 #include "model/error.hpp"
 #include "model/fit/convergence_monitor.hpp"
 #include "model/fit/gibbs_sweep.hpp"
 #include "model/fit/sparse.hpp"
+#include "model/fit/warm_start.hpp"
 
 namespace credence {
 
@@ -198,23 +200,24 @@ struct KeepRule {
 };
 
 // The burn-in of a converged run that has reached n sweeps per chain: its
-// first quarter. The rest, [n/4, n), is the window assessed and kept from. A
-// start that is still drifting in the window shows in the split R-hat (each
-// chain's halves disagree), so the run goes on rather than stops early; a
-// shorter burn-in than the common first half means fewer sweeps for the
-// same window.
-uint32_t window_begin(uint32_t n) { return n / 4; }
+// first quarter, or `cap` sweeps if fewer (a warm start; see the header).
+// The rest, [begin, n), is the window assessed and kept from. A start that
+// is still drifting in the window shows in the split R-hat (each chain's
+// halves disagree), so the run goes on rather than stops early; a shorter
+// burn-in than the common first half means fewer sweeps for the same window.
+uint32_t window_begin(uint32_t n, uint32_t cap) { return std::min(n / 4, cap); }
 
-// Sweeps j in [n/4, n) with (j + 1) a multiple of t.
-uint32_t kept_in_window(uint32_t n, uint32_t t) { return n / t - window_begin(n) / t; }
+// Sweeps j in [window_begin(n, cap), n) with (j + 1) a multiple of t.
+uint32_t kept_in_window(uint32_t n, uint32_t t, uint32_t cap) { return n / t - window_begin(n, cap) / t; }
 
 // The keep rule for a converged-run checkpoint at n sweeps: the window is
-// [n/4, n); the spacing is the largest power of two that still leaves
-// `samples` draws in it (so between samples and 2 x samples + 1 are held).
-KeepRule window_rule(uint32_t n, uint32_t samples) {
+// [window_begin(n, cap), n); the spacing is the largest power of two that
+// still leaves `samples` draws in it (so between samples and 2 x samples + 1
+// are held).
+KeepRule window_rule(uint32_t n, uint32_t samples, uint32_t cap) {
     uint32_t t = 1;
-    while (kept_in_window(n, 2 * t) >= samples) t *= 2;
-    return {window_begin(n), t, 0};
+    while (kept_in_window(n, 2 * t, cap) >= samples) t *= 2;
+    return {window_begin(n, cap), t, 0};
 }
 
 // The next checkpoint after n: a quarter further (rounded up), within the
@@ -240,6 +243,7 @@ struct RunContext {
     ConvergenceMonitor& monitor;
     uint64_t nnz = 0;
     int team = 1;                // OpenMP threads per chain
+    uint32_t burn_in_cap = UINT32_MAX;  // converged runs: at most this burn-in (warm starts)
 };
 
 // Sweeps [from, to) of one chain, recording each and keeping what `rule` says.
@@ -397,6 +401,7 @@ struct RunRecord {
     uint32_t sweeps = 0;            // per chain
     KeepRule rule;
     uint32_t parallel_chains = 1;
+    uint32_t burn_in = 0;           // sweeps per chain discarded
     std::vector<uint32_t> checkpoints;
 };
 
@@ -413,7 +418,7 @@ nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user,
     meta["run_length"] = {{"mode", run.mode == RunLength::converged ? "converged" : "fixed"},
                           {"stop_reason", stop_reason_name(run.stop)},
                           {"sweeps_per_chain", run.sweeps},
-                          {"burn_in", run.mode == RunLength::converged ? window_begin(run.sweeps) : options.burn_in},
+                          {"burn_in", run.burn_in},
                           {"checkpoints", run.checkpoints},
                           {"parallel_chains", run.parallel_chains}};
     meta["timings"] = {{"setup_s", timings.setup_s},
@@ -457,6 +462,7 @@ RunRecord run_chains(RunContext& run, std::vector<std::unique_ptr<Chain>>& chain
     if (o.run_length == RunLength::fixed) {
         rec.sweeps = o.burn_in + o.samples * o.thin;
         rec.rule = {o.burn_in, o.thin, o.burn_in};
+        rec.burn_in = o.burn_in;
         progress.next_checkpoint = progress.max_sweeps = rec.sweeps;
         run.monitor.drop_before(o.burn_in);
         run_segment(run, chains, 0, rec.sweeps, rec.rule, parallel, report, progress);
@@ -467,15 +473,16 @@ RunRecord run_chains(RunContext& run, std::vector<std::unique_ptr<Chain>>& chain
     const double sampling_start = elapsed();
     uint32_t from = 0, n = 2 * o.samples;
     for (;;) {
-        rec.rule = window_rule(n, o.samples);
+        rec.rule = window_rule(n, o.samples, run.burn_in_cap);
         for (auto& c : chains) std::erase_if(c->draws, [&](const Draw& d) { return !rec.rule.keeps(d.sweep); });
-        run.monitor.drop_before(window_begin(n));
+        run.monitor.drop_before(window_begin(n, run.burn_in_cap));
         progress.next_checkpoint = n;
         progress.max_sweeps = o.max_sweeps;
         progress.checkpoint = false;
         run_segment(run, chains, from, n, rec.rule, parallel, report, progress);
         rec.checkpoints.push_back(n);
-        summary = run.monitor.assess(window_begin(n), n);
+        summary = run.monitor.assess(window_begin(n, run.burn_in_cap), n);
+        rec.burn_in = window_begin(n, run.burn_in_cap);
         if (report) {
             FitProgress p = progress;
             p.sweeps_done = n;
@@ -518,8 +525,21 @@ const char* stop_reason_name(StopReason reason) {
     return "unknown";
 }
 
+// A start must give each chain a state of this fit's shape.
+void check_start(const WarmStart& start, const FitOptions& o, const CsrMatrix& by_user, const CsrMatrix& by_item) {
+    require_input(start.states.size() == o.chains, "the warm start has a state per chain of another fit");
+    for (const GibbsState& st : start.states)
+        require_input(st.rank == o.rank && st.biases == o.biases &&
+                          st.user_factors.size() == size_t(by_user.num_rows) * o.rank &&
+                          st.item_factors.size() == size_t(by_item.num_rows) * o.rank &&
+                          st.user_bias.size() == (o.biases ? by_user.num_rows : 0) &&
+                          st.item_bias.size() == (o.biases ? by_item.num_rows : 0) &&
+                          st.user_mu.size() == o.rank && st.item_mu.size() == o.rank,
+                      "a warm-start state does not match the training set's shape");
+}
+
 FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const std::vector<Rating>* validation,
-                   const std::function<void(const FitProgress&)>& on_progress) {
+                   const std::function<void(const FitProgress&)>& on_progress, const WarmStart* warm) {
     using clock = std::chrono::steady_clock;
     const auto start = clock::now();
     validate_options(requested);
@@ -532,6 +552,7 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
         for (const auto& r : *validation)
             require_input(r.user < train.users.size() && r.item < train.items.size(),
                           "a validation rating refers to a user or item outside the training id maps");
+    if (warm) check_start(*warm, requested, by_user, by_item);
     const double g = train.mean();
     const GibbsData data{&by_user, &by_item, g};
 
@@ -543,11 +564,12 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
     const uint32_t parallel = std::max<uint32_t>(1, std::min<uint32_t>(options.chains, uint32_t(threads)));
     ConvergenceMonitor monitor(by_user, train.users, train.items, g, options.chains, options.convergence);
     RunContext run{data, options, monitor, by_user.nnz(), std::max(1, threads / int(parallel))};
+    if (warm) run.burn_in_cap = warm->burn_in;
     std::vector<std::unique_ptr<Chain>> chains;
     for (uint32_t c = 0; c < options.chains; ++c) {
         chains.push_back(std::make_unique<Chain>());
         chains.back()->index = c;
-        chains.back()->state = initial_state(data, options, options.seed, c);
+        chains.back()->state = warm ? warm->states[c] : initial_state(data, options, options.seed, c);
     }
     FitTimings timings;
     timings.setup_s = std::chrono::duration<double>(clock::now() - start).count();
@@ -573,7 +595,10 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
     result.seconds = std::chrono::duration<double>(clock::now() - start).count();
     result.convergence.advice = advice_for(result.convergence, rec.stop, options, rec.sweeps, timings.sampling_s);
 
-    post.fit_metadata_json = fit_metadata(options, by_user, post, g, rec, result, timings).dump();
+    nlohmann::json meta = fit_metadata(options, by_user, post, g, rec, result, timings);
+    meta["start"] = warm ? warm->record : nlohmann::json{{"kind", "cold"}};
+    meta["baseline"] = to_json(product_mean_baseline(train));
+    post.fit_metadata_json = meta.dump();
     post.diagnostics_json = to_json(result.convergence).dump();
     try {
         post.validate();

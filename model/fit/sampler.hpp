@@ -26,6 +26,20 @@
 // only the kept draws), and chains run at the same time when there are
 // threads for them; samples are bit-identical whatever the thread count and
 // however the chains are scheduled.
+//
+// Warm starts (model/fit/warm_start.hpp). Given `start`, chain c begins at
+// start->states[c] instead of a random point, and a converged run discards
+// min(n/4, start->burn_in) sweeps instead of n/4. The quarter exists to
+// forget a start far out in the tails; a start that is a draw of a converged
+// posterior of nearly the same data is already where the chain spends its
+// time, and what it must still forget (the new ratings' pull, the new rows,
+// which the first sweep draws from their conditionals) fades in a few
+// autocorrelation times of the slowest quantity. Discarding more would not
+// make the kept draws more trustworthy, only the run longer. The split R-hat
+// stays the safety net: a start that is still drifting after the short
+// burn-in makes each chain's halves disagree and the run go on. The run
+// length is then still set by the ESS target, so a warm start saves the
+// burn-in, not the sampling (scripts/bench-warm-start measures it).
 #pragma once
 #include <cstdint>
 #include <functional>
@@ -37,6 +51,8 @@
 #include "model/posterior/posterior.hpp"
 
 namespace credence {
+
+struct WarmStart;  // model/fit/warm_start.hpp
 
 struct HyperpriorOptions {
     // Normal-Wishart on each factor population; the paper's defaults:
@@ -132,18 +148,22 @@ struct FitResult {
 // Fits the model. `train` must be non-empty with sorted unique (user, item)
 // pairs (as ingest returns). `validation` may be null; its ratings use the
 // indices of `train` (callers drop pairs with unknown ids first).
-// `on_progress` may be empty. Throws:
+// `on_progress` may be empty. `start` (may be null) holds one state per
+// chain shaped for `train` (warm_start_from builds it); its record is stored
+// in the fit metadata under "start". Throws:
 //   OptionError           impossible options (rank 0, samples 0, a prior
 //                         parameter that is not positive, ...), naming the flag;
 //   NumericError          a conditional precision that is not positive
 //                         definite (with chain, sweep, row);
-//   std::invalid_argument `train` empty or holding a pair twice, or a
-//                         validation rating outside train's id maps (a bug in
-//                         the caller);
+//   std::invalid_argument `train` empty or holding a pair twice, a
+//                         validation rating outside train's id maps, or a
+//                         start whose states do not match the chains or the
+//                         training set's shape (bugs in the caller);
 //   std::logic_error      the posterior it built fails Posterior::validate()
 //                         (a bug in the sampler).
 FitResult fit_bpmf(const RatingSet& train, const FitOptions& options,
                    const std::vector<Rating>* validation = nullptr,
-                   const std::function<void(const FitProgress&)>& on_progress = {});
+                   const std::function<void(const FitProgress&)>& on_progress = {},
+                   const WarmStart* start = nullptr);
 
 }  // namespace credence

@@ -66,6 +66,15 @@ json noise_summary(const Posterior& p, const json& fit) {
     return out;
 }
 
+// How the chains started: "cold", or a warm start's counts without the
+// file it began from (a path on the analyst's machine).
+json warm_start_summary(const json& fit) {
+    json start = at_path(fit, {"start"});
+    if (!start.is_object()) return {{"kind", "cold"}};
+    start.erase("from");
+    return start;
+}
+
 }  // namespace
 
 json public_diagnostics(const Posterior& p) {
@@ -112,7 +121,16 @@ json model_summary(const Posterior& p) {
     if (p.has_catalogue())
         data["products_named"] =
             std::count_if(p.item_names.begin(), p.item_names.end(), [](const std::string& n) { return !n.empty(); });
-    const json validation = at_path(fit, {"validation"});
+    // The held-out check (fit --holdout or --validation): its kind and size,
+    // with the figures the fit stored beside them (RMSE, MAE, log density,
+    // coverage, the product-mean baseline) lifted to the same level.
+    json validation = at_path(fit, {"validation"});
+    if (validation.is_object() && validation.contains("figures") && validation["figures"].is_object()) {
+        const json figures = validation["figures"];
+        validation.erase("figures");
+        validation.update(figures);
+    }
+    if (validation.is_object() && fit.contains("refit_on_all")) validation["refit_on_all"] = true;
     const json warnings = at_path(diagnostics, {"warnings"});
     return {
         {"data", std::move(data)},
@@ -128,7 +146,8 @@ json model_summary(const Posterior& p) {
           {"seconds", at_path(fit, {"timings", "total_s"})},
           {"sweeps_per_chain", at_path(fit, {"sweeps_per_chain"})},
           {"seed", at_path(fit, {"seed"})},
-          {"data_fingerprint", at_path(fit, {"data_fingerprint"})}}},
+          {"data_fingerprint", at_path(fit, {"data_fingerprint"})},
+          {"start", warm_start_summary(fit)}}},
         {"convergence",
          {{"verdict", at_path(diagnostics, {"verdict"})},
           {"max_r_hat", at_path(diagnostics, {"max_rhat"})},

@@ -66,6 +66,40 @@ std::string highlights(const std::string& text, const std::vector<std::pair<cons
     return out;
 }
 
+std::string number_text(const json& j, const char* key, int digits) {
+    return j.is_object() && j.contains(key) && j[key].is_number() ? fixed(j[key].get<double>(), digits) : "-";
+}
+
+// The held-out check, start, refit and gate lines; empty when the fit recorded none.
+std::string retraining_lines(const std::string& fit_metadata) {
+    const json meta = json::parse(fit_metadata, nullptr, false);
+    if (meta.is_discarded() || !meta.is_object()) return {};
+    std::string out;
+    if (meta.contains("validation") && meta["validation"].is_object() && meta["validation"].contains("figures")) {
+        const json& f = meta["validation"]["figures"];
+        const json base = f.contains("baseline") ? f["baseline"] : json::object();
+        const json cover = f.contains("coverage") ? f["coverage"] : json::object();
+        const json base_cover = base.contains("coverage") ? base["coverage"] : json::object();
+        out += "held-out:       " + (f.contains("ratings") ? f["ratings"].dump() : std::string("?")) + " ratings (" +
+               meta["validation"].value("kind", std::string("?")) + "): RMSE " + number_text(f, "rmse", 4) +
+               " (product-mean baseline " + number_text(base, "rmse", 4) + "), mean log density " +
+               number_text(f, "mean_log_predictive_density", 4) + " (baseline " +
+               number_text(base, "mean_log_predictive_density", 4) + "), 90% coverage " + number_text(cover, "0.9", 3) +
+               " (baseline " + number_text(base_cover, "0.9", 3) + ")\n";
+    }
+    if (meta.contains("start") && meta["start"].is_object()) {
+        const json& st = meta["start"];
+        out += "start:          " + st.value("kind", std::string("cold"));
+        if (st.contains("from") && st["from"].is_string()) out += " from " + st["from"].get<std::string>();
+        out += "\n";
+    }
+    if (meta.contains("refit_on_all"))
+        out += "refit:          on every rating after the held-out check (the held-out figures are the check's)\n";
+    if (meta.contains("gate") && meta["gate"].is_object())
+        out += std::string("gate:           ") + (meta["gate"].value("passed", false) ? "passed" : "refused") + "\n";
+    return out;
+}
+
 // The version in bytes 8..11 of the file (FORMAT.md section 3), which may be
 // older than the one this build writes; the file was already read, so a
 // short read only happens if it changed since: then "?".
@@ -133,6 +167,7 @@ std::string describe_posterior(const Posterior& p, const std::string& path) {
     if (const json* w = diag_doc.is_discarded() ? nullptr : find_key(diag_doc, "warnings"); w && w->is_array())
         diag += (diag.empty() ? "" : ", ") + std::to_string(w->size()) + (w->size() == 1 ? " warning" : " warnings");
     out << "diagnostics:    " << (diag.empty() ? "(none recorded)" : diag) << "\n";
+    out << retraining_lines(p.fit_metadata_json);
     return out.str();
 }
 

@@ -12,6 +12,7 @@
 #include <cmath>
 #include <filesystem>
 #include <fstream>
+#include <iterator>
 #include <map>
 #include <memory>
 #include <optional>
@@ -776,6 +777,7 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
             {"compare", {"compare --ratings " + missing_ratings, "missing.csv"}},
             {"report", {"report " + missing_model + " --out " + quoted(dir / "never.html"), "missing.posterior"}},
             {"forget", {"forget --ratings " + missing_ratings + " --customer c-00007", "missing.csv"}},
+            {"delta", {"delta " + missing_model + " " + model, "missing.posterior"}},
         };
         std::ofstream(dir / "a-file.csv") << "customer,sku,stars\n";  // not a folder to write into
         for (const auto& sub : subcommands_from_help()) {
@@ -800,8 +802,8 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
             const auto r = run_credence(sub + " --help");
             INFO(sub << "\n" << r.err);
             CHECK(r.exit_code == 0);
-            CHECK(r.out.find("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 70 internal error") !=
-                  std::string::npos);
+            CHECK(r.out.find("Exit codes: 0 ok, 1 a problem with the data or a file, 2 usage, 3 fit --gate refused "
+                             "the new model, 70 internal error") != std::string::npos);
         }
     }
     SECTION("--help and --version exit 0 and print to stdout") {
@@ -934,4 +936,53 @@ TEST_CASE("a converged run refuses --burn-in and --thin, which belong to fixed-l
     CHECK(r.exit_code == 2);
     CHECK(r.err.find("--burn-in applies to --run-length fixed") != std::string::npos);
     CHECK_FALSE(fs::exists(dir / "m.posterior"));
+}
+
+TEST_CASE("report opens with provenance and a verdict and refuses a comparison made on other data") {
+    const auto& d = demo_fit();
+    REQUIRE(d.fit.exit_code == 0);
+    const auto meta = json::parse(credence::read_posterior(d.model.string()).fit_metadata_json);
+    const std::string fingerprint = meta.at("data_fingerprint").get<std::string>();
+
+    credence::ComparisonResult c;
+    c.folds = 1;
+    c.holdout_fraction = 0.1;
+    c.rule = "rule";
+    c.configs.push_back(credence::ConfigScore{.rank = 4, .biases = true, .parameters = 1520});
+    auto write = [&](const fs::path& path, const std::string& fp) {
+        c.data_fingerprint = fp;
+        std::ofstream(path) << credence::to_json(c).dump(2);
+    };
+    const fs::path other = d.dir / "other-data.comparison.json", same = d.dir / "same-data.comparison.json";
+    write(other, "ffffffffffffffff");
+    write(same, fingerprint);
+    const fs::path html = d.dir / "provenance-report.html";
+
+    const auto refused = run_credence("report " + quoted(d.model) + " --comparison " + quoted(other) +
+                                      " --out " + quoted(html));
+    CHECK(refused.exit_code == 1);
+    CHECK(refused.err.find("other data") != std::string::npos);
+    CHECK(refused.err.find(fingerprint) != std::string::npos);
+
+    const auto ok = run_credence("report " + quoted(d.model) + " --comparison " + quoted(same) + " --out " +
+                                 quoted(html));
+    INFO(ok.err);
+    INFO(ok.out);
+    REQUIRE(ok.exit_code == 0);
+    // The verdict follows the stored convergence verdict (this short fixed run
+    // usually has not converged); once converged it judges by the held-out
+    // ratings the fit stored (fit --holdout 0.1).
+    const auto diag = json::parse(credence::read_posterior(d.model.string()).diagnostics_json);
+    if (diag.at("verdict") == "converged")
+        CHECK(ok.out.find("the ratings the fit held out") != std::string::npos);
+    else
+        CHECK(ok.out.find("Not fit for use: the chains") != std::string::npos);
+    std::ifstream in(html);
+    const std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    const auto provenance = text.find("id=\"provenance\"");
+    REQUIRE(provenance != std::string::npos);
+    CHECK(provenance < text.find("id=\"held-out\""));
+    CHECK(text.find(fingerprint, provenance) != std::string::npos);
+    CHECK(text.find(CREDENCE_PROJECT_VERSION, provenance) != std::string::npos);
+    CHECK(text.find("id=\"fitness\"") != std::string::npos);
 }

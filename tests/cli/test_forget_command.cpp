@@ -66,3 +66,15 @@ TEST_CASE("forget by column index on a headerless TSV, and a customer with no ro
     const auto missing_file = run_credence("forget --ratings " + (dir / "absent.csv").string() + " --customer x");
     CHECK(missing_file.exit_code == 1);
 }
+
+TEST_CASE("forget refuses a database source and says to delete the rows in the database, without naming the customer") {
+    const auto dir = scratch_dir("forget_command_database");
+    for (const std::string& source : {"sqlite:" + (dir / "shop.db").string(), std::string("postgresql://shop@127.0.0.1/shop")}) {
+        INFO(source);
+        const auto r = run_credence("forget --ratings '" + source + "' --customer tf-0007");
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("delete the customer's rows there") != std::string::npos);
+        CHECK(r.err.find("tf-0007") == std::string::npos);
+    }
+    CHECK_FALSE(std::filesystem::exists(dir / "shop.db"));
+}

@@ -651,6 +651,41 @@ TEST_CASE("the model description names no customer and no file path") {
     }
 }
 
+TEST_CASE("/v1/model shows a fit's held-out figures but not where its ratings or its warm start came from") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    const auto bearer = httplib::Headers{{"Authorization", "Bearer " + kToken}};
+    // A refreshed model: read from a database, warm-started from a file,
+    // checked on held-out ratings.
+    Posterior p = *f.posterior;
+    p.fit_metadata_json = json{{"data", {{"source", "postgresql://reader@db.thimbleford.internal/shop"},
+                                         {"query", "SELECT * FROM ratings WHERE customer_id <> 'cust-00001'"},
+                                         {"kept", 480}}},
+                               {"start", {{"kind", "warm"}, {"from", "/srv/models/last-night.posterior"},
+                                          {"customers_new", 3}}},
+                               {"validation", {{"kind", "holdout"},
+                                               {"figures", {{"ratings", 48}, {"rmse", 0.81},
+                                                            {"baseline", {{"kind", "product_mean"}, {"rmse", 0.97}}}}}}},
+                               {"refit_on_all", {{"ratings", 528}}}}
+                              .dump();
+    const fs::path refreshed = f.dir / "refreshed.posterior";
+    write_posterior(p, refreshed.string());
+    REQUIRE(post(*c, "/v1/admin/reload", "/v1/admin/reload", json{{"path", refreshed.filename().string()}}.dump(), bearer)
+                .status == 200);
+    const auto model = get(*c, "/v1/model", "/v1/model");
+    CHECK(model.body["validation"]["kind"] == "holdout");
+    CHECK(model.body["validation"]["rmse"] == 0.81);
+    CHECK(model.body["validation"]["baseline"]["rmse"] == 0.97);
+    CHECK(model.body["validation"]["refit_on_all"] == true);
+    CHECK(model.body["fit"]["start"]["kind"] == "warm");
+    CHECK(model.body["fit"]["start"]["customers_new"] == 3);
+    CHECK(model.text.find("last-night.posterior") == std::string::npos);
+    CHECK(model.text.find("db.thimbleford.internal") == std::string::npos);
+    CHECK(model.text.find("cust-00001") == std::string::npos);
+    REQUIRE(post(*c, "/v1/admin/reload", "/v1/admin/reload", json{{"path", "shop.posterior"}}.dump(), bearer).status ==
+            200);
+}
+
 TEST_CASE("admin forget drops a customer's own factors at once, and they stay out after a reload") {
     auto& f = fixture();
     auto c = f.server->client();

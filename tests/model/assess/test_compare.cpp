@@ -169,3 +169,47 @@ TEST_CASE("open dataset: the comparison table is produced and the chosen rank be
     CHECK(rec.rank == 10);
     CHECK(rec.mean_log_predictive_density > two.mean_log_predictive_density);
 }
+
+TEST_CASE("a comparison keeps its settings and data fingerprint through JSON and stars unreliable WAIC") {
+    ComparisonResult r;
+    r.folds = 1;
+    r.holdout_fraction = 0.1;
+    r.rule = "fewest parameters within one SE of the best";
+    r.settings = {{"ranks", {2, 4}}, {"split_seed", 7}};
+    r.data_fingerprint = "0123456789abcdef";
+    r.configs.push_back(ConfigScore{.rank = 2, .biases = true, .parameters = 100, .waic_high_variance_ratings = 0,
+                                    .waic_training_ratings = 900});
+    r.configs.push_back(ConfigScore{.rank = 4, .biases = true, .parameters = 200, .waic_high_variance_ratings = 35,
+                                    .waic_training_ratings = 900});
+
+    const ComparisonResult back = comparison_from_json(to_json(r));
+    CHECK(back.data_fingerprint == "0123456789abcdef");
+    CHECK(back.settings == r.settings);
+    REQUIRE(back.configs.size() == 2);
+    CHECK(back.configs[0].waic_reliable());
+    CHECK_FALSE(back.configs[1].waic_reliable());
+    CHECK(back.configs[1].waic_training_ratings == 900);
+    CHECK(to_json(r)["configs"][1]["waic"]["reliable"] == false);
+
+    const std::string table = format_table(r);
+    CHECK(table.find("WAIC is unreliable for rank 4 (35 of 900 ratings)") != std::string::npos);
+    CHECK(table.find("rank 2 (") == std::string::npos);
+
+    r.configs[1].waic_high_variance_ratings = 0;
+    CHECK(format_table(r).find("WAIC is unreliable") == std::string::npos);
+}
+
+TEST_CASE("a comparison file written before settings and fingerprints were recorded still reads, with them empty") {
+    ComparisonResult r;
+    r.folds = 1;
+    r.rule = "rule";
+    r.configs.push_back(ConfigScore{.rank = 3, .biases = false, .parameters = 10});
+    nlohmann::json old = to_json(r);
+    old.erase("settings");
+    old.erase("data_fingerprint");
+    old["configs"][0]["waic"].erase("training_ratings");
+    const ComparisonResult back = comparison_from_json(old);
+    CHECK(back.data_fingerprint.empty());
+    CHECK(back.settings.empty());
+    CHECK(back.configs[0].waic_training_ratings == 0);
+}
