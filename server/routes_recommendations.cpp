@@ -4,8 +4,11 @@
 // is deterministic. Both rank by mean, lower or upper interval bound, or one
 // posterior draw, and give mean, sd and interval for every item. A draw
 // ranking echoes its seed as a decimal string (a 64-bit integer does not
-// survive a JavaScript number). Known users' requests that arrive together
-// share one pass over the item samples (server/topn_batcher.hpp).
+// survive a JavaScript number). Each entry also carries rank_value (the
+// ranked number on the rating scale), rank_value_unclipped and why (rating
+// count and the viewer's most similar rated products). Unknown query
+// parameters and body keys are 400s. Known users' requests that arrive
+// together share one pass over the item samples (server/topn_batcher.hpp).
 #include <algorithm>
 #include <charconv>
 #include <optional>

@@ -141,16 +141,25 @@ void unseen_customer_predictive(const Posterior& p, ItemStatistics& out) {
 }
 
 // Every known customer's predictive mean and sd for every item, summed into
-// the per-item averages. Customers go in blocks of kBlock so the per-pair
-// sums stay in cache while the samples stream by; each sample's block of
-// noise-free means is one float matrix product (U_block x K) (K x I), then
-// the biases are added and the moments accumulated in double.
+// the per-item averages. Each sample's item factors are first transposed to
+// [K][I], so one customer's noise-free means over all items are K
+// contiguous multiply-adds along the items (vectorized), in float as the
+// engine's screening does. Customers go in blocks of kBlock so the per-pair
+// sums (double) stay in cache while the samples stream by.
 void known_customer_predictive(const Posterior& p, ItemStatistics& out) {
     constexpr uint32_t kBlock = 16;
     const uint32_t S = p.num_samples, U = p.num_users, I = p.num_items, K = p.rank;
     double noise_variance = 0.0;  // mean over samples of 1/tau_s
     for (float tau : p.noise_precision) noise_variance += 1.0 / static_cast<double>(tau) / S;
-    MatrixXfR dots(kBlock, I);
+    // [S][K][I]: as much memory as the item factors themselves, for the duration of this call.
+    std::vector<float> transposed(static_cast<size_t>(S) * K * I);
+    for (uint32_t s = 0; s < S; ++s) {
+        const float* block = p.item_block(s);
+        float* to = transposed.data() + static_cast<size_t>(s) * K * I;
+        for (uint32_t i = 0; i < I; ++i)
+            for (uint32_t k = 0; k < K; ++k) to[static_cast<size_t>(k) * I + i] = block[static_cast<size_t>(i) * K + k];
+    }
+    std::vector<float> m(I);
     std::vector<double> sum(static_cast<size_t>(kBlock) * I), sum_sq(sum.size());
     std::vector<double> mean_total(I, 0.0), sd_total(I, 0.0);
     for (uint32_t u0 = 0; u0 < U; u0 += kBlock) {
@@ -158,18 +167,23 @@ void known_customer_predictive(const Posterior& p, ItemStatistics& out) {
         std::fill(sum.begin(), sum.end(), 0.0);
         std::fill(sum_sq.begin(), sum_sq.end(), 0.0);
         for (uint32_t s = 0; s < S; ++s) {
-            Eigen::Map<const MatrixXfR> users(p.user_factors.data() + (static_cast<size_t>(s) * U + u0) * K, b, K);
-            Eigen::Map<const MatrixXfR> items(p.item_block(s), I, K);
-            dots.topRows(b).noalias() = users * items.transpose();
             const float* item_bias = p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * I : nullptr;
+            const float* vt = transposed.data() + static_cast<size_t>(s) * K * I;
             for (uint32_t r = 0; r < b; ++r) {
-                const double base = static_cast<double>(p.global_mean) + p.user_bias_of(s, u0 + r);
+                const float base = p.global_mean + p.user_bias_of(s, u0 + r);
+                for (uint32_t i = 0; i < I; ++i) m[i] = base + (item_bias ? item_bias[i] : 0.0f);
+                const auto f = p.user_factor(s, u0 + r);
+                for (uint32_t k = 0; k < K; ++k) {
+                    const float x = f[k];
+                    const float* row = vt + static_cast<size_t>(k) * I;
+                    for (uint32_t i = 0; i < I; ++i) m[i] += x * row[i];
+                }
                 double* row_sum = sum.data() + static_cast<size_t>(r) * I;
                 double* row_sq = sum_sq.data() + static_cast<size_t>(r) * I;
                 for (uint32_t i = 0; i < I; ++i) {
-                    const double m = base + (item_bias ? item_bias[i] : 0.0f) + dots(r, i);
-                    row_sum[i] += m;
-                    row_sq[i] += m * m;
+                    const double v = m[i];
+                    row_sum[i] += v;
+                    row_sq[i] += v * v;
                 }
             }
         }

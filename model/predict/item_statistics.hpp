@@ -86,7 +86,8 @@ struct ItemStatistics {
 // Needs a posterior that passed Posterior::validate(). Returns every
 // statistic above, owning its arrays (nothing refers back to the posterior).
 // Cost: the predictive figures visit every (customer, item, sample) triple,
-// U * I * S * K multiply-adds through blocked matrix products.
+// U * I * S * K float multiply-adds, with a transposed copy of the item
+// factors while it runs.
 // Throws NumericError as hyperparameter_covariances() does.
 ItemStatistics compute_item_statistics(const Posterior& posterior);
 

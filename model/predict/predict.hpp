@@ -52,8 +52,9 @@ struct RecommendOptions {
 struct Recommendation {
     uint32_t item = 0;
     double score = 0.0;       // the value ranked by (mean, bound or draw), before clipping to the scale
-    double rank_value = 0.0;  // score clipped to the rating scale: for mean, lower and upper it equals
-                              // prediction.mean, .lower, .upper (the same numbers, bit for bit)
+    double rank_value = 0.0;  // score clipped to the rating scale. For a known user ranked by mean,
+                              // lower or upper it is prediction.mean, .lower, .upper bit for bit; for
+                              // a visitor (foldin.hpp) the same up to rounding
     Prediction prediction;
     bool operator==(const Recommendation&) const = default;
 };
