@@ -264,7 +264,7 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key
         throw NumericError("sampler: chain " + std::to_string(key.chain) + ", sweep " + std::to_string(key.sweep) +
                            ": the noise precision draw is not a positive finite number (training error " +
                            std::to_string(st.sse) + ")");
-    if (o.group_moves) apply_group_moves(o, key, st);
+    if (o.group_moves) apply_group_moves(o, key, st, threads);
 }
 
 }  // namespace credence
