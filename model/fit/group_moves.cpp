@@ -31,7 +31,7 @@ void weighted_gram(const float* w, const float* c, size_t rows, uint32_t K, int 
                    std::vector<double>& cw) {
     const size_t blocks = (rows + kBlockRows - 1) / kBlockRows, kk = size_t(K) * K;
     std::vector<double> partial(blocks * (kk + K), 0.0);
-#pragma omp parallel for schedule(static) num_threads(team_size(threads))
+#pragma omp parallel for schedule(dynamic, 1) num_threads(team_size(threads))
     for (size_t b = 0; b < blocks; ++b) {
         double* g = partial.data() + b * (kk + K);
         double* h = g + kk;
@@ -92,10 +92,10 @@ void shift_side(std::vector<float>& moved, Eigen::VectorXd& mu, const std::vecto
     float* c = compensated.data();
 #pragma omp parallel num_threads(team_size(threads))
     {
-#pragma omp for schedule(static) nowait
+#pragma omp for schedule(dynamic, 1024) nowait
         for (int64_t r = 0; r < rows; ++r)
             for (uint32_t k = 0; k < rank; ++k) m[r * rank + k] += step[k];
-#pragma omp for schedule(static)
+#pragma omp for schedule(dynamic, 1024)
         for (int64_t j = 0; j < others; ++j) {
             const float* row = w + j * rank;
             double dot = 0.0;
@@ -106,30 +106,28 @@ void shift_side(std::vector<float>& moved, Eigen::VectorXd& mu, const std::vecto
     mu += d;
 }
 
-// rows[r] -> map rows[r] for every row of a [count][K] float32 array, in
-// double (each output sums its terms in column order), rounded once.
-void map_rows(float* rows, size_t count, const Eigen::MatrixXd& map, int threads) {
+// rows[r] -> map rows[r] for every row r in [begin, end) of a [count][K]
+// float32 array, in double (each output sums its terms in column order),
+// rounded once. Call inside a parallel region (an orphaned loop).
+void map_rows(float* rows, int64_t count, const Eigen::MatrixXd& map, std::vector<double>& in,
+              std::vector<double>& out) {
     const auto K = static_cast<uint32_t>(map.rows());
     // Column-major: column m of the map is contiguous, so the inner loop
     // runs across the outputs.
     const double* a = map.data();
-#pragma omp parallel num_threads(team_size(threads))
-    {
-        std::vector<double> in(K), out(K);
-#pragma omp for schedule(static)
-        for (int64_t r = 0; r < static_cast<int64_t>(count); ++r) {
-            float* row = rows + size_t(r) * K;
-            for (uint32_t k = 0; k < K; ++k) {
-                in[k] = row[k];
-                out[k] = 0.0;
-            }
-            for (uint32_t m = 0; m < K; ++m) {
-                const double x = in[m];
-                const double* column = a + size_t(m) * K;
-                for (uint32_t k = 0; k < K; ++k) out[k] += column[k] * x;
-            }
-            for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<float>(out[k]);
+#pragma omp for schedule(dynamic, 1024) nowait
+    for (int64_t r = 0; r < count; ++r) {
+        float* row = rows + size_t(r) * K;
+        for (uint32_t k = 0; k < K; ++k) {
+            in[k] = row[k];
+            out[k] = 0.0;
         }
+        for (uint32_t m = 0; m < K; ++m) {
+            const double x = in[m];
+            const double* column = a + size_t(m) * K;
+            for (uint32_t k = 0; k < K; ++k) out[k] += column[k] * x;
+        }
+        for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<float>(out[k]);
     }
 }
 
@@ -222,8 +220,15 @@ FactorMap identity_factor_map(uint32_t rank) {
 }
 
 void apply_factor_map(GibbsState& st, const FactorMap& map, int threads) {
-    map_rows(st.user_factors.data(), st.user_factors.size() / st.rank, map.user, threads);
-    map_rows(st.item_factors.data(), st.item_factors.size() / st.rank, map.item, threads);
+    const auto users = static_cast<int64_t>(st.user_factors.size() / st.rank);
+    const auto items = static_cast<int64_t>(st.item_factors.size() / st.rank);
+    // One team for both sides: the user rows, then (no barrier between) the item rows.
+#pragma omp parallel num_threads(team_size(threads))
+    {
+        std::vector<double> in(st.rank), out(st.rank);
+        map_rows(st.user_factors.data(), users, map.user, in, out);
+        map_rows(st.item_factors.data(), items, map.item, in, out);
+    }
 }
 
 void scale_factor_axis(GibbsState& st, FactorMap& map, uint32_t k, double s) {
