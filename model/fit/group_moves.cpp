@@ -95,7 +95,7 @@ void shift_side(std::vector<float>& moved, Eigen::VectorXd& mu, const std::vecto
 #pragma omp for schedule(dynamic, 1024) nowait
         for (int64_t r = 0; r < rows; ++r)
             for (uint32_t k = 0; k < rank; ++k) m[r * rank + k] += step[k];
-#pragma omp for schedule(dynamic, 1024)
+#pragma omp for schedule(dynamic, 1024) nowait
         for (int64_t j = 0; j < others; ++j) {
             const float* row = w + j * rank;
             double dot = 0.0;

@@ -28,10 +28,9 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
     // Per block: [dim] sums, then the [dim][dim] lower triangle (row-major).
     std::vector<double> partial(blocks * (dim + cells), 0.0);
     const int team = threads > 0 ? threads : omp_get_max_threads();
-    std::vector<double> mean(dim, 0.0);
 #pragma omp parallel num_threads(team)
     {
-        std::vector<double> d(dim);
+        std::vector<double> d(dim), mean(dim, 0.0);
 #pragma omp for schedule(dynamic, 1)
         for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
             double* sum = partial.data() + size_t(b) * (dim + cells);
@@ -39,15 +38,16 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
             for (uint64_t r = uint64_t(b) * kStatisticsBlockRows; r < end; ++r)
                 for (uint32_t k = 0; k < dim; ++k) sum[k] += rows[r * dim + k];
         }
-#pragma omp single
-        {
-            for (uint64_t b = 0; b < blocks; ++b)
-                for (uint32_t k = 0; k < dim; ++k) mean[k] += partial[b * (dim + cells) + k];
-            for (uint32_t k = 0; k < dim; ++k) mean[k] /= st.n;
-        }
+        // Every thread adds the blocks' sums in block order for itself (the
+        // same bits in each), rather than waiting at one more barrier.
+        for (uint64_t b = 0; b < blocks; ++b)
+            for (uint32_t k = 0; k < dim; ++k) mean[k] += partial[b * (dim + cells) + k];
+        for (uint32_t k = 0; k < dim; ++k) mean[k] /= st.n;
+#pragma omp single nowait
+        for (uint32_t k = 0; k < dim; ++k) st.mean[k] = mean[k];
         // Row-major lower triangle in a plain buffer, so the inner loop runs
         // over contiguous entries and vectorizes.
-#pragma omp for schedule(dynamic, 1)
+#pragma omp for schedule(dynamic, 1) nowait
         for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
             double* lower = partial.data() + size_t(b) * (dim + cells) + dim;
             const uint64_t end = std::min<uint64_t>(count, uint64_t(b + 1) * kStatisticsBlockRows);
@@ -62,7 +62,6 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
             }
         }
     }
-    for (uint32_t k = 0; k < dim; ++k) st.mean[k] = mean[k];
     std::vector<double> lower(cells, 0.0);
     for (uint64_t b = 0; b < blocks; ++b) {
         const double* part = partial.data() + b * (dim + cells) + dim;
