@@ -149,8 +149,8 @@ NormalWishart factor_prior(const FitOptions& o) {
 }
 
 void draw_hyper(const std::vector<float>& factors, uint32_t rows, const FitOptions& o, const SweepKey& key,
-                StreamBlock block, Eigen::VectorXd& mu, Eigen::MatrixXd& lambda) {
-    const FactorStatistics st = factor_statistics(factors.data(), rows, o.rank);
+                StreamBlock block, int threads, Eigen::VectorXd& mu, Eigen::MatrixXd& lambda) {
+    const FactorStatistics st = factor_statistics(factors.data(), rows, o.rank, threads);
     Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, block, 0);
     MeanPrecision mp;
     try {
@@ -231,14 +231,14 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key
     Eigen::MatrixXd prior_precision;
     Eigen::VectorXd prior_mean;
 
-    draw_hyper(st.user_factors, users, o, key, StreamBlock::user_hyper, st.user_mu, st.user_lambda);
+    draw_hyper(st.user_factors, users, o, key, StreamBlock::user_hyper, threads, st.user_mu, st.user_lambda);
     row_prior(st.user_mu, st.user_lambda, o.biases, st.user_bias_precision, prior_precision, prior_mean);
     draw_side(SidePass{&by_user, st.item_factors.data(), o.biases ? st.item_bias.data() : nullptr,
                        st.user_factors.data(), o.biases ? st.user_bias.data() : nullptr, "user",
                        StreamBlock::user_rows, nullptr},
               prior_precision, prior_mean, st.noise_precision, data.global_mean, o.rank, o.biases, key, threads);
 
-    draw_hyper(st.item_factors, items, o, key, StreamBlock::item_hyper, st.item_mu, st.item_lambda);
+    draw_hyper(st.item_factors, items, o, key, StreamBlock::item_hyper, threads, st.item_mu, st.item_lambda);
     row_prior(st.item_mu, st.item_lambda, o.biases, st.item_bias_precision, prior_precision, prior_mean);
     std::vector<double> sse_rows(items, 0.0);
     draw_side(SidePass{&by_item, st.user_factors.data(), o.biases ? st.user_bias.data() : nullptr,
@@ -264,7 +264,7 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key
         throw NumericError("sampler: chain " + std::to_string(key.chain) + ", sweep " + std::to_string(key.sweep) +
                            ": the noise precision draw is not a positive finite number (training error " +
                            std::to_string(st.sse) + ")");
-    if (o.group_moves) apply_group_moves(o, key, st);
+    if (o.group_moves) apply_group_moves(o, key, st, threads);
 }
 
 }  // namespace credence

@@ -1,7 +1,11 @@
 #include "model/fit/group_moves.hpp"
 
+#include <omp.h>
+
+#include <algorithm>
 #include <cmath>
 #include <string>
+#include <vector>
 
 #include <Eigen/Dense>
 
@@ -12,70 +16,141 @@ namespace credence {
 
 namespace {
 
-using RowMajorF = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
-
 enum MoveRow : uint64_t { user_shift = 0, item_shift = 1, bias_shift = 2, factor_space = 3 };
+
+// Rows summed per block by the passes below. The blocks are fixed whatever
+// the thread count, each is summed in row order and the blocks' sums are
+// added in block order, so every sum has the same bits on any team.
+constexpr size_t kBlockRows = 1024;
+
+int team_size(int threads) { return threads > 0 ? threads : omp_get_max_threads(); }
+
+// lower[j][k] (k <= j; row-major K x K) = sum_r w_r[j] w_r[k] and
+// cw[k] = sum_r c_r w_r[k] over the rows of w ([rows][K] float32), in double.
+void weighted_gram(const float* w, const float* c, size_t rows, uint32_t K, int threads, std::vector<double>& lower,
+                   std::vector<double>& cw) {
+    const size_t blocks = (rows + kBlockRows - 1) / kBlockRows, kk = size_t(K) * K;
+    std::vector<double> partial(blocks * (kk + K), 0.0);
+#pragma omp parallel for schedule(dynamic, 1) num_threads(team_size(threads))
+    for (size_t b = 0; b < blocks; ++b) {
+        double* g = partial.data() + b * (kk + K);
+        double* h = g + kk;
+        std::vector<double> x(K);
+        const size_t end = std::min(rows, (b + 1) * kBlockRows);
+        for (size_t r = b * kBlockRows; r < end; ++r) {
+            const float* row = w + r * K;
+            for (uint32_t k = 0; k < K; ++k) x[k] = row[k];
+            const double cr = c[r];
+            for (uint32_t j = 0; j < K; ++j) {
+                double* out = g + size_t(j) * K;
+                const double xj = x[j];
+                for (uint32_t k = 0; k <= j; ++k) out[k] += xj * x[k];
+            }
+            for (uint32_t k = 0; k < K; ++k) h[k] += cr * x[k];
+        }
+    }
+    lower.assign(kk, 0.0);
+    cw.assign(K, 0.0);
+    for (size_t b = 0; b < blocks; ++b) {
+        const double* g = partial.data() + b * (kk + K);
+        for (size_t i = 0; i < kk; ++i) lower[i] += g[i];
+        for (uint32_t k = 0; k < K; ++k) cw[k] += g[kk + k];
+    }
+}
 
 // The shift of `moved` factors against the other side's biases: d ~ Normal
 // with precision beta0 Lambda + lambda sum_j W_j W_j^T (W = the other side's
 // factors) and precision-mean -beta0 Lambda mu + lambda sum_j c_j W_j.
 ShiftConditional shift_conditional(const Eigen::VectorXd& mu, const Eigen::MatrixXd& lambda,
                                    const std::vector<float>& other_factors, const std::vector<float>& compensated,
-                                   double bias_precision, double beta0, uint32_t rank) {
-    const auto others = static_cast<Eigen::Index>(other_factors.size() / rank);
-    Eigen::Map<const RowMajorF> w(other_factors.data(), others, rank);
-    Eigen::Map<const Eigen::VectorXf> c(compensated.data(), others);
-    const Eigen::MatrixXd wd = w.cast<double>();
+                                   double bias_precision, double beta0, uint32_t rank, int threads) {
+    std::vector<double> lower, cw;
+    weighted_gram(other_factors.data(), compensated.data(), compensated.size(), rank, threads, lower, cw);
     ShiftConditional out;
     out.precision = beta0 * lambda;
-    out.precision.selfadjointView<Eigen::Lower>().rankUpdate(wd.transpose(), bias_precision);
-    out.precision = out.precision.selfadjointView<Eigen::Lower>();
-    out.precision_mean = -beta0 * (lambda * mu) + bias_precision * (wd.transpose() * c.cast<double>());
+    for (uint32_t j = 0; j < rank; ++j)
+        for (uint32_t k = 0; k <= j; ++k) {
+            const double v = bias_precision * lower[size_t(j) * rank + k];
+            out.precision(j, k) += v;
+            if (k != j) out.precision(k, j) += v;
+        }
+    out.precision_mean = -beta0 * (lambda * mu);
+    for (uint32_t k = 0; k < rank; ++k) out.precision_mean[k] += bias_precision * cw[k];
     return out;
 }
 
 // moved[r] += d (every row), mu += d, compensated[j] -= d . other_factors[j].
 void shift_side(std::vector<float>& moved, Eigen::VectorXd& mu, const std::vector<float>& other_factors,
-                std::vector<float>& compensated, uint32_t rank, const Eigen::VectorXd& d) {
-    const auto rows = static_cast<Eigen::Index>(moved.size() / rank);
-    const auto others = static_cast<Eigen::Index>(other_factors.size() / rank);
-    Eigen::Map<const RowMajorF> w(other_factors.data(), others, rank);
-    const Eigen::MatrixXd wd = w.cast<double>();
-    Eigen::Map<RowMajorF> m(moved.data(), rows, rank);
-    m.rowwise() += d.cast<float>().transpose();
+                std::vector<float>& compensated, uint32_t rank, const Eigen::VectorXd& d, int threads) {
+    const auto rows = static_cast<int64_t>(moved.size() / rank);
+    const auto others = static_cast<int64_t>(compensated.size());
+    std::vector<float> step(rank);
+    for (uint32_t k = 0; k < rank; ++k) step[k] = static_cast<float>(d[k]);
+    const double* dd = d.data();
+    float* m = moved.data();
+    const float* w = other_factors.data();
+    float* c = compensated.data();
+#pragma omp parallel num_threads(team_size(threads))
+    {
+#pragma omp for schedule(dynamic, 1024) nowait
+        for (int64_t r = 0; r < rows; ++r)
+            for (uint32_t k = 0; k < rank; ++k) m[r * rank + k] += step[k];
+#pragma omp for schedule(dynamic, 1024) nowait
+        for (int64_t j = 0; j < others; ++j) {
+            const float* row = w + j * rank;
+            double dot = 0.0;
+            for (uint32_t k = 0; k < rank; ++k) dot += double(row[k]) * dd[k];
+            c[j] = static_cast<float>(double(c[j]) - dot);
+        }
+    }
     mu += d;
-    const Eigen::VectorXd shift = wd * d;
-    for (Eigen::Index j = 0; j < others; ++j) compensated[j] = static_cast<float>(double(compensated[j]) - shift[j]);
 }
 
-void column_axpy(std::vector<float>& f, uint32_t rank, uint32_t to, uint32_t from, double c) {
-    for (size_t r = 0; r < f.size(); r += rank) f[r + to] = static_cast<float>(f[r + to] + c * f[r + from]);
-}
-
-void column_scale(std::vector<float>& f, uint32_t rank, uint32_t k, double s) {
-    for (size_t r = 0; r < f.size(); r += rank) f[r + k] = static_cast<float>(f[r + k] * s);
+// rows[r] -> map rows[r] for every row r in [begin, end) of a [count][K]
+// float32 array, in double (each output sums its terms in column order),
+// rounded once. Call inside a parallel region (an orphaned loop).
+void map_rows(float* rows, int64_t count, const Eigen::MatrixXd& map, std::vector<double>& in,
+              std::vector<double>& out) {
+    const auto K = static_cast<uint32_t>(map.rows());
+    // Column-major: column m of the map is contiguous, so the inner loop
+    // runs across the outputs.
+    const double* a = map.data();
+#pragma omp for schedule(dynamic, 1024) nowait
+    for (int64_t r = 0; r < count; ++r) {
+        float* row = rows + size_t(r) * K;
+        for (uint32_t k = 0; k < K; ++k) {
+            in[k] = row[k];
+            out[k] = 0.0;
+        }
+        for (uint32_t m = 0; m < K; ++m) {
+            const double x = in[m];
+            const double* column = a + size_t(m) * K;
+            for (uint32_t k = 0; k < K; ++k) out[k] += column[k] * x;
+        }
+        for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<float>(out[k]);
+    }
 }
 
 }  // namespace
 
 // ---- the shifts along the bias ridges
 
-ShiftConditional user_shift_conditional(const FitOptions& o, const GibbsState& st) {
+ShiftConditional user_shift_conditional(const FitOptions& o, const GibbsState& st, int threads) {
     return shift_conditional(st.user_mu, st.user_lambda, st.item_factors, st.item_bias, st.item_bias_precision,
-                             o.prior.beta0, st.rank);
+                             o.prior.beta0, st.rank, threads);
 }
 
-ShiftConditional item_shift_conditional(const FitOptions& o, const GibbsState& st) {
+ShiftConditional item_shift_conditional(const FitOptions& o, const GibbsState& st, int threads) {
     return shift_conditional(st.item_mu, st.item_lambda, st.user_factors, st.user_bias, st.user_bias_precision,
-                             o.prior.beta0, st.rank);
+                             o.prior.beta0, st.rank, threads);
 }
 
-void shift_users(GibbsState& st, const Eigen::VectorXd& d) {
-    shift_side(st.user_factors, st.user_mu, st.item_factors, st.item_bias, st.rank, d);
+void shift_users(GibbsState& st, const Eigen::VectorXd& d, int threads) {
+    shift_side(st.user_factors, st.user_mu, st.item_factors, st.item_bias, st.rank, d, threads);
 }
 
-void shift_items(GibbsState& st, const Eigen::VectorXd& e) {
-    shift_side(st.item_factors, st.item_mu, st.user_factors, st.user_bias, st.rank, e);
+void shift_items(GibbsState& st, const Eigen::VectorXd& e, int threads) {
+    shift_side(st.item_factors, st.item_mu, st.user_factors, st.user_bias, st.rank, e, threads);
 }
 
 ShiftConditional bias_shift_conditional(const GibbsState& st) {
@@ -140,9 +215,25 @@ double draw_log_symmetric_gig(Rng& rng, double omega) {
     }
 }
 
-void scale_factor_axis(GibbsState& st, uint32_t k, double s) {
-    column_scale(st.user_factors, st.rank, k, s);
-    column_scale(st.item_factors, st.rank, k, 1.0 / s);
+FactorMap identity_factor_map(uint32_t rank) {
+    return {Eigen::MatrixXd::Identity(rank, rank), Eigen::MatrixXd::Identity(rank, rank)};
+}
+
+void apply_factor_map(GibbsState& st, const FactorMap& map, int threads) {
+    const auto users = static_cast<int64_t>(st.user_factors.size() / st.rank);
+    const auto items = static_cast<int64_t>(st.item_factors.size() / st.rank);
+    // One team for both sides: the user rows, then (no barrier between) the item rows.
+#pragma omp parallel num_threads(team_size(threads))
+    {
+        std::vector<double> in(st.rank), out(st.rank);
+        map_rows(st.user_factors.data(), users, map.user, in, out);
+        map_rows(st.item_factors.data(), items, map.item, in, out);
+    }
+}
+
+void scale_factor_axis(GibbsState& st, FactorMap& map, uint32_t k, double s) {
+    map.user.row(k) *= s;
+    map.item.row(k) /= s;
     st.user_mu[k] *= s;
     st.item_mu[k] /= s;
     st.user_lambda.row(k) /= s;
@@ -156,9 +247,9 @@ ShearConditional shear_conditional(const FitOptions& o, const GibbsState& st, ui
     return {(st.user_lambda(i, j) - st.item_lambda(i, j)) / denom, std::sqrt(o.prior.w0_scale / denom)};
 }
 
-void shear_factor_axes(GibbsState& st, uint32_t i, uint32_t j, double c) {
-    column_axpy(st.user_factors, st.rank, i, j, c);
-    column_axpy(st.item_factors, st.rank, j, i, -c);
+void shear_factor_axes(GibbsState& st, FactorMap& map, uint32_t i, uint32_t j, double c) {
+    map.user.row(i) += c * map.user.row(j);
+    map.item.row(j) -= c * map.item.row(i);
     st.user_mu[i] += c * st.user_mu[j];
     st.item_mu[j] -= c * st.item_mu[i];
     // Lambda_U <- A^-T Lambda_U A^-1, A^-1 = I - c e_i e_j^T: column j -= c column i, then row j likewise.
@@ -176,32 +267,34 @@ void symmetrize_precisions(GibbsState& st) {
 
 // ---- the composition fit_bpmf runs
 
-void apply_group_moves(const FitOptions& o, const SweepKey& key, GibbsState& st) {
+void apply_group_moves(const FitOptions& o, const SweepKey& key, GibbsState& st, int threads) {
     const uint32_t K = st.rank;
     {
+        FactorMap map = identity_factor_map(K);
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, factor_space);
         for (uint32_t k = 0; k < K; ++k) {
             const ScaleConditional c = scale_conditional(o, st, k);
             const double log_t = c.log_eta + draw_log_symmetric_gig(rng, c.omega);
-            scale_factor_axis(st, k, std::exp(0.5 * log_t));
+            scale_factor_axis(st, map, k, std::exp(0.5 * log_t));
         }
         for (uint32_t i = 0; i < K; ++i)
             for (uint32_t j = 0; j < K; ++j) {
                 if (i == j) continue;
                 const ShearConditional c = shear_conditional(o, st, i, j);
-                shear_factor_axes(st, i, j, c.mean + rng.normal() * c.sd);
+                shear_factor_axes(st, map, i, j, c.mean + rng.normal() * c.sd);
             }
         // Keep the precisions exactly symmetric for later factorizations.
         symmetrize_precisions(st);
+        apply_factor_map(st, map, threads);
     }
     if (!st.biases) return;
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, user_shift);
-        shift_users(st, draw_shift(user_shift_conditional(o, st), rng, key, "user"));
+        shift_users(st, draw_shift(user_shift_conditional(o, st, threads), rng, key, "user"), threads);
     }
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, item_shift);
-        shift_items(st, draw_shift(item_shift_conditional(o, st), rng, key, "item"));
+        shift_items(st, draw_shift(item_shift_conditional(o, st, threads), rng, key, "item"), threads);
     }
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, bias_shift);

@@ -1,5 +1,8 @@
 #include "model/fit/normal_wishart.hpp"
 
+#include <omp.h>
+
+#include <algorithm>
 #include <stdexcept>
 #include <string>
 #include <vector>
@@ -9,28 +12,60 @@
 
 namespace credence {
 
-FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t dim) {
+namespace {
+// Rows per block of the sums below: blocks are fixed whatever the team.
+constexpr uint64_t kStatisticsBlockRows = 1024;
+}  // namespace
+
+FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t dim, int threads) {
     FactorStatistics st;
     st.n = static_cast<double>(count);
     st.mean = Eigen::VectorXd::Zero(dim);
     st.scatter = Eigen::MatrixXd::Zero(dim, dim);
     if (count == 0) return st;
-    for (uint64_t r = 0; r < count; ++r)
-        for (uint32_t k = 0; k < dim; ++k) st.mean[k] += rows[r * dim + k];
-    st.mean /= st.n;
-    // Row-major lower triangle in a plain buffer, so the inner loop runs
-    // over contiguous entries and vectorizes (each entry still sums its
-    // terms in row order). A sampler sweep calls this on every factor row.
-    std::vector<double> d(dim), lower(size_t(dim) * dim, 0.0);
-    const double* mean = st.mean.data();
-    for (uint64_t r = 0; r < count; ++r) {
-        const float* row = rows + r * dim;
-        for (uint32_t k = 0; k < dim; ++k) d[k] = row[k] - mean[k];
-        for (uint32_t j = 0; j < dim; ++j) {
-            double* out = lower.data() + size_t(j) * dim;
-            const double dj = d[j];
-            for (uint32_t k = 0; k <= j; ++k) out[k] += dj * d[k];
+    const uint64_t blocks = (count + kStatisticsBlockRows - 1) / kStatisticsBlockRows;
+    const size_t cells = size_t(dim) * dim;
+    // Per block: [dim] sums, then the [dim][dim] lower triangle (row-major).
+    std::vector<double> partial(blocks * (dim + cells), 0.0);
+    const int team = threads > 0 ? threads : omp_get_max_threads();
+#pragma omp parallel num_threads(team)
+    {
+        std::vector<double> d(dim), mean(dim, 0.0);
+#pragma omp for schedule(dynamic, 1)
+        for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
+            double* sum = partial.data() + size_t(b) * (dim + cells);
+            const uint64_t end = std::min<uint64_t>(count, uint64_t(b + 1) * kStatisticsBlockRows);
+            for (uint64_t r = uint64_t(b) * kStatisticsBlockRows; r < end; ++r)
+                for (uint32_t k = 0; k < dim; ++k) sum[k] += rows[r * dim + k];
         }
+        // Every thread adds the blocks' sums in block order for itself (the
+        // same bits in each), rather than waiting at one more barrier.
+        for (uint64_t b = 0; b < blocks; ++b)
+            for (uint32_t k = 0; k < dim; ++k) mean[k] += partial[b * (dim + cells) + k];
+        for (uint32_t k = 0; k < dim; ++k) mean[k] /= st.n;
+#pragma omp single nowait
+        for (uint32_t k = 0; k < dim; ++k) st.mean[k] = mean[k];
+        // Row-major lower triangle in a plain buffer, so the inner loop runs
+        // over contiguous entries and vectorizes.
+#pragma omp for schedule(dynamic, 1) nowait
+        for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
+            double* lower = partial.data() + size_t(b) * (dim + cells) + dim;
+            const uint64_t end = std::min<uint64_t>(count, uint64_t(b + 1) * kStatisticsBlockRows);
+            for (uint64_t r = uint64_t(b) * kStatisticsBlockRows; r < end; ++r) {
+                const float* row = rows + r * dim;
+                for (uint32_t k = 0; k < dim; ++k) d[k] = row[k] - mean[k];
+                for (uint32_t j = 0; j < dim; ++j) {
+                    double* out = lower + size_t(j) * dim;
+                    const double dj = d[j];
+                    for (uint32_t k = 0; k <= j; ++k) out[k] += dj * d[k];
+                }
+            }
+        }
+    }
+    std::vector<double> lower(cells, 0.0);
+    for (uint64_t b = 0; b < blocks; ++b) {
+        const double* part = partial.data() + b * (dim + cells) + dim;
+        for (size_t c = 0; c < cells; ++c) lower[c] += part[c];
     }
     for (uint32_t j = 0; j < dim; ++j)
         for (uint32_t k = 0; k <= j; ++k) st.scatter(j, k) = st.scatter(k, j) = lower[size_t(j) * dim + k];

@@ -27,9 +27,10 @@ struct FactorStatistics {
 };
 
 // Statistics of `count` rows of a row-major [count][dim] float array,
-// accumulated in double, in row order (so the result never depends on
-// threading).
-FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t dim);
+// accumulated in double in fixed blocks of rows (each in row order, the
+// blocks' sums in block order), so the result never depends on the team:
+// `threads` > 0 caps it, 0 is OpenMP's default.
+FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t dim, int threads);
 
 // The posterior given the statistics:
 //   beta_n = beta0 + n,  nu_n = nu0 + n,

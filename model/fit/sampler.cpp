@@ -1,5 +1,6 @@
 #include "model/fit/sampler.hpp"
 
+#include <malloc.h>
 #include <omp.h>
 
 #include <algorithm>
@@ -108,27 +109,29 @@ double state_prediction(const GibbsState& st, double g, uint32_t u, uint32_t i) 
     return pred;
 }
 
-// Copies the state into kept sample s of the posterior.
-void keep_sample(const GibbsState& st, uint32_t s, uint32_t chain, Posterior& post) {
-    const size_t U = post.num_users, I = post.num_items, K = post.rank;
-    post.sample_chain[s] = chain;
-    std::copy(st.user_factors.begin(), st.user_factors.end(), post.user_factors.begin() + s * U * K);
-    std::copy(st.item_factors.begin(), st.item_factors.end(), post.item_factors.begin() + s * I * K);
+// Appends the state to the posterior as its next kept sample.
+void append_sample(const GibbsState& st, uint32_t chain, Posterior& post) {
+    const size_t K = post.rank;
+    auto append = [](std::vector<float>& to, const std::vector<float>& from) { to.insert(to.end(), from.begin(), from.end()); };
+    post.sample_chain.push_back(chain);
+    append(post.user_factors, st.user_factors);
+    append(post.item_factors, st.item_factors);
     if (post.has_biases) {
-        std::copy(st.user_bias.begin(), st.user_bias.end(), post.user_bias.begin() + s * U);
-        std::copy(st.item_bias.begin(), st.item_bias.end(), post.item_bias.begin() + s * I);
-        post.user_bias_precision[s] = float(st.user_bias_precision);
-        post.item_bias_precision[s] = float(st.item_bias_precision);
+        append(post.user_bias, st.user_bias);
+        append(post.item_bias, st.item_bias);
+        post.user_bias_precision.push_back(float(st.user_bias_precision));
+        post.item_bias_precision.push_back(float(st.item_bias_precision));
     }
-    post.noise_precision[s] = float(st.noise_precision);
+    post.noise_precision.push_back(float(st.noise_precision));
     for (size_t a = 0; a < K; ++a) {
-        post.user_mu[s * K + a] = float(st.user_mu[a]);
-        post.item_mu[s * K + a] = float(st.item_mu[a]);
-        for (size_t b = 0; b < K; ++b) {
-            post.user_lambda[(s * K + a) * K + b] = float(st.user_lambda(a, b));
-            post.item_lambda[(s * K + a) * K + b] = float(st.item_lambda(a, b));
-        }
+        post.user_mu.push_back(float(st.user_mu[a]));
+        post.item_mu.push_back(float(st.item_mu[a]));
     }
+    for (size_t a = 0; a < K; ++a)
+        for (size_t b = 0; b < K; ++b) {
+            post.user_lambda.push_back(float(st.user_lambda(a, b)));
+            post.item_lambda.push_back(float(st.item_lambda(a, b)));
+        }
 }
 
 // A start too close to zero leaves the chain near the all-zero saddle for
@@ -146,8 +149,9 @@ FitOptions resolve_init_scale(const FitOptions& o, const RatingSet& train) {
     return r;
 }
 
-// An empty posterior of the fit's shape: ids, scale, the rated-items lists,
-// and every per-sample array sized for keep_sample to fill.
+// An empty posterior of the fit's shape: ids and scale. The per-sample
+// arrays and the rated-items lists are filled after the run (keep_samples),
+// so they never sit beside the chains' kept draws.
 void shape_posterior(const RatingSet& train, const FitOptions& options, const CsrMatrix& by_user,
                      const CsrMatrix& by_item, double g, Posterior& post) {
     const uint32_t U = by_user.num_rows, I = by_item.num_rows, K = options.rank;
@@ -161,23 +165,6 @@ void shape_posterior(const RatingSet& train, const FitOptions& options, const Cs
     post.item_ids = train.items.names();
     post.global_mean = float(g);
     post.scale = train.scale;
-    const size_t S = post.num_samples;
-    post.sample_chain.resize(S);
-    post.user_factors.resize(S * U * K);
-    post.item_factors.resize(S * I * K);
-    if (options.biases) {
-        post.user_bias.resize(S * U);
-        post.item_bias.resize(S * I);
-        post.user_bias_precision.resize(S);
-        post.item_bias_precision.resize(S);
-    }
-    post.noise_precision.resize(S);
-    post.user_mu.resize(S * K);
-    post.item_mu.resize(S * K);
-    post.user_lambda.resize(S * K * K);
-    post.item_lambda.resize(S * K * K);
-    post.rated_offsets = by_user.offsets;
-    post.rated_items = by_user.index;
 }
 
 // ---- the run: chains, the sweeps they keep, checkpoints
@@ -433,11 +420,39 @@ nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user,
     return meta;
 }
 
-// `samples` of `draws`, evenly spread (all of them when there are exactly that many).
-std::vector<const Draw*> evenly(const std::vector<Draw>& draws, uint32_t samples) {
-    std::vector<const Draw*> out;
-    for (uint32_t k = 0; k < samples; ++k) out.push_back(&draws[size_t(k) * draws.size() / samples]);
-    return out;
+// Moves `samples` draws of each chain (evenly spread: draw k * n / samples
+// of n, all of them when n == samples; chain by chain, in sweep order) into the posterior's per-sample arrays. The draws not kept
+// are released first and each kept one as soon as it is copied, so a kept
+// sample is never held twice (peak memory: the draws plus one state).
+void keep_samples(std::vector<std::unique_ptr<Chain>>& chains, uint32_t samples, Posterior& post) {
+    std::vector<std::vector<Draw>> kept(chains.size());
+    for (size_t c = 0; c < chains.size(); ++c) {
+        std::vector<Draw>& draws = chains[c]->draws;
+        // Moved out, or copied while a later pick is the same draw.
+        const size_t n = draws.size();
+        for (size_t k = 0; k < samples; ++k) {
+            const size_t at = k * n / samples;
+            if (k + 1 < samples && (k + 1) * n / samples == at) kept[c].push_back(draws[at]);
+            else kept[c].push_back(std::move(draws[at]));
+        }
+        std::vector<Draw>().swap(draws);
+    }
+    const size_t S = post.num_samples, U = post.num_users, I = post.num_items, K = post.rank;
+    post.sample_chain.reserve(S);
+    post.user_factors.reserve(S * U * K);
+    post.item_factors.reserve(S * I * K);
+    if (post.has_biases) {
+        post.user_bias.reserve(S * U);
+        post.item_bias.reserve(S * I);
+    }
+    for (size_t c = 0; c < chains.size(); ++c)
+        for (Draw& d : kept[c]) {
+            append_sample(d.state, chains[c]->index, post);
+            d.state = GibbsState{};
+            // The draws were allocated in the chains' threads, in arenas
+            // that keep freed pages; hand them back before the next copy.
+            malloc_trim(0);
+        }
 }
 
 // Runs the chains to a verdict: fixed length, or checkpoint by checkpoint.
@@ -577,12 +592,11 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
     const RunRecord rec = run_chains(run, chains, parallel, validation, g, start, on_progress, result.convergence);
     timings.sampling_s = std::chrono::duration<double>(clock::now() - start).count() - timings.setup_s;
 
-    // The kept draws, chain by chain, in sweep order; the trace likewise.
-    uint32_t s = 0;
+    keep_samples(chains, options.samples, post);
+    post.rated_offsets = by_user.offsets;
+    post.rated_items = by_user.index;
+    // The trace, chain by chain.
     for (auto& c : chains) {
-        std::vector<Draw> draws;
-        std::swap(draws, c->draws);
-        for (const Draw* d : evenly(draws, options.samples)) keep_sample(d->state, s++, c->index, post);
         timings.chain_s.push_back(c->seconds);
         auto append = [](auto& to, const auto& from) { to.insert(to.end(), from.begin(), from.end()); };
         append(result.trace.chain, c->trace.chain);

@@ -22,7 +22,7 @@ TEST_CASE("factor statistics: count, mean and scatter about the mean") {
     // Rows (1,2), (3,0), (5,4): mean (3,2); deviations (-2,0), (0,-2), (2,2);
     // scatter = [[8, 4], [4, 8]] by hand.
     const std::vector<float> rows{1, 2, 3, 0, 5, 4};
-    const FactorStatistics st = factor_statistics(rows.data(), 3, 2);
+    const FactorStatistics st = factor_statistics(rows.data(), 3, 2, 1);
     CHECK(st.n == 3.0);
     CHECK(st.mean[0] == 3.0);
     CHECK(st.mean[1] == 2.0);
@@ -30,9 +30,39 @@ TEST_CASE("factor statistics: count, mean and scatter about the mean") {
     CHECK(st.scatter(0, 1) == 4.0);
     CHECK(st.scatter(1, 0) == 4.0);
     CHECK(st.scatter(1, 1) == 8.0);
-    const FactorStatistics none = factor_statistics(rows.data(), 0, 2);
+    const FactorStatistics none = factor_statistics(rows.data(), 0, 2, 1);
     CHECK(none.n == 0.0);
     CHECK(none.mean.isZero());
+}
+
+// factor_statistics sums rows in fixed blocks of 1024 (model/fit/normal_wishart.cpp),
+// so 5,000 rows span five blocks. The reference is the two-pass sum in long
+// double; the double blocked sums of n = 5,000 terms of size about 1 are
+// within gamma_n (n * 2^-53, about 6e-13; Higham, Accuracy and Stability of
+// Numerical Algorithms, 2nd ed., section 3.1) of the sum of magnitudes, so
+// 1e-9 relative is a generous bound that any wrong term would still break.
+TEST_CASE("factor statistics over several row blocks are the same on 1 and 2 threads and match a long-double sum") {
+    const uint64_t n = 5000;
+    const uint32_t dim = 3;
+    std::vector<float> rows(n * dim);
+    for (uint64_t r = 0; r < n; ++r)
+        for (uint32_t k = 0; k < dim; ++k) rows[r * dim + k] = float(std::sin(0.37 * double(r) + k) + 0.1 * k);
+    const FactorStatistics one = factor_statistics(rows.data(), n, dim, 1);
+    const FactorStatistics two = factor_statistics(rows.data(), n, dim, 2);
+    CHECK(one.mean == two.mean);
+    CHECK(one.scatter == two.scatter);
+    std::vector<long double> mean(dim, 0.0L);
+    for (uint64_t r = 0; r < n; ++r)
+        for (uint32_t k = 0; k < dim; ++k) mean[k] += rows[r * dim + k];
+    for (uint32_t k = 0; k < dim; ++k) mean[k] /= n;
+    for (uint32_t j = 0; j < dim; ++j) {
+        CHECK(one.mean[j] == Approx(double(mean[j])).epsilon(1e-9).margin(1e-12));
+        for (uint32_t k = 0; k < dim; ++k) {
+            long double sum = 0.0L;
+            for (uint64_t r = 0; r < n; ++r) sum += (rows[r * dim + j] - mean[j]) * (rows[r * dim + k] - mean[k]);
+            CHECK(one.scatter(j, k) == Approx(double(sum)).epsilon(1e-9).margin(1e-9));
+        }
+    }
 }
 
 TEST_CASE("one-dimensional posterior update matches hand arithmetic") {
@@ -49,7 +79,7 @@ TEST_CASE("one-dimensional posterior update matches hand arithmetic") {
     prior.beta = 2.0;
     prior.w = Eigen::MatrixXd::Identity(1, 1);
     prior.nu = 1.0;
-    const NormalWishart post = normal_wishart_posterior(prior, factor_statistics(rows.data(), 3, 1));
+    const NormalWishart post = normal_wishart_posterior(prior, factor_statistics(rows.data(), 3, 1, 1));
     CHECK(post.beta == Approx(5.0).epsilon(1e-14));
     CHECK(post.nu == Approx(4.0).epsilon(1e-14));
     CHECK(post.mu[0] == Approx(1.2).epsilon(1e-14));
@@ -66,7 +96,7 @@ TEST_CASE("two-dimensional posterior update matches an independent numpy computa
     prior.w.resize(2, 2);
     prior.w << 2.0, 0.5, 0.5, 1.0;
     prior.nu = 3.0;
-    const NormalWishart post = normal_wishart_posterior(prior, factor_statistics(rows.data(), 4, 2));
+    const NormalWishart post = normal_wishart_posterior(prior, factor_statistics(rows.data(), 4, 2, 1));
     const std::string ref = run_python_inline(
         "import numpy as np\n"
         "x=np.array([[0.5,1.0],[-1.0,2.0],[2.0,0.0],[1.5,-0.5]]); n=len(x)\n"
@@ -97,7 +127,7 @@ TEST_CASE("the posterior update rejects a prior scale that is not positive defin
     prior.w << 1.0, 3.0, 3.0, 1.0;
     prior.nu = 2.0;
     const std::vector<float> rows{1, 2};
-    CHECK_THROWS_AS(normal_wishart_posterior(prior, factor_statistics(rows.data(), 1, 2)), NumericError);
+    CHECK_THROWS_AS(normal_wishart_posterior(prior, factor_statistics(rows.data(), 1, 2, 1)), NumericError);
 }
 
 TEST_CASE("joint draws: E[Lambda] = nu W and E[mu] = mu") {

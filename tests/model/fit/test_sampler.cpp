@@ -299,35 +299,37 @@ GibbsState swapped_bias_precisions(const GibbsState& st) {
     return out;
 }
 
-void composed_moves(const FitOptions& o, const SweepKey& key, GibbsState& st, Broken broken) {
+void composed_moves(const FitOptions& o, const SweepKey& key, GibbsState& st, Broken broken, int threads) {
     FitOptions wrong = o;
     wrong.prior.w0_scale = 2.0 * o.prior.w0_scale;
     wrong.prior.beta0 = o.prior.beta0 / 4.0;
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, 3);
+        FactorMap map = identity_factor_map(st.rank);
         for (uint32_t k = 0; k < st.rank; ++k) {
             const ScaleConditional c = scale_conditional(broken == Broken::scale_w0 ? wrong : o, st, k);
-            scale_factor_axis(st, k, std::exp(0.5 * (c.log_eta + draw_log_symmetric_gig(rng, c.omega))));
+            scale_factor_axis(st, map, k, std::exp(0.5 * (c.log_eta + draw_log_symmetric_gig(rng, c.omega))));
         }
         for (uint32_t i = 0; i < st.rank; ++i)
             for (uint32_t j = 0; j < st.rank; ++j) {
                 if (i == j) continue;
                 ShearConditional c = shear_conditional(o, st, i, j);
                 if (broken == Broken::shear_zero_mean) c.mean = 0.0;
-                shear_factor_axes(st, i, j, c.mean + rng.normal() * c.sd);
+                shear_factor_axes(st, map, i, j, c.mean + rng.normal() * c.sd);
             }
         symmetrize_precisions(st);
+        apply_factor_map(st, map, threads);
     }
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, 0);
-        const ShiftConditional c = user_shift_conditional(broken == Broken::user_shift_beta0 ? wrong : o, st);
-        shift_users(st, draw_shift(c, rng, key, "user"));
+        const ShiftConditional c = user_shift_conditional(broken == Broken::user_shift_beta0 ? wrong : o, st, threads);
+        shift_users(st, draw_shift(c, rng, key, "user"), threads);
     }
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, 1);
         const ShiftConditional c =
-            item_shift_conditional(o, broken == Broken::item_shift_users ? user_hyper_as_items(st) : st);
-        shift_items(st, draw_shift(c, rng, key, "item"));
+            item_shift_conditional(o, broken == Broken::item_shift_users ? user_hyper_as_items(st) : st, threads);
+        shift_items(st, draw_shift(c, rng, key, "item"), threads);
     }
     {
         Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, StreamBlock::group_moves, 2);
@@ -593,7 +595,7 @@ std::vector<std::vector<double>> fit_with_moves(const RatingSet& ratings, int re
     for (uint32_t t = 0; t < sbc_burn_in + sbc_draws * sbc_thin; ++t) {
         const SweepKey key{seed, 0, t};
         gibbs_sweep(data, plain, key, st, 1);
-        composed_moves(o, key, st, broken);
+        composed_moves(o, key, st, broken, 1);
         if (t >= sbc_burn_in && (t - sbc_burn_in + 1) % sbc_thin == 0) draws.push_back(sbc_quantities(st));
     }
     return draws;
@@ -621,8 +623,8 @@ TEST_CASE("the group moves composed from their seam are apply_group_moves, bit f
         const GibbsState start = forward_state(rng, o, 40, 30);
         GibbsState product = start, composed = start;
         const SweepKey key{31, 1, t};
-        apply_group_moves(o, key, product);
-        composed_moves(o, key, composed, Broken::none);
+        apply_group_moves(o, key, product, 1);
+        composed_moves(o, key, composed, Broken::none, 1);
         CHECK(product.user_factors == composed.user_factors);
         CHECK(product.item_factors == composed.item_factors);
         CHECK(product.user_bias == composed.user_bias);
@@ -635,6 +637,75 @@ TEST_CASE("the group moves composed from their seam are apply_group_moves, bit f
         CHECK(product.user_factors != start.user_factors);
         CHECK(product.item_bias != start.item_bias);
     }
+}
+
+// The row passes of the moves sum rows in fixed blocks of 1024
+// (model/fit/group_moves.cpp), so a state of several blocks per side shows
+// whether the team size reaches the bits.
+TEST_CASE("the group moves give the same bits on 1 and 2 threads for states of several row blocks") {
+    FitOptions o = geweke_options();
+    o.rank = 4;
+    Rng rng(17);
+    for (uint32_t t = 0; t < 3; ++t) {
+        const GibbsState start = forward_state(rng, o, 5000, 2500);
+        GibbsState one = start, two = start;
+        const SweepKey key{41, 0, t};
+        apply_group_moves(o, key, one, 1);
+        apply_group_moves(o, key, two, 2);
+        CHECK(one.user_factors == two.user_factors);
+        CHECK(one.item_factors == two.item_factors);
+        CHECK(one.user_bias == two.user_bias);
+        CHECK(one.item_bias == two.item_bias);
+        CHECK(one.user_mu == two.user_mu);
+        CHECK(one.item_lambda == two.item_lambda);
+        CHECK(one.user_factors != start.user_factors);
+    }
+}
+
+// The scalings and shears are composed into one matrix per side and the
+// factors moved once; moving each column one map at a time in double (as
+// the maps are defined in model/fit/group_moves.hpp) must land on the same
+// factors up to float32 rounding. Tolerance: each factor is rounded once
+// (relative 6e-8) and the double sums of the composition differ from the
+// step-by-step ones by about K(K - 1) rounding errors of 1.1e-16 scaled by
+// the map's entries (a few units here); 1e-5 relative with a 1e-5 margin
+// for entries near zero is far above both and far below any wrong step
+// (one shear left out moves a coordinate by |c| times another, about 0.1).
+TEST_CASE("the composed factor map moves the factors as the scalings and shears one at a time would") {
+    FitOptions o = geweke_options();
+    o.rank = 6;
+    Rng rng(23);
+    const GibbsState start = forward_state(rng, o, 50, 40);
+    const uint32_t K = start.rank;
+    GibbsState mapped = start;
+    FactorMap map = identity_factor_map(K);
+    // Step by step in double: U[:, k] *= s, V[:, k] /= s; U[:, i] += c U[:, j], V[:, j] -= c V[:, i].
+    std::vector<double> u(start.user_factors.begin(), start.user_factors.end());
+    std::vector<double> v(start.item_factors.begin(), start.item_factors.end());
+    for (uint32_t k = 0; k < K; ++k) {
+        const double s = 0.7 + 0.2 * k;
+        scale_factor_axis(mapped, map, k, s);
+        for (size_t r = 0; r < u.size(); r += K) u[r + k] *= s;
+        for (size_t r = 0; r < v.size(); r += K) v[r + k] /= s;
+    }
+    for (uint32_t i = 0; i < K; ++i)
+        for (uint32_t j = 0; j < K; ++j) {
+            if (i == j) continue;
+            const double c = 0.1 * rng.normal();
+            shear_factor_axes(mapped, map, i, j, c);
+            for (size_t r = 0; r < u.size(); r += K) u[r + i] += c * u[r + j];
+            for (size_t r = 0; r < v.size(); r += K) v[r + j] -= c * v[r + i];
+        }
+    // The maps compose without touching the factors.
+    CHECK(mapped.user_factors == start.user_factors);
+    apply_factor_map(mapped, map, 2);
+    for (size_t x = 0; x < u.size(); ++x) CHECK(mapped.user_factors[x] == Approx(u[x]).epsilon(1e-5).margin(1e-5));
+    for (size_t x = 0; x < v.size(); ++x) CHECK(mapped.item_factors[x] == Approx(v[x]).epsilon(1e-5).margin(1e-5));
+    // Predictions are unchanged by the maps (item = user^-T): U . V before and after.
+    for (uint32_t a = 0; a < 50; a += 7)
+        for (uint32_t b = 0; b < 40; b += 5)
+            CHECK(dot_rows(mapped.user_factors, a, mapped.item_factors, b, K) ==
+                  Approx(dot_rows(start.user_factors, a, start.item_factors, b, K)).epsilon(1e-4).margin(1e-4));
 }
 
 // Each move broken in turn, the rest of the sampler intact: the sweep runs
@@ -653,7 +724,7 @@ TEST_CASE("the Geweke test notices each group move when it is broken, and a wron
         return geweke_z(
             [&](const GibbsData& data, const SweepKey& key, GibbsState& st) {
                 gibbs_sweep(data, plain, key, st, 1);
-                composed_moves(o, key, st, broken);
+                composed_moves(o, key, st, broken, 1);
             },
             n, 99);
     };
