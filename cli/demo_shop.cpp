@@ -57,19 +57,18 @@ std::string csv_field(const std::string& s) {
     return q + "\"";
 }
 
-}  // namespace
+// The invented catalogue: each product has a category, a popularity and a
+// taste vector that leans towards its category's axis. Draws from `rng` (the
+// same draws in the same order as ever, so the demo's files do not change).
+struct DemoProduct {
+    std::string sku, name;
+    int category;
+    double popularity, bias;
+    std::array<double, kTasteRank> taste;
+};
 
-DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOptions& o) {
-    namespace fs = std::filesystem;
-    std::error_code ec;
-    fs::create_directories(directory, ec);
-    if (ec) throw FileError("cannot create the folder " + directory + ": " + ec.message() + "; check the path");
-    Rng rng = Rng::keyed(o.seed, 0, 0, StreamBlock::simulate, 0);
-
-    // Catalogue: each product has a category, a popularity and a taste vector
-    // that leans towards its category's axis.
-    struct Product { std::string sku, name; int category; double popularity, bias; std::array<double, kTasteRank> taste; };
-    std::vector<Product> products;
+std::vector<DemoProduct> invent_catalogue(const DemoShopOptions& o, Rng& rng) {
+    std::vector<DemoProduct> products;
     std::vector<std::string> used;
     for (uint32_t p = 0; p < o.products; ++p) {
         const int c = static_cast<int>(p % kCategories.size());
@@ -78,7 +77,7 @@ DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOption
         const auto repeats = std::count(used.begin(), used.end(), name);
         used.push_back(name);
         if (repeats > 0) name += fmt::format(" No. {}", repeats + 1);
-        Product prod;
+        DemoProduct prod;
         prod.sku = fmt::format("{}-{:04d}", cat.slug, p / kCategories.size() + 1);
         prod.name = name;
         prod.category = c;
@@ -89,6 +88,20 @@ DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOption
     }
     // Shuffle popularity across categories so every aisle has hits.
     for (size_t p = products.size(); p > 1; --p) std::swap(products[p - 1].popularity, products[rng.below(p)].popularity);
+
+    return products;
+}
+
+}  // namespace
+
+DemoShopFiles write_demo_shop(const std::string& directory, const DemoShopOptions& o) {
+    namespace fs = std::filesystem;
+    std::error_code ec;
+    fs::create_directories(directory, ec);
+    if (ec) throw FileError("cannot create the folder " + directory + ": " + ec.message() + "; check the path");
+    Rng rng = Rng::keyed(o.seed, 0, 0, StreamBlock::simulate, 0);
+
+    const std::vector<DemoProduct> products = invent_catalogue(o, rng);
 
     std::vector<double> cumulative(products.size());
     double acc = 0;
