@@ -174,7 +174,7 @@ std::string encode_metadata(const Posterior& p) {
 //
 // While a temporary file exists its path sits in one of these slots; SIGINT
 // and SIGTERM then unlink every listed file before the signal takes its
-// previous course (re-raised with the handler that was there before). The
+// usual effect (re-raised with the handler that was there before). The
 // handler only reads the slots and calls unlink, sigaction and raise, which
 // are async-signal-safe (POSIX.1-2017 section 2.4.3).
 constexpr int kTempSlots = 16;
