@@ -205,7 +205,8 @@ ServeOptions load_serve_config(const std::string& toml_path, ServeOptions base) 
     if (!t) throw OptionError("config " + toml_path + ": serve must be a table ([serve])");
 
     for (const auto& [name, node] : *t) {
-        const auto* key = std::find_if(kKeys.begin(), kKeys.end(), [&](const auto& k) { return k.name == name.str(); });
+        const std::string_view key_name = name.str();  // a named copy: clang 14 cannot capture a structured binding
+        const auto* key = std::find_if(kKeys.begin(), kKeys.end(), [&](const auto& k) { return k.name == key_name; });
         if (key == kKeys.end())
             throw OptionError("config " + toml_path + ": [serve] " + std::string(name.str()) +
                         " is not a known option; the options are " + known_names() +
