@@ -4,7 +4,6 @@
 // rating after the check, and a gate that refuses to replace the live model
 // when the new one is worse or did not converge (exit code 3, cli/main.cpp).
 #include <cmath>
-#include <ctime>
 #include <filesystem>
 #include <functional>
 #include <iostream>
@@ -28,6 +27,7 @@
 #include "model/fit/convergence_summary.hpp"
 #include "model/fit/sampler.hpp"
 #include "model/fit/warm_start.hpp"
+#include "model/posterior/posterior.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/predict.hpp"
 
@@ -48,15 +48,6 @@ struct FitFlags {
     bool gate = false;
     bool quiet = false;
 };
-
-std::string utc_now_iso8601() {
-    const std::time_t now = std::time(nullptr);
-    std::tm tm{};
-    gmtime_r(&now, &tm);
-    char buf[32];
-    std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
-    return buf;
-}
 
 std::string describe_verdict(const FitResult& r) {
     const ConvergenceSummary& c = r.convergence;

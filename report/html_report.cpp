@@ -8,12 +8,12 @@
 
 #include <algorithm>
 #include <cmath>
-#include <ctime>
 #include <map>
 #include <optional>
 #include <stdexcept>
 
 #include "model/fit/convergence_summary.hpp"
+#include "model/posterior/posterior.hpp"
 #include "model/predict/item_statistics.hpp"
 #include "model/predict/predict.hpp"
 #include "report/svg_plot.hpp"
@@ -145,15 +145,6 @@ std::string meta_text(const nlohmann::json& meta, std::initializer_list<const ch
     return escape_xml(at->dump());
 }
 
-std::string utc_now() {
-    const std::time_t now = std::time(nullptr);
-    std::tm tm{};
-    gmtime_r(&now, &tm);
-    char buf[32];
-    std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
-    return buf;
-}
-
 std::string provenance(const nlohmann::json& meta, const std::string& verdict_line) {
     const bool fixed = meta_text(meta, {"run_length", "mode"}) == "fixed";
     std::string o = "<section id=\"provenance\"><h2>Provenance</h2>";
@@ -162,7 +153,7 @@ std::string provenance(const nlohmann::json& meta, const std::string& verdict_li
         o += fmt::format("<div><b>{}</b>{}</div>", value, label);
     };
     fact("model created (UTC)", meta_text(meta, {"created_at"}));
-    fact("report written (UTC)", utc_now());
+    fact("report written (UTC)", utc_now_iso8601());
     fact("Credence version", meta_text(meta, {"credence_version"}));
     fact("seed", meta_text(meta, {"seed"}));
     fact("sweeps per chain", meta_text(meta, {"sweeps_per_chain"}));

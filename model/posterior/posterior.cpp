@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <ctime>
 #include <stdexcept>
 #include <string>
 #include <vector>
@@ -184,6 +185,15 @@ Posterior without_user(const Posterior& p, uint32_t user) {
     }
     out.diagnostics_json = diagnostics_without(p.diagnostics_json, p.user_ids[u]);
     return out;
+}
+
+std::string utc_now_iso8601() {
+    const std::time_t now = std::time(nullptr);
+    std::tm tm{};
+    gmtime_r(&now, &tm);
+    char buf[32];
+    std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
+    return buf;
 }
 
 }  // namespace credence

@@ -113,4 +113,9 @@ struct Posterior {
 // caller maps ids first, so that is a bug).
 Posterior without_user(const Posterior& p, uint32_t user);
 
+// The current time as written into fit metadata's created_at and the
+// report's date: UTC, ISO 8601 to the second ("2026-12-04T02:10:40Z").
+// Never throws.
+std::string utc_now_iso8601();
+
 }  // namespace credence
