@@ -53,7 +53,8 @@ const char* describe(CsvProblem problem) {
 CsvReader::CsvReader(std::FILE* file, std::function<void(std::string_view)> on_bytes,
                      size_t buffer_bytes, size_t max_record_bytes)
     : file_(file), on_bytes_(std::move(on_bytes)), max_record_bytes_(std::max<size_t>(max_record_bytes, 64)) {
-    buffer_.resize(std::max(buffer_bytes, 2 * max_record_bytes_));
+    capacity_bytes_ = std::max(buffer_bytes, 2 * max_record_bytes_);
+    buffer_.resize(std::min(capacity_bytes_, initial_buffer_bytes));
 }
 
 void CsvReader::set_max_record_lines(uint32_t lines) {
@@ -74,6 +75,10 @@ bool CsvReader::fill() {
         end_ -= begin_;
         begin_ = 0;
     }
+    // Every byte in the buffer came from the file, so a buffer that has seen
+    // as many bytes as it holds (a long file, or one record filling it) grows.
+    if (buffer_.size() < capacity_bytes_ && bytes_read_ >= buffer_.size())
+        buffer_.resize(std::min(capacity_bytes_, buffer_.size() * 4));
     const size_t want = buffer_.size() - end_;
     const size_t got = std::fread(buffer_.data() + end_, 1, want, file_);
     if (got < want) {

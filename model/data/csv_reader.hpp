@@ -51,11 +51,14 @@ public:
     static constexpr size_t default_buffer_bytes = size_t{4} << 20;
     static constexpr size_t default_max_record_bytes = size_t{1} << 20;
     static constexpr uint32_t default_max_record_lines = 8;
+    static constexpr size_t initial_buffer_bytes = size_t{64} << 10;
 
     // Needs: `file` open for reading; it is not owned and not closed.
     // `on_bytes` (optional) sees every byte read from the file exactly once,
     // in order, BOM included, a buffer-full at a time: the hook for hashing
-    // and progress. buffer_bytes is raised to at least 2 * max_record_bytes.
+    // and progress. buffer_bytes is raised to at least 2 * max_record_bytes;
+    // the buffer starts at initial_buffer_bytes and grows fourfold up to it
+    // while the input keeps coming, so a small file never pays for a large one.
     explicit CsvReader(std::FILE* file, std::function<void(std::string_view)> on_bytes = {},
                        size_t buffer_bytes = default_buffer_bytes,
                        size_t max_record_bytes = default_max_record_bytes);
@@ -99,7 +102,8 @@ private:
 
     std::FILE* file_;
     std::function<void(std::string_view)> on_bytes_;
-    std::vector<char> buffer_;
+    std::vector<char> buffer_;  // grows toward capacity_bytes_ (see fill)
+    size_t capacity_bytes_;
     size_t begin_ = 0;          // start of the unconsumed input in buffer_
     size_t end_ = 0;            // end of valid bytes in buffer_
     bool eof_ = false;

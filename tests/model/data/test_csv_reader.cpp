@@ -182,6 +182,26 @@ TEST_CASE("results do not depend on where buffer refills fall") {
     }
 }
 
+TEST_CASE("records longer than the first buffer are read whole once the buffer grows toward its capacity") {
+    // The buffer starts at initial_buffer_bytes (64 KiB) and grows while input
+    // keeps coming; a 300 KiB field and a long file after it read as with a
+    // buffer that large from the start, and the byte hook sees every byte once.
+    const std::string wide(300 * 1024, 'w');
+    std::string text = "a,\"";
+    text.append(wide).append("\",1\n");
+    for (int i = 0; i < 20000; ++i)
+        text.append("c").append(std::to_string(i)).append(",p").append(std::to_string(i % 97)).append(",4\n");
+    static_assert(CsvReader::initial_buffer_bytes < 300 * 1024);
+    std::string seen;
+    const auto rows = read_all(text, ',', CsvReader::default_buffer_bytes, CsvReader::default_max_record_bytes, &seen);
+    REQUIRE(rows.size() == 20001);
+    CHECK(rows[0].problem == CsvProblem::none);
+    CHECK(rows[0].fields == Fields{"a", wide, "1"});
+    CHECK(rows[20000].fields == Fields{"c19999", "p17", "4"});
+    CHECK(rows[20000].line == 20001);
+    CHECK(seen == text);
+}
+
 TEST_CASE("peek shows the start without consuming it") {
     auto f = memory_file("\xEF\xBB\xBFx;y\n1;2\n");
     CsvReader reader(f.get());
