@@ -41,9 +41,21 @@ if ((${#missing[@]} == 0)); then
   echo "setup: all ${#packages[@]} packages present"
   exit 0
 fi
-echo "setup: installing ${missing[*]}"
+# apt's and dpkg's own output goes to a log (hundreds of lines on a fresh
+# machine); the terminal gets one line, and the log's end when it fails.
+root="$(cd "$(dirname "$0")/.." && pwd)"
+log_dir="${CREDENCE_BUILD_DIR:-$root/build}"
+mkdir -p "$log_dir"
+log="$log_dir/setup.log"
+echo "setup: installing ${#missing[@]} Debian packages (${missing[*]}); log: $log"
 sudo_cmd=()
 if [[ $(id -u) != 0 ]]; then sudo_cmd=(sudo); fi
 export DEBIAN_FRONTEND=noninteractive
-"${sudo_cmd[@]}" apt-get update -qq
-"${sudo_cmd[@]}" apt-get install -y -qq --no-install-recommends "${missing[@]}"
+started_s=$SECONDS
+if ! { "${sudo_cmd[@]}" apt-get update -qq && \
+       "${sudo_cmd[@]}" apt-get install -y -qq --no-install-recommends "${missing[@]}"; } >"$log" 2>&1; then
+  echo "setup: apt-get failed; the end of $log:" >&2
+  tail -n 20 "$log" >&2
+  exit 1
+fi
+echo "setup: installed in $((SECONDS - started_s)) s"
