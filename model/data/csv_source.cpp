@@ -55,14 +55,13 @@ CsvSource::CsvSource(const std::string& path, std::optional<char> delimiter,
     std::error_code ec;
     if (!from_stdin && std::filesystem::is_directory(path, ec))
         throw FileError(fmt::format("{} is a directory; pass the ratings file inside it", path));
-    file_ = from_stdin ? stdin : std::fopen(path.c_str(), "rb");
+    file_.reset(from_stdin ? stdin : std::fopen(path.c_str(), "rb"));
     if (!file_) throw FileError(fmt::format("cannot open {}: {}; check the path", path, std::strerror(errno)));
-    owned_ = !from_stdin;
     if (!from_stdin) {
         const auto size = std::filesystem::file_size(path, ec);
         if (!ec) bytes_total_ = size;
     }
-    reader_ = std::make_unique<CsvReader>(file_, [this](std::string_view chunk) {
+    reader_ = std::make_unique<CsvReader>(file_.get(), [this](std::string_view chunk) {
         XXH3_64bits_update(hash_.get(), chunk.data(), chunk.size());
         bytes_done_ += chunk.size();
         if (progress_) progress_(bytes_done_, bytes_total_);
@@ -87,9 +86,12 @@ CsvSource::CsvSource(const std::string& path, std::optional<char> delimiter,
     }
 }
 
+void CsvSource::close_unless_stdin(std::FILE* file) {
+    if (file && file != stdin) std::fclose(file);
+}
+
 CsvSource::~CsvSource() {
-    reader_.reset();
-    if (owned_ && file_) std::fclose(file_);
+    reader_.reset();  // before file_, which it reads
 }
 
 bool CsvSource::next(SourceRow& row) {

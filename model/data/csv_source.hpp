@@ -38,8 +38,9 @@ public:
 
 private:
     std::string name_;
-    std::FILE* file_ = nullptr;
-    bool owned_ = false;
+    // Closed on destruction (also when the constructor throws) unless it is stdin.
+    static void close_unless_stdin(std::FILE* file);
+    std::unique_ptr<std::FILE, void (*)(std::FILE*)> file_{nullptr, &close_unless_stdin};
     std::unique_ptr<XXH3_state_t, XXH_errorcode (*)(XXH3_state_t*)> hash_;
     uint64_t bytes_total_ = 0;
     uint64_t bytes_done_ = 0;

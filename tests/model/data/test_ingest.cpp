@@ -657,6 +657,26 @@ TEST_CASE("UTF-16 and UTF-32 input is named, with or without a byte-order mark")
     CHECK_THROWS_WITH(ingest_ratings(options_for(binary)), Catch::Contains("NUL bytes"));
 }
 
+TEST_CASE("input refused before the first row leaves no file open") {
+    // Found by fuzz_csv_reader: a refusal in the source's constructor (UTF-16,
+    // no delimiter, no rows) left the export's FILE open, one per attempt.
+    const auto dir = testing::scratch_dir("ingest_refused_fd");
+    const std::vector<std::pair<std::string, std::string>> cases = {
+        {std::string("\xFF\xFEu\0,\0i\0", 8), "UTF-16"},
+        {"justoneword\n", "delimiter"},
+        {"\n \n", "no rows"},
+    };
+    auto open_fds = [] { return std::distance(fs::directory_iterator("/proc/self/fd"), fs::directory_iterator{}); };
+    const auto before = open_fds();
+    for (const auto& [bytes, what] : cases) {
+        const auto path = write_file(dir, "export.csv", bytes);
+        INFO(what);
+        for (int attempt = 0; attempt < 20; ++attempt)
+            CHECK_THROWS_WITH(ingest_ratings(options_for(path)), Catch::Contains(what));
+    }
+    CHECK(open_fds() == before);
+}
+
 TEST_CASE("a rejects file never holds a raw NUL byte") {
     const auto dir = testing::scratch_dir("ingest_rejects_nul");
     std::string text = "user,item,rating\n";
