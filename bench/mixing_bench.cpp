@@ -89,6 +89,20 @@ Headline print_variant(const std::string& name, const FitOptions& o, const FitRe
     return h;
 }
 
+// The dense (user, item) index of the pair named by its external ids;
+// exits with status 2 naming an id the data lack.
+std::pair<uint32_t, uint32_t> pair_index(const Posterior& p, const std::string& user, const std::string& item) {
+    auto find = [](const std::vector<std::string>& ids, const std::string& id, const char* what) {
+        const auto at = std::find(ids.begin(), ids.end(), id);
+        if (at == ids.end()) {
+            std::fprintf(stderr, "mixing_bench: --trace-pair: no %s with id %s in the training data\n", what, id.c_str());
+            std::exit(2);
+        }
+        return static_cast<uint32_t>(at - ids.begin());
+    };
+    return {find(p.user_ids, user, "customer"), find(p.item_ids, item, "product")};
+}
+
 // Per kept sample: chain, tau, bias precisions, traces of the factor
 // covariances, mu_U . mu_V, mean biases, mean squared factor norms.
 // With a pair (user, item index): that prediction and its parts (biases,
@@ -179,8 +193,9 @@ int main(int argc, char** argv) {
     app.add_option("--split-seed", split_seed, "seed of the held-out split (default: --seed)");
     app.add_flag("--all-predictions", all_predictions, "one line per probe prediction, not only min and median");
     app.add_option("--trace", trace_path, "write per-sample scalars (TSV) of the last variant here");
-    std::vector<uint32_t> trace_pair;
-    app.add_option("--trace-pair", trace_pair, "user and item index whose prediction and its parts the trace adds")
+    std::vector<std::string> trace_pair;
+    app.add_option("--trace-pair", trace_pair,
+                   "customer and product id (as in the ratings and the prediction(...) labels) whose prediction and its parts the trace adds")
         ->expected(2)->delimiter(',');
     app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
     CLI11_PARSE(app, argc, argv);
@@ -239,7 +254,8 @@ int main(int argc, char** argv) {
         }
         if (!trace_path.empty())
             write_trace(fit.posterior, trace_path,
-                        trace_pair.size() == 2 ? std::optional(std::pair(trace_pair[0], trace_pair[1])) : std::nullopt);
+                        trace_pair.size() == 2 ? std::optional(pair_index(fit.posterior, trace_pair[0], trace_pair[1]))
+                                               : std::nullopt);
         std::fflush(stdout);
     }
     if (headlines.size() == 2) {
