@@ -3,11 +3,13 @@
 //   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank 10]
 //                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
 //                [--seed 1] [--threads 0] [--moves off,on] [--all-predictions]
-//                [--trace FILE]
+//                [--trace FILE [--trace-pair CUSTOMER,PRODUCT]] [--converged]
 //
-// "off" is the plain Gibbs sweep (FitOptions::group_moves = false), "on" the
-// sampler as shipped. Both are fixed-length runs of the same length, assessed
-// on every sweep after burn-in (as the fit's convergence check does).
+// Variants: "off" is the plain Gibbs sweep (no group moves, plain row
+// draws), "moves" adds the group moves (FitOptions::group_moves), "on" is the
+// sampler as shipped (group moves and overrelaxed row draws,
+// FitOptions::overrelaxation). All are runs of the same length, assessed on
+// every sweep after burn-in (as the fit's convergence check does).
 // Fits the same data once per sampler variant and prints, for the quantities
 // the convergence check monitors (model/fit/convergence_summary.hpp), the
 // bulk- and tail-ESS (Vehtari et al. 2021) per sweep and per second of
@@ -197,7 +199,9 @@ int main(int argc, char** argv) {
     app.add_option("--trace-pair", trace_pair,
                    "customer and product id (as in the ratings and the prediction(...) labels) whose prediction and its parts the trace adds")
         ->expected(2)->delimiter(',');
-    app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
+    app.add_option("--moves", moves,
+                   "comma list of variants: off (plain Gibbs), moves (with group moves), on (as shipped: group moves "
+                   "and overrelaxed row draws)");
     CLI11_PARSE(app, argc, argv);
 
     if (converged) o.run_length = RunLength::converged;
@@ -227,7 +231,12 @@ int main(int argc, char** argv) {
     std::vector<std::pair<std::string, Headline>> headlines;
     for (std::string variant; std::getline(list, variant, ',');) {
         FitOptions v = o;
-        v.group_moves = variant == "on";
+        if (variant != "off" && variant != "moves" && variant != "on") {
+            std::fprintf(stderr, "mixing_bench: --moves: unknown variant '%s' (off, moves, on)\n", variant.c_str());
+            return 2;
+        }
+        v.group_moves = variant != "off";
+        if (variant != "on") v.overrelaxation = 0.0;
         const FitResult fit = fit_bpmf(train, v);
         headlines.emplace_back(variant, print_variant(variant, v, fit, fit.convergence, all_predictions));
         if (!test.empty()) {
@@ -258,11 +267,11 @@ int main(int argc, char** argv) {
                                                : std::nullopt);
         std::fflush(stdout);
     }
-    if (headlines.size() == 2) {
-        const Headline &before = headlines[0].second, &after = headlines[1].second;
+    for (size_t later = 1; later < headlines.size(); ++later) {
+        const Headline &before = headlines[0].second, &after = headlines[later].second;
         std::printf("\nslowest hyperparameter quantity, ESS/s: %s %.2f (%s) -> %s %.2f (%s): %.1fx\n",
                     headlines[0].first.c_str(), before.slowest_hyper_ess_per_s, before.slowest_hyper.c_str(),
-                    headlines[1].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
+                    headlines[later].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
                     after.slowest_hyper_ess_per_s / before.slowest_hyper_ess_per_s);
         std::printf("predictions, ESS/s: slowest %.2f -> %.2f (%.1fx), median %.2f -> %.2f (%.1fx)\n",
                     before.slowest_prediction_ess_per_s, after.slowest_prediction_ess_per_s,
