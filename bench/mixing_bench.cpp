@@ -170,7 +170,7 @@ void write_trace(const Posterior& p, const std::string& path, std::optional<std:
 
 int main(int argc, char** argv) {
     CLI::App app{"mixing_bench: ESS per sweep and per second of the monitored quantities"};
-    std::string ratings, scale, moves = "off,on";
+    std::string ratings, scale, moves = "off,moves,on";
     double holdout = 0.0;
     FitOptions o;
     o.run_length = RunLength::fixed;
