@@ -3,11 +3,13 @@
 //   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank 10]
 //                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
 //                [--seed 1] [--threads 0] [--moves off,on] [--all-predictions]
-//                [--trace FILE]
+//                [--trace FILE [--trace-pair CUSTOMER,PRODUCT]] [--converged]
 //
-// "off" is the plain Gibbs sweep (FitOptions::group_moves = false), "on" the
-// sampler as shipped. Both are fixed-length runs of the same length, assessed
-// on every sweep after burn-in (as the fit's convergence check does).
+// Variants: "off" is the plain Gibbs sweep (no group moves, plain row
+// draws), "moves" adds the group moves (FitOptions::group_moves), "on" is the
+// sampler as shipped (group moves and overrelaxed row draws,
+// FitOptions::overrelaxation). All are runs of the same length, assessed on
+// every sweep after burn-in (as the fit's convergence check does).
 // Fits the same data once per sampler variant and prints, for the quantities
 // the convergence check monitors (model/fit/convergence_summary.hpp), the
 // bulk- and tail-ESS (Vehtari et al. 2021) per sweep and per second of
@@ -89,6 +91,20 @@ Headline print_variant(const std::string& name, const FitOptions& o, const FitRe
     return h;
 }
 
+// The dense (user, item) index of the pair named by its external ids;
+// exits with status 2 naming an id the data lack.
+std::pair<uint32_t, uint32_t> pair_index(const Posterior& p, const std::string& user, const std::string& item) {
+    auto find = [](const std::vector<std::string>& ids, const std::string& id, const char* what) {
+        const auto at = std::find(ids.begin(), ids.end(), id);
+        if (at == ids.end()) {
+            std::fprintf(stderr, "mixing_bench: --trace-pair: no %s with id %s in the training data\n", what, id.c_str());
+            std::exit(2);
+        }
+        return static_cast<uint32_t>(at - ids.begin());
+    };
+    return {find(p.user_ids, user, "customer"), find(p.item_ids, item, "product")};
+}
+
 // Per kept sample: chain, tau, bias precisions, traces of the factor
 // covariances, mu_U . mu_V, mean biases, mean squared factor norms.
 // With a pair (user, item index): that prediction and its parts (biases,
@@ -154,7 +170,7 @@ void write_trace(const Posterior& p, const std::string& path, std::optional<std:
 
 int main(int argc, char** argv) {
     CLI::App app{"mixing_bench: ESS per sweep and per second of the monitored quantities"};
-    std::string ratings, scale, moves = "off,on";
+    std::string ratings, scale, moves = "off,moves,on";
     double holdout = 0.0;
     FitOptions o;
     o.run_length = RunLength::fixed;
@@ -179,10 +195,13 @@ int main(int argc, char** argv) {
     app.add_option("--split-seed", split_seed, "seed of the held-out split (default: --seed)");
     app.add_flag("--all-predictions", all_predictions, "one line per probe prediction, not only min and median");
     app.add_option("--trace", trace_path, "write per-sample scalars (TSV) of the last variant here");
-    std::vector<uint32_t> trace_pair;
-    app.add_option("--trace-pair", trace_pair, "user and item index whose prediction and its parts the trace adds")
+    std::vector<std::string> trace_pair;
+    app.add_option("--trace-pair", trace_pair,
+                   "customer and product id (as in the ratings and the prediction(...) labels) whose prediction and its parts the trace adds")
         ->expected(2)->delimiter(',');
-    app.add_option("--moves", moves, "comma list of variants: off (plain Gibbs), on (with group moves)");
+    app.add_option("--moves", moves,
+                   "comma list of variants: off (plain Gibbs), moves (with group moves), on (as shipped: group moves "
+                   "and overrelaxed row draws)");
     CLI11_PARSE(app, argc, argv);
 
     if (converged) o.run_length = RunLength::converged;
@@ -212,7 +231,12 @@ int main(int argc, char** argv) {
     std::vector<std::pair<std::string, Headline>> headlines;
     for (std::string variant; std::getline(list, variant, ',');) {
         FitOptions v = o;
-        v.group_moves = variant == "on";
+        if (variant != "off" && variant != "moves" && variant != "on") {
+            std::fprintf(stderr, "mixing_bench: --moves: unknown variant '%s' (off, moves, on)\n", variant.c_str());
+            return 2;
+        }
+        v.group_moves = variant != "off";
+        if (variant != "on") v.overrelaxation = 0.0;
         const FitResult fit = fit_bpmf(train, v);
         headlines.emplace_back(variant, print_variant(variant, v, fit, fit.convergence, all_predictions));
         if (!test.empty()) {
@@ -239,14 +263,15 @@ int main(int argc, char** argv) {
         }
         if (!trace_path.empty())
             write_trace(fit.posterior, trace_path,
-                        trace_pair.size() == 2 ? std::optional(std::pair(trace_pair[0], trace_pair[1])) : std::nullopt);
+                        trace_pair.size() == 2 ? std::optional(pair_index(fit.posterior, trace_pair[0], trace_pair[1]))
+                                               : std::nullopt);
         std::fflush(stdout);
     }
-    if (headlines.size() == 2) {
-        const Headline &before = headlines[0].second, &after = headlines[1].second;
+    for (size_t later = 1; later < headlines.size(); ++later) {
+        const Headline &before = headlines[0].second, &after = headlines[later].second;
         std::printf("\nslowest hyperparameter quantity, ESS/s: %s %.2f (%s) -> %s %.2f (%s): %.1fx\n",
                     headlines[0].first.c_str(), before.slowest_hyper_ess_per_s, before.slowest_hyper.c_str(),
-                    headlines[1].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
+                    headlines[later].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
                     after.slowest_hyper_ess_per_s / before.slowest_hyper_ess_per_s);
         std::printf("predictions, ESS/s: slowest %.2f -> %.2f (%.1fx), median %.2f -> %.2f (%.1fx)\n",
                     before.slowest_prediction_ess_per_s, after.slowest_prediction_ess_per_s,

@@ -87,7 +87,8 @@ struct KernelScratch {
 // Draws every row of one side with the active level's kernels
 // (model/fit/row_kernels.hpp); rows in parallel, each from its own stream.
 void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const Eigen::VectorXd& prior_mean,
-               double tau, double g, uint32_t rank, bool biases, const SweepKey& key, int threads) {
+               double tau, double g, uint32_t rank, bool biases, const RowDrawRule& rule, const SweepKey& key,
+               int threads) {
     const Eigen::Index d = rank + (biases ? 1 : 0);
     const Eigen::VectorXd prior_pm = prior_precision * prior_mean;
     const Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> prior_rows = prior_precision;
@@ -105,6 +106,8 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
     side.tau = tau;
     side.prior_precision = prior_rows.data();
     side.prior_pm = prior_pm.data();
+    side.overrelax = rule.overrelax;
+    side.overrelax_noise = rule.noise_scale;
     const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
     const auto rows = static_cast<int64_t>(csr.num_rows);
     // The first failure by row order wins, so the message does not depend on scheduling.
@@ -224,7 +227,16 @@ GibbsState initial_state(const GibbsData& data, const FitOptions& o, uint64_t se
     return st;
 }
 
+RowDrawRule row_draw_rule(const FitOptions& o) {
+    return {o.overrelaxation, std::sqrt(1.0 - o.overrelaxation * o.overrelaxation)};
+}
+
 void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key, GibbsState& st, int threads) {
+    gibbs_sweep(data, o, row_draw_rule(o), key, st, threads);
+}
+
+void gibbs_sweep(const GibbsData& data, const FitOptions& o, const RowDrawRule& rule, const SweepKey& key,
+                 GibbsState& st, int threads) {
     const CsrMatrix& by_user = *data.by_user;
     const CsrMatrix& by_item = *data.by_item;
     const uint32_t users = by_user.num_rows, items = by_item.num_rows;
@@ -236,7 +248,7 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key
     draw_side(SidePass{&by_user, st.item_factors.data(), o.biases ? st.item_bias.data() : nullptr,
                        st.user_factors.data(), o.biases ? st.user_bias.data() : nullptr, "user",
                        StreamBlock::user_rows, nullptr},
-              prior_precision, prior_mean, st.noise_precision, data.global_mean, o.rank, o.biases, key, threads);
+              prior_precision, prior_mean, st.noise_precision, data.global_mean, o.rank, o.biases, rule, key, threads);
 
     draw_hyper(st.item_factors, items, o, key, StreamBlock::item_hyper, threads, st.item_mu, st.item_lambda);
     row_prior(st.item_mu, st.item_lambda, o.biases, st.item_bias_precision, prior_precision, prior_mean);
@@ -244,7 +256,7 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const SweepKey& key
     draw_side(SidePass{&by_item, st.user_factors.data(), o.biases ? st.user_bias.data() : nullptr,
                        st.item_factors.data(), o.biases ? st.item_bias.data() : nullptr, "item",
                        StreamBlock::item_rows, sse_rows.data()},
-              prior_precision, prior_mean, st.noise_precision, data.global_mean, o.rank, o.biases, key, threads);
+              prior_precision, prior_mean, st.noise_precision, data.global_mean, o.rank, o.biases, rule, key, threads);
     // Summed in row order: identical for any thread count.
     st.sse = 0.0;
     for (double v : sse_rows) st.sse += v;

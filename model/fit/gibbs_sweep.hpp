@@ -48,12 +48,27 @@ struct SweepKey {
 GibbsState initial_state(const GibbsData& data, const FitOptions& options, uint64_t seed, uint32_t chain);
 
 // One sweep in place: user hyperparameters, user rows, item hyperparameters,
-// item rows, bias precisions, tau. `threads` > 0 caps the OpenMP team for the
-// row loops; the result is bit-identical for any value. Throws NumericError
-// naming chain, sweep, side and row when a conditional precision is not
-// positive definite or a draw is not finite; the state is then unusable.
+// item rows, bias precisions, tau, then the group moves. `threads` > 0 caps
+// the OpenMP team for the row loops; the result is bit-identical for any
+// value. Throws NumericError naming chain, sweep, side and row when a
+// conditional precision is not positive definite or a draw is not finite;
+// the state is then unusable. Needs options that fit_bpmf would accept.
 void gibbs_sweep(const GibbsData& data, const FitOptions& options, const SweepKey& key, GibbsState& state,
                  int threads);
+
+// How the row draws use the row's current value x (model/fit/row_kernels.hpp):
+// new = mean + overrelax (x - mean) + noise_scale L^-T z. The sweep uses
+// row_draw_rule(options), noise_scale = sqrt(1 - overrelax^2), the only
+// choice that leaves each row's conditional invariant; the overload below
+// takes any rule so that the joint-distribution test can show it notices a
+// wrong one.
+struct RowDrawRule {
+    double overrelax = 0.0;
+    double noise_scale = 1.0;
+};
+RowDrawRule row_draw_rule(const FitOptions& options);
+void gibbs_sweep(const GibbsData& data, const FitOptions& options, const RowDrawRule& rule, const SweepKey& key,
+                 GibbsState& state, int threads);
 
 // Where a row draw happens, for error messages.
 struct RowContext {

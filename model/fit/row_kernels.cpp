@@ -301,9 +301,11 @@ bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
 }
 
 // out = U^-1 (U^-T rhs + z): the mean P^-1 rhs plus U^-1 z, whose covariance
-// is (U^T U)^-1 = P^-1.
+// is (U^T U)^-1 = P^-1. Overrelaxed (side.overrelax = a != 0, `current` the
+// row's value x): out = U^-1 ((1 - a) U^-T rhs + sqrt(1 - a^2) z) + a x.
 template <uint32_t DD>
-void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* inv, const double* z, double* out) {
+void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, const double* inv, const double* z,
+                    const double* current, double* out) {
     const uint32_t d = DD > 0 ? DD : d_runtime;
     const size_t ld = s.ld;
     double* c = s.c;
@@ -314,12 +316,19 @@ void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* inv, con
         const double* uj = s.a + j * ld;
         for (uint32_t i = j + 1; i < d; ++i) c[i] = c[i] - uj[i] * cj;
     }
-    for (uint32_t i = 0; i < d; ++i) c[i] = c[i] + z[i];
+    if (current) {
+        const double keep = 1.0 - side.overrelax, noise = side.overrelax_noise;
+        for (uint32_t i = 0; i < d; ++i) c[i] = keep * c[i] + noise * z[i];
+    } else {
+        for (uint32_t i = 0; i < d; ++i) c[i] = c[i] + z[i];
+    }
     for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
         const double xi = c[i] * inv[i];
         out[i] = xi;
         for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - s.a[k * ld + i] * xi;
     }
+    if (current)
+        for (uint32_t i = 0; i < d; ++i) out[i] = out[i] + side.overrelax * current[i];
 }
 
 // Squared residuals of n gathered ratings with the stored row w (bias in w[K]).
@@ -359,7 +368,15 @@ bool draw_row_for(const SideData& side, uint64_t row, const double* normals, dou
     double* inv = s.u;
     bool ok = cholesky<DD>(s.a, inv, d, s.ld);
     if (ok) {
-        solve_and_draw<DD>(s, d, inv, normals, out);
+        // The row's current value, for an overrelaxed draw (s.w is free
+        // until the residuals below).
+        const double* current = nullptr;
+        if (side.overrelax != 0.0) {
+            for (uint32_t k = 0; k < K; ++k) s.w[k] = static_cast<double>(factor[k]);
+            if (BIASES) s.w[K] = static_cast<double>(*bias);
+            current = s.w;
+        }
+        solve_and_draw<DD>(side, s, d, inv, normals, current, out);
         for (uint32_t i = 0; i < d; ++i) ok = ok && finite(out[i]);
     }
     if (!ok) {

@@ -8,7 +8,12 @@
 // t = sum y x, sum y and n, form the precision
 //     P = prior_precision + tau [[F, s], [s^T, n]]     (the bias block only with biases)
 // and rhs = prior_pm + tau [t; sum y], factor P = L L^T (Cholesky, double),
-// and draw mean + L^-T z = L^-T (L^-1 rhs + z) for standard normals z.
+// and draw mean + L^-T z = L^-T (L^-1 rhs + z) for standard normals z, or,
+// overrelaxed with coefficient a (Adler 1981; Neal 1998, section 2), from
+// the row's current value x: mean + a (x - mean) + sqrt(1 - a^2) L^-T z =
+// L^-T ((1 - a) L^-1 rhs + sqrt(1 - a^2) z) + a x. For any a in (-1, 1) that
+// transition leaves the conditional N(mean, P^-1) invariant and is
+// reversible with respect to it; a = 0 is the plain draw.
 // Optionally the squared residuals of the row's ratings with the new row as
 // stored (rounded to float32), for the noise precision's conditional.
 //
@@ -47,6 +52,8 @@ struct SideData {
     double tau = 0.0;                         // noise precision
     const double* prior_precision = nullptr;  // [d][d] row-major, symmetric, d = rank + (biases ? 1 : 0)
     const double* prior_pm = nullptr;         // [d]: prior precision times prior mean
+    double overrelax = 0.0;                   // a above, in (-1, 1); 0: the plain draw
+    double overrelax_noise = 1.0;             // sqrt(1 - a^2), computed once by the caller
 };
 
 // Ratings gathered at once; a longer row is gathered in parts (and, for the
@@ -73,7 +80,8 @@ struct Table {
     void (*conditional)(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs);
 
     // Draws row `row` with normals[d] standard normals: writes factor[rank]
-    // and, with biases, *bias, rounded to float32; when sse is not null,
+    // and, with biases, *bias, rounded to float32 (with side.overrelax != 0
+    // their values on entry are the row's current value x); when sse is not null,
     // *sse = the row's sum of squared residuals with those stored values.
     // Returns false, writing nothing but *smallest_diagonal (P's smallest
     // diagonal entry), when P is not positive definite or the draw is not

@@ -60,6 +60,8 @@ void validate_options(const FitOptions& o) {
                    "the R-hat target must be a finite number of at least 1");
     require_option(o.convergence.min_ess_per_chain >= 0.0 && std::isfinite(o.convergence.min_ess_per_chain),
                    "the ESS target must be a finite number of at least 0");
+    require_option(o.overrelaxation > -1.0 && o.overrelaxation < 1.0,
+                   "the overrelaxation coefficient must lie strictly between -1 and 1");
     require_option(o.threads >= 0, "--threads must be 0 (all cores) or positive");
     require_option(positive_finite(o.fixed_noise_precision), "--fixed-noise-precision must be positive and finite");
     require_option(std::isfinite(o.init_scale), "the init scale must be finite (negative: automatic)");
@@ -81,6 +83,7 @@ nlohmann::json options_json(const FitOptions& o) {
             {"target_rhat", o.convergence.max_rhat},
             {"target_ess_per_chain", o.convergence.min_ess_per_chain},
             {"group_moves", o.group_moves},
+            {"overrelaxation", o.overrelaxation},
             {"burn_in", o.burn_in},
             {"samples", o.samples},
             {"thin", o.thin},

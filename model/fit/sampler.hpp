@@ -97,6 +97,12 @@ struct FitOptions {
     // Joint moves after each sweep (model/fit/group_moves.hpp); each leaves
     // the posterior exactly invariant. Off only to measure what they buy.
     bool group_moves = true;
+    // Overrelaxed row draws (model/fit/row_kernels.hpp): each row moves to
+    // mean + a (current - mean) + sqrt(1 - a^2) x noise, which leaves its
+    // Gaussian conditional exactly invariant for any a in (-1, 1); a < 0
+    // steps past the mean and so suppresses the random walk of slowly
+    // changing factor directions (Adler 1981). 0: plain Gibbs draws.
+    double overrelaxation = -0.7;
 };
 
 // What the sampler reports while it runs (for progress lines), from the

@@ -603,9 +603,10 @@ std::vector<std::vector<double>> fit_with_moves(const RatingSet& ratings, int re
 
 }  // namespace
 
-TEST_CASE("Geweke joint-distribution test: the sweep and its group moves leave the model's joint distribution invariant") {
+TEST_CASE("Geweke joint-distribution test: the sweep, its overrelaxed row draws and its group moves leave the model's joint distribution invariant") {
     const FitOptions o = geweke_options();
     REQUIRE(o.group_moves);
+    REQUIRE(o.overrelaxation != 0.0);
     const std::vector<double> z = geweke_z(
         [&](const GibbsData& data, const SweepKey& key, GibbsState& st) { gibbs_sweep(data, o, key, st, 1); },
         200000, 99);
@@ -715,7 +716,10 @@ TEST_CASE("the composed factor map moves the factors as the scalings and shears 
 // reaches 6 with probability about 1e-7 per function). The last case breaks
 // the sweep itself, not a move: its Normal-Wishart update for the factor
 // hyperparameters uses nu0 + 1 degrees of freedom while the prior draws use nu0.
-TEST_CASE("the Geweke test notices each group move when it is broken, and a wrong Wishart degrees of freedom") {
+// A third kind breaks the overrelaxed row draws: the step past the mean is
+// kept but the noise is not shrunk by sqrt(1 - a^2), so each row draw
+// widens its conditional instead of keeping it.
+TEST_CASE("the Geweke test notices each group move when it is broken, a wrong Wishart degrees of freedom and overrelaxed draws with full noise") {
     const FitOptions o = geweke_options();
     FitOptions plain = o;
     plain.group_moves = false;
@@ -750,6 +754,16 @@ TEST_CASE("the Geweke test notices each group move when it is broken, and a wron
     const auto [largest, where] = worst(z);
     INFO("Wishart with nu0 + 1: largest |z| = " << largest << " (" << where << ")\n" << describe(z));
     CHECK(largest > 6.0);
+
+    REQUIRE(o.overrelaxation != 0.0);
+    const RowDrawRule full_noise{o.overrelaxation, 1.0};
+    const auto zo = geweke_z(
+        [&](const GibbsData& data, const SweepKey& key, GibbsState& st) { gibbs_sweep(data, o, full_noise, key, st, 1); },
+        n, 99);
+    const auto [largest_o, where_o] = worst(zo);
+    INFO("overrelaxed row draws with noise scale 1: largest |z| = " << largest_o << " (" << where_o << ")\n"
+                                                                       << describe(zo));
+    CHECK(largest_o > 6.0);
 }
 
 // Table values of the chi-square distribution's upper quantiles (recalled
