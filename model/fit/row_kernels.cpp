@@ -47,6 +47,8 @@ typedef double Vec __attribute__((vector_size(kLanes * sizeof(double)), __may_al
 #define CREDENCE_INLINE inline __attribute__((always_inline))
 
 CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>(p); }
+typedef double VecUnaligned __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(sizeof(double))));
+CREDENCE_INLINE Vec load_unaligned(const double* p) { return *reinterpret_cast<const VecUnaligned*>(p); }
 CREDENCE_INLINE void store(double* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
 // Every lane x (not Vec{} + x, which must compute 0 + x for x = -0).
 CREDENCE_INLINE Vec splat(double x) {
@@ -244,15 +246,20 @@ double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
         accumulate<KK>(side, s, n, at == begin);
     }
     const double tau = side.tau, count = static_cast<double>(end - begin);
+    const Vec tau_v = splat(tau);
     double smallest = 0.0;
     for (uint32_t i = 0; i < d; ++i) {
         double* a = s.a + i * ld;
         const double* prior = side.prior_precision + size_t(i) * d;
         const double* gram = s.gram + size_t(i) * p;
-        // The lower part is never a result; zeroed a vector at a time (the
-        // last store reaches past i, into entries the next loop writes).
-        for (uint32_t k = 0; k < i; k += kLanes) store(a + k, Vec{});
-        for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * gram[k];
+        // Whole vectors from the one holding column i, as the Cholesky
+        // factorization and the solves read them: the entries left of i in
+        // that vector are never results, but they are finite (prior and
+        // gram are, in every entry these loads reach). Entries left of that
+        // vector are never read.
+        uint32_t k = i / kLanes * kLanes;
+        for (; k + kLanes <= K; k += kLanes) store(a + k, load_unaligned(prior + k) + tau_v * load(gram + k));
+        for (; k < K; ++k) a[k] = prior[k] + tau * gram[k];
         for (size_t k = d; k < ld; ++k) a[k] = 0.0;  // padding
         if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
         s.rhs[i] = side.prior_pm[i] + tau * (i < K ? s.t[i] : sum_y);
@@ -270,23 +277,24 @@ CREDENCE_INLINE bool finite(double v) { return v - v == 0.0; }
 // ed., sections 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square
 // roots stay off the chain of dependent pivots. Rows are contiguous, so the
 // updates vectorize across entries. False if a pivot is not positive and finite.
-template <uint32_t DD>
-bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
+// With DD > 0 the sizes are compile-time constants (DD = d, LD = ld).
+template <uint32_t DD, size_t LD>
+bool cholesky(double* __restrict a, double* __restrict inv, uint32_t d_runtime, size_t ld_runtime) {
     const uint32_t d = DD > 0 ? DD : d_runtime;
-    // Each row update runs over whole 8-double blocks from the one holding
-    // column j + 1 to ld: the extra entries are row i's lower part and
-    // padding, which are never read as results (form_conditional zeroes
-    // them, so they stay finite), and the loops need no remainders.
+    const size_t ld = DD > 0 ? LD : ld_runtime;
+    // Row i's update runs over whole vectors from the one holding column i
+    // to ld: the extra entries are row i's lower part and padding, which are
+    // never read as results (form_conditional zeroes them, so they stay
+    // finite), and the loops need no remainders.
     for (uint32_t j = 0; j < d; ++j) {
         const double* uj = a + j * ld;
         const double pivot = uj[j];
         if (!(pivot > 0.0) || !finite(pivot)) return false;
         const double r = 1.0 / pivot;
-        const size_t from = (j + 1) / 8 * 8;
         for (uint32_t i = j + 1; i < d; ++i) {
-            const double f = uj[i] * r;
+            const Vec f = splat(uj[i] * r);
             double* ai = a + i * ld;
-            for (size_t k = from; k < ld; ++k) ai[k] = ai[k] - f * uj[k];
+            for (size_t k = i / kLanes * kLanes; k < ld; k += kLanes) store(ai + k, load(ai + k) - f * load(uj + k));
         }
     }
     for (uint32_t j = 0; j < d; ++j) {
@@ -294,31 +302,39 @@ bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
         const double l = __builtin_sqrt(uj[j]);
         const double q = 1.0 / l;
         inv[j] = q;
-        for (size_t k = j / 8 * 8; k < ld; ++k) uj[k] = uj[k] * q;
+        const Vec qv = splat(q);
+        for (size_t k = j / kLanes * kLanes; k < ld; k += kLanes) store(uj + k, load(uj + k) * qv);
         uj[j] = l;
     }
     return true;
 }
 
 // out = U^-1 (U^-T rhs + z): the mean P^-1 rhs plus U^-1 z, whose covariance
-// is (U^T U)^-1 = P^-1.
-template <uint32_t DD>
-void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* inv, const double* z, double* out) {
+// is (U^T U)^-1 = P^-1. The forward pass runs by rows of U, vectorized
+// across the entries below j (entries at or above j in the same vector get
+// values never read: the results go to out first); the backward pass by
+// columns of U.
+template <uint32_t DD, size_t LD>
+void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* __restrict inv, const double* __restrict z,
+                    double* __restrict out) {
     const uint32_t d = DD > 0 ? DD : d_runtime;
-    const size_t ld = s.ld;
-    double* c = s.c;
+    const size_t ld = DD > 0 ? LD : s.ld;
+    const double* __restrict u = s.a;
+    double* __restrict c = s.c;
     for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
+    for (size_t i = d; i < ld; ++i) c[i] = 0.0;
     for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
         const double cj = c[j] * inv[j];
-        c[j] = cj;
-        const double* uj = s.a + j * ld;
-        for (uint32_t i = j + 1; i < d; ++i) c[i] = c[i] - uj[i] * cj;
+        out[j] = cj;
+        const Vec cv = splat(cj);
+        const double* uj = u + j * ld;
+        for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
     }
-    for (uint32_t i = 0; i < d; ++i) c[i] = c[i] + z[i];
+    for (uint32_t i = 0; i < d; ++i) c[i] = out[i] + z[i];
     for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
         const double xi = c[i] * inv[i];
         out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - s.a[k * ld + i] * xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
     }
 }
 
@@ -352,14 +368,15 @@ template <uint32_t KK, bool BIASES>
 bool draw_row_for(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
                   float* bias, double* sse, double* smallest_diagonal) {
     constexpr uint32_t DD = KK > 0 ? KK + (BIASES ? 1 : 0) : 0;
+    constexpr size_t LD = pad8(KK + 1);  // s.ld when KK > 0
     const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
     const Scratch s = layout(scratch, K);
     const double smallest = form_conditional<KK, BIASES>(side, row, s);
     double* out = s.spare;
     double* inv = s.u;
-    bool ok = cholesky<DD>(s.a, inv, d, s.ld);
+    bool ok = cholesky<DD, LD>(s.a, inv, d, s.ld);
     if (ok) {
-        solve_and_draw<DD>(s, d, inv, normals, out);
+        solve_and_draw<DD, LD>(s, d, inv, normals, out);
         for (uint32_t i = 0; i < d; ++i) ok = ok && finite(out[i]);
     }
     if (!ok) {
