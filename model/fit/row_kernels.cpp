@@ -272,29 +272,106 @@ CREDENCE_INLINE bool finite(double v) { return v - v == 0.0; }
 
 // Cholesky P = U^T U of the upper triangle of a (row-major, ld), in place;
 // inv[j] = 1 / U[j][j]. Symmetric elimination first (a[i][k] -= a[j][i]
-// a[j][k] / a[j][j], right-looking, every entry updated in the order of j as
-// the textbook sums would be: Golub & Van Loan, Matrix Computations, 4th
-// ed., sections 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square
-// roots stay off the chain of dependent pivots. Rows are contiguous, so the
-// updates vectorize across entries. False if a pivot is not positive and finite.
-// With DD > 0 the sizes are compile-time constants (DD = d, LD = ld).
+// a[j][k] / a[j][j], every entry updated in the order of j as the textbook
+// sums would be: Golub & Van Loan, Matrix Computations, 4th ed., sections
+// 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square roots stay
+// off the chain of dependent pivots. Rows are contiguous, so the updates
+// vectorize across entries. False if a pivot is not positive and finite.
+//
+// Each row's update runs over whole vectors from the one holding its
+// diagonal to ld: the extra entries are the row's lower part and padding,
+// which are never read as results (form_conditional fills them with finite
+// values, so they stay finite), and the loops need no remainders.
+
+// Rows eliminated together by the fixed-size factorization: their vectors
+// stay in registers while the rows above them are subtracted.
+constexpr uint32_t kRegisterBudget = CREDENCE_KERNEL_LEVEL == 2 ? 24 : 12;
+constexpr uint32_t group_rows(size_t vectors_per_row) {
+    const size_t g = kRegisterBudget / (vectors_per_row > 0 ? vectors_per_row : 1);
+    return g < 1 ? 1 : g > 4 ? 4 : static_cast<uint32_t>(g);
+}
+
+// Rows [I0, I0 + G) of a d = D, ld = LD matrix (left-looking): loads them,
+// subtracts every finished row j < I0 in order of j, then finishes them one
+// by one, each subtracted from the later ones in the group as soon as it is
+// done. The same operations on every entry, in the same order, as the
+// row-at-a-time elimination in cholesky() below. r[j] = 1 / pivot j.
+template <uint32_t D, size_t LD, uint32_t I0, uint32_t G>
+CREDENCE_INLINE bool eliminate_group(double* __restrict a, double* __restrict r) {
+    constexpr uint32_t V0 = I0 / kLanes, NV = static_cast<uint32_t>(LD / kLanes) - V0;
+    Vec acc[G][NV];
+#pragma GCC unroll 4
+    for (uint32_t g = 0; g < G; ++g)
+#pragma GCC unroll 8
+        for (uint32_t v = 0; v < NV; ++v)  // (vectors left of the row's own are zeroed, not left stale)
+            acc[g][v] = V0 + v < (I0 + g) / kLanes ? Vec{} : load(a + (I0 + g) * LD + (V0 + v) * kLanes);
+    for (uint32_t j = 0; j < I0; ++j) {
+        const double* ej = a + j * LD;
+        const double rj = r[j];
+        Vec f[G];
+#pragma GCC unroll 4
+        for (uint32_t g = 0; g < G; ++g) f[g] = splat(ej[I0 + g] * rj);
+#pragma GCC unroll 8
+        for (uint32_t v = 0; v < NV; ++v) {
+            const Vec e = load(ej + (V0 + v) * kLanes);
+#pragma GCC unroll 4
+            for (uint32_t g = 0; g < G; ++g) acc[g][v] = acc[g][v] - f[g] * e;
+        }
+    }
+    bool ok = true;
+#pragma GCC unroll 4
+    for (uint32_t g = 0; g < G; ++g) {
+        const uint32_t i = I0 + g;
+        const double pivot = acc[g][i / kLanes - V0][i % kLanes];
+        ok = ok && pivot > 0.0 && finite(pivot);
+        const double rg = 1.0 / pivot;
+        r[i] = rg;
+#pragma GCC unroll 4
+        for (uint32_t h = g + 1; h < G; ++h) {
+            const uint32_t col = I0 + h;
+            const Vec f = splat(acc[g][col / kLanes - V0][col % kLanes] * rg);
+#pragma GCC unroll 8
+            for (uint32_t v = 0; v < NV; ++v) acc[h][v] = acc[h][v] - f * acc[g][v];
+        }
+#pragma GCC unroll 8
+        for (uint32_t v = 0; v < NV; ++v) store(a + i * LD + (V0 + v) * kLanes, acc[g][v]);
+    }
+    return ok;
+}
+
+template <uint32_t D, size_t LD, uint32_t I0>
+CREDENCE_INLINE bool eliminate_from(double* __restrict a, double* __restrict r) {
+    if constexpr (I0 >= D) {
+        return true;
+    } else {
+        constexpr uint32_t G0 = group_rows(LD / kLanes - I0 / kLanes);
+        constexpr uint32_t G = G0 < D - I0 ? G0 : D - I0;
+        if (!eliminate_group<D, LD, I0, G>(a, r)) return false;
+        return eliminate_from<D, LD, I0 + G>(a, r);
+    }
+}
+
+// With DD > 0 the sizes are compile-time constants (DD = d, LD = ld) and the
+// elimination runs by groups of rows (eliminate_group); with DD == 0, a row
+// at a time, right-looking.
 template <uint32_t DD, size_t LD>
 bool cholesky(double* __restrict a, double* __restrict inv, uint32_t d_runtime, size_t ld_runtime) {
     const uint32_t d = DD > 0 ? DD : d_runtime;
     const size_t ld = DD > 0 ? LD : ld_runtime;
-    // Row i's update runs over whole vectors from the one holding column i
-    // to ld: the extra entries are row i's lower part and padding, which are
-    // never read as results (form_conditional zeroes them, so they stay
-    // finite), and the loops need no remainders.
-    for (uint32_t j = 0; j < d; ++j) {
-        const double* uj = a + j * ld;
-        const double pivot = uj[j];
-        if (!(pivot > 0.0) || !finite(pivot)) return false;
-        const double r = 1.0 / pivot;
-        for (uint32_t i = j + 1; i < d; ++i) {
-            const Vec f = splat(uj[i] * r);
-            double* ai = a + i * ld;
-            for (size_t k = i / kLanes * kLanes; k < ld; k += kLanes) store(ai + k, load(ai + k) - f * load(uj + k));
+    if constexpr (DD > 0) {
+        // inv holds 1 / pivot until the scaling below replaces it.
+        if (!eliminate_from<DD, LD, 0>(a, inv)) return false;
+    } else {
+        for (uint32_t j = 0; j < d; ++j) {
+            const double* uj = a + j * ld;
+            const double pivot = uj[j];
+            if (!(pivot > 0.0) || !finite(pivot)) return false;
+            const double r = 1.0 / pivot;
+            for (uint32_t i = j + 1; i < d; ++i) {
+                const Vec f = splat(uj[i] * r);
+                double* ai = a + i * ld;
+                for (size_t k = i / kLanes * kLanes; k < ld; k += kLanes) store(ai + k, load(ai + k) - f * load(uj + k));
+            }
         }
     }
     for (uint32_t j = 0; j < d; ++j) {
