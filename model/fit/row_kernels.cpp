@@ -415,12 +415,72 @@ void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* __restri
     }
 }
 
-// Squared residuals of n gathered ratings with the stored row w (bias in w[K]).
+#if CREDENCE_KERNEL_LEVEL > 0
+// t[k] = lane i of r[i] at k: the kLanes x kLanes block of gathered rows
+// r[0 .. kLanes) turned so that each vector holds one column (the shuffles
+// of the usual unpack-and-permute transposition).
+CREDENCE_INLINE void transpose(const Vec (&r)[kLanes], Vec (&t)[kLanes]) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    Vec a[8], b[8];
+    for (int i = 0; i < 8; i += 2) {
+        a[i] = __builtin_shufflevector(r[i], r[i + 1], 0, 8, 2, 10, 4, 12, 6, 14);
+        a[i + 1] = __builtin_shufflevector(r[i], r[i + 1], 1, 9, 3, 11, 5, 13, 7, 15);
+    }
+    // b[0]: columns 0 and 4 of rows 0-3; b[1]: 2, 6; b[2]: 1, 5; b[3]: 3, 7; b[4..8): rows 4-7
+    for (int h = 0; h < 8; h += 4) {
+        b[h] = __builtin_shufflevector(a[h], a[h + 2], 0, 1, 4, 5, 8, 9, 12, 13);
+        b[h + 1] = __builtin_shufflevector(a[h], a[h + 2], 2, 3, 6, 7, 10, 11, 14, 15);
+        b[h + 2] = __builtin_shufflevector(a[h + 1], a[h + 3], 0, 1, 4, 5, 8, 9, 12, 13);
+        b[h + 3] = __builtin_shufflevector(a[h + 1], a[h + 3], 2, 3, 6, 7, 10, 11, 14, 15);
+    }
+    constexpr int column_of[4] = {0, 2, 1, 3};
+    for (int q = 0; q < 4; ++q) {
+        t[column_of[q]] = __builtin_shufflevector(b[q], b[q + 4], 0, 1, 4, 5, 8, 9, 12, 13);
+        t[column_of[q] + 4] = __builtin_shufflevector(b[q], b[q + 4], 2, 3, 6, 7, 10, 11, 14, 15);
+    }
+#else
+    const Vec a0 = __builtin_shufflevector(r[0], r[1], 0, 4, 2, 6);
+    const Vec a1 = __builtin_shufflevector(r[0], r[1], 1, 5, 3, 7);
+    const Vec a2 = __builtin_shufflevector(r[2], r[3], 0, 4, 2, 6);
+    const Vec a3 = __builtin_shufflevector(r[2], r[3], 1, 5, 3, 7);
+    t[0] = __builtin_shufflevector(a0, a2, 0, 1, 4, 5);
+    t[1] = __builtin_shufflevector(a1, a3, 0, 1, 4, 5);
+    t[2] = __builtin_shufflevector(a0, a2, 2, 3, 6, 7);
+    t[3] = __builtin_shufflevector(a1, a3, 2, 3, 6, 7);
+#endif
+}
+#endif
+
+// Squared residuals of n gathered ratings with the stored row w (bias in
+// w[K]): each prediction sums its terms in column order, each squared error
+// is added in rating order. Above the baseline, kLanes ratings at a time,
+// one per lane (their rows turned into columns), which performs the same
+// operations on each rating.
 template <uint32_t KK, bool BIASES>
 double residuals(const SideData& side, const Scratch& s, uint32_t n) {
     const uint32_t K = rank_of<KK>(side);
     double sse = 0.0;
-    for (uint32_t r = 0; r < n; ++r) {
+    uint32_t r = 0;
+#if CREDENCE_KERNEL_LEVEL > 0
+    for (; r + kLanes <= n; r += kLanes) {
+        const double* x = s.x + size_t(r) * s.p;
+        Vec prediction = BIASES ? splat(s.w[K]) : Vec{};
+        for (uint32_t k0 = 0; k0 < K; k0 += kLanes) {
+            Vec rows[kLanes], columns[kLanes];
+            for (int i = 0; i < kLanes; ++i) rows[i] = load(x + size_t(i) * s.p + k0);
+            transpose(rows, columns);
+            const uint32_t m = K - k0 < uint32_t(kLanes) ? K - k0 : uint32_t(kLanes);
+            for (uint32_t k = 0; k < m; ++k) {
+                const Vec term = columns[k] * splat(s.w[k0 + k]);
+                prediction = prediction + term;
+            }
+        }
+        const Vec e = load(s.y + r) - prediction;
+        const Vec squares = e * e;
+        for (int i = 0; i < kLanes; ++i) sse = sse + squares[i];
+    }
+#endif
+    for (; r < n; ++r) {
         const double* x = s.x + size_t(r) * s.p;
         double prediction = BIASES ? s.w[K] : 0.0;
         for (uint32_t k = 0; k < K; ++k) prediction = prediction + x[k] * s.w[k];
