@@ -50,6 +50,7 @@ CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>
 typedef double VecUnaligned __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(sizeof(double))));
 CREDENCE_INLINE Vec load_unaligned(const double* p) { return *reinterpret_cast<const VecUnaligned*>(p); }
 CREDENCE_INLINE void store(double* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
+CREDENCE_INLINE void store_unaligned(double* p, Vec v) { *reinterpret_cast<VecUnaligned*>(p) = v; }
 // Every lane x (not Vec{} + x, which must compute 0 + x for x = -0).
 CREDENCE_INLINE Vec splat(double x) {
 #if CREDENCE_KERNEL_LEVEL == 2
@@ -571,14 +572,48 @@ void conditional(const SideData& side, uint64_t row, double* scratch, double* pr
     else conditional_for<0, false>(side, row, scratch, precision, rhs);
 }
 
+// Outputs [col0, col0 + 8 NP) of the map of one row (in: its floats), into out.
+template <uint32_t NP>
+CREDENCE_INLINE void map_outputs(const float* in, uint32_t K, const double* map, size_t stride, size_t col0,
+                                 double* out) {
+    constexpr int kVectors = static_cast<int>(NP) * kPerPanel;
+    Vec acc[kVectors];
+    for (int v = 0; v < kVectors; ++v) acc[v] = Vec{};
+    for (uint32_t m = 0; m < K; ++m) {
+        const Vec x = splat(static_cast<double>(in[m]));
+        const double* column = map + size_t(m) * stride + col0;
+        for (int v = 0; v < kVectors; ++v) {
+            const Vec product = load_unaligned(column + v * kLanes) * x;
+            acc[v] = acc[v] + product;
+        }
+    }
+    for (int v = 0; v < kVectors; ++v) store_unaligned(out + col0 + v * kLanes, acc[v]);
+}
+
+// Up to 4 panels (32 outputs) at a time, so the sums stay in registers.
+void map_rows(float* rows, uint64_t count, uint32_t K, const double* map, size_t stride, double* out) {
+    for (uint64_t r = 0; r < count; ++r) {
+        float* row = rows + r * K;
+        for (size_t col0 = 0; col0 < stride; col0 += 4 * kPanel) {
+            switch ((stride - col0) / kPanel) {
+                case 1: map_outputs<1>(row, K, map, stride, col0, out); break;
+                case 2: map_outputs<2>(row, K, map, stride, col0, out); break;
+                case 3: map_outputs<3>(row, K, map, stride, col0, out); break;
+                default: map_outputs<4>(row, K, map, stride, col0, out); break;
+            }
+        }
+        for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<float>(out[k]);
+    }
+}
+
 }  // namespace
 
 #if CREDENCE_KERNEL_LEVEL == 2
-extern const Table table_v4 = {kLevelName, conditional, draw_row};
+extern const Table table_v4 = {kLevelName, conditional, draw_row, map_rows};
 #elif CREDENCE_KERNEL_LEVEL == 1
-extern const Table table_v3 = {kLevelName, conditional, draw_row};
+extern const Table table_v3 = {kLevelName, conditional, draw_row, map_rows};
 #else
-extern const Table table_baseline = {kLevelName, conditional, draw_row};
+extern const Table table_baseline = {kLevelName, conditional, draw_row, map_rows};
 
 // Chosen in the baseline build only, which every CPU runs.
 const Table& table_for(CpuLevel level) {

@@ -1,6 +1,7 @@
-// The sampler's hot loop, one row draw at a time, compiled once per x86-64
-// level (model/math/cpu_level.hpp) and called by gibbs_sweep through the
-// table of the active level. Internal to model/fit.
+// The sampler's hot loop, one row draw at a time (and the group moves' map of
+// every row), compiled once per x86-64 level (model/math/cpu_level.hpp) and
+// called by gibbs_sweep and group_moves through the table of the active
+// level. Internal to model/fit.
 //
 // A row draw (model/fit/sampler.hpp for the model): gather the other side's
 // factor rows of the row's ratings (float32 state, widened to double), sum
@@ -80,6 +81,14 @@ struct Table {
     // finite.
     bool (*draw_row)(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
                      float* bias, double* sse, double* smallest_diagonal);
+
+    // The group moves' factor-space map (model/fit/group_moves.cpp) of
+    // `count` rows of `rank` floats in place: row <- A row, each output
+    // summed in double in column order (0 + A[k][0] x[0] + A[k][1] x[1] + ...)
+    // and rounded once to float. A is column-major with columns `stride`
+    // doubles apart (stride = padded(rank), entries past rank zero); out is
+    // scratch of stride doubles. Borrows everything.
+    void (*map_rows)(float* rows, uint64_t count, uint32_t rank, const double* map, size_t stride, double* out);
 };
 
 // One table per compiled level (the v3 and v4 tables exist only when
