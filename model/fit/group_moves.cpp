@@ -32,23 +32,26 @@ int team_size(int threads) { return threads > 0 ? threads : omp_get_max_threads(
 void weighted_gram(const float* w, const float* c, size_t rows, uint32_t K, int threads, std::vector<double>& lower,
                    std::vector<double>& cw) {
     const size_t blocks = (rows + kBlockRows - 1) / kBlockRows, kk = size_t(K) * K;
+    const size_t stride = row_kernels::padded(K);
+    const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
     std::vector<double> partial(blocks * (kk + K), 0.0);
-#pragma omp parallel for schedule(dynamic, 1) num_threads(team_size(threads))
-    for (size_t b = 0; b < blocks; ++b) {
-        double* g = partial.data() + b * (kk + K);
-        double* h = g + kk;
-        std::vector<double> x(K);
-        const size_t end = std::min(rows, (b + 1) * kBlockRows);
-        for (size_t r = b * kBlockRows; r < end; ++r) {
-            const float* row = w + r * K;
-            for (uint32_t k = 0; k < K; ++k) x[k] = row[k];
-            const double cr = c[r];
-            for (uint32_t j = 0; j < K; ++j) {
-                double* out = g + size_t(j) * K;
-                const double xj = x[j];
-                for (uint32_t k = 0; k <= j; ++k) out[k] += xj * x[k];
-            }
-            for (uint32_t k = 0; k < K; ++k) h[k] += cr * x[k];
+#pragma omp parallel num_threads(team_size(threads))
+    {
+        // Each block's sums by the row kernels (every entry summed in row
+        // order, the same bits at every level) in padded buffers, then copied.
+        std::vector<double> d(stride), padded(size_t(K) * stride), cross(stride);
+#pragma omp for schedule(dynamic, 1)
+        for (size_t b = 0; b < blocks; ++b) {
+            double* g = partial.data() + b * (kk + K);
+            double* h = g + kk;
+            const size_t first = b * kBlockRows, end = std::min(rows, first + kBlockRows);
+            std::fill(padded.begin(), padded.end(), 0.0);
+            std::fill(cross.begin(), cross.end(), 0.0);
+            kernels.gram_rows(w + first * K, end - first, K, nullptr, c + first, stride, padded.data(), cross.data(),
+                              d.data());
+            for (uint32_t j = 0; j < K; ++j)
+                for (uint32_t k = 0; k <= j; ++k) g[size_t(j) * K + k] = padded[size_t(j) * stride + k];
+            for (uint32_t k = 0; k < K; ++k) h[k] = cross[k];
         }
     }
     lower.assign(kk, 0.0);

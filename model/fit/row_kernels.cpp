@@ -606,14 +606,41 @@ void map_rows(float* rows, uint64_t count, uint32_t K, const double* map, size_t
     }
 }
 
+void gram_rows(const float* rows, uint64_t count, uint32_t K, const double* center, const float* weights,
+               size_t stride, double* lower, double* cross, double* d) {
+    for (size_t k = K; k < stride; ++k) d[k] = 0.0;
+    for (uint64_t r = 0; r < count; ++r) {
+        const float* row = rows + r * K;
+        if (center)
+            for (uint32_t k = 0; k < K; ++k) d[k] = static_cast<double>(row[k]) - center[k];
+        else
+            for (uint32_t k = 0; k < K; ++k) d[k] = static_cast<double>(row[k]);
+        for (uint32_t j = 0; j < K; ++j) {
+            const Vec dj = splat(d[j]);
+            double* out = lower + size_t(j) * stride;
+            for (size_t k = 0; k <= j; k += kLanes) {
+                const Vec product = dj * load_unaligned(d + k);
+                store_unaligned(out + k, load_unaligned(out + k) + product);
+            }
+        }
+        if (cross) {
+            const Vec c = splat(static_cast<double>(weights[r]));
+            for (size_t k = 0; k < stride; k += kLanes) {
+                const Vec product = c * load_unaligned(d + k);
+                store_unaligned(cross + k, load_unaligned(cross + k) + product);
+            }
+        }
+    }
+}
+
 }  // namespace
 
 #if CREDENCE_KERNEL_LEVEL == 2
-extern const Table table_v4 = {kLevelName, conditional, draw_row, map_rows};
+extern const Table table_v4 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
 #elif CREDENCE_KERNEL_LEVEL == 1
-extern const Table table_v3 = {kLevelName, conditional, draw_row, map_rows};
+extern const Table table_v3 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
 #else
-extern const Table table_baseline = {kLevelName, conditional, draw_row, map_rows};
+extern const Table table_baseline = {kLevelName, conditional, draw_row, map_rows, gram_rows};
 
 // Chosen in the baseline build only, which every CPU runs.
 const Table& table_for(CpuLevel level) {

@@ -1,6 +1,7 @@
-// The sampler's hot loop, one row draw at a time (and the group moves' map of
-// every row), compiled once per x86-64 level (model/math/cpu_level.hpp) and
-// called by gibbs_sweep and group_moves through the table of the active
+// The sampler's hot loop, one row draw at a time (and the passes over every
+// row of a side: the group moves' map, the sums behind the hyperparameters
+// and the shift moves), compiled once per x86-64 level (model/math/cpu_level.hpp) and
+// called by gibbs_sweep, normal_wishart and group_moves through the table of the active
 // level. Internal to model/fit.
 //
 // A row draw (model/fit/sampler.hpp for the model): gather the other side's
@@ -89,6 +90,17 @@ struct Table {
     // doubles apart (stride = padded(rank), entries past rank zero); out is
     // scratch of stride doubles. Borrows everything.
     void (*map_rows)(float* rows, uint64_t count, uint32_t rank, const double* map, size_t stride, double* out);
+
+    // Sums over `count` rows of `rank` floats, in row order, for the
+    // hyperparameters' statistics and the group moves' shift conditionals:
+    // with d = row - center (center null: d = row), lower[j][k] += d[j] d[k]
+    // for k <= j (rows of lower `stride` = padded(rank) doubles apart; the
+    // entries right of j up to the end of the vector holding column j are
+    // written too, finite, never a result), and when cross is not null,
+    // cross[k] += weights[r] d[k]. d is scratch of stride doubles. Borrows
+    // everything; the caller zeroes lower and cross first.
+    void (*gram_rows)(const float* rows, uint64_t count, uint32_t rank, const double* center, const float* weights,
+                      size_t stride, double* lower, double* cross, double* d);
 };
 
 // One table per compiled level (the v3 and v4 tables exist only when
