@@ -126,27 +126,38 @@ CREDENCE_INLINE uint32_t rank_of(const SideData& side) {
 // rank stay zero) and y; adds the targets to sum_y in rating order.
 template <uint32_t KK>
 void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, double& sum_y) {
+    // Everything in locals: through the references, every store to x or y
+    // could change them, and the sum would make a round trip through memory
+    // for every rating.
     const uint32_t K = rank_of<KK>(side);
-    const float* factors = side.other_factors;
+    const float* __restrict factors = side.other_factors;
+    const float* __restrict other_bias = side.other_bias;
+    const uint32_t* __restrict index = side.index + first;
+    const float* __restrict value = side.value + first;
+    const double global_mean = side.global_mean;
+    double* __restrict x = s.x;
+    double* __restrict y = s.y;
+    const size_t p = s.p;
     const uint64_t prefetch_end = side.nnz > kPrefetchAhead ? side.nnz - kPrefetchAhead : 0;
+    double sum = sum_y;
     for (uint32_t r = 0; r < n; ++r) {
-        const uint64_t at = first + r;
-        if (at < prefetch_end) {
-            const uint32_t ahead = side.index[at + kPrefetchAhead];
+        if (first + r < prefetch_end) {
+            const uint32_t ahead = index[r + kPrefetchAhead];
             const float* f = factors + size_t(ahead) * K;
             __builtin_prefetch(f);
             __builtin_prefetch(f + K - 1);
-            if (side.other_bias) __builtin_prefetch(side.other_bias + ahead);
+            if (other_bias) __builtin_prefetch(other_bias + ahead);
         }
-        const uint32_t other = side.index[at];
+        const uint32_t other = index[r];
         const float* f = factors + size_t(other) * K;
-        double* row = s.x + size_t(r) * s.p;
+        double* row = x + size_t(r) * p;
         for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<double>(f[k]);
-        double target = static_cast<double>(side.value[at]) - side.global_mean;
-        if (side.other_bias) target -= static_cast<double>(side.other_bias[other]);
-        s.y[r] = target;
-        sum_y += target;
+        double target = static_cast<double>(value[r]) - global_mean;
+        if (other_bias) target -= static_cast<double>(other_bias[other]);
+        y[r] = target;
+        sum += target;
     }
+    sum_y = sum;
 }
 
 // gram rows [k0, k0 + M) of the panel at col0 += sum over the n gathered rows
