@@ -403,9 +403,43 @@ bool cholesky(double* __restrict a, double* __restrict inv, uint32_t d_runtime, 
 // across the entries below j (entries at or above j in the same vector get
 // values never read: the results go to out first); the backward pass by
 // columns of U.
+//
+// With fixed sizes (D = d, LD = ld) the loops unroll completely and the
+// running vector stays in registers (through memory, each step waited for
+// a store to be forwarded to the next step's load).
+template <uint32_t D, size_t LD>
+CREDENCE_INLINE void solve_fixed(const Scratch& s, const double* __restrict inv, const double* __restrict z,
+                                 double* __restrict out) {
+    constexpr uint32_t NV = static_cast<uint32_t>(LD / kLanes);
+    const double* __restrict u = s.a;
+    double* __restrict c = s.c;
+    for (uint32_t i = 0; i < D; ++i) c[i] = s.rhs[i];
+    for (size_t i = D; i < LD; ++i) c[i] = 0.0;
+    Vec cv[NV];
+#pragma GCC unroll 8
+    for (uint32_t v = 0; v < NV; ++v) cv[v] = load(c + v * kLanes);
+#pragma GCC unroll 64
+    for (uint32_t j = 0; j < D; ++j) {  // U^T c = rhs, by rows of U
+        const double cj = cv[j / kLanes][j % kLanes] * inv[j];
+        out[j] = cj;
+        const Vec b = splat(cj);
+#pragma GCC unroll 8
+        for (uint32_t v = (j + 1) / kLanes; v < NV; ++v) cv[v] = cv[v] - load(u + j * LD + v * kLanes) * b;
+    }
+    for (uint32_t i = 0; i < D; ++i) c[i] = out[i] + z[i];
+    for (uint32_t i = D; i-- > 0;) {  // U x = c, by columns of U
+        const double xi = c[i] * inv[i];
+        out[i] = xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * LD + i] * xi;
+    }
+}
+
 template <uint32_t DD, size_t LD>
 void solve_and_draw(const Scratch& s, uint32_t d_runtime, const double* __restrict inv, const double* __restrict z,
                     double* __restrict out) {
+    if constexpr (DD > 0) {
+        return solve_fixed<DD, LD>(s, inv, z, out);
+    }
     const uint32_t d = DD > 0 ? DD : d_runtime;
     const size_t ld = DD > 0 ? LD : s.ld;
     const double* __restrict u = s.a;
