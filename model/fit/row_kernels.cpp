@@ -404,9 +404,10 @@ bool cholesky(double* __restrict a, double* __restrict inv, uint32_t d_runtime, 
 // values never read: the results go to out first); the backward pass by
 // columns of U.
 //
-// With fixed sizes (D = d, LD = ld) the loops unroll completely and the
-// running vector stays in registers (through memory, each step waited for
-// a store to be forwarded to the next step's load).
+// With fixed sizes (D = d, LD = ld) the forward pass unrolls completely and
+// its running vector stays in registers (through memory, each step waited
+// for a store to be forwarded to the next step's load); the backward pass
+// is the same as with run-time sizes.
 template <uint32_t D, size_t LD>
 CREDENCE_INLINE void solve_fixed(const Scratch& s, const double* __restrict inv, const double* __restrict z,
                                  double* __restrict out) {
