@@ -1,8 +1,7 @@
-// The sampler's hot loop, one row draw at a time (and the passes over every
-// row of a side: the group moves' map, the sums behind the hyperparameters
-// and the shift moves), compiled once per x86-64 level (model/math/cpu_level.hpp) and
-// called by gibbs_sweep, normal_wishart and group_moves through the table of the active
-// level. Internal to model/fit.
+// The sampler's per-row kernels: the row draws, and the passes over all of a
+// side's rows (the group moves' map, the hyperparameter and shift sums),
+// compiled once per x86-64 level (model/math/cpu_level.hpp) and called through
+// the table of the active level. Internal to model/fit.
 //
 // A row draw (model/fit/sampler.hpp for the model): gather the other side's
 // factor rows of the row's ratings (float32 state, widened to double), sum
@@ -20,10 +19,12 @@
 // does; each entry is summed over the ratings in rating order at every
 // level (vector lanes run across entries, never across ratings). The terms
 // of t (y is a double) use a separate multiply and add. The Cholesky
-// factorization, the solves and the residuals vectorize across independent
-// entries only, and the kernels are compiled with -ffp-contract=off. So the
-// levels differ in speed alone; tests/model/fit/test_row_kernels.cpp checks
-// it bit for bit.
+// factorization and the solves vectorize across independent entries only;
+// the residuals across ratings (each prediction summed in column order, the
+// squares added in rating order); the map and the side sums across outputs
+// (each summed in row or column order as at the baseline); and the kernels
+// are compiled with -ffp-contract=off. So the levels differ in speed alone;
+// tests/model/fit/test_row_kernels.cpp checks it bit for bit.
 #pragma once
 #include <cstddef>
 #include <cstdint>
