@@ -10,7 +10,9 @@
 #include <Eigen/Dense>
 
 #include "model/error.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/math/distributions.hpp"
+#include "model/fit/row_kernels.hpp"
 
 namespace credence {
 
@@ -30,23 +32,26 @@ int team_size(int threads) { return threads > 0 ? threads : omp_get_max_threads(
 void weighted_gram(const float* w, const float* c, size_t rows, uint32_t K, int threads, std::vector<double>& lower,
                    std::vector<double>& cw) {
     const size_t blocks = (rows + kBlockRows - 1) / kBlockRows, kk = size_t(K) * K;
+    const size_t stride = row_kernels::padded(K);
+    const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
     std::vector<double> partial(blocks * (kk + K), 0.0);
-#pragma omp parallel for schedule(dynamic, 1) num_threads(team_size(threads))
-    for (size_t b = 0; b < blocks; ++b) {
-        double* g = partial.data() + b * (kk + K);
-        double* h = g + kk;
-        std::vector<double> x(K);
-        const size_t end = std::min(rows, (b + 1) * kBlockRows);
-        for (size_t r = b * kBlockRows; r < end; ++r) {
-            const float* row = w + r * K;
-            for (uint32_t k = 0; k < K; ++k) x[k] = row[k];
-            const double cr = c[r];
-            for (uint32_t j = 0; j < K; ++j) {
-                double* out = g + size_t(j) * K;
-                const double xj = x[j];
-                for (uint32_t k = 0; k <= j; ++k) out[k] += xj * x[k];
-            }
-            for (uint32_t k = 0; k < K; ++k) h[k] += cr * x[k];
+#pragma omp parallel num_threads(team_size(threads))
+    {
+        // Each block's sums by the row kernels (every entry summed in row
+        // order, the same bits at every level) in padded buffers, then copied.
+        std::vector<double> d(stride), padded(size_t(K) * stride), cross(stride);
+#pragma omp for schedule(dynamic, 1)
+        for (size_t b = 0; b < blocks; ++b) {
+            double* g = partial.data() + b * (kk + K);
+            double* h = g + kk;
+            const size_t first = b * kBlockRows, end = std::min(rows, first + kBlockRows);
+            std::fill(padded.begin(), padded.end(), 0.0);
+            std::fill(cross.begin(), cross.end(), 0.0);
+            kernels.gram_rows(w + first * K, end - first, K, nullptr, c + first, stride, padded.data(), cross.data(),
+                              d.data());
+            for (uint32_t j = 0; j < K; ++j)
+                for (uint32_t k = 0; k <= j; ++k) g[size_t(j) * K + k] = padded[size_t(j) * stride + k];
+            for (uint32_t k = 0; k < K; ++k) h[k] = cross[k];
         }
     }
     lower.assign(kk, 0.0);
@@ -106,29 +111,15 @@ void shift_side(std::vector<float>& moved, Eigen::VectorXd& mu, const std::vecto
     mu += d;
 }
 
-// rows[r] -> map rows[r] for every row r in [begin, end) of a [count][K]
-// float32 array, in double (each output sums its terms in column order),
-// rounded once. Call inside a parallel region (an orphaned loop).
-void map_rows(float* rows, int64_t count, const Eigen::MatrixXd& map, std::vector<double>& in,
-              std::vector<double>& out) {
-    const auto K = static_cast<uint32_t>(map.rows());
-    // Column-major: column m of the map is contiguous, so the inner loop
-    // runs across the outputs.
-    const double* a = map.data();
-#pragma omp for schedule(dynamic, 1024) nowait
-    for (int64_t r = 0; r < count; ++r) {
-        float* row = rows + size_t(r) * K;
-        for (uint32_t k = 0; k < K; ++k) {
-            in[k] = row[k];
-            out[k] = 0.0;
-        }
-        for (uint32_t m = 0; m < K; ++m) {
-            const double x = in[m];
-            const double* column = a + size_t(m) * K;
-            for (uint32_t k = 0; k < K; ++k) out[k] += column[k] * x;
-        }
-        for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<float>(out[k]);
-    }
+// The map of a factor space, column-major with columns padded to
+// row_kernels::padded(K) doubles (zero past K), as row_kernels::map_rows takes it.
+std::vector<double> padded_columns(const Eigen::MatrixXd& map) {
+    const auto K = static_cast<size_t>(map.rows());
+    const size_t stride = row_kernels::padded(K);
+    std::vector<double> out(K * stride, 0.0);
+    for (size_t m = 0; m < K; ++m)
+        for (size_t k = 0; k < K; ++k) out[m * stride + k] = map(static_cast<Eigen::Index>(k), static_cast<Eigen::Index>(m));
+    return out;
 }
 
 }  // namespace
@@ -220,14 +211,31 @@ FactorMap identity_factor_map(uint32_t rank) {
 }
 
 void apply_factor_map(GibbsState& st, const FactorMap& map, int threads) {
-    const auto users = static_cast<int64_t>(st.user_factors.size() / st.rank);
-    const auto items = static_cast<int64_t>(st.item_factors.size() / st.rank);
-    // One team for both sides: the user rows, then (no barrier between) the item rows.
+    const uint32_t K = st.rank;
+    const auto users = static_cast<int64_t>(st.user_factors.size() / K);
+    const auto items = static_cast<int64_t>(st.item_factors.size() / K);
+    const std::vector<double> user_map = padded_columns(map.user), item_map = padded_columns(map.item);
+    const size_t stride = row_kernels::padded(K);
+    const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
+    const int64_t user_blocks = (users + int64_t(kBlockRows) - 1) / int64_t(kBlockRows);
+    const int64_t item_blocks = (items + int64_t(kBlockRows) - 1) / int64_t(kBlockRows);
+    // One team for both sides: the user rows, then (no barrier between) the
+    // item rows; each row is mapped alone, so any split gives the same bits.
 #pragma omp parallel num_threads(team_size(threads))
     {
-        std::vector<double> in(st.rank), out(st.rank);
-        map_rows(st.user_factors.data(), users, map.user, in, out);
-        map_rows(st.item_factors.data(), items, map.item, in, out);
+        std::vector<double> out(stride);
+#pragma omp for schedule(dynamic, 1) nowait
+        for (int64_t b = 0; b < user_blocks; ++b) {
+            const int64_t first = b * int64_t(kBlockRows), n = std::min<int64_t>(int64_t(kBlockRows), users - first);
+            kernels.map_rows(st.user_factors.data() + size_t(first) * K, uint64_t(n), K, user_map.data(), stride,
+                             out.data());
+        }
+#pragma omp for schedule(dynamic, 1) nowait
+        for (int64_t b = 0; b < item_blocks; ++b) {
+            const int64_t first = b * int64_t(kBlockRows), n = std::min<int64_t>(int64_t(kBlockRows), items - first);
+            kernels.map_rows(st.item_factors.data() + size_t(first) * K, uint64_t(n), K, item_map.data(), stride,
+                             out.data());
+        }
     }
 }
 

@@ -7,8 +7,10 @@
 #include <string>
 #include <vector>
 
-#include "model/math/distributions.hpp"
 #include "model/error.hpp"
+#include "model/fit/row_kernels.hpp"
+#include "model/math/cpu_level.hpp"
+#include "model/math/distributions.hpp"
 
 namespace credence {
 
@@ -28,9 +30,11 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
     // Per block: [dim] sums, then the [dim][dim] lower triangle (row-major).
     std::vector<double> partial(blocks * (dim + cells), 0.0);
     const int team = threads > 0 ? threads : omp_get_max_threads();
+    const size_t stride = row_kernels::padded(dim);
+    const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
 #pragma omp parallel num_threads(team)
     {
-        std::vector<double> d(dim), mean(dim, 0.0);
+        std::vector<double> d(stride), mean(dim, 0.0), padded(size_t(dim) * stride);
 #pragma omp for schedule(dynamic, 1)
         for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
             double* sum = partial.data() + size_t(b) * (dim + cells);
@@ -45,21 +49,19 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
         for (uint32_t k = 0; k < dim; ++k) mean[k] /= st.n;
 #pragma omp single nowait
         for (uint32_t k = 0; k < dim; ++k) st.mean[k] = mean[k];
-        // Row-major lower triangle in a plain buffer, so the inner loop runs
-        // over contiguous entries and vectorizes.
+        // Each block's lower triangle by the row kernels of the active level
+        // (every entry summed in row order, the same bits at every level),
+        // in a padded buffer, then copied into the block's row-major part.
 #pragma omp for schedule(dynamic, 1) nowait
         for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
             double* lower = partial.data() + size_t(b) * (dim + cells) + dim;
-            const uint64_t end = std::min<uint64_t>(count, uint64_t(b + 1) * kStatisticsBlockRows);
-            for (uint64_t r = uint64_t(b) * kStatisticsBlockRows; r < end; ++r) {
-                const float* row = rows + r * dim;
-                for (uint32_t k = 0; k < dim; ++k) d[k] = row[k] - mean[k];
-                for (uint32_t j = 0; j < dim; ++j) {
-                    double* out = lower + size_t(j) * dim;
-                    const double dj = d[j];
-                    for (uint32_t k = 0; k <= j; ++k) out[k] += dj * d[k];
-                }
-            }
+            const uint64_t first = uint64_t(b) * kStatisticsBlockRows;
+            const uint64_t end = std::min<uint64_t>(count, first + kStatisticsBlockRows);
+            std::fill(padded.begin(), padded.end(), 0.0);
+            kernels.gram_rows(rows + first * dim, end - first, dim, mean.data(), nullptr, stride, padded.data(), nullptr,
+                              d.data());
+            for (uint32_t j = 0; j < dim; ++j)
+                for (uint32_t k = 0; k <= j; ++k) lower[size_t(j) * dim + k] = padded[size_t(j) * stride + k];
         }
     }
     std::vector<double> lower(cells, 0.0);

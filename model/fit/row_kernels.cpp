@@ -47,7 +47,10 @@ typedef double Vec __attribute__((vector_size(kLanes * sizeof(double)), __may_al
 #define CREDENCE_INLINE inline __attribute__((always_inline))
 
 CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>(p); }
+typedef double VecUnaligned __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(sizeof(double))));
+CREDENCE_INLINE Vec load_unaligned(const double* p) { return *reinterpret_cast<const VecUnaligned*>(p); }
 CREDENCE_INLINE void store(double* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
+CREDENCE_INLINE void store_unaligned(double* p, Vec v) { *reinterpret_cast<VecUnaligned*>(p) = v; }
 // Every lane x (not Vec{} + x, which must compute 0 + x for x = -0).
 CREDENCE_INLINE Vec splat(double x) {
 #if CREDENCE_KERNEL_LEVEL == 2
@@ -123,27 +126,38 @@ CREDENCE_INLINE uint32_t rank_of(const SideData& side) {
 // rank stay zero) and y; adds the targets to sum_y in rating order.
 template <uint32_t KK>
 void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, double& sum_y) {
+    // Everything in locals: through the references, every store to x or y
+    // could change them, and the sum would make a round trip through memory
+    // for every rating.
     const uint32_t K = rank_of<KK>(side);
-    const float* factors = side.other_factors;
+    const float* __restrict factors = side.other_factors;
+    const float* __restrict other_bias = side.other_bias;
+    const uint32_t* __restrict index = side.index + first;
+    const float* __restrict value = side.value + first;
+    const double global_mean = side.global_mean;
+    double* __restrict x = s.x;
+    double* __restrict y = s.y;
+    const size_t p = s.p;
     const uint64_t prefetch_end = side.nnz > kPrefetchAhead ? side.nnz - kPrefetchAhead : 0;
+    double sum = sum_y;
     for (uint32_t r = 0; r < n; ++r) {
-        const uint64_t at = first + r;
-        if (at < prefetch_end) {
-            const uint32_t ahead = side.index[at + kPrefetchAhead];
+        if (first + r < prefetch_end) {
+            const uint32_t ahead = index[r + kPrefetchAhead];
             const float* f = factors + size_t(ahead) * K;
             __builtin_prefetch(f);
             __builtin_prefetch(f + K - 1);
-            if (side.other_bias) __builtin_prefetch(side.other_bias + ahead);
+            if (other_bias) __builtin_prefetch(other_bias + ahead);
         }
-        const uint32_t other = side.index[at];
+        const uint32_t other = index[r];
         const float* f = factors + size_t(other) * K;
-        double* row = s.x + size_t(r) * s.p;
+        double* row = x + size_t(r) * p;
         for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<double>(f[k]);
-        double target = static_cast<double>(side.value[at]) - side.global_mean;
-        if (side.other_bias) target -= static_cast<double>(side.other_bias[other]);
-        s.y[r] = target;
-        sum_y += target;
+        double target = static_cast<double>(value[r]) - global_mean;
+        if (other_bias) target -= static_cast<double>(other_bias[other]);
+        y[r] = target;
+        sum += target;
     }
+    sum_y = sum;
 }
 
 // gram rows [k0, k0 + M) of the panel at col0 += sum over the n gathered rows
@@ -244,15 +258,20 @@ double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
         accumulate<KK>(side, s, n, at == begin);
     }
     const double tau = side.tau, count = static_cast<double>(end - begin);
+    const Vec tau_v = splat(tau);
     double smallest = 0.0;
     for (uint32_t i = 0; i < d; ++i) {
         double* a = s.a + i * ld;
         const double* prior = side.prior_precision + size_t(i) * d;
         const double* gram = s.gram + size_t(i) * p;
-        // The lower part is never a result; zeroed a vector at a time (the
-        // last store reaches past i, into entries the next loop writes).
-        for (uint32_t k = 0; k < i; k += kLanes) store(a + k, Vec{});
-        for (uint32_t k = i; k < K; ++k) a[k] = prior[k] + tau * gram[k];
+        // Whole vectors from the one holding column i, as the Cholesky
+        // factorization and the solves read them: the entries left of i in
+        // that vector are never results, but they are finite (prior and
+        // gram are, in every entry these loads reach). Entries left of that
+        // vector are never read.
+        uint32_t k = i / kLanes * kLanes;
+        for (; k + kLanes <= K; k += kLanes) store(a + k, load_unaligned(prior + k) + tau_v * load(gram + k));
+        for (; k < K; ++k) a[k] = prior[k] + tau * gram[k];
         for (size_t k = d; k < ld; ++k) a[k] = 0.0;  // padding
         if (BIASES) a[K] = prior[K] + tau * (i < K ? s.s[i] : count);
         s.rhs[i] = side.prior_pm[i] + tau * (i < K ? s.t[i] : sum_y);
@@ -265,28 +284,106 @@ CREDENCE_INLINE bool finite(double v) { return v - v == 0.0; }
 
 // Cholesky P = U^T U of the upper triangle of a (row-major, ld), in place;
 // inv[j] = 1 / U[j][j]. Symmetric elimination first (a[i][k] -= a[j][i]
-// a[j][k] / a[j][j], right-looking, every entry updated in the order of j as
-// the textbook sums would be: Golub & Van Loan, Matrix Computations, 4th
-// ed., sections 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square
-// roots stay off the chain of dependent pivots. Rows are contiguous, so the
-// updates vectorize across entries. False if a pivot is not positive and finite.
-template <uint32_t DD>
-bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
+// a[j][k] / a[j][j], every entry updated in the order of j as the textbook
+// sums would be: Golub & Van Loan, Matrix Computations, 4th ed., sections
+// 4.1-4.2), then each row scaled by 1 / sqrt(pivot): the square roots stay
+// off the chain of dependent pivots. Rows are contiguous, so the updates
+// vectorize across entries. False if a pivot is not positive and finite.
+//
+// Each row's update runs over whole vectors from the one holding its
+// diagonal to ld: the extra entries are the row's lower part and padding,
+// which are never read as results (form_conditional fills them with finite
+// values, so they stay finite), and the loops need no remainders.
+
+// Rows eliminated together by the fixed-size factorization: their vectors
+// stay in registers while the rows above them are subtracted.
+constexpr uint32_t kRegisterBudget = CREDENCE_KERNEL_LEVEL == 2 ? 24 : 12;
+constexpr uint32_t group_rows(size_t vectors_per_row) {
+    const size_t g = kRegisterBudget / (vectors_per_row > 0 ? vectors_per_row : 1);
+    return g < 1 ? 1 : g > 4 ? 4 : static_cast<uint32_t>(g);
+}
+
+// Rows [I0, I0 + G) of a d = D, ld = LD matrix (left-looking): loads them,
+// subtracts every finished row j < I0 in order of j, then finishes them one
+// by one, each subtracted from the later ones in the group as soon as it is
+// done. The same operations on every entry, in the same order, as the
+// row-at-a-time elimination in cholesky() below. r[j] = 1 / pivot j.
+template <uint32_t D, size_t LD, uint32_t I0, uint32_t G>
+CREDENCE_INLINE bool eliminate_group(double* __restrict a, double* __restrict r) {
+    constexpr uint32_t V0 = I0 / kLanes, NV = static_cast<uint32_t>(LD / kLanes) - V0;
+    Vec acc[G][NV];
+#pragma GCC unroll 4
+    for (uint32_t g = 0; g < G; ++g)
+#pragma GCC unroll 8
+        for (uint32_t v = 0; v < NV; ++v)  // (vectors left of the row's own are zeroed, not left stale)
+            acc[g][v] = V0 + v < (I0 + g) / kLanes ? Vec{} : load(a + (I0 + g) * LD + (V0 + v) * kLanes);
+    for (uint32_t j = 0; j < I0; ++j) {
+        const double* ej = a + j * LD;
+        const double rj = r[j];
+        Vec f[G];
+#pragma GCC unroll 4
+        for (uint32_t g = 0; g < G; ++g) f[g] = splat(ej[I0 + g] * rj);
+#pragma GCC unroll 8
+        for (uint32_t v = 0; v < NV; ++v) {
+            const Vec e = load(ej + (V0 + v) * kLanes);
+#pragma GCC unroll 4
+            for (uint32_t g = 0; g < G; ++g) acc[g][v] = acc[g][v] - f[g] * e;
+        }
+    }
+    bool ok = true;
+#pragma GCC unroll 4
+    for (uint32_t g = 0; g < G; ++g) {
+        const uint32_t i = I0 + g;
+        const double pivot = acc[g][i / kLanes - V0][i % kLanes];
+        ok = ok && pivot > 0.0 && finite(pivot);
+        const double rg = 1.0 / pivot;
+        r[i] = rg;
+#pragma GCC unroll 4
+        for (uint32_t h = g + 1; h < G; ++h) {
+            const uint32_t col = I0 + h;
+            const Vec f = splat(acc[g][col / kLanes - V0][col % kLanes] * rg);
+#pragma GCC unroll 8
+            for (uint32_t v = 0; v < NV; ++v) acc[h][v] = acc[h][v] - f * acc[g][v];
+        }
+#pragma GCC unroll 8
+        for (uint32_t v = 0; v < NV; ++v) store(a + i * LD + (V0 + v) * kLanes, acc[g][v]);
+    }
+    return ok;
+}
+
+template <uint32_t D, size_t LD, uint32_t I0>
+CREDENCE_INLINE bool eliminate_from(double* __restrict a, double* __restrict r) {
+    if constexpr (I0 >= D) {
+        return true;
+    } else {
+        constexpr uint32_t G0 = group_rows(LD / kLanes - I0 / kLanes);
+        constexpr uint32_t G = G0 < D - I0 ? G0 : D - I0;
+        if (!eliminate_group<D, LD, I0, G>(a, r)) return false;
+        return eliminate_from<D, LD, I0 + G>(a, r);
+    }
+}
+
+// With DD > 0 the sizes are compile-time constants (DD = d, LD = ld) and the
+// elimination runs by groups of rows (eliminate_group); with DD == 0, a row
+// at a time, right-looking.
+template <uint32_t DD, size_t LD>
+bool cholesky(double* __restrict a, double* __restrict inv, uint32_t d_runtime, size_t ld_runtime) {
     const uint32_t d = DD > 0 ? DD : d_runtime;
-    // Each row update runs over whole 8-double blocks from the one holding
-    // column j + 1 to ld: the extra entries are row i's lower part and
-    // padding, which are never read as results (form_conditional zeroes
-    // them, so they stay finite), and the loops need no remainders.
-    for (uint32_t j = 0; j < d; ++j) {
-        const double* uj = a + j * ld;
-        const double pivot = uj[j];
-        if (!(pivot > 0.0) || !finite(pivot)) return false;
-        const double r = 1.0 / pivot;
-        const size_t from = (j + 1) / 8 * 8;
-        for (uint32_t i = j + 1; i < d; ++i) {
-            const double f = uj[i] * r;
-            double* ai = a + i * ld;
-            for (size_t k = from; k < ld; ++k) ai[k] = ai[k] - f * uj[k];
+    const size_t ld = DD > 0 ? LD : ld_runtime;
+    if constexpr (DD > 0) {
+        // inv holds 1 / pivot until the scaling below replaces it.
+        if (!eliminate_from<DD, LD, 0>(a, inv)) return false;
+    } else {
+        for (uint32_t j = 0; j < d; ++j) {
+            const double* uj = a + j * ld;
+            const double pivot = uj[j];
+            if (!(pivot > 0.0) || !finite(pivot)) return false;
+            const double r = 1.0 / pivot;
+            for (uint32_t i = j + 1; i < d; ++i) {
+                const Vec f = splat(uj[i] * r);
+                double* ai = a + i * ld;
+                for (size_t k = i / kLanes * kLanes; k < ld; k += kLanes) store(ai + k, load(ai + k) - f * load(uj + k));
+            }
         }
     }
     for (uint32_t j = 0; j < d; ++j) {
@@ -294,49 +391,165 @@ bool cholesky(double* a, double* inv, uint32_t d_runtime, size_t ld) {
         const double l = __builtin_sqrt(uj[j]);
         const double q = 1.0 / l;
         inv[j] = q;
-        for (size_t k = j / 8 * 8; k < ld; ++k) uj[k] = uj[k] * q;
+        const Vec qv = splat(q);
+        for (size_t k = j / kLanes * kLanes; k < ld; k += kLanes) store(uj + k, load(uj + k) * qv);
         uj[j] = l;
     }
     return true;
 }
 
-// out = U^-1 (U^-T rhs + z): the mean P^-1 rhs plus U^-1 z, whose covariance
-// is (U^T U)^-1 = P^-1. Overrelaxed (side.overrelax = a != 0, `current` the
-// row's value x): out = U^-1 ((1 - a) U^-T rhs + sqrt(1 - a^2) z) + a x.
-template <uint32_t DD>
-void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, const double* inv, const double* z,
-                    const double* current, double* out) {
-    const uint32_t d = DD > 0 ? DD : d_runtime;
-    const size_t ld = s.ld;
-    double* c = s.c;
-    for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
-    for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
-        const double cj = c[j] * inv[j];
-        c[j] = cj;
-        const double* uj = s.a + j * ld;
-        for (uint32_t i = j + 1; i < d; ++i) c[i] = c[i] - uj[i] * cj;
-    }
+// Between the solves: c = forward + z, or overrelaxed (current not null)
+// c = (1 - a) forward + sqrt(1 - a^2) z; after them, out += a x.
+CREDENCE_INLINE void add_noise(const SideData& side, const double* forward, const double* z, const double* current,
+                               uint32_t d, double* c) {
     if (current) {
         const double keep = 1.0 - side.overrelax, noise = side.overrelax_noise;
-        for (uint32_t i = 0; i < d; ++i) c[i] = keep * c[i] + noise * z[i];
+        for (uint32_t i = 0; i < d; ++i) c[i] = keep * forward[i] + noise * z[i];
     } else {
-        for (uint32_t i = 0; i < d; ++i) c[i] = c[i] + z[i];
+        for (uint32_t i = 0; i < d; ++i) c[i] = forward[i] + z[i];
     }
-    for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
-        const double xi = c[i] * inv[i];
-        out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - s.a[k * ld + i] * xi;
-    }
+}
+
+CREDENCE_INLINE void add_current(const SideData& side, const double* current, uint32_t d, double* out) {
     if (current)
         for (uint32_t i = 0; i < d; ++i) out[i] = out[i] + side.overrelax * current[i];
 }
 
-// Squared residuals of n gathered ratings with the stored row w (bias in w[K]).
+// out = U^-1 (U^-T rhs + z): the mean P^-1 rhs plus U^-1 z, whose covariance
+// is (U^T U)^-1 = P^-1. Overrelaxed (side.overrelax = a != 0, `current` the
+// row's value x): out = U^-1 ((1 - a) U^-T rhs + sqrt(1 - a^2) z) + a x,
+// the mean plus a (x - mean) plus sqrt(1 - a^2) U^-1 z. The forward pass runs by rows of U, vectorized
+// across the entries below j (entries at or above j in the same vector get
+// values never read: the results go to out first); the backward pass by
+// columns of U.
+//
+// With fixed sizes (D = d, LD = ld) the forward pass unrolls completely and
+// its running vector stays in registers (through memory, each step waited
+// for a store to be forwarded to the next step's load); the backward pass
+// is the same as with run-time sizes.
+template <uint32_t D, size_t LD>
+CREDENCE_INLINE void solve_fixed(const SideData& side, const Scratch& s, const double* __restrict inv,
+                                 const double* __restrict z, const double* __restrict current,
+                                 double* __restrict out) {
+    constexpr uint32_t NV = static_cast<uint32_t>(LD / kLanes);
+    const double* __restrict u = s.a;
+    double* __restrict c = s.c;
+    for (uint32_t i = 0; i < D; ++i) c[i] = s.rhs[i];
+    for (size_t i = D; i < LD; ++i) c[i] = 0.0;
+    Vec cv[NV];
+#pragma GCC unroll 8
+    for (uint32_t v = 0; v < NV; ++v) cv[v] = load(c + v * kLanes);
+#pragma GCC unroll 64
+    for (uint32_t j = 0; j < D; ++j) {  // U^T c = rhs, by rows of U
+        const double cj = cv[j / kLanes][j % kLanes] * inv[j];
+        out[j] = cj;
+        const Vec b = splat(cj);
+#pragma GCC unroll 8
+        for (uint32_t v = (j + 1) / kLanes; v < NV; ++v) cv[v] = cv[v] - load(u + j * LD + v * kLanes) * b;
+    }
+    add_noise(side, out, z, current, D, c);
+    for (uint32_t i = D; i-- > 0;) {  // U x = c, by columns of U
+        const double xi = c[i] * inv[i];
+        out[i] = xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * LD + i] * xi;
+    }
+    add_current(side, current, D, out);
+}
+
+template <uint32_t DD, size_t LD>
+void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, const double* __restrict inv,
+                    const double* __restrict z, const double* __restrict current, double* __restrict out) {
+    if constexpr (DD > 0) {
+        return solve_fixed<DD, LD>(side, s, inv, z, current, out);
+    }
+    const uint32_t d = DD > 0 ? DD : d_runtime;
+    const size_t ld = DD > 0 ? LD : s.ld;
+    const double* __restrict u = s.a;
+    double* __restrict c = s.c;
+    for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
+    for (size_t i = d; i < ld; ++i) c[i] = 0.0;
+    for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
+        const double cj = c[j] * inv[j];
+        out[j] = cj;
+        const Vec cv = splat(cj);
+        const double* uj = u + j * ld;
+        for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
+    }
+    add_noise(side, out, z, current, d, c);
+    for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
+        const double xi = c[i] * inv[i];
+        out[i] = xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
+    }
+    add_current(side, current, d, out);
+}
+
+#if CREDENCE_KERNEL_LEVEL > 0
+// t[k] = lane i of r[i] at k: the kLanes x kLanes block of gathered rows
+// r[0 .. kLanes) turned so that each vector holds one column (the shuffles
+// of the usual unpack-and-permute transposition).
+CREDENCE_INLINE void transpose(const Vec (&r)[kLanes], Vec (&t)[kLanes]) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    Vec a[8], b[8];
+    for (int i = 0; i < 8; i += 2) {
+        a[i] = __builtin_shufflevector(r[i], r[i + 1], 0, 8, 2, 10, 4, 12, 6, 14);
+        a[i + 1] = __builtin_shufflevector(r[i], r[i + 1], 1, 9, 3, 11, 5, 13, 7, 15);
+    }
+    // b[0]: columns 0 and 4 of rows 0-3; b[1]: 2, 6; b[2]: 1, 5; b[3]: 3, 7; b[4..8): rows 4-7
+    for (int h = 0; h < 8; h += 4) {
+        b[h] = __builtin_shufflevector(a[h], a[h + 2], 0, 1, 4, 5, 8, 9, 12, 13);
+        b[h + 1] = __builtin_shufflevector(a[h], a[h + 2], 2, 3, 6, 7, 10, 11, 14, 15);
+        b[h + 2] = __builtin_shufflevector(a[h + 1], a[h + 3], 0, 1, 4, 5, 8, 9, 12, 13);
+        b[h + 3] = __builtin_shufflevector(a[h + 1], a[h + 3], 2, 3, 6, 7, 10, 11, 14, 15);
+    }
+    constexpr int column_of[4] = {0, 2, 1, 3};
+    for (int q = 0; q < 4; ++q) {
+        t[column_of[q]] = __builtin_shufflevector(b[q], b[q + 4], 0, 1, 4, 5, 8, 9, 12, 13);
+        t[column_of[q] + 4] = __builtin_shufflevector(b[q], b[q + 4], 2, 3, 6, 7, 10, 11, 14, 15);
+    }
+#else
+    const Vec a0 = __builtin_shufflevector(r[0], r[1], 0, 4, 2, 6);
+    const Vec a1 = __builtin_shufflevector(r[0], r[1], 1, 5, 3, 7);
+    const Vec a2 = __builtin_shufflevector(r[2], r[3], 0, 4, 2, 6);
+    const Vec a3 = __builtin_shufflevector(r[2], r[3], 1, 5, 3, 7);
+    t[0] = __builtin_shufflevector(a0, a2, 0, 1, 4, 5);
+    t[1] = __builtin_shufflevector(a1, a3, 0, 1, 4, 5);
+    t[2] = __builtin_shufflevector(a0, a2, 2, 3, 6, 7);
+    t[3] = __builtin_shufflevector(a1, a3, 2, 3, 6, 7);
+#endif
+}
+#endif
+
+// Squared residuals of n gathered ratings with the stored row w (bias in
+// w[K]): each prediction sums its terms in column order, each squared error
+// is added in rating order. Above the baseline, kLanes ratings at a time,
+// one per lane (their rows turned into columns), which performs the same
+// operations on each rating.
 template <uint32_t KK, bool BIASES>
 double residuals(const SideData& side, const Scratch& s, uint32_t n) {
     const uint32_t K = rank_of<KK>(side);
     double sse = 0.0;
-    for (uint32_t r = 0; r < n; ++r) {
+    uint32_t r = 0;
+#if CREDENCE_KERNEL_LEVEL > 0
+    for (; r + kLanes <= n; r += kLanes) {
+        const double* x = s.x + size_t(r) * s.p;
+        Vec prediction = BIASES ? splat(s.w[K]) : Vec{};
+        for (uint32_t k0 = 0; k0 < K; k0 += kLanes) {
+            Vec rows[kLanes], columns[kLanes];
+            for (int i = 0; i < kLanes; ++i) rows[i] = load(x + size_t(i) * s.p + k0);
+            transpose(rows, columns);
+            const uint32_t m = K - k0 < uint32_t(kLanes) ? K - k0 : uint32_t(kLanes);
+            for (uint32_t k = 0; k < m; ++k) {
+                const Vec term = columns[k] * splat(s.w[k0 + k]);
+                prediction = prediction + term;
+            }
+        }
+        const Vec e = load(s.y + r) - prediction;
+        const Vec squares = e * e;
+        for (int i = 0; i < kLanes; ++i) sse = sse + squares[i];
+    }
+#endif
+    for (; r < n; ++r) {
         const double* x = s.x + size_t(r) * s.p;
         double prediction = BIASES ? s.w[K] : 0.0;
         for (uint32_t k = 0; k < K; ++k) prediction = prediction + x[k] * s.w[k];
@@ -361,12 +574,13 @@ template <uint32_t KK, bool BIASES>
 bool draw_row_for(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
                   float* bias, double* sse, double* smallest_diagonal) {
     constexpr uint32_t DD = KK > 0 ? KK + (BIASES ? 1 : 0) : 0;
+    constexpr size_t LD = pad8(KK + 1);  // s.ld when KK > 0
     const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
     const Scratch s = layout(scratch, K);
     const double smallest = form_conditional<KK, BIASES>(side, row, s);
     double* out = s.spare;
     double* inv = s.u;
-    bool ok = cholesky<DD>(s.a, inv, d, s.ld);
+    bool ok = cholesky<DD, LD>(s.a, inv, d, s.ld);
     if (ok) {
         // The row's current value, for an overrelaxed draw (s.w is free
         // until the residuals below).
@@ -376,7 +590,7 @@ bool draw_row_for(const SideData& side, uint64_t row, const double* normals, dou
             if (BIASES) s.w[K] = static_cast<double>(*bias);
             current = s.w;
         }
-        solve_and_draw<DD>(side, s, d, inv, normals, current, out);
+        solve_and_draw<DD, LD>(side, s, d, inv, normals, current, out);
         for (uint32_t i = 0; i < d; ++i) ok = ok && finite(out[i]);
     }
     if (!ok) {
@@ -434,14 +648,75 @@ void conditional(const SideData& side, uint64_t row, double* scratch, double* pr
     else conditional_for<0, false>(side, row, scratch, precision, rhs);
 }
 
+// Outputs [col0, col0 + 8 NP) of the map of one row (in: its floats), into out.
+template <uint32_t NP>
+CREDENCE_INLINE void map_outputs(const float* in, uint32_t K, const double* map, size_t stride, size_t col0,
+                                 double* out) {
+    constexpr int kVectors = static_cast<int>(NP) * kPerPanel;
+    Vec acc[kVectors];
+    for (int v = 0; v < kVectors; ++v) acc[v] = Vec{};
+    for (uint32_t m = 0; m < K; ++m) {
+        const Vec x = splat(static_cast<double>(in[m]));
+        const double* column = map + size_t(m) * stride + col0;
+        for (int v = 0; v < kVectors; ++v) {
+            const Vec product = load_unaligned(column + v * kLanes) * x;
+            acc[v] = acc[v] + product;
+        }
+    }
+    for (int v = 0; v < kVectors; ++v) store_unaligned(out + col0 + v * kLanes, acc[v]);
+}
+
+// Up to 4 panels (32 outputs) at a time, so the sums stay in registers.
+void map_rows(float* rows, uint64_t count, uint32_t K, const double* map, size_t stride, double* out) {
+    for (uint64_t r = 0; r < count; ++r) {
+        float* row = rows + r * K;
+        for (size_t col0 = 0; col0 < stride; col0 += 4 * kPanel) {
+            switch ((stride - col0) / kPanel) {
+                case 1: map_outputs<1>(row, K, map, stride, col0, out); break;
+                case 2: map_outputs<2>(row, K, map, stride, col0, out); break;
+                case 3: map_outputs<3>(row, K, map, stride, col0, out); break;
+                default: map_outputs<4>(row, K, map, stride, col0, out); break;
+            }
+        }
+        for (uint32_t k = 0; k < K; ++k) row[k] = static_cast<float>(out[k]);
+    }
+}
+
+void gram_rows(const float* rows, uint64_t count, uint32_t K, const double* center, const float* weights,
+               size_t stride, double* lower, double* cross, double* d) {
+    for (size_t k = K; k < stride; ++k) d[k] = 0.0;
+    for (uint64_t r = 0; r < count; ++r) {
+        const float* row = rows + r * K;
+        if (center)
+            for (uint32_t k = 0; k < K; ++k) d[k] = static_cast<double>(row[k]) - center[k];
+        else
+            for (uint32_t k = 0; k < K; ++k) d[k] = static_cast<double>(row[k]);
+        for (uint32_t j = 0; j < K; ++j) {
+            const Vec dj = splat(d[j]);
+            double* out = lower + size_t(j) * stride;
+            for (size_t k = 0; k <= j; k += kLanes) {
+                const Vec product = dj * load_unaligned(d + k);
+                store_unaligned(out + k, load_unaligned(out + k) + product);
+            }
+        }
+        if (cross) {
+            const Vec c = splat(static_cast<double>(weights[r]));
+            for (size_t k = 0; k < stride; k += kLanes) {
+                const Vec product = c * load_unaligned(d + k);
+                store_unaligned(cross + k, load_unaligned(cross + k) + product);
+            }
+        }
+    }
+}
+
 }  // namespace
 
 #if CREDENCE_KERNEL_LEVEL == 2
-extern const Table table_v4 = {kLevelName, conditional, draw_row};
+extern const Table table_v4 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
 #elif CREDENCE_KERNEL_LEVEL == 1
-extern const Table table_v3 = {kLevelName, conditional, draw_row};
+extern const Table table_v3 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
 #else
-extern const Table table_baseline = {kLevelName, conditional, draw_row};
+extern const Table table_baseline = {kLevelName, conditional, draw_row, map_rows, gram_rows};
 
 // Chosen in the baseline build only, which every CPU runs.
 const Table& table_for(CpuLevel level) {

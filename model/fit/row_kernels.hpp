@@ -1,6 +1,7 @@
-// The sampler's hot loop, one row draw at a time, compiled once per x86-64
-// level (model/math/cpu_level.hpp) and called by gibbs_sweep through the
-// table of the active level. Internal to model/fit.
+// The sampler's per-row kernels: the row draws, and the passes over all of a
+// side's rows (the group moves' map, the hyperparameter and shift sums),
+// compiled once per x86-64 level (model/math/cpu_level.hpp) and called through
+// the table of the active level. Internal to model/fit.
 //
 // A row draw (model/fit/sampler.hpp for the model): gather the other side's
 // factor rows of the row's ratings (float32 state, widened to double), sum
@@ -23,10 +24,12 @@
 // does; each entry is summed over the ratings in rating order at every
 // level (vector lanes run across entries, never across ratings). The terms
 // of t (y is a double) use a separate multiply and add. The Cholesky
-// factorization, the solves and the residuals vectorize across independent
-// entries only, and the kernels are compiled with -ffp-contract=off. So the
-// levels differ in speed alone; tests/model/fit/test_row_kernels.cpp checks
-// it bit for bit.
+// factorization and the solves vectorize across independent entries only;
+// the residuals across ratings (each prediction summed in column order, the
+// squares added in rating order); the map and the side sums across outputs
+// (each summed in row or column order as at the baseline); and the kernels
+// are compiled with -ffp-contract=off. So the levels differ in speed alone;
+// tests/model/fit/test_row_kernels.cpp checks it bit for bit.
 #pragma once
 #include <cstddef>
 #include <cstdint>
@@ -88,6 +91,25 @@ struct Table {
     // finite.
     bool (*draw_row)(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor,
                      float* bias, double* sse, double* smallest_diagonal);
+
+    // The group moves' factor-space map (model/fit/group_moves.cpp) of
+    // `count` rows of `rank` floats in place: row <- A row, each output
+    // summed in double in column order (0 + A[k][0] x[0] + A[k][1] x[1] + ...)
+    // and rounded once to float. A is column-major with columns `stride`
+    // doubles apart (stride = padded(rank), entries past rank zero); out is
+    // scratch of stride doubles. Borrows everything.
+    void (*map_rows)(float* rows, uint64_t count, uint32_t rank, const double* map, size_t stride, double* out);
+
+    // Sums over `count` rows of `rank` floats, in row order, for the
+    // hyperparameters' statistics and the group moves' shift conditionals:
+    // with d = row - center (center null: d = row), lower[j][k] += d[j] d[k]
+    // for k <= j (rows of lower `stride` = padded(rank) doubles apart; the
+    // entries right of j up to the end of the vector holding column j are
+    // written too, finite, never a result), and when cross is not null,
+    // cross[k] += weights[r] d[k]. d is scratch of stride doubles. Borrows
+    // everything; the caller zeroes lower and cross first.
+    void (*gram_rows)(const float* rows, uint64_t count, uint32_t rank, const double* center, const float* weights,
+                      size_t stride, double* lower, double* cross, double* d);
 };
 
 // One table per compiled level (the v3 and v4 tables exist only when

@@ -247,88 +247,96 @@ TEST_CASE("an overrelaxed row draw steps past the mean by a times the current of
     const RatingSet rs = ratings_for(false);
     const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
     const GibbsData data{&by_user, &by_item, rs.mean()};
-    FitOptions o;
-    o.rank = 8;
-    o.init_scale = 0.7;
-    const GibbsState st = initial_state(data, o, 3, 0);
-    Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
-    const double a = -0.7;
-    side.data.overrelax = a;
-    side.data.overrelax_noise = std::sqrt(1.0 - a * a);
-    const size_t d = o.rank + 1;
-    AlignedScratch scratch(o.rank);
-    Rng start_rng(17);
-    for (CpuLevel level : supported_cpu_levels()) {
-        const auto& kernels = row_kernels::table_for(level);
-        for (uint32_t row = 0; row < 5; ++row) {
-            std::vector<double> pv(d * d), rv(d);
-            kernels.conditional(side.data, row, scratch.data, pv.data(), rv.data());
-            const Eigen::Map<const Eigen::MatrixXd> p(pv.data(), Eigen::Index(d), Eigen::Index(d));
-            const Eigen::Map<const Eigen::VectorXd> rhs(rv.data(), Eigen::Index(d));
-            const Eigen::VectorXd mean = p.llt().solve(rhs);
-            const Eigen::MatrixXd cov = p.inverse();
-            std::vector<float> x0(d);
-            for (float& v : x0) v = static_cast<float>(start_rng.normal());
-            auto draw = [&](const std::vector<double>& z) {
-                std::vector<float> f(x0.begin(), x0.begin() + o.rank);
-                float b = x0[o.rank];
-                double smallest = 0.0;
-                REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
-                Eigen::VectorXd out(d);
-                for (size_t k = 0; k < o.rank; ++k) out[k] = f[k];
-                out[o.rank] = b;
-                return out;
-            };
-            std::vector<double> z(d, 0.0);
-            const Eigen::VectorXd at_zero = draw(z);
-            const double x_size = Eigen::Map<const Eigen::VectorXf>(x0.data(), Eigen::Index(d)).cwiseAbs().maxCoeff();
-            for (size_t k = 0; k < d; ++k) {
-                const double expected = mean[k] + a * (double(x0[k]) - mean[k]);
-                CHECK(std::abs(at_zero[k] - expected) <=
-                      0x1.0p-24 * (std::abs(expected) + 2.0 * x_size) + 1e-11 * (1.0 + mean.norm() + x_size));
+    for (const uint32_t rank : {5u, 8u}) {  // the run-time-sized kernels and a fixed-size one
+        FitOptions o;
+        o.rank = rank;
+        o.init_scale = 0.7;
+        const GibbsState st = initial_state(data, o, 3, 0);
+        Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
+        const double a = -0.7;
+        side.data.overrelax = a;
+        side.data.overrelax_noise = std::sqrt(1.0 - a * a);
+        const size_t d = o.rank + 1;
+        AlignedScratch scratch(o.rank);
+        Rng start_rng(17);
+        for (CpuLevel level : supported_cpu_levels()) {
+            const auto& kernels = row_kernels::table_for(level);
+            for (uint32_t row = 0; row < 5; ++row) {
+                std::vector<double> pv(d * d), rv(d);
+                kernels.conditional(side.data, row, scratch.data, pv.data(), rv.data());
+                const Eigen::Map<const Eigen::MatrixXd> p(pv.data(), Eigen::Index(d), Eigen::Index(d));
+                const Eigen::Map<const Eigen::VectorXd> rhs(rv.data(), Eigen::Index(d));
+                const Eigen::VectorXd mean = p.llt().solve(rhs);
+                const Eigen::MatrixXd cov = p.inverse();
+                std::vector<float> x0(d);
+                for (float& v : x0) v = static_cast<float>(start_rng.normal());
+                auto draw = [&](const std::vector<double>& z) {
+                    std::vector<float> f(x0.begin(), x0.begin() + o.rank);
+                    float b = x0[o.rank];
+                    double smallest = 0.0;
+                    REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
+                    Eigen::VectorXd out(d);
+                    for (size_t k = 0; k < o.rank; ++k) out[k] = f[k];
+                    out[o.rank] = b;
+                    return out;
+                };
+                std::vector<double> z(d, 0.0);
+                const Eigen::VectorXd at_zero = draw(z);
+                const double x_size = Eigen::Map<const Eigen::VectorXf>(x0.data(), Eigen::Index(d)).cwiseAbs().maxCoeff();
+                for (size_t k = 0; k < d; ++k) {
+                    const double expected = mean[k] + a * (double(x0[k]) - mean[k]);
+                    CHECK(std::abs(at_zero[k] - expected) <=
+                          0x1.0p-24 * (std::abs(expected) + 2.0 * x_size) + 1e-11 * (1.0 + mean.norm() + x_size));
+                }
+                const double scale = 1000.0;
+                Eigen::MatrixXd deviations(d, d);
+                for (size_t k = 0; k < d; ++k) {
+                    std::fill(z.begin(), z.end(), 0.0);
+                    z[k] = scale;
+                    deviations.col(Eigen::Index(k)) = (draw(z) - at_zero) / scale;
+                }
+                const double entry_error =
+                    (0x1.0p-24 * (2.0 * at_zero.cwiseAbs().maxCoeff() + scale * deviations.cwiseAbs().maxCoeff()) +
+                     1e-11 * (1.0 + mean.norm() + x_size)) / scale;
+                const double tolerance = 4.0 * 2.0 * double(d) * deviations.cwiseAbs().maxCoeff() * entry_error;
+                CHECK((deviations * deviations.transpose() - (1.0 - a * a) * cov).cwiseAbs().maxCoeff() <= tolerance);
             }
-            const double scale = 1000.0;
-            Eigen::MatrixXd deviations(d, d);
-            for (size_t k = 0; k < d; ++k) {
-                std::fill(z.begin(), z.end(), 0.0);
-                z[k] = scale;
-                deviations.col(Eigen::Index(k)) = (draw(z) - at_zero) / scale;
-            }
-            const double entry_error =
-                (0x1.0p-24 * (2.0 * at_zero.cwiseAbs().maxCoeff() + scale * deviations.cwiseAbs().maxCoeff()) +
-                 1e-11 * (1.0 + mean.norm() + x_size)) / scale;
-            const double tolerance = 4.0 * 2.0 * double(d) * deviations.cwiseAbs().maxCoeff() * entry_error;
-            CHECK((deviations * deviations.transpose() - (1.0 - a * a) * cov).cwiseAbs().maxCoeff() <= tolerance);
         }
     }
 }
 
-TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two") {
+TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two, with and without biases") {
     const LevelGuard guard;
     for (const bool long_rows : {false, true}) {
         const RatingSet rs = ratings_for(long_rows);
         const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
         const GibbsData data{&by_user, &by_item, rs.mean()};
-        for (const uint32_t rank : {5u, 16u}) {
-            FitOptions o;
-            o.rank = rank;
-            auto run = [&](CpuLevel level, int threads) {
-                set_cpu_level(level);
-                GibbsState st = initial_state(data, o, 21, 1);
-                for (uint32_t sweep = 0; sweep < 3; ++sweep) gibbs_sweep(data, o, SweepKey{21, 1, sweep}, st, threads);
-                return st;
-            };
-            const GibbsState reference = run(CpuLevel::baseline, 1);
-            for (CpuLevel level : supported_cpu_levels()) {
-                for (int threads : {1, 2}) {
-                    INFO("level " << cpu_level_name(level) << ", " << threads << " thread(s), rank " << rank);
-                    const GibbsState st = run(level, threads);
-                    CHECK(st.user_factors == reference.user_factors);
-                    CHECK(st.item_factors == reference.item_factors);
-                    CHECK(st.user_bias == reference.user_bias);
-                    CHECK(st.item_bias == reference.item_bias);
-                    CHECK(st.sse == reference.sse);
-                    CHECK(st.noise_precision == reference.noise_precision);
+        // 5 takes the run-time-sized kernels; 8, 16 and 32 the fixed-size ones.
+        for (const uint32_t rank : {5u, 8u, 16u, 32u}) {
+            for (const bool biases : {true, false}) {
+                FitOptions o;
+                o.rank = rank;
+                o.biases = biases;
+                auto run = [&](CpuLevel level, int threads) {
+                    set_cpu_level(level);
+                    GibbsState st = initial_state(data, o, 21, 1);
+                    for (uint32_t sweep = 0; sweep < 3; ++sweep)
+                        gibbs_sweep(data, o, SweepKey{21, 1, sweep}, st, threads);
+                    return st;
+                };
+                const GibbsState reference = run(CpuLevel::baseline, 1);
+                for (CpuLevel level : supported_cpu_levels()) {
+                    for (int threads : {1, 2}) {
+                        INFO("level " << cpu_level_name(level) << ", " << threads << " thread(s), rank " << rank
+                                      << (biases ? ", biases" : ", no biases"));
+                        const GibbsState st = run(level, threads);
+                        CHECK(st.user_factors == reference.user_factors);
+                        CHECK(st.item_factors == reference.item_factors);
+                        CHECK(st.user_bias == reference.user_bias);
+                        CHECK(st.item_bias == reference.item_bias);
+                        CHECK(st.sse == reference.sse);
+                        CHECK(st.noise_precision == reference.noise_precision);
+                    }
                 }
             }
         }
