@@ -311,47 +311,68 @@ std::vector<SimilarItem> similar_items(const Posterior& p, const ItemStatistics&
     return out;
 }
 
-std::vector<SimilarItem> most_similar_among(const Posterior& p, const ItemStatistics& statistics, uint32_t target,
-                                            std::span<const uint32_t> among, uint32_t n) {
+std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p, const ItemStatistics& statistics,
+                                                              std::span<const uint32_t> targets,
+                                                              std::span<const uint32_t> among, uint32_t n) {
     const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
     if (statistics.num_items != I || statistics.rank != K || statistics.num_samples != S ||
         statistics.item_norm.size() != static_cast<size_t>(S) * I)
         throw std::invalid_argument("most_similar_among: the item statistics were computed from another posterior");
-    std::vector<uint32_t> items;
-    for (uint32_t i : among) {
+    for (uint32_t i : among)
         if (i >= I)
             throw std::out_of_range("most_similar_among: item index " + std::to_string(i) + " is not below " +
                                     std::to_string(I));
-        if (i != target) items.push_back(i);
-    }
-    if (target >= I)
-        throw std::out_of_range("most_similar_among: item index " + std::to_string(target) + " is not below " +
-                                std::to_string(I));
+    for (uint32_t target : targets)
+        if (target >= I)
+            throw std::out_of_range("most_similar_among: item index " + std::to_string(target) + " is not below " +
+                                    std::to_string(I));
+    std::vector<uint32_t> items(among.begin(), among.end());
     std::sort(items.begin(), items.end());
     items.erase(std::unique(items.begin(), items.end()), items.end());
-    std::vector<double> total(items.size(), 0.0);  // sum over samples of the cosine
+    // total[t * items + j]: sum over samples of the cosine of target t and
+    // items[j]. Samples outermost, so each sample's factors of the rated
+    // items are read from memory once for every target; each sum still adds
+    // the samples in order, so every target gets the bits it would alone.
+    const size_t count = items.size();
+    std::vector<double> total(targets.size() * count, 0.0);
     for (uint32_t s = 0; s < S; ++s) {
         const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
-        const auto v = p.item_factor(s, target);
-        for (size_t j = 0; j < items.size(); ++j) {
-            const double denom = static_cast<double>(norms[target]) * norms[items[j]];
-            if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
-            const auto w = p.item_factor(s, items[j]);
-            double dot = 0.0;
-            for (uint32_t k = 0; k < K; ++k) dot += static_cast<double>(v[k]) * w[k];
-            total[j] += dot / denom;
+        for (size_t t = 0; t < targets.size(); ++t) {
+            const uint32_t target = targets[t];
+            const auto v = p.item_factor(s, target);
+            double* row = total.data() + t * count;
+            for (size_t j = 0; j < count; ++j) {
+                if (items[j] == target) continue;
+                const double denom = static_cast<double>(norms[target]) * norms[items[j]];
+                if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
+                const auto w = p.item_factor(s, items[j]);
+                double dot = 0.0;
+                for (uint32_t k = 0; k < K; ++k) dot += static_cast<double>(v[k]) * w[k];
+                row[j] += dot / denom;
+            }
         }
     }
-    std::vector<size_t> order(items.size());
-    std::iota(order.begin(), order.end(), size_t{0});
-    const size_t take = std::min<size_t>(n, order.size());
-    // items is ascending, so ties in total break by item index through the position.
-    std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
-                      [&](size_t a, size_t b) { return total[a] != total[b] ? total[a] > total[b] : a < b; });
-    std::vector<SimilarItem> out;
-    out.reserve(take);
-    for (size_t k = 0; k < take; ++k) out.push_back({items[order[k]], total[order[k]] / S});
+    std::vector<std::vector<SimilarItem>> out(targets.size());
+    std::vector<size_t> order;
+    for (size_t t = 0; t < targets.size(); ++t) {
+        const double* row = total.data() + t * count;
+        order.clear();
+        for (size_t j = 0; j < count; ++j)
+            if (items[j] != targets[t]) order.push_back(j);  // the target itself is skipped
+        const size_t take = std::min<size_t>(n, order.size());
+        // items is ascending, so ties in total break by item index through the position.
+        std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
+                          [&](size_t a, size_t b) { return row[a] != row[b] ? row[a] > row[b] : a < b; });
+        out[t].reserve(take);
+        for (size_t k = 0; k < take; ++k) out[t].push_back({items[order[k]], row[order[k]] / S});
+    }
     return out;
+}
+
+std::vector<SimilarItem> most_similar_among(const Posterior& p, const ItemStatistics& statistics, uint32_t target,
+                                            std::span<const uint32_t> among, uint32_t n) {
+    const uint32_t targets[] = {target};
+    return std::move(most_similar_among_each(p, statistics, targets, among, n).front());
 }
 
 }  // namespace credence
