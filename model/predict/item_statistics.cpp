@@ -331,24 +331,40 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
     items.erase(std::unique(items.begin(), items.end()), items.end());
     // total[t * items + j]: sum over samples of the cosine of target t and
     // items[j]. Samples outermost, so each sample's factors of the rated
-    // items are read from memory once for every target; each sum still adds
-    // the samples in order, so every target gets the bits it would alone.
+    // items are read from memory once for every target (widened and laid out
+    // by rank, [K][count]). Each dot product still adds k = 0..K-1 in order
+    // in double, and a float times a float is exact in double, so every
+    // target gets the bits it would alone; blocks of items are only summed
+    // side by side, which lets the sums overlap.
     const size_t count = items.size();
+    constexpr size_t kBlock = 8;
+    const size_t padded = (count + kBlock - 1) / kBlock * kBlock;
     std::vector<double> total(targets.size() * count, 0.0);
+    std::vector<double> by_rank(static_cast<size_t>(K) * padded, 0.0), dots(padded);
     for (uint32_t s = 0; s < S; ++s) {
         const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
+        for (size_t j = 0; j < count; ++j) {
+            const auto w = p.item_factor(s, items[j]);
+            for (uint32_t k = 0; k < K; ++k) by_rank[k * padded + j] = static_cast<double>(w[k]);
+        }
         for (size_t t = 0; t < targets.size(); ++t) {
             const uint32_t target = targets[t];
             const auto v = p.item_factor(s, target);
+            for (size_t j0 = 0; j0 < padded; j0 += kBlock) {
+                double acc[kBlock] = {};
+                for (uint32_t k = 0; k < K; ++k) {
+                    const double vk = static_cast<double>(v[k]);
+                    const double* w = by_rank.data() + k * padded + j0;
+                    for (size_t b = 0; b < kBlock; ++b) acc[b] += vk * w[b];
+                }
+                for (size_t b = 0; b < kBlock; ++b) dots[j0 + b] = acc[b];
+            }
             double* row = total.data() + t * count;
             for (size_t j = 0; j < count; ++j) {
                 if (items[j] == target) continue;
                 const double denom = static_cast<double>(norms[target]) * norms[items[j]];
                 if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
-                const auto w = p.item_factor(s, items[j]);
-                double dot = 0.0;
-                for (uint32_t k = 0; k < K; ++k) dot += static_cast<double>(v[k]) * w[k];
-                row[j] += dot / denom;
+                row[j] += dots[j] / denom;
             }
         }
     }

@@ -338,7 +338,8 @@ TEST_CASE("the most similar among given items equal a direct averaged cosine") {
 }
 
 TEST_CASE("the most similar among given items for several targets at once equal each target's direct averaged cosine") {
-    const Posterior p = simulate_posterior({.users = 4, .items = 30, .rank = 4, .samples = 10, .chains = 2, .seed = 37});
+    // 7 distinct rated items: one partial block of the side-by-side sums.
+    const Posterior p = simulate_posterior({.users = 4, .items = 30, .rank = 5, .samples = 10, .chains = 2, .seed = 37});
     const ItemStatistics st = compute_item_statistics(p);
     // Targets inside and outside the rated list, and a target twice.
     const std::vector<uint32_t> targets = {5, 11, 0, 29, 5};
@@ -361,6 +362,20 @@ TEST_CASE("the most similar among given items for several targets at once equal 
             CHECK(got[t][k].item == want[k].second);
             // Norms are stored as floats: agreement to float rounding, 1e-6.
             CHECK(got[t][k].similarity == Approx(-want[k].first).margin(1e-6));
+        }
+        // The same bits as the plain per-pair loop over samples (the dot
+        // product in double, k in order, over the stored norms).
+        for (const SimilarItem& got_k : got[t]) {
+            double total = 0.0;
+            for (uint32_t s = 0; s < p.num_samples; ++s) {
+                const double denom = double(st.item_norm[size_t(s) * p.num_items + targets[t]]) *
+                                     st.item_norm[size_t(s) * p.num_items + got_k.item];
+                double dot = 0.0;
+                for (uint32_t k = 0; k < p.rank; ++k)
+                    dot += double(p.item_factor(s, targets[t])[k]) * p.item_factor(s, got_k.item)[k];
+                if (denom > 0.0) total += dot / denom;
+            }
+            CHECK(got_k.similarity == total / p.num_samples);
         }
         // The one-target call gives the same bits.
         const auto alone = most_similar_among(p, st, targets[t], among, 4);
