@@ -343,6 +343,19 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
     std::vector<double> by_rank(static_cast<size_t>(K) * padded, 0.0), dots(padded);
     for (uint32_t s = 0; s < S; ++s) {
         const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
+        // The rows are scattered over the sample blocks: ask for the next
+        // sample's while this one is summed, so their memory latencies overlap.
+        if (s + 1 < S) {
+            const float* next_norms = norms + I;
+            for (uint32_t i : items) {
+                __builtin_prefetch(p.item_factor(s + 1, i).data());
+                __builtin_prefetch(next_norms + i);
+            }
+            for (uint32_t i : targets) {
+                __builtin_prefetch(p.item_factor(s + 1, i).data());
+                __builtin_prefetch(next_norms + i);
+            }
+        }
         for (size_t j = 0; j < count; ++j) {
             const auto w = p.item_factor(s, items[j]);
             for (uint32_t k = 0; k < K; ++k) by_rank[k * padded + j] = static_cast<double>(w[k]);
