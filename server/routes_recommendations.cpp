@@ -29,7 +29,7 @@ namespace {
 // one server): requests share passes only when they are for the same
 // engine, so models never mix.
 TopNBatcher& known_user_batcher(const ServeOptions& options) {
-    static TopNBatcher batcher(options.topn_lanes, options.topn_batch_max);
+    static TopNBatcher batcher(options.topn_lanes, options.topn_batch_max, options.topn_window_us);
     return batcher;
 }
 
@@ -111,6 +111,8 @@ nlohmann::json recommendation_list(const LoadedModel& model, const std::vector<R
 }
 
 void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    TopNBatcher& batcher = known_user_batcher(ctx.options);
+    const TopNBatcher::Visit visit(batcher);  // until the answer is built: the collection window counts it
     const auto segments = decoded_path_segments(req);
     // ["", "v1", "users", <user>, "recommendations"]; ids may contain '/' when encoded.
     if (segments.size() != 5 || segments[4] != "recommendations")
@@ -142,7 +144,7 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
     }
     if (req.has_param("category"))
         options.candidates = category_candidates(*model, req.get_param_value("category"), options.candidates);
-    const auto recs = known_user_batcher(ctx.options).recommend(model->engine, *user, options);
+    const auto recs = batcher.recommend(model->engine, *user, options);
     const auto rated_span = model->posterior->rated_by(*user);
     const RatedByViewer rated{{rated_span.begin(), rated_span.end()}, {}};
     nlohmann::json body = {{"model", model->fingerprint},
