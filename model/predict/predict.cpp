@@ -28,6 +28,7 @@
 #include <new>
 #include <stdexcept>
 #include <string>
+#include <unordered_map>
 
 #include <fmt/format.h>
 
@@ -162,14 +163,13 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
     }
 
     // ---- pass 2: exact scores where they can matter
-    std::vector<double> m;
-    uint32_t cached_item = std::numeric_limits<uint32_t>::max();
+    // Every item's reference means are computed once: the answer's
+    // predictions reuse those of its scores (each a read of S scattered rows).
+    std::unordered_map<uint32_t, std::vector<double>> computed;
     auto means_of = [&](uint32_t item) -> const std::vector<double>& {
-        if (item != cached_item) {
-            reference_means(p, viewer, item, m);
-            cached_item = item;
-        }
-        return m;
+        auto [at, fresh] = computed.try_emplace(item);
+        if (fresh) reference_means(p, viewer, item, at->second);
+        return at->second;
     };
     auto exact = [&](uint32_t item) -> double {
         if (options.rank_by == RankBy::draw) return reference_mean(p, viewer, plan.drawn, item);
