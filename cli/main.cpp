@@ -19,6 +19,10 @@
 //       precondition between modules) and any other unexpected exception.
 //       This is a bug in credence, never the user's doing; the message says
 //       so and asks for a report. 70 is EX_SOFTWARE of BSD's sysexits.h.
+#include <unistd.h>
+
+#include <cstdlib>
+#include <cstring>
 #include <iostream>
 #include <map>
 #include <stdexcept>
@@ -94,7 +98,25 @@ int run_reporting_errors(const std::string& command, const credence::cli::Runner
 
 }  // namespace
 
+namespace {
+
+// `credence serve` runs its OpenMP team only for the short passes of top-N
+// requests. libgomp's default keeps idle team threads spinning for a while
+// after each pass, which takes CPU from the threads building answers (on a
+// 2-core machine under 8 clients, measured: 270 -> 470 top-10 requests/s).
+// The policy is read once, when libgomp loads, so the server starts itself
+// again with OMP_WAIT_POLICY=passive unless the variable is already set
+// (then the operator's choice stands). If the exec fails, it serves as is.
+void serve_with_passive_waiting(int argc, char** argv) {
+    if (argc < 2 || std::strcmp(argv[1], "serve") != 0 || std::getenv("OMP_WAIT_POLICY") != nullptr) return;
+    if (::setenv("OMP_WAIT_POLICY", "passive", 1) != 0) return;
+    ::execv("/proc/self/exe", argv);
+}
+
+}  // namespace
+
 int main(int argc, char** argv) {
+    serve_with_passive_waiting(argc, argv);
     CLI::App app{"credence: Bayesian matrix factorization recommender with honest uncertainty"};
     app.require_subcommand(1);
     // The kernels' CPU level is settled before anything runs: a bad

@@ -93,6 +93,9 @@ const auto kKeys = std::to_array<ServeConfigKey>({
     number_key("topn_lanes", &O::topn_lanes, 0, kU32,
                "top-N passes over the item samples running at once; 0: one per hardware thread"),
     number_key("topn_batch_max", &O::topn_batch_max, 1, kU32, "most top-N requests one pass over the item samples serves"),
+    number_key("topn_window_us", &O::topn_window_us, 0, kU32,
+               "longest a top-N pass waits, in microseconds, for requests already being parsed or answered to "
+               "join it; 0: never wait"),
 });
 
 bool is_choice(std::string_view choices, std::string_view value) {

@@ -39,8 +39,9 @@ struct ServeOptions {
     bool log_json = false;                       // log lines as JSON objects (server/logging.hpp)
     uint32_t max_n = 1000;                       // largest n for top-N and item lists
     uint32_t max_batch = 10000;                  // largest prediction batch / fold-in rating count
-    uint32_t topn_lanes = 0;                     // top-N passes running at once; 0 = one per hardware thread
+    uint32_t topn_lanes = 1;                     // top-N passes running at once; 0 = one per hardware thread
     uint32_t topn_batch_max = 16;                // most top-N requests sharing one pass over the item samples
+    uint32_t topn_window_us = 2000;              // longest wait of a pass for top-N requests being parsed or answered
 };
 
 // One [serve] key: its name in the file, the ServeOptions field it sets (the

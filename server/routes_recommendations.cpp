@@ -29,7 +29,7 @@ namespace {
 // one server): requests share passes only when they are for the same
 // engine, so models never mix.
 TopNBatcher& known_user_batcher(const ServeOptions& options) {
-    static TopNBatcher batcher(options.topn_lanes, options.topn_batch_max);
+    static TopNBatcher batcher(options.topn_lanes, options.topn_batch_max, options.topn_window_us);
     return batcher;
 }
 
@@ -66,11 +66,12 @@ struct RatedByViewer {
 
 // "why": the product's training rating count and up to 3 of the viewer's
 // rated products most similar to it (averaged factor cosine,
-// model/predict/item_statistics.hpp), only those with a positive similarity.
-nlohmann::json why_json(const LoadedModel& model, uint32_t item, const RatedByViewer& rated) {
-    constexpr uint32_t kSimilarShown = 3;
+// model/predict/item_statistics.hpp), only those with a positive
+// similarity. `similar` is most_similar_among() of the item.
+nlohmann::json why_json(const LoadedModel& model, uint32_t item, const RatedByViewer& rated,
+                        const std::vector<SimilarItem>& most_similar) {
     nlohmann::json similar = nlohmann::json::array();
-    for (const SimilarItem& s : most_similar_among(*model.posterior, model.statistics, item, rated.items, kSimilarShown)) {
+    for (const SimilarItem& s : most_similar) {
         if (!(s.similarity > 0.0)) break;  // an opposite direction explains nothing; the list is best first
         nlohmann::json entry = item_json(model, s.item);
         entry["similarity"] = s.similarity;
@@ -89,19 +90,29 @@ nlohmann::json why_json(const LoadedModel& model, uint32_t item, const RatedByVi
 // (rank_value_unclipped, which orders entries tied at a scale end), and why.
 nlohmann::json recommendation_list(const LoadedModel& model, const std::vector<Recommendation>& recs,
                                    const RatedByViewer& rated) {
+    constexpr uint32_t kSimilarShown = 3;
+    std::vector<uint32_t> targets;
+    targets.reserve(recs.size());
+    for (const auto& r : recs) targets.push_back(r.item);
+    // One pass over the samples explains every entry (the rated products'
+    // factors are read once, not once per entry).
+    const auto similar = most_similar_among_each(*model.posterior, model.statistics, targets, rated.items, kSimilarShown);
     nlohmann::json items = nlohmann::json::array();
-    for (const auto& r : recs) {
+    for (size_t k = 0; k < recs.size(); ++k) {
+        const auto& r = recs[k];
         nlohmann::json entry = item_json(model, r.item);
         put_prediction(entry, r.prediction);
         entry["rank_value"] = r.rank_value;
         entry["rank_value_unclipped"] = r.score;
-        entry["why"] = why_json(model, r.item, rated);
+        entry["why"] = why_json(model, r.item, rated, similar[k]);
         items.push_back(std::move(entry));
     }
     return items;
 }
 
 void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    TopNBatcher& batcher = known_user_batcher(ctx.options);
+    const TopNBatcher::Visit visit(batcher);  // until the answer is built: the collection window counts it
     const auto segments = decoded_path_segments(req);
     // ["", "v1", "users", <user>, "recommendations"]; ids may contain '/' when encoded.
     if (segments.size() != 5 || segments[4] != "recommendations")
@@ -133,7 +144,7 @@ void user_handler(AppContext& ctx, const httplib::Request& req, httplib::Respons
     }
     if (req.has_param("category"))
         options.candidates = category_candidates(*model, req.get_param_value("category"), options.candidates);
-    const auto recs = known_user_batcher(ctx.options).recommend(model->engine, *user, options);
+    const auto recs = batcher.recommend(model->engine, *user, options);
     const auto rated_span = model->posterior->rated_by(*user);
     const RatedByViewer rated{{rated_span.begin(), rated_span.end()}, {}};
     nlohmann::json body = {{"model", model->fingerprint},

@@ -7,11 +7,23 @@
 
 namespace credence::server {
 
-TopNBatcher::TopNBatcher(unsigned lanes, size_t max_batch)
+TopNBatcher::TopNBatcher(unsigned lanes, size_t max_batch, uint32_t window_us)
     : lanes_(lanes ? lanes : std::max(1u, std::thread::hardware_concurrency())),
       hardware_threads_(std::max(1u, std::thread::hardware_concurrency())),
-      max_batch_(max_batch) {
+      max_batch_(max_batch),
+      window_(window_us) {
     if (max_batch_ == 0) throw std::invalid_argument("top-N batcher needs a batch size of at least 1");
+}
+
+TopNBatcher::Visit::Visit(TopNBatcher& batcher) : batcher_(batcher) {
+    std::lock_guard lock(batcher_.mutex_);
+    ++batcher_.visits_;
+}
+
+TopNBatcher::Visit::~Visit() {
+    std::lock_guard lock(batcher_.mutex_);
+    --batcher_.visits_;
+    batcher_.arrived_.notify_all();  // a leader may be waiting for this one
 }
 
 std::vector<TopNBatcher::Job*> TopNBatcher::take_batch() {
@@ -28,6 +40,18 @@ std::vector<TopNBatcher::Job*> TopNBatcher::take_batch() {
     return batch;
 }
 
+void TopNBatcher::gather(std::unique_lock<std::mutex>& lock) {
+    // Visits outside a pass that have not queued yet: about to.
+    auto more_coming = [&] {
+        return queue_.size() < max_batch_ && visits_ > in_passes_ && queue_.size() < visits_ - in_passes_;
+    };
+    if (window_.count() == 0 || !more_coming()) return;
+    const auto deadline = std::chrono::steady_clock::now() + window_;
+    ++stats_.windows;
+    while (more_coming())
+        if (arrived_.wait_until(lock, deadline) == std::cv_status::timeout) break;
+}
+
 std::vector<Recommendation> TopNBatcher::recommend(const PredictionEngine& engine, uint32_t user,
                                                    const RecommendOptions& options) {
     Job job;
@@ -35,6 +59,7 @@ std::vector<Recommendation> TopNBatcher::recommend(const PredictionEngine& engin
     job.request = {user, options};
     std::unique_lock lock(mutex_);
     queue_.push_back(&job);
+    arrived_.notify_all();
     while (!job.done) {
         if (running_ >= lanes_ || queue_.empty()) {
             // Our job is queued behind a busy lane, or taken by another lane.
@@ -42,9 +67,18 @@ std::vector<Recommendation> TopNBatcher::recommend(const PredictionEngine& engin
             continue;
         }
         ++running_;
+        gather(lock);
+        if (queue_.empty()) {  // another lane took everything while we waited
+            --running_;
+            finished_.notify_all();
+            continue;
+        }
         std::vector<Job*> batch = take_batch();
-        // A pass with the machine to itself reads the samples on every core.
-        const int threads = running_ == 1 && queue_.empty() ? static_cast<int>(hardware_threads_) : 1;
+        in_passes_ += batch.size();
+        // A pass with no other lane busy reads the samples on every core.
+        // (With several lanes, only when nothing is left queued for another.)
+        const bool alone = running_ == 1 && (lanes_ == 1 || queue_.empty());
+        const int threads = alone ? static_cast<int>(hardware_threads_) : 1;
         lock.unlock();
         std::vector<RecommendRequest> requests;
         requests.reserve(batch.size());
@@ -58,6 +92,7 @@ std::vector<Recommendation> TopNBatcher::recommend(const PredictionEngine& engin
         lock.lock();
         for (Job* j : batch) j->done = true;
         --running_;
+        in_passes_ -= batch.size();
         stats_.requests += batch.size();
         stats_.passes += 1;
         stats_.largest_batch = std::max(stats_.largest_batch, batch.size());

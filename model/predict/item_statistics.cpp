@@ -311,47 +311,97 @@ std::vector<SimilarItem> similar_items(const Posterior& p, const ItemStatistics&
     return out;
 }
 
-std::vector<SimilarItem> most_similar_among(const Posterior& p, const ItemStatistics& statistics, uint32_t target,
-                                            std::span<const uint32_t> among, uint32_t n) {
+std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p, const ItemStatistics& statistics,
+                                                              std::span<const uint32_t> targets,
+                                                              std::span<const uint32_t> among, uint32_t n) {
     const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
     if (statistics.num_items != I || statistics.rank != K || statistics.num_samples != S ||
         statistics.item_norm.size() != static_cast<size_t>(S) * I)
         throw std::invalid_argument("most_similar_among: the item statistics were computed from another posterior");
-    std::vector<uint32_t> items;
-    for (uint32_t i : among) {
+    for (uint32_t i : among)
         if (i >= I)
             throw std::out_of_range("most_similar_among: item index " + std::to_string(i) + " is not below " +
                                     std::to_string(I));
-        if (i != target) items.push_back(i);
-    }
-    if (target >= I)
-        throw std::out_of_range("most_similar_among: item index " + std::to_string(target) + " is not below " +
-                                std::to_string(I));
+    for (uint32_t target : targets)
+        if (target >= I)
+            throw std::out_of_range("most_similar_among: item index " + std::to_string(target) + " is not below " +
+                                    std::to_string(I));
+    std::vector<uint32_t> items(among.begin(), among.end());
     std::sort(items.begin(), items.end());
     items.erase(std::unique(items.begin(), items.end()), items.end());
-    std::vector<double> total(items.size(), 0.0);  // sum over samples of the cosine
+    // total[t * items + j]: sum over samples of the cosine of target t and
+    // items[j]. Samples outermost, so each sample's factors of the rated
+    // items are read from memory once for every target (widened and laid out
+    // by rank, [K][count]). Each dot product still adds k = 0..K-1 in order
+    // in double, and a float times a float is exact in double, so every
+    // target gets the bits it would alone; blocks of items are only summed
+    // side by side, which lets the sums overlap.
+    const size_t count = items.size();
+    constexpr size_t kBlock = 8;
+    const size_t padded = (count + kBlock - 1) / kBlock * kBlock;
+    std::vector<double> total(targets.size() * count, 0.0);
+    std::vector<double> by_rank(static_cast<size_t>(K) * padded, 0.0), dots(padded);
     for (uint32_t s = 0; s < S; ++s) {
         const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
-        const auto v = p.item_factor(s, target);
-        for (size_t j = 0; j < items.size(); ++j) {
-            const double denom = static_cast<double>(norms[target]) * norms[items[j]];
-            if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
+        // The rows are scattered over the sample blocks: ask for the next
+        // sample's while this one is summed, so their memory latencies overlap.
+        if (s + 1 < S) {
+            const float* next_norms = norms + I;
+            for (uint32_t i : items) {
+                __builtin_prefetch(p.item_factor(s + 1, i).data());
+                __builtin_prefetch(next_norms + i);
+            }
+            for (uint32_t i : targets) {
+                __builtin_prefetch(p.item_factor(s + 1, i).data());
+                __builtin_prefetch(next_norms + i);
+            }
+        }
+        for (size_t j = 0; j < count; ++j) {
             const auto w = p.item_factor(s, items[j]);
-            double dot = 0.0;
-            for (uint32_t k = 0; k < K; ++k) dot += static_cast<double>(v[k]) * w[k];
-            total[j] += dot / denom;
+            for (uint32_t k = 0; k < K; ++k) by_rank[k * padded + j] = static_cast<double>(w[k]);
+        }
+        for (size_t t = 0; t < targets.size(); ++t) {
+            const uint32_t target = targets[t];
+            const auto v = p.item_factor(s, target);
+            for (size_t j0 = 0; j0 < padded; j0 += kBlock) {
+                double acc[kBlock] = {};
+                for (uint32_t k = 0; k < K; ++k) {
+                    const double vk = static_cast<double>(v[k]);
+                    const double* w = by_rank.data() + k * padded + j0;
+                    for (size_t b = 0; b < kBlock; ++b) acc[b] += vk * w[b];
+                }
+                for (size_t b = 0; b < kBlock; ++b) dots[j0 + b] = acc[b];
+            }
+            double* row = total.data() + t * count;
+            for (size_t j = 0; j < count; ++j) {
+                if (items[j] == target) continue;
+                const double denom = static_cast<double>(norms[target]) * norms[items[j]];
+                if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
+                row[j] += dots[j] / denom;
+            }
         }
     }
-    std::vector<size_t> order(items.size());
-    std::iota(order.begin(), order.end(), size_t{0});
-    const size_t take = std::min<size_t>(n, order.size());
-    // items is ascending, so ties in total break by item index through the position.
-    std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
-                      [&](size_t a, size_t b) { return total[a] != total[b] ? total[a] > total[b] : a < b; });
-    std::vector<SimilarItem> out;
-    out.reserve(take);
-    for (size_t k = 0; k < take; ++k) out.push_back({items[order[k]], total[order[k]] / S});
+    std::vector<std::vector<SimilarItem>> out(targets.size());
+    std::vector<size_t> order;
+    for (size_t t = 0; t < targets.size(); ++t) {
+        const double* row = total.data() + t * count;
+        order.clear();
+        for (size_t j = 0; j < count; ++j)
+            if (items[j] != targets[t]) order.push_back(j);  // the target itself is skipped
+        const size_t take = std::min<size_t>(n, order.size());
+        // items is ascending, so ties in total break by item index through the position.
+        std::partial_sort(order.begin(), order.begin() + static_cast<std::ptrdiff_t>(take), order.end(),
+                          [&](size_t a, size_t b) { return row[a] != row[b] ? row[a] > row[b] : a < b; });
+        out[t].reserve(take);
+        for (size_t k = 0; k < take; ++k) out[t].push_back({items[order[k]], row[order[k]] / S});
+    }
     return out;
+}
+
+std::vector<SimilarItem> most_similar_among(const Posterior& p, const ItemStatistics& statistics, uint32_t target,
+                                            std::span<const uint32_t> among, uint32_t n) {
+    const uint32_t targets[] = {target};
+    return std::move(most_similar_among_each(p, statistics, targets, among, n).front());
 }
 
 }  // namespace credence

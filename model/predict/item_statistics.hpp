@@ -119,4 +119,14 @@ std::vector<SimilarItem> similar_items(const Posterior& posterior, const ItemSta
 std::vector<SimilarItem> most_similar_among(const Posterior& posterior, const ItemStatistics& statistics,
                                             uint32_t target, std::span<const uint32_t> among, uint32_t n);
 
+// most_similar_among() for several targets at once: entry t is
+// most_similar_among(posterior, statistics, targets[t], among, n), bit for
+// bit, and throws the same. One pass over the samples serves every target,
+// so explaining a list of n recommendations reads the rated products'
+// factors from memory once rather than n times.
+std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& posterior,
+                                                              const ItemStatistics& statistics,
+                                                              std::span<const uint32_t> targets,
+                                                              std::span<const uint32_t> among, uint32_t n);
+
 }  // namespace credence

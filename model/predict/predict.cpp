@@ -28,6 +28,7 @@
 #include <new>
 #include <stdexcept>
 #include <string>
+#include <unordered_map>
 
 #include <fmt/format.h>
 
@@ -116,12 +117,13 @@ void prepare_job(const Plan& plan, ScreenJob& job) {
 }
 
 // Pass 1 for one request alone (a full pass is shared in recommend_batch).
-void screen_alone(const Posterior& p, std::span<const double> max_item_norm, const Plan& plan, ScreenJob& job) {
+void screen_alone(const Posterior& p, std::span<const double> max_item_norm, const ItemBiasTotals& bias_totals,
+                  const Plan& plan, ScreenJob& job) {
     if (plan.options->rank_by == RankBy::draw || plan.pool.empty()) return;
     prepare_job(plan, job);
     if (plan.full_pass) {
         ScreenJob* jobs[] = {&job};
-        screen_all_items(p, max_item_norm, jobs);
+        screen_all_items(p, max_item_norm, jobs, 1, &bias_totals);
     } else {
         screen_pool(p, max_item_norm, plan.pool, job);
     }
@@ -161,14 +163,13 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
     }
 
     // ---- pass 2: exact scores where they can matter
-    std::vector<double> m;
-    uint32_t cached_item = std::numeric_limits<uint32_t>::max();
+    // Every item's reference means are computed once: the answer's
+    // predictions reuse those of its scores (each a read of S scattered rows).
+    std::unordered_map<uint32_t, std::vector<double>> computed;
     auto means_of = [&](uint32_t item) -> const std::vector<double>& {
-        if (item != cached_item) {
-            reference_means(p, viewer, item, m);
-            cached_item = item;
-        }
-        return m;
+        auto [at, fresh] = computed.try_emplace(item);
+        if (fresh) reference_means(p, viewer, item, at->second);
+        return at->second;
     };
     auto exact = [&](uint32_t item) -> double {
         if (options.rank_by == RankBy::draw) return reference_mean(p, viewer, plan.drawn, item);
@@ -246,15 +247,15 @@ Scratch& scratch() {
 }
 
 std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const double> max_item_norm,
-                                            const Viewer& viewer, std::span<const uint32_t> exclude,
-                                            const RecommendOptions& options) {
+                                            const ItemBiasTotals& bias_totals, const Viewer& viewer,
+                                            std::span<const uint32_t> exclude, const RecommendOptions& options) {
     Scratch& s = scratch();
     const TrimOnExit trim{s};
     s.reserve(1);
     Plan& plan = s.plans[0];
     ScreenJob& job = s.jobs[0];
     make_plan(p, viewer, exclude, options, plan);
-    screen_alone(p, max_item_norm, plan, job);
+    screen_alone(p, max_item_norm, bias_totals, plan, job);
     return select_for_plan(p, max_item_norm, plan, job);
 }
 
@@ -298,6 +299,7 @@ uint32_t drawn_sample(uint64_t draw_seed, uint32_t samples) {
 PredictionEngine::PredictionEngine(std::shared_ptr<const Posterior> posterior) : posterior_(std::move(posterior)) {
     if (!posterior_) throw std::invalid_argument("prediction engine needs a posterior");
     max_item_norm_ = max_item_norms(*posterior_);
+    bias_totals_ = std::make_shared<const ItemBiasTotals>(item_bias_totals(*posterior_));
 }
 
 void PredictionEngine::sample_means(uint32_t user, uint32_t item, std::vector<double>& out) const {
@@ -321,7 +323,7 @@ std::vector<Recommendation> PredictionEngine::recommend(uint32_t user, const Rec
     if (user >= p.num_users)
         throw std::out_of_range("recommend: user index " + std::to_string(user) + " is beyond the model's " +
                                 std::to_string(p.num_users) + " users");
-    return rank_for_viewer(p, max_item_norm_, known_user(p, user), p.rated_by(user), options);
+    return rank_for_viewer(p, max_item_norm_, *bias_totals_, known_user(p, user), p.rated_by(user), options);
 }
 
 std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests,
@@ -355,10 +357,10 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
             prepare_job(s.plans[k], s.jobs[k]);
             shared.push_back(&s.jobs[k]);
         } else {
-            screen_alone(p, max_item_norm_, s.plans[k], s.jobs[k]);
+            screen_alone(p, max_item_norm_, *bias_totals_, s.plans[k], s.jobs[k]);
         }
     }
-    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads);
+    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads, bias_totals_.get());
     for (size_t k = 0; k < count; ++k) {
         if (!planned[k]) continue;
         try {
@@ -388,7 +390,7 @@ std::vector<Recommendation> PredictionEngine::recommend_for_factors(std::span<co
     v.factor_stride = K;
     v.bias = visitor_bias.data();
     v.bias_stride = 1;
-    return rank_for_viewer(p, max_item_norm_, v, exclude, options);
+    return rank_for_viewer(p, max_item_norm_, *bias_totals_, v, exclude, options);
 }
 
 }  // namespace credence

@@ -19,6 +19,8 @@
 
 namespace credence {
 
+struct ItemBiasTotals;  // model/predict/screening.hpp
+
 struct Prediction {
     double mean = 0.0;   // mixture mean, clipped to the scale
     double sd = 0.0;     // mixture sd (unclipped predictive spread)
@@ -135,6 +137,9 @@ private:
     // [S] largest item-factor norm of each sample: bounds the float rounding
     // of the all-items scoring pass so pruning stays exact.
     std::vector<double> max_item_norm_;
+    // Per-item bias sums over the samples (model/predict/screening.hpp), so a
+    // mean-ranking pass does not re-read the bias block.
+    std::shared_ptr<const ItemBiasTotals> bias_totals_;
 };
 
 }  // namespace credence

@@ -19,6 +19,7 @@
 #include <cmath>
 #include <cstring>
 #include <limits>
+#include <stdexcept>
 
 #include "model/math/cpu_level.hpp"
 #include "model/predict/screening_kernels.hpp"
@@ -178,8 +179,25 @@ std::vector<double> max_item_norms(const Posterior& p) {
     return out;
 }
 
+ItemBiasTotals item_bias_totals(const Posterior& p) {
+    ItemBiasTotals out;
+    if (!p.has_biases) return out;
+    const uint32_t S = p.num_samples, I = p.num_items;
+    out.sum.assign(I, 0.0);
+    std::vector<double> abs_sum(I, 0.0);
+    for (uint32_t s = 0; s < S; ++s) {
+        const float* bias = p.item_bias.data() + static_cast<size_t>(s) * I;
+        for (uint32_t i = 0; i < I; ++i) {
+            out.sum[i] += static_cast<double>(bias[i]);
+            abs_sum[i] += std::abs(static_cast<double>(bias[i]));
+        }
+    }
+    for (double a : abs_sum) out.largest_abs_sum = std::max(out.largest_abs_sum, a);
+    return out;
+}
+
 void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs,
-                      int threads) {
+                      int threads, const ItemBiasTotals* bias_totals) {
     const uint32_t S = p.num_samples, K = p.rank, I = p.num_items;
     // Mean-only jobs take the grouped path (float sums over kGroupSamples
     // samples); the rest need every m_s.
@@ -194,6 +212,11 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
     }
     const screening_kernels::Table& k = kernels();
     double largest_bias_abs = 0.0;  // max_i sum_s |c_i,s|
+    // With the totals at hand, only per-sample jobs need the bias block.
+    const bool totals = bias_totals != nullptr && p.has_biases;
+    if (totals && bias_totals->sum.size() != I)
+        throw std::invalid_argument("screen_all_items: bias totals of another posterior");
+    const bool read_bias = p.has_biases && (!totals || !per_sample.empty());
     const auto tiles = static_cast<int64_t>((I + kTileItems - 1) / kTileItems);
     const int team = threads > 1 && tiles > 1 ? threads : 1;
     // Tiles are independent (each writes only its items' summaries), so the
@@ -219,8 +242,8 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
                 for (uint32_t s = s0; s < s1; ++s) {
                     const float* slice = p.item_block(s) + static_cast<size_t>(i0) * K;
                     slices[s - s0] = slice;
-                    const float* bias = p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * I + i0 : nullptr;
-                    if (bias && !grouped.empty())
+                    const float* bias = read_bias ? p.item_bias.data() + static_cast<size_t>(s) * I + i0 : nullptr;
+                    if (bias && !totals && !grouped.empty())
                         for (uint32_t j = 0; j < len; ++j) {
                             bias_sum[j] += static_cast<double>(bias[j]);
                             bias_abs[j] += std::abs(static_cast<double>(bias[j]));
@@ -247,13 +270,17 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
                     k.grouped_sums(tile, sums.data());
                 }
             }
+            // The same sums, from the totals or from this tile's reading.
+            const double* item_bias_sum = totals ? bias_totals->sum.data() + i0 : bias_sum;
             for (ScreenJob* job : grouped) {
                 double* sum = job->sum.data() + i0;
-                for (uint32_t j = 0; j < len; ++j) sum[j] += bias_sum[j];
+                for (uint32_t j = 0; j < len; ++j) sum[j] += item_bias_sum[j];
             }
-            for (uint32_t j = 0; j < len; ++j) largest_bias_abs = std::max(largest_bias_abs, bias_abs[j]);
+            if (!totals)
+                for (uint32_t j = 0; j < len; ++j) largest_bias_abs = std::max(largest_bias_abs, bias_abs[j]);
         }
     }
+    if (totals) largest_bias_abs = bias_totals->largest_abs_sum;
     for (ScreenJob* job : per_sample) finish_slack(p, max_item_norm, *job);
     for (ScreenJob* job : grouped) grouped_slack(p, max_item_norm, largest_bias_abs, *job);
 }

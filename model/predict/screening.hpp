@@ -57,13 +57,25 @@ struct ScreenJob {
     bool quantiles() const { return !shift.empty(); }
 };
 
+// Per item, the sum over samples of its bias c_i,s (in double, samples in
+// order) and the largest sum of |c_i,s|: what a mean-only pass would
+// otherwise re-read from the bias block every time. Empty sum without biases.
+struct ItemBiasTotals {
+    std::vector<double> sum;      // [I]
+    double largest_abs_sum = 0.0;  // max_i sum_s |c_i,s|
+};
+ItemBiasTotals item_bias_totals(const Posterior& p);
+
 // Screens every item of the model (summary index = item index) for every
 // job in one pass over the item samples. Needs shift.size() == S where given.
 // `threads` > 1 splits the catalogue's tiles between that many OpenMP
 // threads (more memory bandwidth for one pass); the summaries are the same
-// bits for any value.
+// bits for any value. `bias_totals`, when given, must be
+// item_bias_totals(p) (std::invalid_argument when its size is not I): then
+// a pass with only mean-ranking jobs does not read the bias block (the
+// summaries are the same bits either way).
 void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs,
-                      int threads = 1);
+                      int threads = 1, const ItemBiasTotals* bias_totals = nullptr);
 
 // Screens only the `pool` items (summary index = position in pool) for one
 // job: cheaper than a full pass when the pool is a small part of the catalogue.

@@ -3,6 +3,8 @@
 #include <catch2/catch.hpp>
 
 #include <atomic>
+#include <chrono>
+#include <optional>
 #include <memory>
 #include <stdexcept>
 #include <thread>
@@ -107,4 +109,68 @@ TEST_CASE("a bad request fails alone and the others still get their answers") {
 
 TEST_CASE("a batcher needs a batch size of at least one") {
     CHECK_THROWS_AS(TopNBatcher(1, 0), std::invalid_argument);
+}
+
+TEST_CASE("a lone visiting caller never waits for the collection window") {
+    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 8});
+    const PredictionEngine engine(post);
+    TopNBatcher batcher(1, 8, 10'000'000);  // a 10 s window: waiting even once would show
+    const auto start = std::chrono::steady_clock::now();
+    for (uint32_t r = 0; r < 10; ++r) {
+        const TopNBatcher::Visit visit(batcher);
+        CHECK(batcher.recommend(engine, r % 6, options_for(r)) == engine.recommend(r % 6, options_for(r)));
+    }
+    CHECK(std::chrono::steady_clock::now() - start < std::chrono::seconds(5));
+    const auto stats = batcher.stats();
+    CHECK(stats.windows == 0);
+    CHECK(stats.passes == 10);
+}
+
+TEST_CASE("a pass waits for a visiting request that has not asked yet and serves both") {
+    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 9});
+    const PredictionEngine engine(post);
+    TopNBatcher batcher(1, 8, 10'000'000);
+    // Both requests are inside the route before either asks; the second asks
+    // 100 ms later. Whichever leads the pass waits for the other, so one pass
+    // serves both, long before the window ends.
+    std::optional<TopNBatcher::Visit> first_visit(std::in_place, batcher), second_visit(std::in_place, batcher);
+    std::vector<Recommendation> first, second;
+    const auto start = std::chrono::steady_clock::now();
+    std::thread a([&] {
+        first = batcher.recommend(engine, 1, options_for(1));
+        first_visit.reset();
+    });
+    std::thread b([&] {
+        std::this_thread::sleep_for(std::chrono::milliseconds(100));
+        second = batcher.recommend(engine, 2, options_for(2));
+        second_visit.reset();
+    });
+    a.join();
+    b.join();
+    CHECK(std::chrono::steady_clock::now() - start < std::chrono::seconds(5));
+    CHECK(first == engine.recommend(1, options_for(1)));
+    CHECK(second == engine.recommend(2, options_for(2)));
+    const auto stats = batcher.stats();
+    CHECK(stats.passes == 1);
+    CHECK(stats.largest_batch == 2);
+    CHECK(stats.windows == 1);
+}
+
+TEST_CASE("a visit that ends without asking ends the wait for it") {
+    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 10});
+    const PredictionEngine engine(post);
+    TopNBatcher batcher(1, 8, 10'000'000);
+    std::optional<TopNBatcher::Visit> asking(std::in_place, batcher), leaving(std::in_place, batcher);
+    const auto start = std::chrono::steady_clock::now();
+    std::thread b([&] {
+        std::this_thread::sleep_for(std::chrono::milliseconds(100));
+        leaving.reset();  // e.g. a request refused before it asked for its list
+    });
+    CHECK(batcher.recommend(engine, 3, options_for(3)) == engine.recommend(3, options_for(3)));
+    asking.reset();
+    b.join();
+    CHECK(std::chrono::steady_clock::now() - start < std::chrono::seconds(5));
+    const auto stats = batcher.stats();
+    CHECK(stats.passes == 1);
+    CHECK(stats.windows == 1);
 }

@@ -336,3 +336,56 @@ TEST_CASE("the most similar among given items equal a direct averaged cosine") {
     CHECK_THROWS_AS(most_similar_among(p, st, target, std::vector<uint32_t>{30}, 3), std::out_of_range);
     CHECK_THROWS_AS(most_similar_among(p, st, 30, among, 3), std::out_of_range);
 }
+
+TEST_CASE("the most similar among given items for several targets at once equal each target's direct averaged cosine") {
+    // 7 distinct rated items: one partial block of the side-by-side sums.
+    const Posterior p = simulate_posterior({.users = 4, .items = 30, .rank = 5, .samples = 10, .chains = 2, .seed = 37});
+    const ItemStatistics st = compute_item_statistics(p);
+    // Targets inside and outside the rated list, and a target twice.
+    const std::vector<uint32_t> targets = {5, 11, 0, 29, 5};
+    const std::vector<uint32_t> among = {3, 5, 11, 12, 17, 20, 11, 29};
+    const auto got = most_similar_among_each(p, st, targets, among, 4);
+    REQUIRE(got.size() == targets.size());
+    for (size_t t = 0; t < targets.size(); ++t) {
+        INFO("target " << targets[t]);
+        std::vector<std::pair<double, uint32_t>> want;  // (-similarity, item): best first, ties by index
+        for (uint32_t j : {3u, 5u, 11u, 12u, 17u, 20u, 29u}) {
+            if (j == targets[t]) continue;
+            double total = 0.0;
+            for (uint32_t s = 0; s < p.num_samples; ++s) total += cosine(p, s, targets[t], j);
+            want.emplace_back(-total / p.num_samples, j);
+        }
+        std::sort(want.begin(), want.end());
+        REQUIRE(got[t].size() == 4);
+        for (size_t k = 0; k < 4; ++k) {
+            INFO("position " << k);
+            CHECK(got[t][k].item == want[k].second);
+            // Norms are stored as floats: agreement to float rounding, 1e-6.
+            CHECK(got[t][k].similarity == Approx(-want[k].first).margin(1e-6));
+        }
+        // The same bits as the plain per-pair loop over samples (the dot
+        // product in double, k in order, over the stored norms).
+        for (const SimilarItem& got_k : got[t]) {
+            double total = 0.0;
+            for (uint32_t s = 0; s < p.num_samples; ++s) {
+                const double denom = double(st.item_norm[size_t(s) * p.num_items + targets[t]]) *
+                                     st.item_norm[size_t(s) * p.num_items + got_k.item];
+                double dot = 0.0;
+                for (uint32_t k = 0; k < p.rank; ++k)
+                    dot += double(p.item_factor(s, targets[t])[k]) * p.item_factor(s, got_k.item)[k];
+                if (denom > 0.0) total += dot / denom;
+            }
+            CHECK(got_k.similarity == total / p.num_samples);
+        }
+        // The one-target call gives the same bits.
+        const auto alone = most_similar_among(p, st, targets[t], among, 4);
+        REQUIRE(alone.size() == got[t].size());
+        for (size_t k = 0; k < alone.size(); ++k) {
+            CHECK(alone[k].item == got[t][k].item);
+            CHECK(alone[k].similarity == got[t][k].similarity);
+        }
+    }
+    CHECK(most_similar_among_each(p, st, std::vector<uint32_t>{}, among, 3).empty());
+    CHECK_THROWS_AS(most_similar_among_each(p, st, std::vector<uint32_t>{1, 30}, among, 3), std::out_of_range);
+    CHECK_THROWS_AS(most_similar_among_each(p, st, targets, std::vector<uint32_t>{30}, 3), std::out_of_range);
+}

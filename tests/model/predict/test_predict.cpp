@@ -520,6 +520,47 @@ TEST_CASE("screened summaries stay within their stated slack of the reference me
     }
 }
 
+TEST_CASE("a pass given the item bias totals gives the same summaries as one reading the bias block") {
+    // Mean-only passes (which then skip the bias block) and mixed passes
+    // (which still read it for the quantile jobs), on 2 threads and 1.
+    SimulatedPosteriorOptions opt{.users = 5, .items = 700, .rank = 16, .samples = 23, .chains = 1, .seed = 77};
+    opt.bias_sd = 0.8;
+    const auto post = simulated(opt);
+    const Posterior& p = *post;
+    REQUIRE(p.has_biases);
+    const auto norms = max_item_norms(p);
+    const ItemBiasTotals totals = item_bias_totals(p);
+    REQUIRE(totals.sum.size() == p.num_items);
+    std::vector<double> shift(p.num_samples);
+    for (uint32_t s = 0; s < p.num_samples; ++s) shift[s] = 1.1 / std::sqrt(double(p.noise_precision[s]));
+    for (const bool mixed : {false, true})
+        for (const int threads : {1, 2}) {
+            std::vector<ScreenJob> plain(5), given(5);
+            std::vector<ScreenJob*> plain_ptr, given_ptr;
+            for (uint32_t u = 0; u < 5; ++u) {
+                plain[u].viewer = given[u].viewer = known_user(p, u);
+                if (mixed && u == 2) plain[u].shift = given[u].shift = shift;
+                plain_ptr.push_back(&plain[u]);
+                given_ptr.push_back(&given[u]);
+            }
+            screen_all_items(p, norms, plain_ptr, threads);
+            screen_all_items(p, norms, given_ptr, threads, &totals);
+            INFO("mixed " << mixed << ", threads " << threads);
+            for (uint32_t u = 0; u < 5; ++u) {
+                CHECK(plain[u].sum == given[u].sum);
+                CHECK(plain[u].slack == given[u].slack);
+                CHECK(plain[u].lo == given[u].lo);
+                CHECK(plain[u].hi == given[u].hi);
+            }
+        }
+    ItemBiasTotals wrong = totals;
+    wrong.sum.pop_back();
+    std::vector<ScreenJob> one(1);
+    one[0].viewer = known_user(p, 0);
+    std::vector<ScreenJob*> one_ptr{&one[0]};
+    CHECK_THROWS_AS(screen_all_items(p, norms, one_ptr, 1, &wrong), std::invalid_argument);
+}
+
 TEST_CASE("rank_value is the ranked number on the rating scale and with score explains the order") {
     // A scale narrow around the global mean makes many bounds and draws
     // pass its ends, so several items share rank_value there and only the
