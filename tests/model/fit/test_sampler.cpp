@@ -5,8 +5,10 @@
 // (and that it notices a broken move), coverage of credible intervals on
 // known truth, results do not depend on the thread count, synthetic data is
 // recovered with calibrated intervals, numeric failure is reported, and
-// every Posterior field is filled. Cases tagged [slow] (over hundreds of
-// replications) run as the ctest entry test_sampler_slow.
+// every Posterior field is filled. Cases tagged [slow] (hundreds of
+// replications, or Geweke's 200,000 forward draws and as many sweeps) run as
+// the ctest entry test_sampler_slow, which the sanitized suite leaves out
+// (DEVELOPERS.md).
 #include <catch2/catch.hpp>
 
 #include <algorithm>
@@ -603,7 +605,8 @@ std::vector<std::vector<double>> fit_with_moves(const RatingSet& ratings, int re
 
 }  // namespace
 
-TEST_CASE("Geweke joint-distribution test: the sweep, its overrelaxed row draws and its group moves leave the model's joint distribution invariant") {
+TEST_CASE("Geweke joint-distribution test: the sweep, its overrelaxed row draws and its group moves leave the model's joint distribution invariant",
+          "[slow]") {
     const FitOptions o = geweke_options();
     REQUIRE(o.group_moves);
     REQUIRE(o.overrelaxation != 0.0);
@@ -719,7 +722,8 @@ TEST_CASE("the composed factor map moves the factors as the scalings and shears 
 // A third kind breaks the overrelaxed row draws: the step past the mean is
 // kept but the noise is not shrunk by sqrt(1 - a^2), so each row draw
 // widens its conditional instead of keeping it.
-TEST_CASE("the Geweke test notices each group move when it is broken, a wrong Wishart degrees of freedom and overrelaxed draws with full noise") {
+TEST_CASE("the Geweke test notices each group move when it is broken, a wrong Wishart degrees of freedom and overrelaxed draws with full noise",
+          "[slow]") {
     const FitOptions o = geweke_options();
     FitOptions plain = o;
     plain.group_moves = false;
