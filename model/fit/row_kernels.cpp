@@ -6,17 +6,10 @@
 // functions, so no out-of-line copy built for one level can be linked into
 // another's callers (tests/model/fit/test_row_kernels.cpp checks the
 // symbols). Why the levels give the same bits: model/fit/row_kernels.hpp.
+// The per-level frame (the level, the table's name, table_for in the
+// baseline build alone): model/math/kernel_level.hpp.
 
-#ifndef CREDENCE_KERNEL_LEVEL
-#define CREDENCE_KERNEL_LEVEL 0
-#endif
-#if CREDENCE_KERNEL_LEVEL > 0
-#include <immintrin.h>
-#else
-// The baseline build alone also holds the level switch (ordinary code).
-#include <stdexcept>
-#include <string>
-#endif
+#include "model/math/kernel_level.hpp"
 
 namespace credence::row_kernels {
 
@@ -27,24 +20,19 @@ namespace {
 constexpr int kLanes = 8;
 constexpr int kTileRows = 16;       // accumulators per tile: 16 zmm of 32
 constexpr int kFirstTileRows = 16;  // and 2 more for s and t
-const char* const kLevelName = "x86-64-v4";
 #elif CREDENCE_KERNEL_LEVEL == 1
 constexpr int kLanes = 4;
 constexpr int kTileRows = 6;        // 12 ymm of 16
 constexpr int kFirstTileRows = 4;   // 8, and 4 for s and t
-const char* const kLevelName = "x86-64-v3";
 #else
 constexpr int kLanes = 2;
 constexpr int kTileRows = 3;        // 12 xmm of 16
 constexpr int kFirstTileRows = 1;   // 4, and 8 for s and t
-const char* const kLevelName = "x86-64";
 #endif
 constexpr int kPanel = 8;
 constexpr int kPerPanel = kPanel / kLanes;
 
 typedef double Vec __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(kLanes * sizeof(double))));
-
-#define CREDENCE_INLINE inline __attribute__((always_inline))
 
 CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>(p); }
 typedef double VecUnaligned __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(sizeof(double))));
@@ -711,27 +699,8 @@ void gram_rows(const float* rows, uint64_t count, uint32_t K, const double* cent
 
 }  // namespace
 
-#if CREDENCE_KERNEL_LEVEL == 2
-extern const Table table_v4 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
-#elif CREDENCE_KERNEL_LEVEL == 1
-extern const Table table_v3 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
-#else
-extern const Table table_baseline = {kLevelName, conditional, draw_row, map_rows, gram_rows};
+extern const Table CREDENCE_KERNEL_TABLE = {CREDENCE_KERNEL_LEVEL_NAME, conditional, draw_row, map_rows, gram_rows};
 
-// Chosen in the baseline build only, which every CPU runs.
-const Table& table_for(CpuLevel level) {
-    switch (static_cast<int>(level)) {
-        case 0: return table_baseline;
-#if CREDENCE_KERNEL_MAX_LEVEL >= 1
-        case 1: return table_v3;
-#endif
-#if CREDENCE_KERNEL_MAX_LEVEL >= 2
-        case 2: return table_v4;
-#endif
-        default: break;
-    }
-    throw std::invalid_argument("row kernels: no table for CPU level " + std::to_string(static_cast<int>(level)));
-}
-#endif
+CREDENCE_KERNEL_TABLE_FOR("row kernels")
 
 }  // namespace credence::row_kernels
