@@ -398,6 +398,18 @@ CREDENCE_INLINE void add_noise(const SideData& side, const double* forward, cons
     }
 }
 
+// The backward pass: U x = c by columns of U (u row-major with leading
+// dimension ld, inv[i] = 1 / U[i][i]); writes x to out and overwrites c.
+// Always inlined, so with fixed sizes d and ld are constants.
+CREDENCE_INLINE void solve_upper(const double* __restrict u, size_t ld, const double* __restrict inv, uint32_t d,
+                                 double* __restrict c, double* __restrict out) {
+    for (uint32_t i = d; i-- > 0;) {
+        const double xi = c[i] * inv[i];
+        out[i] = xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
+    }
+}
+
 CREDENCE_INLINE void add_current(const SideData& side, const double* current, uint32_t d, double* out) {
     if (current)
         for (uint32_t i = 0; i < d; ++i) out[i] = out[i] + side.overrelax * current[i];
@@ -414,7 +426,7 @@ CREDENCE_INLINE void add_current(const SideData& side, const double* current, ui
 // With fixed sizes (D = d, LD = ld) the forward pass unrolls completely and
 // its running vector stays in registers (through memory, each step waited
 // for a store to be forwarded to the next step's load); the backward pass
-// is the same as with run-time sizes.
+// is the same as with run-time sizes (solve_upper).
 template <uint32_t D, size_t LD>
 CREDENCE_INLINE void solve_fixed(const SideData& side, const Scratch& s, const double* __restrict inv,
                                  const double* __restrict z, const double* __restrict current,
@@ -436,11 +448,7 @@ CREDENCE_INLINE void solve_fixed(const SideData& side, const Scratch& s, const d
         for (uint32_t v = (j + 1) / kLanes; v < NV; ++v) cv[v] = cv[v] - load(u + j * LD + v * kLanes) * b;
     }
     add_noise(side, out, z, current, D, c);
-    for (uint32_t i = D; i-- > 0;) {  // U x = c, by columns of U
-        const double xi = c[i] * inv[i];
-        out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * LD + i] * xi;
-    }
+    solve_upper(u, LD, inv, D, c, out);
     add_current(side, current, D, out);
 }
 
@@ -449,27 +457,24 @@ void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, 
                     const double* __restrict z, const double* __restrict current, double* __restrict out) {
     if constexpr (DD > 0) {
         return solve_fixed<DD, LD>(side, s, inv, z, current, out);
+    } else {
+        const uint32_t d = d_runtime;
+        const size_t ld = s.ld;
+        const double* __restrict u = s.a;
+        double* __restrict c = s.c;
+        for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
+        for (size_t i = d; i < ld; ++i) c[i] = 0.0;
+        for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
+            const double cj = c[j] * inv[j];
+            out[j] = cj;
+            const Vec cv = splat(cj);
+            const double* uj = u + j * ld;
+            for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
+        }
+        add_noise(side, out, z, current, d, c);
+        solve_upper(u, ld, inv, d, c, out);
+        add_current(side, current, d, out);
     }
-    const uint32_t d = DD > 0 ? DD : d_runtime;
-    const size_t ld = DD > 0 ? LD : s.ld;
-    const double* __restrict u = s.a;
-    double* __restrict c = s.c;
-    for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
-    for (size_t i = d; i < ld; ++i) c[i] = 0.0;
-    for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
-        const double cj = c[j] * inv[j];
-        out[j] = cj;
-        const Vec cv = splat(cj);
-        const double* uj = u + j * ld;
-        for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
-    }
-    add_noise(side, out, z, current, d, c);
-    for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
-        const double xi = c[i] * inv[i];
-        out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
-    }
-    add_current(side, current, d, out);
 }
 
 #if CREDENCE_KERNEL_LEVEL > 0
