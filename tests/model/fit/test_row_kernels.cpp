@@ -114,14 +114,26 @@ void gathered(const row_kernels::SideData& side, uint64_t at, std::vector<long d
     if (side.biases) y = static_cast<long double>(static_cast<double>(y) - double(side.other_bias[other]));
 }
 
-// The set-up of the tests of single rows: the simulated ratings (ratings_for),
-// a start state (initial_state, seed 3, chain 0) under `options`, and the
-// user or item side's kernel input with biases (make_side), with scratch.
-// Holds pointers into itself: built in place, never copied.
-struct RowFixture {
+// The simulated ratings (ratings_for) in both row layouts, as the sampler
+// sees them. Holds pointers into itself: built in place, never copied.
+struct SimulatedRatings {
     RatingSet ratings;
     CsrMatrix by_user, by_item;
     GibbsData data;
+
+    explicit SimulatedRatings(bool long_rows)
+        : ratings(ratings_for(long_rows)),
+          by_user(csr_by_user(ratings)),
+          by_item(csr_by_item(ratings)),
+          data{&by_user, &by_item, ratings.mean()} {}
+    SimulatedRatings(const SimulatedRatings&) = delete;
+    SimulatedRatings& operator=(const SimulatedRatings&) = delete;
+};
+
+// The set-up of the tests of single rows: the simulated ratings, a start
+// state (initial_state, seed 3, chain 0) under `options`, and the user or
+// item side's kernel input with biases (make_side), with scratch.
+struct RowFixture : SimulatedRatings {
     FitOptions options;
     GibbsState state;
     Side side;
@@ -129,10 +141,7 @@ struct RowFixture {
     AlignedScratch scratch;
 
     RowFixture(const FitOptions& o, bool user_side, bool long_rows = false)
-        : ratings(ratings_for(long_rows)),
-          by_user(csr_by_user(ratings)),
-          by_item(csr_by_item(ratings)),
-          data{&by_user, &by_item, ratings.mean()},
+        : SimulatedRatings(long_rows),
           options(o),
           state(initial_state(data, options, 3, 0)),
           side(make_side(user_side ? by_user : by_item, state, user_side, options.rank, true, data.global_mean)),
@@ -177,9 +186,7 @@ Eigen::VectorXd stored_draw(const row_kernels::Table& kernels, RowFixture& f, ui
 
 TEST_CASE("every CPU level forms the same conditional, bit for bit, within rounding of a long-double reference") {
     for (const bool long_rows : {false, true}) {
-        const RatingSet rs = ratings_for(long_rows);
-        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-        const GibbsData data{&by_user, &by_item, rs.mean()};
+        const SimulatedRatings sim(long_rows);
         // Ranks below, at and past the 8-double panels, with and without biases.
         for (const uint32_t rank : {3u, 8u, 16u, 17u}) {
             for (const bool biases : {true, false}) {
@@ -187,10 +194,10 @@ TEST_CASE("every CPU level forms the same conditional, bit for bit, within round
                 o.rank = rank;
                 o.biases = biases;
                 o.init_scale = 0.7;
-                const GibbsState st = initial_state(data, o, 3, 0);
+                const GibbsState st = initial_state(sim.data, o, 3, 0);
                 for (const bool user_side : {true, false}) {
-                    const CsrMatrix& csr = user_side ? by_user : by_item;
-                    const Side side = make_side(csr, st, user_side, rank, biases, data.global_mean);
+                    const CsrMatrix& csr = user_side ? sim.by_user : sim.by_item;
+                    const Side side = make_side(csr, st, user_side, rank, biases, sim.data.global_mean);
                     const size_t d = rank + (biases ? 1 : 0);
                     AlignedScratch scratch(rank);
                     for (uint32_t row = 0; row < csr.num_rows; row += std::max(1u, csr.num_rows / 5)) {
@@ -325,9 +332,7 @@ TEST_CASE("an overrelaxed row draw steps past the mean by a times the current of
 TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two, with and without biases") {
     const LevelGuard guard;
     for (const bool long_rows : {false, true}) {
-        const RatingSet rs = ratings_for(long_rows);
-        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-        const GibbsData data{&by_user, &by_item, rs.mean()};
+        const SimulatedRatings sim(long_rows);
         // 5 takes the run-time-sized kernels; 8, 16 and 32 the fixed-size ones.
         for (const uint32_t rank : {5u, 8u, 16u, 32u}) {
             for (const bool biases : {true, false}) {
@@ -336,9 +341,9 @@ TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two,
                 o.biases = biases;
                 auto run = [&](CpuLevel level, int threads) {
                     set_cpu_level(level);
-                    GibbsState st = initial_state(data, o, 21, 1);
+                    GibbsState st = initial_state(sim.data, o, 21, 1);
                     for (uint32_t sweep = 0; sweep < 3; ++sweep)
-                        gibbs_sweep(data, o, SweepKey{21, 1, sweep}, st, threads);
+                        gibbs_sweep(sim.data, o, SweepKey{21, 1, sweep}, st, threads);
                     return st;
                 };
                 const GibbsState reference = run(CpuLevel::baseline, 1);
