@@ -147,50 +147,8 @@ CsvReader::Parse CsvReader::parse(CsvRecord& record) {
 
     for (;;) {  // one field per turn
         if (pos < end && b[pos] == '"') {
-            const size_t content = pos + 1;
-            size_t q = content;
-            size_t counted_to = content;   // line feeds before this are in field_newlines
-            uint64_t field_newlines = 0;
-            bool doubled = false;
-            for (;;) {
-                const void* hit = q < end ? std::memchr(b + q, '"', end - q) : nullptr;
-                const size_t at = hit ? static_cast<size_t>(static_cast<const char*>(hit) - b) : end;
-                // Past the line limit with the field still open: a stray
-                // quote, most likely; give up on this record now.
-                field_newlines += count_newlines(b + counted_to, b + at, max_record_lines_);
-                counted_to = at;
-                if (inner_newlines + field_newlines >= max_record_lines_) {
-                    record.problem = CsvProblem::too_many_lines;
-                    return Parse::malformed;
-                }
-                if (hit == nullptr) {
-                    if (eof_) record.problem = CsvProblem::unterminated_quote;
-                    return Parse::need_more;
-                }
-                if (at + 1 == end && !eof_) return Parse::need_more;  // "" or " + delimiter? not known yet
-                if (at + 1 < end && b[at + 1] == '"') {
-                    doubled = true;
-                    q = at + 2;
-                    continue;
-                }
-                inner_newlines += field_newlines;
-                if (doubled) {
-                    const size_t offset = scratch_.size();
-                    for (size_t i = content; i < at; ++i) {
-                        scratch_.push_back(b[i]);
-                        if (b[i] == '"') ++i;  // keep one of each doubled pair
-                    }
-                    spans_.push_back({true, offset, scratch_.size() - offset});
-                } else {
-                    spans_.push_back({false, content, at - content});
-                }
-                pos = at + 1;
-                break;
-            }
-            if (pos < end && b[pos] != d && b[pos] != '\n' && b[pos] != '\r') {
-                record.problem = CsvProblem::text_after_quote;
-                while (pos < end && b[pos] != d && b[pos] != '\n' && b[pos] != '\r') ++pos;
-            }
+            const Parse field = quoted_field(record, pos, inner_newlines);
+            if (field != Parse::done) return field;
         } else {
             const size_t start = pos;
             while (pos < end) {
@@ -202,7 +160,7 @@ CsvReader::Parse CsvReader::parse(CsvRecord& record) {
         }
 
         if (pos == end && !eof_) return Parse::need_more;
-        size_t raw_end = pos;
+        const size_t raw_end = pos;
         if (pos < end) {
             const char c = b[pos];
             if (c == d) {
@@ -216,15 +174,71 @@ CsvReader::Parse CsvReader::parse(CsvRecord& record) {
                 ++pos;
             }
         }
-        record.fields.clear();
-        for (const auto& s : spans_)
-            record.fields.emplace_back((s.in_scratch ? scratch_.data() : b) + s.offset, s.length);
-        record.raw = std::string_view(b + begin_, raw_end - begin_);
-        record.end_line = line_ + inner_newlines;
-        begin_ = pos;
-        line_ += 1 + inner_newlines;
+        finish_record(record, raw_end, pos, inner_newlines);
         return Parse::done;
     }
+}
+
+CsvReader::Parse CsvReader::quoted_field(CsvRecord& record, size_t& pos, uint64_t& inner_newlines) {
+    const char* b = buffer_.data();
+    const size_t end = end_;
+    const char d = delimiter_;
+    const size_t content = pos + 1;
+    size_t q = content;
+    size_t counted_to = content;   // line feeds before this are in field_newlines
+    uint64_t field_newlines = 0;
+    bool doubled = false;
+    for (;;) {
+        const void* hit = q < end ? std::memchr(b + q, '"', end - q) : nullptr;
+        const size_t at = hit ? static_cast<size_t>(static_cast<const char*>(hit) - b) : end;
+        // Past the line limit with the field still open: a stray
+        // quote, most likely; give up on this record now.
+        field_newlines += count_newlines(b + counted_to, b + at, max_record_lines_);
+        counted_to = at;
+        if (inner_newlines + field_newlines >= max_record_lines_) {
+            record.problem = CsvProblem::too_many_lines;
+            return Parse::malformed;
+        }
+        if (hit == nullptr) {
+            if (eof_) record.problem = CsvProblem::unterminated_quote;
+            return Parse::need_more;
+        }
+        if (at + 1 == end && !eof_) return Parse::need_more;  // "" or " + delimiter? not known yet
+        if (at + 1 < end && b[at + 1] == '"') {
+            doubled = true;
+            q = at + 2;
+            continue;
+        }
+        inner_newlines += field_newlines;
+        if (doubled) {
+            const size_t offset = scratch_.size();
+            for (size_t i = content; i < at; ++i) {
+                scratch_.push_back(b[i]);
+                if (b[i] == '"') ++i;  // keep one of each doubled pair
+            }
+            spans_.push_back({true, offset, scratch_.size() - offset});
+        } else {
+            spans_.push_back({false, content, at - content});
+        }
+        pos = at + 1;
+        break;
+    }
+    if (pos < end && b[pos] != d && b[pos] != '\n' && b[pos] != '\r') {
+        record.problem = CsvProblem::text_after_quote;
+        while (pos < end && b[pos] != d && b[pos] != '\n' && b[pos] != '\r') ++pos;
+    }
+    return Parse::done;
+}
+
+void CsvReader::finish_record(CsvRecord& record, size_t raw_end, size_t next, uint64_t inner_newlines) {
+    const char* b = buffer_.data();
+    record.fields.clear();
+    for (const auto& s : spans_)
+        record.fields.emplace_back((s.in_scratch ? scratch_.data() : b) + s.offset, s.length);
+    record.raw = std::string_view(b + begin_, raw_end - begin_);
+    record.end_line = line_ + inner_newlines;
+    begin_ = next;
+    line_ += 1 + inner_newlines;
 }
 
 // For a malformed record: report its first physical line as raw and resume

@@ -98,6 +98,17 @@ private:
     };
     bool fill();  // reads more input behind end_; false at end of file
     Parse parse(CsvRecord& record);
+    // The quoted field whose opening quote is at pos, into spans_; moves pos
+    // past the closing quote and past any text after it (noted as
+    // text_after_quote), and adds the field's line feeds to inner_newlines.
+    // Returns done when the field is complete; need_more when the buffer
+    // ends inside it (noting unterminated_quote at the end of the input);
+    // malformed when the record passes max_record_lines_ (too_many_lines).
+    Parse quoted_field(CsvRecord& record, size_t& pos, uint64_t& inner_newlines);
+    // Hands out the record whose text ends at raw_end (before its line end):
+    // its fields as views into buffer_ and scratch_, its raw text and last
+    // line; the next record starts at `next`.
+    void finish_record(CsvRecord& record, size_t raw_end, size_t next, uint64_t inner_newlines);
     void take_first_line(CsvRecord& record);
 
     std::FILE* file_;

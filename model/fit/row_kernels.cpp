@@ -6,17 +6,10 @@
 // functions, so no out-of-line copy built for one level can be linked into
 // another's callers (tests/model/fit/test_row_kernels.cpp checks the
 // symbols). Why the levels give the same bits: model/fit/row_kernels.hpp.
+// The per-level frame (the level, the table's name, table_for in the
+// baseline build alone): model/math/kernel_level.hpp.
 
-#ifndef CREDENCE_KERNEL_LEVEL
-#define CREDENCE_KERNEL_LEVEL 0
-#endif
-#if CREDENCE_KERNEL_LEVEL > 0
-#include <immintrin.h>
-#else
-// The baseline build alone also holds the level switch (ordinary code).
-#include <stdexcept>
-#include <string>
-#endif
+#include "model/math/kernel_level.hpp"
 
 namespace credence::row_kernels {
 
@@ -27,24 +20,19 @@ namespace {
 constexpr int kLanes = 8;
 constexpr int kTileRows = 16;       // accumulators per tile: 16 zmm of 32
 constexpr int kFirstTileRows = 16;  // and 2 more for s and t
-const char* const kLevelName = "x86-64-v4";
 #elif CREDENCE_KERNEL_LEVEL == 1
 constexpr int kLanes = 4;
 constexpr int kTileRows = 6;        // 12 ymm of 16
 constexpr int kFirstTileRows = 4;   // 8, and 4 for s and t
-const char* const kLevelName = "x86-64-v3";
 #else
 constexpr int kLanes = 2;
 constexpr int kTileRows = 3;        // 12 xmm of 16
 constexpr int kFirstTileRows = 1;   // 4, and 8 for s and t
-const char* const kLevelName = "x86-64";
 #endif
 constexpr int kPanel = 8;
 constexpr int kPerPanel = kPanel / kLanes;
 
 typedef double Vec __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(kLanes * sizeof(double))));
-
-#define CREDENCE_INLINE inline __attribute__((always_inline))
 
 CREDENCE_INLINE Vec load(const double* p) { return *reinterpret_cast<const Vec*>(p); }
 typedef double VecUnaligned __attribute__((vector_size(kLanes * sizeof(double)), __may_alias__, __aligned__(sizeof(double))));
@@ -410,6 +398,18 @@ CREDENCE_INLINE void add_noise(const SideData& side, const double* forward, cons
     }
 }
 
+// The backward pass: U x = c by columns of U (u row-major with leading
+// dimension ld, inv[i] = 1 / U[i][i]); writes x to out and overwrites c.
+// Always inlined, so with fixed sizes d and ld are constants.
+CREDENCE_INLINE void solve_upper(const double* __restrict u, size_t ld, const double* __restrict inv, uint32_t d,
+                                 double* __restrict c, double* __restrict out) {
+    for (uint32_t i = d; i-- > 0;) {
+        const double xi = c[i] * inv[i];
+        out[i] = xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
+    }
+}
+
 CREDENCE_INLINE void add_current(const SideData& side, const double* current, uint32_t d, double* out) {
     if (current)
         for (uint32_t i = 0; i < d; ++i) out[i] = out[i] + side.overrelax * current[i];
@@ -426,7 +426,7 @@ CREDENCE_INLINE void add_current(const SideData& side, const double* current, ui
 // With fixed sizes (D = d, LD = ld) the forward pass unrolls completely and
 // its running vector stays in registers (through memory, each step waited
 // for a store to be forwarded to the next step's load); the backward pass
-// is the same as with run-time sizes.
+// is the same as with run-time sizes (solve_upper).
 template <uint32_t D, size_t LD>
 CREDENCE_INLINE void solve_fixed(const SideData& side, const Scratch& s, const double* __restrict inv,
                                  const double* __restrict z, const double* __restrict current,
@@ -448,11 +448,7 @@ CREDENCE_INLINE void solve_fixed(const SideData& side, const Scratch& s, const d
         for (uint32_t v = (j + 1) / kLanes; v < NV; ++v) cv[v] = cv[v] - load(u + j * LD + v * kLanes) * b;
     }
     add_noise(side, out, z, current, D, c);
-    for (uint32_t i = D; i-- > 0;) {  // U x = c, by columns of U
-        const double xi = c[i] * inv[i];
-        out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * LD + i] * xi;
-    }
+    solve_upper(u, LD, inv, D, c, out);
     add_current(side, current, D, out);
 }
 
@@ -461,27 +457,24 @@ void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, 
                     const double* __restrict z, const double* __restrict current, double* __restrict out) {
     if constexpr (DD > 0) {
         return solve_fixed<DD, LD>(side, s, inv, z, current, out);
+    } else {
+        const uint32_t d = d_runtime;
+        const size_t ld = s.ld;
+        const double* __restrict u = s.a;
+        double* __restrict c = s.c;
+        for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
+        for (size_t i = d; i < ld; ++i) c[i] = 0.0;
+        for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
+            const double cj = c[j] * inv[j];
+            out[j] = cj;
+            const Vec cv = splat(cj);
+            const double* uj = u + j * ld;
+            for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
+        }
+        add_noise(side, out, z, current, d, c);
+        solve_upper(u, ld, inv, d, c, out);
+        add_current(side, current, d, out);
     }
-    const uint32_t d = DD > 0 ? DD : d_runtime;
-    const size_t ld = DD > 0 ? LD : s.ld;
-    const double* __restrict u = s.a;
-    double* __restrict c = s.c;
-    for (uint32_t i = 0; i < d; ++i) c[i] = s.rhs[i];
-    for (size_t i = d; i < ld; ++i) c[i] = 0.0;
-    for (uint32_t j = 0; j < d; ++j) {  // U^T c = rhs, by rows of U
-        const double cj = c[j] * inv[j];
-        out[j] = cj;
-        const Vec cv = splat(cj);
-        const double* uj = u + j * ld;
-        for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
-    }
-    add_noise(side, out, z, current, d, c);
-    for (uint32_t i = d; i-- > 0;) {  // U x = c, by columns of U
-        const double xi = c[i] * inv[i];
-        out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
-    }
-    add_current(side, current, d, out);
 }
 
 #if CREDENCE_KERNEL_LEVEL > 0
@@ -711,27 +704,8 @@ void gram_rows(const float* rows, uint64_t count, uint32_t K, const double* cent
 
 }  // namespace
 
-#if CREDENCE_KERNEL_LEVEL == 2
-extern const Table table_v4 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
-#elif CREDENCE_KERNEL_LEVEL == 1
-extern const Table table_v3 = {kLevelName, conditional, draw_row, map_rows, gram_rows};
-#else
-extern const Table table_baseline = {kLevelName, conditional, draw_row, map_rows, gram_rows};
+extern const Table CREDENCE_KERNEL_TABLE = {CREDENCE_KERNEL_LEVEL_NAME, conditional, draw_row, map_rows, gram_rows};
 
-// Chosen in the baseline build only, which every CPU runs.
-const Table& table_for(CpuLevel level) {
-    switch (static_cast<int>(level)) {
-        case 0: return table_baseline;
-#if CREDENCE_KERNEL_MAX_LEVEL >= 1
-        case 1: return table_v3;
-#endif
-#if CREDENCE_KERNEL_MAX_LEVEL >= 2
-        case 2: return table_v4;
-#endif
-        default: break;
-    }
-    throw std::invalid_argument("row kernels: no table for CPU level " + std::to_string(static_cast<int>(level)));
-}
-#endif
+CREDENCE_KERNEL_TABLE_FOR("row kernels")
 
 }  // namespace credence::row_kernels

@@ -5,16 +5,10 @@
 // linkage and the builds above the baseline include no library header with
 // inline functions, so no out-of-line copy built for one level can be linked
 // into another's callers (the kernel_objects_share_no_code test checks it).
+// The per-level frame (the level, the table's name, table_for in the
+// baseline build alone): model/math/kernel_level.hpp.
 
-#ifndef CREDENCE_KERNEL_LEVEL
-#define CREDENCE_KERNEL_LEVEL 0
-#endif
-#if CREDENCE_KERNEL_LEVEL > 0
-#include <immintrin.h>
-#else
-#include <stdexcept>
-#include <string>
-#endif
+#include "model/math/kernel_level.hpp"
 
 namespace credence::screening_kernels {
 
@@ -22,18 +16,13 @@ namespace {
 
 #if CREDENCE_KERNEL_LEVEL == 2
 constexpr int kLanes = 16;  // floats per zmm
-const char* const kLevelName = "x86-64-v4";
 #elif CREDENCE_KERNEL_LEVEL == 1
 constexpr int kLanes = 8;
-const char* const kLevelName = "x86-64-v3";
 #else
 constexpr int kLanes = 4;
-const char* const kLevelName = "x86-64";
 #endif
 
 typedef float Vec __attribute__((vector_size(kLanes * sizeof(float)), __may_alias__, __aligned__(4)));
-
-#define CREDENCE_INLINE inline __attribute__((always_inline))
 
 CREDENCE_INLINE Vec load(const float* p) { return *reinterpret_cast<const Vec*>(p); }
 CREDENCE_INLINE void store(float* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
@@ -201,27 +190,8 @@ void grouped_sums(const GroupedTile& t, double* const* sums) {
 
 }  // namespace
 
-#if CREDENCE_KERNEL_LEVEL == 2
-extern const Table table_v4 = {kLevelName, dots, grouped_sums};
-#elif CREDENCE_KERNEL_LEVEL == 1
-extern const Table table_v3 = {kLevelName, dots, grouped_sums};
-#else
-extern const Table table_baseline = {kLevelName, dots, grouped_sums};
+extern const Table CREDENCE_KERNEL_TABLE = {CREDENCE_KERNEL_LEVEL_NAME, dots, grouped_sums};
 
-const Table& table_for(CpuLevel level) {
-    switch (static_cast<int>(level)) {
-        case 0: return table_baseline;
-#if CREDENCE_KERNEL_MAX_LEVEL >= 1
-        case 1: return table_v3;
-#endif
-#if CREDENCE_KERNEL_MAX_LEVEL >= 2
-        case 2: return table_v4;
-#endif
-        default: break;
-    }
-    throw std::invalid_argument("screening kernels: no table for CPU level " +
-                                std::to_string(static_cast<int>(level)));
-}
-#endif
+CREDENCE_KERNEL_TABLE_FOR("screening kernels")
 
 }  // namespace credence::screening_kernels

@@ -24,6 +24,23 @@ std::shared_ptr<const Posterior> simulated(const SimulatedPosteriorOptions& opti
     return std::make_shared<const Posterior>(simulate_posterior(options));
 }
 
+// A small model (6 users, 400 products, rank 8, 12 samples of one chain)
+// drawn with `seed`.
+std::shared_ptr<const Posterior> small_model(uint64_t seed) {
+    return simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = seed});
+}
+
+// The visit tests' set-up: a small model, its engine, and a one-lane batcher
+// of up to 8 requests a pass whose collection window is 10 s, so that
+// waiting for it even once would show. Built in place, never copied.
+struct WindowedBatcher {
+    std::shared_ptr<const Posterior> posterior;
+    PredictionEngine engine;
+    TopNBatcher batcher;
+    explicit WindowedBatcher(uint64_t seed)
+        : posterior(small_model(seed)), engine(posterior), batcher(1, 8, 10'000'000) {}
+};
+
 RecommendOptions options_for(uint32_t k) {
     RecommendOptions o;
     o.n = 1 + k % 12;
@@ -71,8 +88,7 @@ TEST_CASE("concurrent callers get the engine's own answers, from the right engin
 }
 
 TEST_CASE("a bad request fails alone and the others still get their answers") {
-    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 7});
-    const PredictionEngine engine(post);
+    const PredictionEngine engine(small_model(7));
     TopNBatcher batcher(1, 8);
     std::atomic<int> wrong{0};
     std::vector<std::thread> pool;
@@ -112,9 +128,9 @@ TEST_CASE("a batcher needs a batch size of at least one") {
 }
 
 TEST_CASE("a lone visiting caller never waits for the collection window") {
-    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 8});
-    const PredictionEngine engine(post);
-    TopNBatcher batcher(1, 8, 10'000'000);  // a 10 s window: waiting even once would show
+    WindowedBatcher fixture(8);
+    const PredictionEngine& engine = fixture.engine;
+    TopNBatcher& batcher = fixture.batcher;
     const auto start = std::chrono::steady_clock::now();
     for (uint32_t r = 0; r < 10; ++r) {
         const TopNBatcher::Visit visit(batcher);
@@ -127,9 +143,9 @@ TEST_CASE("a lone visiting caller never waits for the collection window") {
 }
 
 TEST_CASE("a pass waits for a visiting request that has not asked yet and serves both") {
-    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 9});
-    const PredictionEngine engine(post);
-    TopNBatcher batcher(1, 8, 10'000'000);
+    WindowedBatcher fixture(9);
+    const PredictionEngine& engine = fixture.engine;
+    TopNBatcher& batcher = fixture.batcher;
     // Both requests are inside the route before either asks; the second asks
     // 100 ms later. Whichever leads the pass waits for the other, so one pass
     // serves both, long before the window ends.
@@ -157,9 +173,9 @@ TEST_CASE("a pass waits for a visiting request that has not asked yet and serves
 }
 
 TEST_CASE("a visit that ends without asking ends the wait for it") {
-    const auto post = simulated({.users = 6, .items = 400, .rank = 8, .samples = 12, .chains = 1, .seed = 10});
-    const PredictionEngine engine(post);
-    TopNBatcher batcher(1, 8, 10'000'000);
+    WindowedBatcher fixture(10);
+    const PredictionEngine& engine = fixture.engine;
+    TopNBatcher& batcher = fixture.batcher;
     std::optional<TopNBatcher::Visit> asking(std::in_place, batcher), leaving(std::in_place, batcher);
     const auto start = std::chrono::steady_clock::now();
     std::thread b([&] {

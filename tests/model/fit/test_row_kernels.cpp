@@ -114,13 +114,79 @@ void gathered(const row_kernels::SideData& side, uint64_t at, std::vector<long d
     if (side.biases) y = static_cast<long double>(static_cast<double>(y) - double(side.other_bias[other]));
 }
 
+// The simulated ratings (ratings_for) in both row layouts, as the sampler
+// sees them. Holds pointers into itself: built in place, never copied.
+struct SimulatedRatings {
+    RatingSet ratings;
+    CsrMatrix by_user, by_item;
+    GibbsData data;
+
+    explicit SimulatedRatings(bool long_rows)
+        : ratings(ratings_for(long_rows)),
+          by_user(csr_by_user(ratings)),
+          by_item(csr_by_item(ratings)),
+          data{&by_user, &by_item, ratings.mean()} {}
+    SimulatedRatings(const SimulatedRatings&) = delete;
+    SimulatedRatings& operator=(const SimulatedRatings&) = delete;
+};
+
+// The set-up of the tests of single rows: the simulated ratings, a start
+// state (initial_state, seed 3, chain 0) under `options`, and the user or
+// item side's kernel input with biases (make_side), with scratch.
+struct RowFixture : SimulatedRatings {
+    FitOptions options;
+    GibbsState state;
+    Side side;
+    size_t d;  // the row dimension, rank + 1
+    AlignedScratch scratch;
+
+    RowFixture(const FitOptions& o, bool user_side, bool long_rows = false)
+        : SimulatedRatings(long_rows),
+          options(o),
+          state(initial_state(data, options, 3, 0)),
+          side(make_side(user_side ? by_user : by_item, state, user_side, options.rank, true, data.global_mean)),
+          d(options.rank + 1),
+          scratch(options.rank) {}
+    RowFixture(const RowFixture&) = delete;
+    RowFixture& operator=(const RowFixture&) = delete;
+};
+
+// The conditional of `row` as `kernels` form it, solved in double by Eigen:
+// what the draws are checked against.
+struct SolvedConditional {
+    Eigen::VectorXd mean;        // P^-1 rhs
+    Eigen::MatrixXd covariance;  // P^-1
+};
+
+SolvedConditional solve_conditional(const row_kernels::Table& kernels, RowFixture& f, uint32_t row) {
+    std::vector<double> pv(f.d * f.d), rv(f.d);
+    kernels.conditional(f.side.data, row, f.scratch.data, pv.data(), rv.data());
+    const Eigen::Map<const Eigen::MatrixXd> p(pv.data(), Eigen::Index(f.d), Eigen::Index(f.d));
+    const Eigen::Map<const Eigen::VectorXd> rhs(rv.data(), Eigen::Index(f.d));
+    return {p.llt().solve(rhs), p.inverse()};
+}
+
+// Draws `row` with the normals z from `start` (the factor entries, then the
+// bias; read only by an overrelaxed draw) and returns the row as stored,
+// widened to double. The draw must succeed (REQUIRE).
+Eigen::VectorXd stored_draw(const row_kernels::Table& kernels, RowFixture& f, uint32_t row,
+                            const std::vector<double>& z, const std::vector<float>& start) {
+    const uint32_t rank = f.options.rank;
+    std::vector<float> factor(start.begin(), start.begin() + rank);
+    float bias = start[rank];
+    double smallest = 0.0;
+    REQUIRE(kernels.draw_row(f.side.data, row, z.data(), f.scratch.data, factor.data(), &bias, nullptr, &smallest));
+    Eigen::VectorXd out(f.d);
+    for (size_t k = 0; k < rank; ++k) out[k] = factor[k];
+    out[rank] = bias;
+    return out;
+}
+
 }  // namespace
 
 TEST_CASE("every CPU level forms the same conditional, bit for bit, within rounding of a long-double reference") {
     for (const bool long_rows : {false, true}) {
-        const RatingSet rs = ratings_for(long_rows);
-        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-        const GibbsData data{&by_user, &by_item, rs.mean()};
+        const SimulatedRatings sim(long_rows);
         // Ranks below, at and past the 8-double panels, with and without biases.
         for (const uint32_t rank : {3u, 8u, 16u, 17u}) {
             for (const bool biases : {true, false}) {
@@ -128,10 +194,10 @@ TEST_CASE("every CPU level forms the same conditional, bit for bit, within round
                 o.rank = rank;
                 o.biases = biases;
                 o.init_scale = 0.7;
-                const GibbsState st = initial_state(data, o, 3, 0);
+                const GibbsState st = initial_state(sim.data, o, 3, 0);
                 for (const bool user_side : {true, false}) {
-                    const CsrMatrix& csr = user_side ? by_user : by_item;
-                    const Side side = make_side(csr, st, user_side, rank, biases, data.global_mean);
+                    const CsrMatrix& csr = user_side ? sim.by_user : sim.by_item;
+                    const Side side = make_side(csr, st, user_side, rank, biases, sim.data.global_mean);
                     const size_t d = rank + (biases ? 1 : 0);
                     AlignedScratch scratch(rank);
                     for (uint32_t row = 0; row < csr.num_rows; row += std::max(1u, csr.num_rows / 5)) {
@@ -183,25 +249,13 @@ TEST_CASE("every CPU level forms the same conditional, bit for bit, within round
 }
 
 TEST_CASE("a row draw is the conditional mean plus L^-T z, up to the float32 rounding of the stored row") {
-    const RatingSet rs = ratings_for(false);
-    const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-    const GibbsData data{&by_user, &by_item, rs.mean()};
-    FitOptions o;
-    o.rank = 8;
-    o.init_scale = 0.7;
-    const GibbsState st = initial_state(data, o, 3, 0);
-    const Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
-    const size_t d = o.rank + 1;
-    AlignedScratch scratch(o.rank);
+    RowFixture f({.rank = 8, .init_scale = 0.7}, true);
+    const size_t d = f.d;
+    const std::vector<float> unread(d, 0.0f);  // a plain draw ignores the row's current value
     for (CpuLevel level : supported_cpu_levels()) {
         const auto& kernels = row_kernels::table_for(level);
         for (uint32_t row = 0; row < 5; ++row) {
-            std::vector<double> pv(d * d), rv(d);
-            kernels.conditional(side.data, row, scratch.data, pv.data(), rv.data());
-            const Eigen::Map<const Eigen::MatrixXd> p(pv.data(), Eigen::Index(d), Eigen::Index(d));
-            const Eigen::Map<const Eigen::VectorXd> rhs(rv.data(), Eigen::Index(d));
-            const Eigen::VectorXd mean = p.llt().solve(rhs);
-            const Eigen::MatrixXd cov = p.inverse();
+            const auto [mean, cov] = solve_conditional(kernels, f, row);
             // Draws with z = 0 (the mean) and z = scale e_k (the mean plus
             // scale times column k of L^-T). Stored as float32: each entry
             // within 2^-24 of its magnitude; the double solve adds at most
@@ -209,22 +263,14 @@ TEST_CASE("a row draw is the conditional mean plus L^-T z, up to the float32 rou
             // far below that here (kappa < 100; 1e-11 allows for it).
             const double scale = 1000.0;
             Eigen::MatrixXd deviations(d, d);
-            std::vector<float> f(o.rank);
-            float b = 0.0f;
-            double smallest = 0.0;
             std::vector<double> z(d, 0.0);
-            REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
-            Eigen::VectorXd at_zero(d);
-            for (size_t k = 0; k < o.rank; ++k) at_zero[k] = f[k];
-            at_zero[o.rank] = b;
+            const Eigen::VectorXd at_zero = stored_draw(kernels, f, row, z, unread);
             for (size_t k = 0; k < d; ++k)
                 CHECK(std::abs(at_zero[k] - mean[k]) <= 0x1.0p-24 * std::abs(mean[k]) + 1e-11 * (1.0 + mean.norm()));
             for (size_t k = 0; k < d; ++k) {
                 std::fill(z.begin(), z.end(), 0.0);
                 z[k] = scale;
-                REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
-                for (size_t i = 0; i < o.rank; ++i) deviations(i, k) = (f[i] - mean[i]) / scale;
-                deviations(o.rank, k) = (b - mean[o.rank]) / scale;
+                deviations.col(Eigen::Index(k)) = (stored_draw(kernels, f, row, z, unread) - mean) / scale;
             }
             // Columns of L^-T: D D^T = L^-T L^-1 = P^-1. Each stored entry
             // is off by at most 2^-24 |x| / scale + |mean error| / scale, so
@@ -244,42 +290,20 @@ TEST_CASE("a row draw is the conditional mean plus L^-T z, up to the float32 rou
 // columns D with D D^T = (1 - a^2) P^-1. Tolerances as in the case above,
 // with the start x (up to 3 in size) adding its float32 rounding.
 TEST_CASE("an overrelaxed row draw steps past the mean by a times the current offset and shrinks the noise by sqrt(1 - a^2)") {
-    const RatingSet rs = ratings_for(false);
-    const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-    const GibbsData data{&by_user, &by_item, rs.mean()};
     for (const uint32_t rank : {5u, 8u}) {  // the run-time-sized kernels and a fixed-size one
-        FitOptions o;
-        o.rank = rank;
-        o.init_scale = 0.7;
-        const GibbsState st = initial_state(data, o, 3, 0);
-        Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
+        RowFixture f({.rank = rank, .init_scale = 0.7}, true);
         const double a = -0.7;
-        side.data.overrelax = a;
-        side.data.overrelax_noise = std::sqrt(1.0 - a * a);
-        const size_t d = o.rank + 1;
-        AlignedScratch scratch(o.rank);
+        f.side.data.overrelax = a;
+        f.side.data.overrelax_noise = std::sqrt(1.0 - a * a);
+        const size_t d = f.d;
         Rng start_rng(17);
         for (CpuLevel level : supported_cpu_levels()) {
             const auto& kernels = row_kernels::table_for(level);
             for (uint32_t row = 0; row < 5; ++row) {
-                std::vector<double> pv(d * d), rv(d);
-                kernels.conditional(side.data, row, scratch.data, pv.data(), rv.data());
-                const Eigen::Map<const Eigen::MatrixXd> p(pv.data(), Eigen::Index(d), Eigen::Index(d));
-                const Eigen::Map<const Eigen::VectorXd> rhs(rv.data(), Eigen::Index(d));
-                const Eigen::VectorXd mean = p.llt().solve(rhs);
-                const Eigen::MatrixXd cov = p.inverse();
+                const auto [mean, cov] = solve_conditional(kernels, f, row);
                 std::vector<float> x0(d);
                 for (float& v : x0) v = static_cast<float>(start_rng.normal());
-                auto draw = [&](const std::vector<double>& z) {
-                    std::vector<float> f(x0.begin(), x0.begin() + o.rank);
-                    float b = x0[o.rank];
-                    double smallest = 0.0;
-                    REQUIRE(kernels.draw_row(side.data, row, z.data(), scratch.data, f.data(), &b, nullptr, &smallest));
-                    Eigen::VectorXd out(d);
-                    for (size_t k = 0; k < o.rank; ++k) out[k] = f[k];
-                    out[o.rank] = b;
-                    return out;
-                };
+                auto draw = [&](const std::vector<double>& z) { return stored_draw(kernels, f, row, z, x0); };
                 std::vector<double> z(d, 0.0);
                 const Eigen::VectorXd at_zero = draw(z);
                 const double x_size = Eigen::Map<const Eigen::VectorXf>(x0.data(), Eigen::Index(d)).cwiseAbs().maxCoeff();
@@ -308,9 +332,7 @@ TEST_CASE("an overrelaxed row draw steps past the mean by a times the current of
 TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two, with and without biases") {
     const LevelGuard guard;
     for (const bool long_rows : {false, true}) {
-        const RatingSet rs = ratings_for(long_rows);
-        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-        const GibbsData data{&by_user, &by_item, rs.mean()};
+        const SimulatedRatings sim(long_rows);
         // 5 takes the run-time-sized kernels; 8, 16 and 32 the fixed-size ones.
         for (const uint32_t rank : {5u, 8u, 16u, 32u}) {
             for (const bool biases : {true, false}) {
@@ -319,9 +341,9 @@ TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two,
                 o.biases = biases;
                 auto run = [&](CpuLevel level, int threads) {
                     set_cpu_level(level);
-                    GibbsState st = initial_state(data, o, 21, 1);
+                    GibbsState st = initial_state(sim.data, o, 21, 1);
                     for (uint32_t sweep = 0; sweep < 3; ++sweep)
-                        gibbs_sweep(data, o, SweepKey{21, 1, sweep}, st, threads);
+                        gibbs_sweep(sim.data, o, SweepKey{21, 1, sweep}, st, threads);
                     return st;
                 };
                 const GibbsState reference = run(CpuLevel::baseline, 1);
@@ -345,15 +367,11 @@ TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two,
 
 TEST_CASE("the residuals a draw returns are the squared errors of the row as stored") {
     for (const bool long_rows : {false, true}) {
-        const RatingSet rs = ratings_for(long_rows);
-        const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-        const GibbsData data{&by_user, &by_item, rs.mean()};
-        FitOptions o;
-        o.rank = 6;
-        o.init_scale = 0.7;
-        const GibbsState st = initial_state(data, o, 3, 0);
-        const Side side = make_side(by_item, st, false, o.rank, true, data.global_mean);
-        AlignedScratch scratch(o.rank);
+        RowFixture fixture({.rank = 6, .init_scale = 0.7}, false, long_rows);
+        const FitOptions& o = fixture.options;
+        const CsrMatrix& by_item = fixture.by_item;
+        const Side& side = fixture.side;
+        AlignedScratch& scratch = fixture.scratch;
         std::vector<double> z(o.rank + 1, 0.3);
         for (CpuLevel level : supported_cpu_levels()) {
             for (uint32_t row = 0; row < by_item.num_rows; row += std::max(1u, by_item.num_rows / 4)) {
@@ -386,15 +404,11 @@ TEST_CASE("the residuals a draw returns are the squared errors of the row as sto
 }
 
 TEST_CASE("a precision that is not positive definite is reported with its smallest diagonal at every level") {
-    const RatingSet rs = ratings_for(false);
-    const CsrMatrix by_user = csr_by_user(rs), by_item = csr_by_item(rs);
-    const GibbsData data{&by_user, &by_item, rs.mean()};
-    FitOptions o;
-    o.rank = 4;
-    const GibbsState st = initial_state(data, o, 3, 0);
-    Side side = make_side(by_user, st, true, o.rank, true, data.global_mean);
+    RowFixture fixture({.rank = 4}, true);
+    const FitOptions& o = fixture.options;
+    Side& side = fixture.side;
+    AlignedScratch& scratch = fixture.scratch;
     side.prior(2, 2) = -1e6;  // no data can lift it
-    AlignedScratch scratch(o.rank);
     std::vector<double> z(o.rank + 1, 0.0);
     for (CpuLevel level : supported_cpu_levels()) {
         std::vector<float> f(o.rank, 42.0f);
