@@ -1,6 +1,6 @@
 // Mixing benchmark (not a test; scripts/bench-mixing drives it).
 //
-//   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank 10]
+//   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank K]
 //                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
 //                [--seed 1] [--threads 0] [--moves off,on] [--all-predictions]
 //                [--trace FILE [--trace-pair CUSTOMER,PRODUCT]] [--converged]
