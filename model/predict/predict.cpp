@@ -361,16 +361,26 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
         }
     }
     if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads, bias_totals_.get());
+    // Pass 2 of each request is independent of the others' (it reads its
+    // own plan and summaries and writes only its own answer): the team
+    // shares the requests, so the selection of a batch (exact scores and
+    // mixture quantiles, most of a request's CPU) is not serialized on one
+    // core while the others idle. A request's answer is the same on any thread.
+    std::exception_ptr out_of_memory;  // std::bad_alloc must not leave an OpenMP region
+    const int team = threads > 1 && count > 1 ? static_cast<int>(std::min<size_t>(threads, count)) : 1;
+#pragma omp parallel for num_threads(team) schedule(dynamic, 1)
     for (size_t k = 0; k < count; ++k) {
         if (!planned[k]) continue;
         try {
             answers[k].items = select_for_plan(p, max_item_norm_, s.plans[k], s.jobs[k]);
         } catch (const std::bad_alloc&) {
-            throw;
+#pragma omp critical(credence_select_out_of_memory)
+            out_of_memory = std::current_exception();
         } catch (...) {
             answers[k].error = std::current_exception();
         }
     }
+    if (out_of_memory) std::rethrow_exception(out_of_memory);
     return answers;
 }
 
