@@ -349,21 +349,24 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
     // side by side, which lets the sums overlap.
     const size_t count = items.size();
     constexpr size_t kBlock = 8;
+    constexpr uint32_t kAhead = 4;  // samples
     const size_t padded = (count + kBlock - 1) / kBlock * kBlock;
     std::vector<double> total(targets.size() * count, 0.0);
     std::vector<double> by_rank(static_cast<size_t>(K) * padded, 0.0), dots(padded);
     for (uint32_t s = 0; s < S; ++s) {
         const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
-        // The rows are scattered over the sample blocks: ask for the next
-        // sample's while this one is summed, so their memory latencies overlap.
-        if (s + 1 < S) {
-            const float* next_norms = norms + I;
+        // The rows are scattered over the sample blocks: ask for those of a
+        // sample kAhead on while this one is summed, so their memory
+        // latencies overlap (one sample's work is too short to hide them).
+        for (uint32_t ahead = s == 0 ? 1 : kAhead; ahead <= kAhead; ++ahead) {
+            if (s + ahead >= S) break;
+            const float* next_norms = norms + static_cast<size_t>(ahead) * I;
             for (uint32_t i : items) {
-                __builtin_prefetch(p.item_factor(s + 1, i).data());
+                __builtin_prefetch(p.item_factor(s + ahead, i).data());
                 __builtin_prefetch(next_norms + i);
             }
             for (uint32_t i : targets) {
-                __builtin_prefetch(p.item_factor(s + 1, i).data());
+                __builtin_prefetch(p.item_factor(s + ahead, i).data());
                 __builtin_prefetch(next_norms + i);
             }
         }
