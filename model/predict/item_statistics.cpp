@@ -353,27 +353,34 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
     const size_t padded = (count + kBlock - 1) / kBlock * kBlock;
     std::vector<double> total(targets.size() * count, 0.0);
     std::vector<double> by_rank(static_cast<size_t>(K) * padded, 0.0), dots(padded);
+    // Each sample's norms of the rated items and targets, recomputed from
+    // the rows being read anyway exactly as factor_moments() stores them
+    // (the same double sum, then float): reading item_norm instead costs
+    // another scattered cache line per item and sample.
+    std::vector<float> item_norms(count), target_norms(targets.size());
+    auto norm_of_row = [K](const float* row) {
+        double norm_sq = 0.0;
+        for (uint32_t k = 0; k < K; ++k) {
+            const double x = row[k];
+            norm_sq += x * x;
+        }
+        return static_cast<float>(std::sqrt(norm_sq));
+    };
     for (uint32_t s = 0; s < S; ++s) {
-        const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
         // The rows are scattered over the sample blocks: ask for those of a
         // sample kAhead on while this one is summed, so their memory
         // latencies overlap (one sample's work is too short to hide them).
         for (uint32_t ahead = s == 0 ? 1 : kAhead; ahead <= kAhead; ++ahead) {
             if (s + ahead >= S) break;
-            const float* next_norms = norms + static_cast<size_t>(ahead) * I;
-            for (uint32_t i : items) {
-                __builtin_prefetch(p.item_factor(s + ahead, i).data());
-                __builtin_prefetch(next_norms + i);
-            }
-            for (uint32_t i : targets) {
-                __builtin_prefetch(p.item_factor(s + ahead, i).data());
-                __builtin_prefetch(next_norms + i);
-            }
+            for (uint32_t i : items) __builtin_prefetch(p.item_factor(s + ahead, i).data());
+            for (uint32_t i : targets) __builtin_prefetch(p.item_factor(s + ahead, i).data());
         }
         for (size_t j = 0; j < count; ++j) {
             const auto w = p.item_factor(s, items[j]);
             for (uint32_t k = 0; k < K; ++k) by_rank[k * padded + j] = static_cast<double>(w[k]);
+            item_norms[j] = norm_of_row(w.data());
         }
+        for (size_t t = 0; t < targets.size(); ++t) target_norms[t] = norm_of_row(p.item_factor(s, targets[t]).data());
         for (size_t t = 0; t < targets.size(); ++t) {
             const uint32_t target = targets[t];
             const auto v = p.item_factor(s, target);
@@ -389,7 +396,7 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
             double* row = total.data() + t * count;
             for (size_t j = 0; j < count; ++j) {
                 if (items[j] == target) continue;
-                const double denom = static_cast<double>(norms[target]) * norms[items[j]];
+                const double denom = static_cast<double>(target_norms[t]) * item_norms[j];
                 if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
                 row[j] += dots[j] / denom;
             }
