@@ -3,6 +3,8 @@
 //   serve_bench_tool topn MODEL [requests [batches]]       in-process top-10 timings: one request alone
 //                                                          (p50, p99 ms) and batches of 8 and 16 (ms per
 //                                                          pass); "batches": batches of 16 only
+//   serve_bench_tool screen MODEL [passes]                 the shared screening pass alone (CPU ms per
+//                                                          pass, one thread) for 1, 2, 4, 8 and 16 viewers
 //   serve_bench_tool serve CONFIG                          runs the server (when `credence serve` is absent)
 #include <omp.h>
 #include <time.h>
@@ -19,6 +21,7 @@
 #include "model/math/cpu_level.hpp"
 #include "model/posterior/posterior_file.hpp"
 #include "model/predict/predict.hpp"
+#include "model/predict/screening.hpp"
 #include "tests/support/simulate.hpp"
 #include "server/server.hpp"
 
@@ -89,6 +92,33 @@ int topn(const std::string& path, int requests, bool batch_only) {
     return 0;
 }
 
+// The shared screening pass by itself: how its CPU cost grows with the
+// viewers sharing it (the rest of a request is selection and the answer).
+int screen(const std::string& path, int passes) {
+    const auto posterior = credence::read_posterior(path);
+    const std::vector<double> norms = credence::max_item_norms(posterior);
+    const credence::ItemBiasTotals totals = credence::item_bias_totals(posterior);
+    std::printf("kernels %s\n", credence::cpu_level_description().c_str());
+    for (size_t viewers : {size_t(1), size_t(2), size_t(4), size_t(8), size_t(16)}) {
+        std::vector<credence::ScreenJob> jobs(viewers);
+        std::vector<credence::ScreenJob*> pointers;
+        for (size_t v = 0; v < viewers; ++v) {
+            jobs[v].viewer = credence::known_user(posterior, static_cast<uint32_t>(v % posterior.num_users));
+            pointers.push_back(&jobs[v]);
+        }
+        credence::screen_all_items(posterior, norms, pointers, 1, &totals);  // warm
+        std::vector<double> cpu_ms;
+        for (int r = 0; r < passes; ++r) {
+            const double cpu0 = thread_cpu_ms();
+            credence::screen_all_items(posterior, norms, pointers, 1, &totals);
+            cpu_ms.push_back(thread_cpu_ms() - cpu0);
+        }
+        std::printf("%2zu viewers: p50 %.3f ms CPU per pass (%.3f per viewer), min %.3f\n", viewers,
+                    percentile(cpu_ms, 0.5), percentile(cpu_ms, 0.5) / double(viewers), percentile(cpu_ms, 0.0));
+    }
+    return 0;
+}
+
 }  // namespace
 
 int main(int argc, char** argv) {
@@ -115,6 +145,7 @@ int main(int argc, char** argv) {
         }
         if (cmd == "topn" && argc >= 3)
             return topn(argv[2], argc > 3 ? std::stoi(argv[3]) : 200, argc > 4 && std::string(argv[4]) == "batches");
+        if (cmd == "screen" && argc >= 3) return screen(argv[2], argc > 3 ? std::stoi(argv[3]) : 40);
         if (cmd == "serve" && argc >= 3)
             return credence::server::run_server(credence::server::load_serve_config(argv[2]));
     } catch (const std::exception& e) {
@@ -122,6 +153,6 @@ int main(int argc, char** argv) {
         return 1;
     }
     std::cerr << "usage: serve_bench_tool model OUT [items rank samples users] | "
-                 "topn MODEL [requests] | serve CONFIG\n";
+                 "topn MODEL [requests] | screen MODEL [passes] | serve CONFIG\n";
     return 2;
 }

@@ -15,7 +15,8 @@
 // parsed, whose clients are about to ask again. So under load one pass
 // gathers every waiting client instead of alternating half-full passes,
 // and a lone client (the only visit) never waits. A pass that runs while no
-// other lane is busy splits its reading between all hardware threads.
+// other lane is busy splits its reading, and then its requests' selections
+// (exact scores and interval quantiles), between all hardware threads.
 #pragma once
 #include <chrono>
 #include <condition_variable>

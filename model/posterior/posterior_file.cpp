@@ -8,6 +8,7 @@
 
 #include <fcntl.h>
 #include <signal.h>
+#include <sys/mman.h>
 #include <sys/stat.h>
 #include <unistd.h>
 #include <xxhash.h>
@@ -16,6 +17,7 @@
 #include <bit>
 #include <cctype>
 #include <cerrno>
+#include <cstdint>
 #include <csignal>
 #include <cstring>
 #include <mutex>
@@ -592,9 +594,30 @@ ElementType expected_type(uint32_t id) {
     }
 }
 
+// Sizes `out` to `count` elements, asking the kernel first to back its
+// whole 2 MiB stretches with huge pages (transparent huge pages, where the
+// system grants them on request). Serving reads one item's row from every
+// sample's block, each in another 4 KiB page: with small pages every such
+// read also misses the TLB, and the samples' rows of a top-N answer or a
+// prediction cost hundreds of page walks. Only advice: without it (or where
+// it is refused) the memory and its contents are the same.
+template <typename T>
+void size_for_reading(std::vector<T>& out, size_t count) {
+    constexpr uintptr_t kHugePageBytes = uintptr_t(2) << 20;
+    if (count * sizeof(T) >= 2 * kHugePageBytes && out.capacity() < count) {
+        std::vector<T>().swap(out);
+        out.reserve(count);  // allocated, not yet touched: the advice covers the first touch
+        const auto at = reinterpret_cast<uintptr_t>(out.data());
+        const uintptr_t begin = (at + kHugePageBytes - 1) & ~(kHugePageBytes - 1);
+        const uintptr_t end = (at + count * sizeof(T)) & ~(kHugePageBytes - 1);
+        if (end > begin) ::madvise(reinterpret_cast<void*>(begin), end - begin, MADV_HUGEPAGE);
+    }
+    out.resize(count);
+}
+
 template <typename T>
 void read_array(const Reader& r, const InEntry& e, std::vector<T>& out) {
-    out.resize(static_cast<size_t>(e.count));
+    size_for_reading(out, static_cast<size_t>(e.count));
     r.read_section(e, out.data());
 }
 

@@ -141,60 +141,71 @@ void unseen_customer_predictive(const Posterior& p, ItemStatistics& out) {
 }
 
 // Every known customer's predictive mean and sd for every item, summed into
-// the per-item averages. Each sample's item factors are first transposed to
-// [K][I], so one customer's noise-free means over all items are K
-// contiguous multiply-adds along the items (vectorized), in float as the
-// engine's screening does. Customers go in blocks of kBlock so the per-pair
-// sums (double) stay in cache while the samples stream by.
+// the per-item averages. The catalogue goes in chunks of items; each
+// sample's factors of a chunk are first transposed to [K][chunk], so one
+// customer's noise-free means over the chunk are K contiguous multiply-adds
+// along the items (vectorized), in float as the engine's screening does.
+// Customers go in blocks of kBlock so the per-pair sums (double) stay in
+// cache while the samples stream by. Every item's arithmetic is the same
+// whatever the chunk (items never mix), so the chunking only bounds the
+// transposed copy: at most kChunkBytes, where a whole-catalogue copy would
+// have doubled the memory of a large model while it loads.
 void known_customer_predictive(const Posterior& p, ItemStatistics& out) {
     constexpr uint32_t kBlock = 16;
+    constexpr size_t kChunkBytes = size_t(32) << 20;
     const uint32_t S = p.num_samples, U = p.num_users, I = p.num_items, K = p.rank;
     double noise_variance = 0.0;  // mean over samples of 1/tau_s
     for (float tau : p.noise_precision) noise_variance += 1.0 / static_cast<double>(tau) / S;
-    // [S][K][I]: as much memory as the item factors themselves, for the duration of this call.
-    std::vector<float> transposed(static_cast<size_t>(S) * K * I);
-    for (uint32_t s = 0; s < S; ++s) {
-        const float* block = p.item_block(s);
-        float* to = transposed.data() + static_cast<size_t>(s) * K * I;
-        for (uint32_t i = 0; i < I; ++i)
-            for (uint32_t k = 0; k < K; ++k) to[static_cast<size_t>(k) * I + i] = block[static_cast<size_t>(i) * K + k];
-    }
-    std::vector<float> m(I);
-    std::vector<double> sum(static_cast<size_t>(kBlock) * I), sum_sq(sum.size());
+    const uint32_t chunk = static_cast<uint32_t>(std::clamp<size_t>(
+        kChunkBytes / (sizeof(float) * std::max<size_t>(1, static_cast<size_t>(S) * K)), 256, std::max(I, 1u)));
+    // [S][K][chunk]
+    std::vector<float> transposed(static_cast<size_t>(S) * K * std::min(chunk, I));
+    std::vector<float> m(chunk);
+    std::vector<double> sum(static_cast<size_t>(kBlock) * chunk), sum_sq(sum.size());
     std::vector<double> mean_total(I, 0.0), sd_total(I, 0.0);
-    for (uint32_t u0 = 0; u0 < U; u0 += kBlock) {
-        const uint32_t b = std::min(kBlock, U - u0);
-        std::fill(sum.begin(), sum.end(), 0.0);
-        std::fill(sum_sq.begin(), sum_sq.end(), 0.0);
+    for (uint32_t i0 = 0; i0 < I; i0 += chunk) {
+        const uint32_t C = std::min(chunk, I - i0);  // items in this chunk
         for (uint32_t s = 0; s < S; ++s) {
-            const float* item_bias = p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * I : nullptr;
-            const float* vt = transposed.data() + static_cast<size_t>(s) * K * I;
-            for (uint32_t r = 0; r < b; ++r) {
-                const float base = p.global_mean + p.user_bias_of(s, u0 + r);
-                for (uint32_t i = 0; i < I; ++i) m[i] = base + (item_bias ? item_bias[i] : 0.0f);
-                const auto f = p.user_factor(s, u0 + r);
-                for (uint32_t k = 0; k < K; ++k) {
-                    const float x = f[k];
-                    const float* row = vt + static_cast<size_t>(k) * I;
-                    for (uint32_t i = 0; i < I; ++i) m[i] += x * row[i];
-                }
-                double* row_sum = sum.data() + static_cast<size_t>(r) * I;
-                double* row_sq = sum_sq.data() + static_cast<size_t>(r) * I;
-                for (uint32_t i = 0; i < I; ++i) {
-                    const double v = m[i];
-                    row_sum[i] += v;
-                    row_sq[i] += v * v;
-                }
-            }
+            const float* block = p.item_block(s) + static_cast<size_t>(i0) * K;
+            float* to = transposed.data() + static_cast<size_t>(s) * K * C;
+            for (uint32_t i = 0; i < C; ++i)
+                for (uint32_t k = 0; k < K; ++k) to[static_cast<size_t>(k) * C + i] = block[static_cast<size_t>(i) * K + k];
         }
-        for (uint32_t r = 0; r < b; ++r)
-            for (uint32_t i = 0; i < I; ++i) {
-                const size_t j = static_cast<size_t>(r) * I + i;
-                const double mean = sum[j] / S;
-                mean_total[i] += clipped(p, mean);
-                // The variance of the per-sample means is >= 0; rounding only.
-                sd_total[i] += std::sqrt(noise_variance + std::max(0.0, sum_sq[j] / S - mean * mean));
+        for (uint32_t u0 = 0; u0 < U; u0 += kBlock) {
+            const uint32_t b = std::min(kBlock, U - u0);
+            std::fill(sum.begin(), sum.end(), 0.0);
+            std::fill(sum_sq.begin(), sum_sq.end(), 0.0);
+            for (uint32_t s = 0; s < S; ++s) {
+                const float* item_bias =
+                    p.has_biases ? p.item_bias.data() + static_cast<size_t>(s) * I + i0 : nullptr;
+                const float* vt = transposed.data() + static_cast<size_t>(s) * K * C;
+                for (uint32_t r = 0; r < b; ++r) {
+                    const float base = p.global_mean + p.user_bias_of(s, u0 + r);
+                    for (uint32_t i = 0; i < C; ++i) m[i] = base + (item_bias ? item_bias[i] : 0.0f);
+                    const auto f = p.user_factor(s, u0 + r);
+                    for (uint32_t k = 0; k < K; ++k) {
+                        const float x = f[k];
+                        const float* row = vt + static_cast<size_t>(k) * C;
+                        for (uint32_t i = 0; i < C; ++i) m[i] += x * row[i];
+                    }
+                    double* row_sum = sum.data() + static_cast<size_t>(r) * C;
+                    double* row_sq = sum_sq.data() + static_cast<size_t>(r) * C;
+                    for (uint32_t i = 0; i < C; ++i) {
+                        const double v = m[i];
+                        row_sum[i] += v;
+                        row_sq[i] += v * v;
+                    }
+                }
             }
+            for (uint32_t r = 0; r < b; ++r)
+                for (uint32_t i = 0; i < C; ++i) {
+                    const size_t j = static_cast<size_t>(r) * C + i;
+                    const double mean = sum[j] / S;
+                    mean_total[i0 + i] += clipped(p, mean);
+                    // The variance of the per-sample means is >= 0; rounding only.
+                    sd_total[i0 + i] += std::sqrt(noise_variance + std::max(0.0, sum_sq[j] / S - mean * mean));
+                }
+        }
     }
     for (uint32_t i = 0; i < I; ++i) {
         out.predictive_mean[i] = mean_total[i] / U;
@@ -338,28 +349,38 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
     // side by side, which lets the sums overlap.
     const size_t count = items.size();
     constexpr size_t kBlock = 8;
+    constexpr uint32_t kAhead = 4;  // samples
     const size_t padded = (count + kBlock - 1) / kBlock * kBlock;
     std::vector<double> total(targets.size() * count, 0.0);
     std::vector<double> by_rank(static_cast<size_t>(K) * padded, 0.0), dots(padded);
+    // Each sample's norms of the rated items and targets, recomputed from
+    // the rows being read anyway exactly as factor_moments() stores them
+    // (the same double sum, then float): reading item_norm instead costs
+    // another scattered cache line per item and sample.
+    std::vector<float> item_norms(count), target_norms(targets.size());
+    auto norm_of_row = [K](const float* row) {
+        double norm_sq = 0.0;
+        for (uint32_t k = 0; k < K; ++k) {
+            const double x = row[k];
+            norm_sq += x * x;
+        }
+        return static_cast<float>(std::sqrt(norm_sq));
+    };
     for (uint32_t s = 0; s < S; ++s) {
-        const float* norms = statistics.item_norm.data() + static_cast<size_t>(s) * I;
-        // The rows are scattered over the sample blocks: ask for the next
-        // sample's while this one is summed, so their memory latencies overlap.
-        if (s + 1 < S) {
-            const float* next_norms = norms + I;
-            for (uint32_t i : items) {
-                __builtin_prefetch(p.item_factor(s + 1, i).data());
-                __builtin_prefetch(next_norms + i);
-            }
-            for (uint32_t i : targets) {
-                __builtin_prefetch(p.item_factor(s + 1, i).data());
-                __builtin_prefetch(next_norms + i);
-            }
+        // The rows are scattered over the sample blocks: ask for those of a
+        // sample kAhead on while this one is summed, so their memory
+        // latencies overlap (one sample's work is too short to hide them).
+        for (uint32_t ahead = s == 0 ? 1 : kAhead; ahead <= kAhead; ++ahead) {
+            if (s + ahead >= S) break;
+            for (uint32_t i : items) __builtin_prefetch(p.item_factor(s + ahead, i).data());
+            for (uint32_t i : targets) __builtin_prefetch(p.item_factor(s + ahead, i).data());
         }
         for (size_t j = 0; j < count; ++j) {
             const auto w = p.item_factor(s, items[j]);
             for (uint32_t k = 0; k < K; ++k) by_rank[k * padded + j] = static_cast<double>(w[k]);
+            item_norms[j] = norm_of_row(w.data());
         }
+        for (size_t t = 0; t < targets.size(); ++t) target_norms[t] = norm_of_row(p.item_factor(s, targets[t]).data());
         for (size_t t = 0; t < targets.size(); ++t) {
             const uint32_t target = targets[t];
             const auto v = p.item_factor(s, target);
@@ -375,7 +396,7 @@ std::vector<std::vector<SimilarItem>> most_similar_among_each(const Posterior& p
             double* row = total.data() + t * count;
             for (size_t j = 0; j < count; ++j) {
                 if (items[j] == target) continue;
-                const double denom = static_cast<double>(norms[target]) * norms[items[j]];
+                const double denom = static_cast<double>(target_norms[t]) * item_norms[j];
                 if (!(denom > 0.0)) continue;  // a zero factor has no direction: cosine 0, as in similar_items
                 row[j] += dots[j] / denom;
             }

@@ -139,26 +139,51 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
     const std::span<const float> tau(p.noise_precision);
     const Viewer& viewer = plan.viewer;
 
-    // ---- pass 1 results: an interval for every pool item
-    std::vector<ScoreBound> bounds(pool.size());
+    // ---- pass 1 results: an interval for every pool item that can reach
+    // the top n
+    std::vector<ScoreBound> bounds;
     if (options.rank_by == RankBy::draw) {
         std::vector<double> m;
         const double slack = screen_one_sample(p, max_item_norm, viewer, pool, plan.drawn, m);
+        bounds.resize(pool.size());
         for (size_t j = 0; j < pool.size(); ++j)
             bounds[j] = {pool[j], m[j] - slack - pad(m[j]), m[j] + slack + pad(m[j]), m[j]};
     } else {
         const double slack = job.slack;
-        for (size_t j = 0; j < pool.size(); ++j) {
+        auto lower_bound_of = [&](size_t j) {
+            const size_t at = plan.full_pass ? pool[j] : j;
+            const double lo = plan.by_quantile ? job.lo[at] : job.sum[at] / S;
+            return lo - slack - pad(lo);
+        };
+        auto bound_of = [&](size_t j) -> ScoreBound {
             const size_t at = plan.full_pass ? pool[j] : j;
             const double mean = job.sum[at] / S;
             if (plan.by_quantile) {
                 // Visit in the order of the normal with the mixture's moments.
-                const double lo = job.lo[at], hi = job.hi[at];
+                const double hi = job.hi[at];
                 const double variance = std::max(0.0, job.sum_sq[at] / S - mean * mean) + plan.noise_variance;
-                bounds[j] = {pool[j], lo - slack - pad(lo), hi + slack + pad(hi), mean + plan.z * std::sqrt(variance)};
-            } else {
-                bounds[j] = {pool[j], mean - slack - pad(mean), mean + slack + pad(mean), mean};
+                return {pool[j], lower_bound_of(j), hi + slack + pad(hi), mean + plan.z * std::sqrt(variance)};
             }
+            return {pool[j], lower_bound_of(j), mean + slack + pad(mean), mean};
+        };
+        // select_top_n's first step, done here so that only the few items
+        // whose upper bound reaches the n-th largest lower bound get a
+        // ScoreBound (a catalogue-sized array of them cost more than the
+        // rest of the selection): the same threshold on the same numbers,
+        // so the same survivors, and select_top_n's own step then drops none.
+        double threshold = -std::numeric_limits<double>::infinity();
+        if (pool.size() > options.n) {
+            thread_local std::vector<double> lows;  // reused: no fresh pages per request
+            lows.resize(pool.size());
+            for (size_t j = 0; j < pool.size(); ++j) lows[j] = lower_bound_of(j);
+            std::nth_element(lows.begin(), lows.begin() + static_cast<std::ptrdiff_t>(options.n - 1), lows.end(),
+                             [](double a, double b) { return a > b; });
+            threshold = lows[options.n - 1];
+            if (lows.capacity() * sizeof(double) > (size_t(8) << 20)) std::vector<double>().swap(lows);
+        }
+        for (size_t j = 0; j < pool.size(); ++j) {
+            const ScoreBound b = bound_of(j);
+            if (!(b.hi < threshold)) bounds.push_back(b);
         }
     }
 
@@ -361,16 +386,26 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
         }
     }
     if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads, bias_totals_.get());
+    // Pass 2 of each request is independent of the others' (it reads its
+    // own plan and summaries and writes only its own answer): the team
+    // shares the requests, so the selection of a batch (exact scores and
+    // mixture quantiles, most of a request's CPU) is not serialized on one
+    // core while the others idle. A request's answer is the same on any thread.
+    std::exception_ptr out_of_memory;  // std::bad_alloc must not leave an OpenMP region
+    const int team = threads > 1 && count > 1 ? static_cast<int>(std::min<size_t>(threads, count)) : 1;
+#pragma omp parallel for num_threads(team) schedule(dynamic, 1)
     for (size_t k = 0; k < count; ++k) {
         if (!planned[k]) continue;
         try {
             answers[k].items = select_for_plan(p, max_item_norm_, s.plans[k], s.jobs[k]);
         } catch (const std::bad_alloc&) {
-            throw;
+#pragma omp critical(credence_select_out_of_memory)
+            out_of_memory = std::current_exception();
         } catch (...) {
             answers[k].error = std::current_exception();
         }
     }
+    if (out_of_memory) std::rethrow_exception(out_of_memory);
     return answers;
 }
 

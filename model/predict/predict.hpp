@@ -117,8 +117,9 @@ public:
     // requests[k].options), or holds what it would have thrown. Requests that
     // rank by mean, lower or upper over most of the catalogue share one pass
     // over the item samples, which reads the model from memory once for all
-    // of them; `threads` > 1 splits that pass between OpenMP threads (the
-    // answers are the same bits for any value). Never throws for a bad
+    // of them; `threads` > 1 splits that pass, and then the requests'
+    // selections, between OpenMP threads (the answers are the same bits for
+    // any value). Never throws for a bad
     // request; std::bad_alloc may escape.
     std::vector<RecommendAnswer> recommend_batch(std::span<const RecommendRequest> requests, int threads = 1) const;
 

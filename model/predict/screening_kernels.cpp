@@ -87,29 +87,108 @@ void dots(const float* vectors, const float* u, uint32_t K, size_t count, float*
     for (size_t j = 0; j < count; ++j) out[j] = dot(vectors + j * K, u, K);
 }
 
-// Few viewers: lanes run along the rank (K a multiple of the lane count);
-// each viewer's lanes sum over the group's samples, then fold once.
-template <uint32_t KK>
-void grouped_by_rank(const GroupedTile& t, double* const* sums) {
-    const uint32_t K = KK > 0 ? KK : t.rank, G = t.samples;
-    constexpr uint32_t kMaxChunks = 4;  // K <= 4 kLanes here
-    for (uint32_t v = 0; v < t.count; ++v) {
-        const float* const* u = t.viewers + size_t(v) * G;
-        double* sum = sums[v];
-        for (uint32_t j = 0; j < t.items; ++j) {
-            Vec acc[kMaxChunks] = {};
-            for (uint32_t g = 0; g < G; ++g) {
-                const float* x = t.slices[g] + size_t(j) * K;
-                if (v == 0)
-                    for (uint32_t c = 0; c < K; c += 16) prefetch_ahead(x + c);  // one per 64 bytes
-                for (uint32_t c = 0; c * kLanes < K; ++c)
-                    acc[c] = multiply_add(load(x + c * kLanes), load(u[g] + c * kLanes), acc[c]);
-            }
-            Vec all = acc[0];
-            for (uint32_t c = 1; c * kLanes < K; ++c) all = all + acc[c];
-            sum[j] += static_cast<double>(lane_sum(all));
+// Lane sums of kLanes vectors at once, by a halving tree: fold<W> takes two
+// vectors whose lanes form blocks of W partial sums per item and adds each
+// block's halves, so the result holds blocks of W / 2 for the items of both;
+// after the last fold, lane j is the sum of v[j]'s lanes.
+typedef int LaneIndex __attribute__((vector_size(kLanes * sizeof(int))));
+
+struct FoldIndex {
+    int lane[kLanes];
+};
+
+template <int W, bool Upper>
+constexpr FoldIndex fold_index() {
+    FoldIndex m{};
+    constexpr int half = W / 2, blocks = kLanes / W;
+    for (int i = 0; i < kLanes; ++i) {
+        const int block = i / half, offset = i % half + (Upper ? half : 0);
+        m.lane[i] = block < blocks ? block * W + offset : (block - blocks) * W + offset + kLanes;
+    }
+    return m;
+}
+
+template <int W, bool Upper>
+CREDENCE_INLINE LaneIndex fold_mask() {
+    constexpr FoldIndex m = fold_index<W, Upper>();
+#if CREDENCE_KERNEL_LEVEL == 2
+    return LaneIndex{m.lane[0], m.lane[1], m.lane[2],  m.lane[3],  m.lane[4],  m.lane[5],  m.lane[6],  m.lane[7],
+                     m.lane[8], m.lane[9], m.lane[10], m.lane[11], m.lane[12], m.lane[13], m.lane[14], m.lane[15]};
+#elif CREDENCE_KERNEL_LEVEL == 1
+    return LaneIndex{m.lane[0], m.lane[1], m.lane[2], m.lane[3], m.lane[4], m.lane[5], m.lane[6], m.lane[7]};
+#else
+    return LaneIndex{m.lane[0], m.lane[1], m.lane[2], m.lane[3]};
+#endif
+}
+
+template <int W>
+CREDENCE_INLINE Vec fold(Vec a, Vec b) {
+    return __builtin_shuffle(a, b, fold_mask<W, false>()) + __builtin_shuffle(a, b, fold_mask<W, true>());
+}
+
+template <int W>
+CREDENCE_INLINE void fold_level(Vec* v) {
+    if constexpr (W <= kLanes)
+        for (int i = 0; i < W / 2; ++i) v[i] = fold<W>(v[2 * i], v[2 * i + 1]);  // W vectors become W / 2
+}
+
+// v[0..kLanes) in, one vector of their lane sums out (v is overwritten).
+CREDENCE_INLINE Vec lane_sums(Vec* v) {
+    fold_level<16>(v);
+    fold_level<8>(v);
+    fold_level<4>(v);
+    fold_level<2>(v);
+    return v[0];
+}
+
+// Few viewers: lanes run along the rank (K a multiple of the lane count).
+// A block of kLanes items keeps one accumulator each over the group's
+// samples and the rank's chunks, then one fold tree sums all of their lanes
+// at once. Each item-sample costs K / kLanes multiply-adds per viewer.
+template <uint32_t KK, uint32_t Block>
+CREDENCE_INLINE void rank_block(const GroupedTile& t, const float* const* u, bool prefetch, uint32_t j0,
+                                uint32_t block, double* sum) {
+    const uint32_t K = KK > 0 ? KK : t.rank, G = t.samples, count = Block > 0 ? Block : block;
+    Vec acc[kLanes] = {};
+    for (uint32_t g = 0; g < G; ++g) {
+        const float* x = t.slices[g] + size_t(j0) * K;
+        if (prefetch)
+            for (uint32_t line = 0; line < count * K; line += 16) prefetch_ahead(x + line);  // one per 64 bytes
+        for (uint32_t c = 0; c * kLanes < K; ++c) {
+            const Vec w = load(u[g] + c * kLanes);
+            // Unrolled, so the kLanes accumulators are independent chains in
+            // registers (enough to cover the multiply-add latency).
+#pragma GCC unroll 16
+            for (uint32_t b = 0; b < count; ++b) acc[b] = multiply_add(load(x + b * K + c * kLanes), w, acc[b]);
         }
     }
+    const Vec total = lane_sums(acc);
+    if constexpr (Block == uint32_t(kLanes)) {
+        // Widened and added kLanes / 2 at a time (the same double adds as one by one).
+        typedef float Half __attribute__((vector_size(kLanes / 2 * sizeof(float))));
+        typedef double Wide __attribute__((vector_size(kLanes / 2 * sizeof(double)), __may_alias__, __aligned__(8)));
+        for (int h = 0; h < 2; ++h) {
+            Half part;
+            for (int l = 0; l < kLanes / 2; ++l) part[l] = total[h * kLanes / 2 + l];
+            Wide* to = reinterpret_cast<Wide*>(sum + j0 + h * kLanes / 2);
+            *to = *to + __builtin_convertvector(part, Wide);
+        }
+    } else {
+        for (uint32_t b = 0; b < count; ++b) sum[j0 + b] += static_cast<double>(total[b]);
+    }
+}
+
+template <uint32_t KK>
+void grouped_by_rank(const GroupedTile& t, double* const* sums) {
+    // Item blocks outermost: a block's rows under the group's samples (8 KiB
+    // at K = 16) stay in L1 for every viewer.
+    uint32_t j0 = 0;
+    for (; j0 + kLanes <= t.items; j0 += kLanes)
+        for (uint32_t v = 0; v < t.count; ++v)
+            rank_block<KK, kLanes>(t, t.viewers + size_t(v) * t.samples, v == 0, j0, kLanes, sums[v]);
+    if (j0 < t.items)
+        for (uint32_t v = 0; v < t.count; ++v)
+            rank_block<KK, 0>(t, t.viewers + size_t(v) * t.samples, v == 0, j0, t.items - j0, sums[v]);
 }
 
 // Many viewers: lanes run along the viewers, a block of kLanes at a time.
@@ -159,15 +238,20 @@ void grouped_by_viewer(const GroupedTile& t, double* const* sums) {
     }
 }
 
-// Viewers at or below which the lanes run along the rank.
-constexpr uint32_t kFewViewers = 2;
+// Viewers at or below which the lanes run along the rank. Per item-sample,
+// along the rank costs a multiply-add per viewer (K = kLanes) plus its share
+// of a fold tree and a widening per group; along the viewers, K multiply-adds
+// whatever the viewers (up to kLanes). Measured on x86-64-v4 with K = 16
+// (serve_bench_tool screen, 10,000 items, 100 samples, CPU ms per pass, the
+// two kernels interleaved on a busy machine): 1 viewer 2.4 against 2.8,
+// 2 viewers 2.9 against 5.1, 4 viewers even (4.6), 8 viewers 6.0 against 4.0.
+constexpr uint32_t kFewViewers = 3;
 
 void grouped_sums(const GroupedTile& t, double* const* sums) {
-    const bool by_rank = t.count <= kFewViewers && t.rank % kLanes == 0 && t.rank <= 4 * uint32_t(kLanes);
+    const bool by_rank = t.count <= kFewViewers && t.rank % kLanes == 0;
     if (by_rank) {
         if (t.rank == 16) return grouped_by_rank<16>(t, sums);
-        if constexpr (32 <= 4 * kLanes)
-            if (t.rank == 32) return grouped_by_rank<32>(t, sums);
+        if (t.rank == 32) return grouped_by_rank<32>(t, sums);
         return grouped_by_rank<0>(t, sums);
     }
     if (t.rank > 64) {  // beyond the transposed buffer: viewers one at a time, scalar lanes
