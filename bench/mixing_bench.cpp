@@ -3,6 +3,7 @@
 //   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank K]
 //                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
 //                [--seed 1] [--threads 0] [--moves off,on] [--all-predictions]
+//                [--overrelaxation A]
 //                [--trace FILE [--trace-pair CUSTOMER,PRODUCT]] [--converged]
 //
 // Variants: "off" is the plain Gibbs sweep (no group moves, plain row
@@ -187,6 +188,8 @@ int main(int argc, char** argv) {
     app.add_option("--seed", o.seed);
     app.add_option("--threads", o.threads);
     double fixed_noise = 0.0;
+    app.add_option("--overrelaxation", o.overrelaxation,
+                   "coefficient of the overrelaxed row draws in the variant \"on\" (FitOptions::overrelaxation)");
     app.add_option("--fixed-noise-precision", fixed_noise);
     std::string trace_path;
     bool all_predictions = false, converged = false;
