@@ -302,6 +302,9 @@ void grouped_by_viewer_pairs(const GroupedTile& t, double* const* sums) {
 // (serve_bench_tool screen, 10,000 items, 100 samples, CPU ms per pass, the
 // two kernels interleaved on a busy machine): 1 viewer 2.4 against 2.8,
 // 2 viewers 2.9 against 5.1, 4 viewers even (4.6), 8 viewers 6.0 against 4.0.
+// At x86-64-v4, 4 to 8 viewers take grouped_by_viewer_pairs instead; for 2
+// viewers it was no faster than along the rank (3.29, 3.16 against 2.93,
+// 3.14 ms per pass, same tool, interleaved).
 constexpr uint32_t kFewViewers = 3;
 
 void grouped_sums(const GroupedTile& t, double* const* sums) {
