@@ -6,6 +6,7 @@
 
 #include <cmath>
 #include <memory>
+#include <span>
 #include <vector>
 
 #include "model/math/cpu_level.hpp"
@@ -63,7 +64,7 @@ TEST_CASE("every CPU level's float dot products are within the rounding bound of
 TEST_CASE("every CPU level's grouped sums are within the rounding bound of a double reference, for any viewer count") {
     Rng rng(6);
     for (const uint32_t rank : {5u, 8u, 16u, 32u}) {
-        for (const uint32_t viewers : {1u, 2u, 3u, 17u}) {
+        for (const uint32_t viewers : {1u, 2u, 3u, 5u, 8u, 17u}) {  // 4-8: the lane-pair kernel at x86-64-v4
             const uint32_t samples = screening_kernels::kGroupSamples, items = 45;
             std::vector<std::vector<float>> slices(samples), factors(viewers * samples);
             std::vector<const float*> slice_ptrs, viewer_ptrs;
@@ -140,6 +141,13 @@ TEST_CASE("recommendations are the same bits at every CPU level and for any numb
             }
             const std::vector<RecommendRequest> one{requests[0]};
             CHECK(engine.recommend_batch(one, threads)[0].items == reference[0]);
+            // Eight, five and four requests: their shared pass takes the few-viewer kernels.
+            for (const size_t count : {8u, 5u, 4u}) {
+                INFO(count << " requests");
+                const std::span<const RecommendRequest> first(requests.data(), count);
+                const auto few = engine.recommend_batch(first, threads);
+                for (size_t k = 0; k < count; ++k) CHECK(few[k].items == reference[k]);
+            }
         }
     }
 }
