@@ -129,18 +129,15 @@ void screen_alone(const Posterior& p, std::span<const double> max_item_norm, con
     }
 }
 
-// Bounds from the screened summaries (or the drawn sample), then pass 2.
-std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const double> max_item_norm,
-                                            const Plan& plan, const ScreenJob& job) {
+// Pass 1 results: an interval for every pool item that can still reach the
+// top n (from the screened summaries in `job`, or from the drawn sample when
+// ranking by a draw). Needs a non-empty pool.
+std::vector<ScoreBound> pass_one_bounds(const Posterior& p, std::span<const double> max_item_norm, const Plan& plan,
+                                        const ScreenJob& job) {
     const std::vector<uint32_t>& pool = plan.pool;
-    if (pool.empty()) return {};
     const RecommendOptions& options = *plan.options;
     const uint32_t S = p.num_samples;
-    const std::span<const float> tau(p.noise_precision);
     const Viewer& viewer = plan.viewer;
-
-    // ---- pass 1 results: an interval for every pool item that can reach
-    // the top n
     std::vector<ScoreBound> bounds;
     if (options.rank_by == RankBy::draw) {
         std::vector<double> m;
@@ -186,6 +183,19 @@ std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const 
             if (!(b.hi < threshold)) bounds.push_back(b);
         }
     }
+    return bounds;
+}
+
+// Bounds from the screened summaries (or the drawn sample), then pass 2.
+std::vector<Recommendation> select_for_plan(const Posterior& p, std::span<const double> max_item_norm,
+                                            const Plan& plan, const ScreenJob& job) {
+    const std::vector<uint32_t>& pool = plan.pool;
+    if (pool.empty()) return {};
+    const RecommendOptions& options = *plan.options;
+    const uint32_t S = p.num_samples;
+    const std::span<const float> tau(p.noise_precision);
+    const Viewer& viewer = plan.viewer;
+    std::vector<ScoreBound> bounds = pass_one_bounds(p, max_item_norm, plan, job);
 
     // ---- pass 2: exact scores where they can matter
     // Every item's reference means are computed once: the answer's
