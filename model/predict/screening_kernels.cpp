@@ -91,8 +91,6 @@ void dots(const float* vectors, const float* u, uint32_t K, size_t count, float*
 // vectors whose lanes form blocks of W partial sums per item and adds each
 // block's halves, so the result holds blocks of W / 2 for the items of both;
 // after the last fold, lane j is the sum of v[j]'s lanes.
-typedef int LaneIndex __attribute__((vector_size(kLanes * sizeof(int))));
-
 struct FoldIndex {
     int lane[kLanes];
 };
@@ -108,22 +106,27 @@ constexpr FoldIndex fold_index() {
     return m;
 }
 
+// Lanes of a and b picked by fold_index (indices below kLanes name a's lanes,
+// the rest b's). __builtin_shufflevector takes constant indices and is what
+// both GCC (12 and later) and clang accept.
 template <int W, bool Upper>
-CREDENCE_INLINE LaneIndex fold_mask() {
+CREDENCE_INLINE Vec pick_lanes(Vec a, Vec b) {
     constexpr FoldIndex m = fold_index<W, Upper>();
 #if CREDENCE_KERNEL_LEVEL == 2
-    return LaneIndex{m.lane[0], m.lane[1], m.lane[2],  m.lane[3],  m.lane[4],  m.lane[5],  m.lane[6],  m.lane[7],
-                     m.lane[8], m.lane[9], m.lane[10], m.lane[11], m.lane[12], m.lane[13], m.lane[14], m.lane[15]};
+    return __builtin_shufflevector(a, b, m.lane[0], m.lane[1], m.lane[2], m.lane[3], m.lane[4], m.lane[5],
+                                   m.lane[6], m.lane[7], m.lane[8], m.lane[9], m.lane[10], m.lane[11],
+                                   m.lane[12], m.lane[13], m.lane[14], m.lane[15]);
 #elif CREDENCE_KERNEL_LEVEL == 1
-    return LaneIndex{m.lane[0], m.lane[1], m.lane[2], m.lane[3], m.lane[4], m.lane[5], m.lane[6], m.lane[7]};
+    return __builtin_shufflevector(a, b, m.lane[0], m.lane[1], m.lane[2], m.lane[3], m.lane[4], m.lane[5],
+                                   m.lane[6], m.lane[7]);
 #else
-    return LaneIndex{m.lane[0], m.lane[1], m.lane[2], m.lane[3]};
+    return __builtin_shufflevector(a, b, m.lane[0], m.lane[1], m.lane[2], m.lane[3]);
 #endif
 }
 
 template <int W>
 CREDENCE_INLINE Vec fold(Vec a, Vec b) {
-    return __builtin_shuffle(a, b, fold_mask<W, false>()) + __builtin_shuffle(a, b, fold_mask<W, true>());
+    return pick_lanes<W, false>(a, b) + pick_lanes<W, true>(a, b);
 }
 
 template <int W>
