@@ -2,7 +2,8 @@
 // over kept samples s of Normal(m[s], 1/tau[s]). Used by the prediction
 // engine, population answers, evaluation, comparison and the report; the
 // visitor fold-in (model/predict/foldin.hpp) passes per-component precisions
-// in double. Quantiles are exact (bracket and Halley/Newton/bisection; see mixture.cpp).
+// in double. Quantiles are exact (a Cornish-Fisher start, then bracket and
+// Halley/Newton/bisection; see mixture.cpp).
 #pragma once
 #include <span>
 
