@@ -23,7 +23,10 @@
 namespace credence::server {
 
 struct LoadedModel {
-    explicit LoadedModel(std::shared_ptr<const Posterior> p) : posterior(p), engine(p) {}
+    // The engine keeps the half-precision screening copy (EngineOptions):
+    // serving answers many top-N requests from one model.
+    explicit LoadedModel(std::shared_ptr<const Posterior> p)
+        : posterior(p), engine(p, EngineOptions{.half_precision_screening = true}) {}
 
     std::shared_ptr<const Posterior> posterior;
     PredictionEngine engine;

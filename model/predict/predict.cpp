@@ -118,12 +118,12 @@ void prepare_job(const Plan& plan, ScreenJob& job) {
 
 // Pass 1 for one request alone (a full pass is shared in recommend_batch).
 void screen_alone(const Posterior& p, std::span<const double> max_item_norm, const ItemBiasTotals& bias_totals,
-                  const Plan& plan, ScreenJob& job) {
+                  const HalfItemBlocks& half, const Plan& plan, ScreenJob& job) {
     if (plan.options->rank_by == RankBy::draw || plan.pool.empty()) return;
     prepare_job(plan, job);
     if (plan.full_pass) {
         ScreenJob* jobs[] = {&job};
-        screen_all_items(p, max_item_norm, jobs, 1, &bias_totals);
+        screen_all_items(p, max_item_norm, jobs, 1, &bias_totals, &half);
     } else {
         screen_pool(p, max_item_norm, plan.pool, job);
     }
@@ -282,15 +282,16 @@ Scratch& scratch() {
 }
 
 std::vector<Recommendation> rank_for_viewer(const Posterior& p, std::span<const double> max_item_norm,
-                                            const ItemBiasTotals& bias_totals, const Viewer& viewer,
-                                            std::span<const uint32_t> exclude, const RecommendOptions& options) {
+                                            const ItemBiasTotals& bias_totals, const HalfItemBlocks& half,
+                                            const Viewer& viewer, std::span<const uint32_t> exclude,
+                                            const RecommendOptions& options) {
     Scratch& s = scratch();
     const TrimOnExit trim{s};
     s.reserve(1);
     Plan& plan = s.plans[0];
     ScreenJob& job = s.jobs[0];
     make_plan(p, viewer, exclude, options, plan);
-    screen_alone(p, max_item_norm, bias_totals, plan, job);
+    screen_alone(p, max_item_norm, bias_totals, half, plan, job);
     return select_for_plan(p, max_item_norm, plan, job);
 }
 
@@ -331,10 +332,14 @@ uint32_t drawn_sample(uint64_t draw_seed, uint32_t samples) {
     return static_cast<uint32_t>(Rng::keyed(draw_seed, 0, 0, StreamBlock::serve, 0).below(samples));
 }
 
-PredictionEngine::PredictionEngine(std::shared_ptr<const Posterior> posterior) : posterior_(std::move(posterior)) {
+PredictionEngine::PredictionEngine(std::shared_ptr<const Posterior> posterior, EngineOptions options)
+    : posterior_(std::move(posterior)) {
     if (!posterior_) throw std::invalid_argument("prediction engine needs a posterior");
     max_item_norm_ = max_item_norms(*posterior_);
     bias_totals_ = std::make_shared<const ItemBiasTotals>(item_bias_totals(*posterior_));
+    half_blocks_ = std::make_shared<const HalfItemBlocks>(options.half_precision_screening
+                                                              ? half_item_blocks(*posterior_)
+                                                              : HalfItemBlocks{});
 }
 
 void PredictionEngine::sample_means(uint32_t user, uint32_t item, std::vector<double>& out) const {
@@ -358,7 +363,8 @@ std::vector<Recommendation> PredictionEngine::recommend(uint32_t user, const Rec
     if (user >= p.num_users)
         throw std::out_of_range("recommend: user index " + std::to_string(user) + " is beyond the model's " +
                                 std::to_string(p.num_users) + " users");
-    return rank_for_viewer(p, max_item_norm_, *bias_totals_, known_user(p, user), p.rated_by(user), options);
+    return rank_for_viewer(p, max_item_norm_, *bias_totals_, *half_blocks_, known_user(p, user), p.rated_by(user),
+                           options);
 }
 
 std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const RecommendRequest> requests,
@@ -392,10 +398,11 @@ std::vector<RecommendAnswer> PredictionEngine::recommend_batch(std::span<const R
             prepare_job(s.plans[k], s.jobs[k]);
             shared.push_back(&s.jobs[k]);
         } else {
-            screen_alone(p, max_item_norm_, *bias_totals_, s.plans[k], s.jobs[k]);
+            screen_alone(p, max_item_norm_, *bias_totals_, *half_blocks_, s.plans[k], s.jobs[k]);
         }
     }
-    if (!shared.empty()) screen_all_items(p, max_item_norm_, shared, threads, bias_totals_.get());
+    if (!shared.empty())
+        screen_all_items(p, max_item_norm_, shared, threads, bias_totals_.get(), half_blocks_.get());
     // Pass 2 of each request is independent of the others' (it reads its
     // own plan and summaries and writes only its own answer): the team
     // shares the requests, so the selection of a batch (exact scores and
@@ -435,7 +442,7 @@ std::vector<Recommendation> PredictionEngine::recommend_for_factors(std::span<co
     v.factor_stride = K;
     v.bias = visitor_bias.data();
     v.bias_stride = 1;
-    return rank_for_viewer(p, max_item_norm_, *bias_totals_, v, exclude, options);
+    return rank_for_viewer(p, max_item_norm_, *bias_totals_, *half_blocks_, v, exclude, options);
 }
 
 }  // namespace credence

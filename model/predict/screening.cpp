@@ -21,7 +21,10 @@
 #include <limits>
 #include <stdexcept>
 
+#include <sys/mman.h>
+
 #include "model/math/cpu_level.hpp"
+#include "model/math/half_float.hpp"
 #include "model/predict/screening_kernels.hpp"
 
 namespace credence {
@@ -130,19 +133,25 @@ constexpr uint32_t kGroupSamples = screening_kernels::kGroupSamples;
 // only remove roundings) (Higham, section 3.1, as above; doubled and
 // widened as for single dots). The double sums add at most
 // (number of terms) * 2^-53 * (sum of magnitudes), counted generously.
+// A pass over the half copy (`residual_norm` non-empty) scores h = half(V)
+// instead of V: |u.h - u.V| <= |u| |h - V| <= |u| residual_s (Cauchy-Schwarz)
+// is added, and the float rounding is bounded with |h| <= |V| + residual_s.
 void grouped_slack(const Posterior& p, std::span<const double> max_item_norm, double largest_bias_abs,
-                   ScreenJob& job) {
+                   std::span<const double> residual_norm, ScreenJob& job) {
     const uint32_t S = p.num_samples, K = p.rank;
     const double n = static_cast<double>(kGroupSamples) * K + 1.0;
     const double gamma = n * kFloatUnit / (1.0 - n * kFloatUnit);
-    double dots = 0.0, user_abs = 0.0;
+    double dots = 0.0, halving = 0.0, user_abs = 0.0;
     for (uint32_t s = 0; s < S; ++s) {
-        dots += norm_of(job.viewer.factor(s), K) * max_item_norm[s];
+        const double user_norm = norm_of(job.viewer.factor(s), K);
+        const double residual = residual_norm.empty() ? 0.0 : residual_norm[s];
+        dots += user_norm * (max_item_norm[s] + residual);
+        halving += user_norm * residual;
         user_abs += std::abs(static_cast<double>(p.global_mean)) + std::abs(job.viewer.bias_of(s));
     }
     const double terms = 4.0 * S + 8.0;
     const double rounding = 2.0 * terms * 0x1.0p-53 * (user_abs + largest_bias_abs + 1.01 * dots);
-    job.slack = (2.0 * gamma * dots * 1.001 + rounding) / S;
+    job.slack = (2.0 * gamma * dots * 1.001 + halving * 1.001 + rounding) / S;
 }
 
 }  // namespace
@@ -211,8 +220,48 @@ ItemBiasTotals item_bias_totals(const Posterior& p) {
     return out;
 }
 
+HalfItemBlocks half_item_blocks(const Posterior& p) {
+    HalfItemBlocks out;
+    const uint32_t S = p.num_samples, I = p.num_items, K = p.rank;
+    const size_t per_sample = static_cast<size_t>(I) * K;
+    if (per_sample == 0 || S == 0) return out;
+    for (uint32_t s = 0; s < S; ++s) {
+        const float* block = p.item_block(s);
+        for (size_t j = 0; j < per_sample; ++j)
+            if (!(std::abs(block[j]) <= kLargestHalf)) return out;  // also NaN
+    }
+    // Huge pages where the system grants them (only advice), as for the
+    // posterior's own arrays: a pass reads a few KiB from each sample's block.
+    out.values.reserve(per_sample * S);
+    {
+        constexpr uintptr_t kHugePageBytes = uintptr_t(2) << 20;
+        const auto at = reinterpret_cast<uintptr_t>(out.values.data());
+        const uintptr_t begin = (at + kHugePageBytes - 1) & ~(kHugePageBytes - 1);
+        const uintptr_t end = (at + per_sample * S * sizeof(uint16_t)) & ~(kHugePageBytes - 1);
+        if (end > begin) ::madvise(reinterpret_cast<void*>(begin), end - begin, MADV_HUGEPAGE);
+    }
+    out.values.resize(per_sample * S);
+    out.residual_norm.assign(S, 0.0);
+    for (uint32_t s = 0; s < S; ++s) {
+        const float* block = p.item_block(s);
+        uint16_t* halves = out.values.data() + per_sample * s;
+        for (uint32_t i = 0; i < I; ++i) {
+            double squares = 0.0;
+            for (uint32_t k = 0; k < K; ++k) {
+                const size_t j = static_cast<size_t>(i) * K + k;
+                halves[j] = half_from_float(block[j]);
+                const double r = static_cast<double>(block[j]) - static_cast<double>(float_from_half(halves[j]));
+                squares += r * r;
+            }
+            // Rounded up a little: the sum of squares and the root round too.
+            out.residual_norm[s] = std::max(out.residual_norm[s], std::sqrt(squares) * (1.0 + 1e-12));
+        }
+    }
+    return out;
+}
+
 void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs,
-                      int threads, const ItemBiasTotals* bias_totals) {
+                      int threads, const ItemBiasTotals* bias_totals, const HalfItemBlocks* half) {
     const uint32_t S = p.num_samples, K = p.rank, I = p.num_items;
     // Mean-only jobs take the grouped path (float sums over kGroupSamples
     // samples); the rest need every m_s.
@@ -232,6 +281,12 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
     if (totals && bias_totals->sum.size() != I)
         throw std::invalid_argument("screen_all_items: bias totals of another posterior");
     const bool read_bias = p.has_biases && (!totals || !per_sample.empty());
+    // Mean-only passes read the half copy when there is one (per-sample jobs
+    // need the floats, so a mixed pass reads those for everyone).
+    const bool halves = half != nullptr && half->usable() && per_sample.empty() &&
+                        k.reads_halves(static_cast<uint32_t>(grouped.size()), K);
+    if (halves && half->values.size() != static_cast<size_t>(S) * I * K)
+        throw std::invalid_argument("screen_all_items: half copy of another posterior");
     const auto tiles = static_cast<int64_t>((I + kTileItems - 1) / kTileItems);
     const int team = threads > 1 && tiles > 1 ? threads : 1;
     // Tiles are independent (each writes only its items' summaries), so the
@@ -245,6 +300,7 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
         std::vector<const float*> viewers(grouped.size() * kGroupSamples);
         std::vector<double*> sums(grouped.size());
         const float* slices[kGroupSamples];
+        const uint16_t* half_slices[kGroupSamples];
 #pragma omp for schedule(dynamic, 2)
         for (int64_t tile_index = 0; tile_index < tiles; ++tile_index) {
             const uint32_t i0 = static_cast<uint32_t>(tile_index) * kTileItems;
@@ -257,6 +313,7 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
                 for (uint32_t s = s0; s < s1; ++s) {
                     const float* slice = p.item_block(s) + static_cast<size_t>(i0) * K;
                     slices[s - s0] = slice;
+                    if (halves) half_slices[s - s0] = half->values.data() + (static_cast<size_t>(s) * I + i0) * K;
                     const float* bias = read_bias ? p.item_bias.data() + static_cast<size_t>(s) * I + i0 : nullptr;
                     if (bias && !totals && !grouped.empty())
                         for (uint32_t j = 0; j < len; ++j) {
@@ -282,6 +339,7 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
                     tile.items = len;
                     tile.rank = K;
                     tile.count = static_cast<uint32_t>(grouped.size());
+                    tile.half_slices = halves ? half_slices : nullptr;
                     k.grouped_sums(tile, sums.data());
                 }
             }
@@ -297,7 +355,9 @@ void screen_all_items(const Posterior& p, std::span<const double> max_item_norm,
     }
     if (totals) largest_bias_abs = bias_totals->largest_abs_sum;
     for (ScreenJob* job : per_sample) finish_slack(p, max_item_norm, *job);
-    for (ScreenJob* job : grouped) grouped_slack(p, max_item_norm, largest_bias_abs, *job);
+    const std::span<const double> residual_norm = halves ? std::span<const double>(half->residual_norm)
+                                                         : std::span<const double>();
+    for (ScreenJob* job : grouped) grouped_slack(p, max_item_norm, largest_bias_abs, residual_norm, *job);
 }
 
 void screen_pool(const Posterior& p, std::span<const double> max_item_norm, const std::vector<uint32_t>& pool,

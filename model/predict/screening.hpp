@@ -6,7 +6,10 @@
 //     m_s within a proven slack of the reference value, so pruning on the
 //     summaries never changes a result. One pass over the item samples can
 //     serve several viewers at once: each item block is read from memory once
-//     and scored for every viewer while it is in cache.
+//     and scored for every viewer while it is in cache. A mean-only pass of
+//     one to three viewers may read a half-precision copy of the item
+//     factors instead (HalfItemBlocks; half the bytes), its rounding added
+//     to the slack.
 #pragma once
 #include <cstddef>
 #include <cstdint>
@@ -66,6 +69,22 @@ struct ItemBiasTotals {
 };
 ItemBiasTotals item_bias_totals(const Posterior& p);
 
+// The item factors rounded to IEEE half precision (model/math/half_float.hpp),
+// laid out as the item blocks ([S][I][K]): half the bytes for a mean-only
+// pass to read. With it, each sample's largest rounding residual
+// max_i |V_i,s - half(V_i,s)| (Euclidean, in double), which the slack of
+// such a pass adds (so pruning still never changes a result).
+struct HalfItemBlocks {
+    std::vector<uint16_t> values;       // [S * I * K]; empty when not usable
+    std::vector<double> residual_norm;  // [S]
+    bool usable() const { return !values.empty(); }
+};
+
+// The half copy of p's item factors. Returns an unusable (empty) copy when
+// some factor is beyond half's range (|v| > 65504) or p has no items; never
+// throws but std::bad_alloc. Costs S * I * K * 2 bytes.
+HalfItemBlocks half_item_blocks(const Posterior& p);
+
 // Screens every item of the model (summary index = item index) for every
 // job in one pass over the item samples. Needs shift.size() == S where given.
 // `threads` > 1 splits the catalogue's tiles between that many OpenMP
@@ -73,9 +92,14 @@ ItemBiasTotals item_bias_totals(const Posterior& p);
 // bits for any value. `bias_totals`, when given, must be
 // item_bias_totals(p) (std::invalid_argument when its size is not I): then
 // a pass with only mean-ranking jobs does not read the bias block (the
-// summaries are the same bits either way).
+// summaries are the same bits either way). `half`, when given and usable,
+// must be half_item_blocks(p) (std::invalid_argument when its size differs):
+// then a pass with only mean-ranking jobs reads the half copy instead of the
+// float factors, and its slack grows by the copy's residuals (the summaries
+// differ in the last bits, the answers built on them do not).
 void screen_all_items(const Posterior& p, std::span<const double> max_item_norm, std::span<ScreenJob* const> jobs,
-                      int threads = 1, const ItemBiasTotals* bias_totals = nullptr);
+                      int threads = 1, const ItemBiasTotals* bias_totals = nullptr,
+                      const HalfItemBlocks* half = nullptr);
 
 // Screens only the `pool` items (summary index = position in pool) for one
 // job: cheaper than a full pass when the pool is a small part of the catalogue.

@@ -27,6 +27,18 @@ typedef float Vec __attribute__((vector_size(kLanes * sizeof(float)), __may_alia
 CREDENCE_INLINE Vec load(const float* p) { return *reinterpret_cast<const Vec*>(p); }
 CREDENCE_INLINE void store(float* p, Vec v) { *reinterpret_cast<Vec*>(p) = v; }
 
+#if CREDENCE_KERNEL_LEVEL > 0
+// kLanes IEEE halves widened to floats (exact) with F16C, in registers.
+CREDENCE_INLINE Vec load(const uint16_t* p) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    // The zero-masked form: the plain one trips GCC 12's "may be used uninitialized".
+    return reinterpret_cast<Vec>(_mm512_maskz_cvtph_ps(0xffff, _mm256_loadu_si256(reinterpret_cast<const __m256i*>(p))));
+#else
+    return reinterpret_cast<Vec>(_mm256_cvtph_ps(_mm_loadu_si128(reinterpret_cast<const __m128i*>(p))));
+#endif
+}
+#endif
+
 CREDENCE_INLINE Vec splat(float x) {
 #if CREDENCE_KERNEL_LEVEL == 2
     return reinterpret_cast<Vec>(_mm512_set1_ps(x));
@@ -154,15 +166,19 @@ CREDENCE_INLINE Vec lane_sums(Vec* v) {
 // A block of kLanes items keeps one accumulator each over the group's
 // samples and the rank's chunks, then one fold tree sums all of their lanes
 // at once. Each item-sample costs K / kLanes multiply-adds per viewer.
-template <uint32_t KK, uint32_t Block>
-CREDENCE_INLINE void rank_block(const GroupedTile& t, const float* const* u, bool prefetch, uint32_t j0,
-                                uint32_t block, double* sum) {
+// T is float, or uint16_t for IEEE halves widened in registers (levels
+// with F16C): the same multiply-adds on the same floats either way.
+template <uint32_t KK, uint32_t Block, typename T>
+CREDENCE_INLINE void rank_block(const GroupedTile& t, const T* const* rows, const float* const* u, bool prefetch,
+                                uint32_t j0, uint32_t block, double* sum) {
     const uint32_t K = KK > 0 ? KK : t.rank, G = t.samples, count = Block > 0 ? Block : block;
+    constexpr uint32_t kPerLine = 64 / sizeof(T);
     Vec acc[kLanes] = {};
     for (uint32_t g = 0; g < G; ++g) {
-        const float* x = t.slices[g] + size_t(j0) * K;
+        const T* x = rows[g] + size_t(j0) * K;
         if (prefetch)
-            for (uint32_t line = 0; line < count * K; line += 16) prefetch_ahead(x + line);  // one per 64 bytes
+            for (uint32_t line = 0; line < count * K; line += kPerLine)  // one per 64 bytes
+                __builtin_prefetch(reinterpret_cast<const char*>(x + line) + kPrefetchBytes, 0, 3);
         for (uint32_t c = 0; c * kLanes < K; ++c) {
             const Vec w = load(u[g] + c * kLanes);
             // Unrolled, so the kLanes accumulators are independent chains in
@@ -187,17 +203,24 @@ CREDENCE_INLINE void rank_block(const GroupedTile& t, const float* const* u, boo
     }
 }
 
-template <uint32_t KK>
-void grouped_by_rank(const GroupedTile& t, double* const* sums) {
+template <uint32_t KK, typename T>
+void grouped_by_rank(const GroupedTile& t, const T* const* rows, double* const* sums) {
     // Item blocks outermost: a block's rows under the group's samples (8 KiB
     // at K = 16) stay in L1 for every viewer.
     uint32_t j0 = 0;
     for (; j0 + kLanes <= t.items; j0 += kLanes)
         for (uint32_t v = 0; v < t.count; ++v)
-            rank_block<KK, kLanes>(t, t.viewers + size_t(v) * t.samples, v == 0, j0, kLanes, sums[v]);
+            rank_block<KK, kLanes>(t, rows, t.viewers + size_t(v) * t.samples, v == 0, j0, kLanes, sums[v]);
     if (j0 < t.items)
         for (uint32_t v = 0; v < t.count; ++v)
-            rank_block<KK, 0>(t, t.viewers + size_t(v) * t.samples, v == 0, j0, t.items - j0, sums[v]);
+            rank_block<KK, 0>(t, rows, t.viewers + size_t(v) * t.samples, v == 0, j0, t.items - j0, sums[v]);
+}
+
+template <typename T>
+void grouped_by_rank_of(const GroupedTile& t, const T* const* rows, double* const* sums) {
+    if (t.rank == 16) return grouped_by_rank<16>(t, rows, sums);
+    if (t.rank == 32) return grouped_by_rank<32>(t, rows, sums);
+    return grouped_by_rank<0>(t, rows, sums);
 }
 
 // Many viewers: lanes run along the viewers, a block of kLanes at a time.
@@ -316,13 +339,21 @@ void grouped_by_viewer_pairs(const GroupedTile& t, double* const* sums) {
 // 3.14 ms per pass, same tool, interleaved).
 constexpr uint32_t kFewViewers = 3;
 
+bool reads_halves(uint32_t viewers, uint32_t rank) {
+    return CREDENCE_KERNEL_LEVEL > 0 && viewers <= kFewViewers && rank % kLanes == 0;
+}
+
 void grouped_sums(const GroupedTile& t, double* const* sums) {
-    const bool by_rank = t.count <= kFewViewers && t.rank % kLanes == 0;
-    if (by_rank) {
-        if (t.rank == 16) return grouped_by_rank<16>(t, sums);
-        if (t.rank == 32) return grouped_by_rank<32>(t, sums);
-        return grouped_by_rank<0>(t, sums);
+#if CREDENCE_KERNEL_LEVEL > 0
+    if (t.half_slices != nullptr) {
+        if (!reads_halves(t.count, t.rank)) __builtin_trap();  // the caller asks reads_halves first
+        return grouped_by_rank_of(t, t.half_slices, sums);
     }
+#else
+    if (t.half_slices != nullptr) __builtin_trap();  // reads_halves is false at this level
+#endif
+    const bool by_rank = t.count <= kFewViewers && t.rank % kLanes == 0;
+    if (by_rank) return grouped_by_rank_of(t, t.slices, sums);
     if (t.rank > 64) {  // beyond the transposed buffer: viewers one at a time, scalar lanes
         for (uint32_t v = 0; v < t.count; ++v)
             for (uint32_t j = 0; j < t.items; ++j) {
@@ -350,7 +381,7 @@ void grouped_sums(const GroupedTile& t, double* const* sums) {
 
 }  // namespace
 
-extern const Table CREDENCE_KERNEL_TABLE = {CREDENCE_KERNEL_LEVEL_NAME, dots, grouped_sums};
+extern const Table CREDENCE_KERNEL_TABLE = {CREDENCE_KERNEL_LEVEL_NAME, dots, grouped_sums, reads_halves};
 
 CREDENCE_KERNEL_TABLE_FOR("screening kernels")
 

@@ -32,6 +32,10 @@ struct GroupedTile {
     uint32_t items = 0;                    // <= kTileItems
     uint32_t rank = 0;
     uint32_t count = 0;                    // viewers
+    // [samples]: the same slices in IEEE half precision, or null. When set,
+    // grouped_sums reads these instead of `slices`; only for the shapes
+    // Table::reads_halves accepts.
+    const uint16_t* const* half_slices = nullptr;
 };
 
 struct Table {
@@ -44,6 +48,11 @@ struct Table {
     // of slice[j] . viewer v's factor, widened to double; j < items. Each
     // flushed value is a float sum of samples * rank products.
     void (*grouped_sums)(const GroupedTile& tile, double* const* sums);
+
+    // Whether grouped_sums can read half slices (GroupedTile::half_slices)
+    // for `viewers` viewers at `rank`: the levels with F16C, for the few-
+    // viewer kernel that widens each row in registers as it multiplies.
+    bool (*reads_halves)(uint32_t viewers, uint32_t rank);
 };
 
 extern const Table table_baseline;

@@ -472,7 +472,16 @@ TEST_CASE("a batch of one and an empty batch") {
     CHECK((one[0].items == engine.recommend(2, r.options)));
 }
 
+#include "model/math/cpu_level.hpp"
 #include "model/predict/screening.hpp"
+#include "model/predict/screening_kernels.hpp"
+
+namespace {
+// Whether the active level's mean-only pass reads the half copy for this shape.
+bool reads_halves(uint32_t viewers, uint32_t rank) {
+    return screening_kernels::table_for(active_cpu_level()).reads_halves(viewers, rank);
+}
+}  // namespace
 
 TEST_CASE("screened summaries stay within their stated slack of the reference means") {
     // The exactness of every ranking rests on this bound (model/predict/screening.cpp
@@ -518,6 +527,63 @@ TEST_CASE("screened summaries stay within their stated slack of the reference me
         CHECK(worst <= 1.0);
         CHECK(worst > 0.0);  // the screened values really are approximations
     }
+}
+
+TEST_CASE("a mean-only pass over the half copy stays within its slack, which counts the halves' rounding") {
+    // Mean rankings with one to three viewers read the item factors in half
+    // precision where the CPU widens halves (model/predict/screening.cpp); the
+    // slack adds |u| times each sample's largest rounding residual.
+    for (const uint32_t rank : {16u, 32u}) {
+        SimulatedPosteriorOptions opt{.users = 3, .items = 900, .rank = rank, .samples = 29, .chains = 1,
+                                      .seed = 500 + rank};
+        opt.factor_sd = 3.0;
+        opt.bias_sd = 0.5;
+        const auto post = simulated(opt);
+        const Posterior& p = *post;
+        const auto norms = max_item_norms(p);
+        const ItemBiasTotals totals = item_bias_totals(p);
+        const HalfItemBlocks half = half_item_blocks(p);
+        REQUIRE(half.usable());
+        REQUIRE(half.values.size() == size_t(p.num_samples) * p.num_items * rank);
+        for (uint32_t s = 0; s < p.num_samples; ++s) CHECK(half.residual_norm[s] > 0.0);
+        for (const uint32_t viewers : {1u, 3u}) {
+            std::vector<ScreenJob> plain(viewers), halved(viewers);
+            std::vector<ScreenJob*> plain_ptr, half_ptr;
+            for (uint32_t u = 0; u < viewers; ++u) {
+                plain[u].viewer = halved[u].viewer = known_user(p, u);
+                plain_ptr.push_back(&plain[u]);
+                half_ptr.push_back(&halved[u]);
+            }
+            screen_all_items(p, norms, plain_ptr, 2, &totals);
+            screen_all_items(p, norms, half_ptr, 2, &totals, &half);
+            double worst = 0.0;  // largest error relative to the slack
+            for (uint32_t u = 0; u < viewers; ++u)
+                for (uint32_t i = 0; i < p.num_items; ++i)
+                    worst = std::max(worst, std::abs(halved[u].sum[i] / p.num_samples - mixture_mean(direct_means(p, u, i))) /
+                                                halved[u].slack);
+            INFO("rank " << rank << ", " << viewers << " viewer(s): largest error / slack " << worst);
+            CHECK(worst <= 1.0);
+            CHECK(worst > 0.0);
+            // Where the halves were read the slack grew; elsewhere the pass read floats.
+            if (reads_halves(viewers, rank))
+                CHECK(halved[0].slack > plain[0].slack);
+            else
+                CHECK(halved[0].slack == plain[0].slack);
+        }
+    }
+    SimulatedPosteriorOptions opt{.users = 2, .items = 50, .rank = 16, .samples = 5, .chains = 1, .seed = 9};
+    auto post = simulated(opt);
+    Posterior wide = *post;
+    wide.item_factors[7] = 70000.0f;  // beyond half's range
+    CHECK_FALSE(half_item_blocks(wide).usable());
+    HalfItemBlocks wrong = half_item_blocks(*post);
+    wrong.values.pop_back();
+    std::vector<ScreenJob> one(1);
+    one[0].viewer = known_user(*post, 0);
+    std::vector<ScreenJob*> one_ptr{&one[0]};
+    const auto norms = max_item_norms(*post);
+    if (reads_halves(1, 16))
+        CHECK_THROWS_AS(screen_all_items(*post, norms, one_ptr, 1, nullptr, &wrong), std::invalid_argument);
 }
 
 TEST_CASE("a pass given the item bias totals gives the same summaries as one reading the bias block") {
