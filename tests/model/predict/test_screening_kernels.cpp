@@ -38,6 +38,29 @@ std::vector<float> random_floats(Rng& rng, size_t n) {
     return out;
 }
 
+// A grouped tile over `slices` (kGroupSamples of them, items x rank each)
+// for `viewers` viewers with random factors ([viewer * samples + g]).
+struct RandomViewersTile {
+    std::vector<std::vector<float>> factors;
+    std::vector<const float*> viewer_ptrs;
+    screening_kernels::GroupedTile tile;
+
+    RandomViewersTile(Rng& rng, const std::vector<const float*>& slices, uint32_t viewers, uint32_t items,
+                      uint32_t rank)
+        : factors(size_t(viewers) * screening_kernels::kGroupSamples) {
+        for (auto& f : factors) {
+            f = random_floats(rng, rank);
+            viewer_ptrs.push_back(f.data());
+        }
+        tile.slices = slices.data();
+        tile.viewers = viewer_ptrs.data();
+        tile.samples = screening_kernels::kGroupSamples;
+        tile.items = items;
+        tile.rank = rank;
+        tile.count = viewers;
+    }
+};
+
 struct LevelGuard {
     CpuLevel saved = active_cpu_level();
     ~LevelGuard() { set_cpu_level(saved); }
@@ -72,23 +95,15 @@ TEST_CASE("every CPU level's grouped sums are within the rounding bound of a dou
     for (const uint32_t rank : {5u, 8u, 16u, 32u}) {
         for (const uint32_t viewers : {1u, 2u, 3u, 5u, 8u, 17u}) {  // 4-8: the lane-pair kernel at x86-64-v4
             const uint32_t samples = screening_kernels::kGroupSamples, items = 45;
-            std::vector<std::vector<float>> slices(samples), factors(viewers * samples);
-            std::vector<const float*> slice_ptrs, viewer_ptrs;
+            std::vector<std::vector<float>> slices(samples);
+            std::vector<const float*> slice_ptrs;
             for (auto& s : slices) {
                 s = random_floats(rng, size_t(items) * rank);
                 slice_ptrs.push_back(s.data());
             }
-            for (auto& f : factors) {
-                f = random_floats(rng, rank);
-                viewer_ptrs.push_back(f.data());
-            }
-            screening_kernels::GroupedTile tile;
-            tile.slices = slice_ptrs.data();
-            tile.viewers = viewer_ptrs.data();
-            tile.samples = samples;
-            tile.items = items;
-            tile.rank = rank;
-            tile.count = viewers;
+            const RandomViewersTile fixture(rng, slice_ptrs, viewers, items, rank);
+            const screening_kernels::GroupedTile& tile = fixture.tile;
+            const auto& factors = fixture.factors;
             for (CpuLevel level : supported_cpu_levels()) {
                 std::vector<std::vector<double>> sums(viewers, std::vector<double>(items, 0.25));
                 std::vector<double*> sum_ptrs;
@@ -203,9 +218,9 @@ TEST_CASE("grouped sums read from half slices are the sums of their widened floa
         for (const uint32_t viewers : {1u, 2u, 3u}) {
             const uint32_t samples = screening_kernels::kGroupSamples, items = 45;
             std::vector<std::vector<uint16_t>> halves(samples);
-            std::vector<std::vector<float>> widened(samples), factors(viewers * samples);
+            std::vector<std::vector<float>> widened(samples);
             std::vector<const uint16_t*> half_ptrs;
-            std::vector<const float*> widened_ptrs, viewer_ptrs;
+            std::vector<const float*> widened_ptrs;
             for (uint32_t g = 0; g < samples; ++g) {
                 for (float x : random_floats(rng, size_t(items) * rank)) {
                     halves[g].push_back(half_from_float(x));
@@ -214,17 +229,8 @@ TEST_CASE("grouped sums read from half slices are the sums of their widened floa
                 half_ptrs.push_back(halves[g].data());
                 widened_ptrs.push_back(widened[g].data());
             }
-            for (auto& f : factors) {
-                f = random_floats(rng, rank);
-                viewer_ptrs.push_back(f.data());
-            }
-            screening_kernels::GroupedTile tile;
-            tile.slices = widened_ptrs.data();
-            tile.viewers = viewer_ptrs.data();
-            tile.samples = samples;
-            tile.items = items;
-            tile.rank = rank;
-            tile.count = viewers;
+            RandomViewersTile fixture(rng, widened_ptrs, viewers, items, rank);
+            screening_kernels::GroupedTile& tile = fixture.tile;
             for (CpuLevel level : supported_cpu_levels()) {
                 const auto& table = screening_kernels::table_for(level);
                 if (!table.reads_halves(viewers, rank)) continue;
