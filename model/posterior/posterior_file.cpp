@@ -8,7 +8,6 @@
 
 #include <fcntl.h>
 #include <signal.h>
-#include <sys/mman.h>
 #include <sys/stat.h>
 #include <unistd.h>
 #include <xxhash.h>
@@ -33,6 +32,7 @@
 #include <nlohmann/json.hpp>
 
 #include "model/error.hpp"
+#include "model/posterior/huge_pages.hpp"
 
 // The format is little-endian and stores IEEE-754 binary32; on such a host
 // the in-memory arrays are the file bytes, which is what lets big arrays be
@@ -592,27 +592,6 @@ ElementType expected_type(uint32_t id) {
         case kDiagnostics: return ElementType::bytes;
         default: return ElementType::f32;
     }
-}
-
-// Sizes `out` to `count` elements, asking the kernel first to back its
-// whole 2 MiB stretches with huge pages (transparent huge pages, where the
-// system grants them on request). Serving reads one item's row from every
-// sample's block, each in another 4 KiB page: with small pages every such
-// read also misses the TLB, and the samples' rows of a top-N answer or a
-// prediction cost hundreds of page walks. Only advice: without it (or where
-// it is refused) the memory and its contents are the same.
-template <typename T>
-void size_for_reading(std::vector<T>& out, size_t count) {
-    constexpr uintptr_t kHugePageBytes = uintptr_t(2) << 20;
-    if (count * sizeof(T) >= 2 * kHugePageBytes && out.capacity() < count) {
-        std::vector<T>().swap(out);
-        out.reserve(count);  // allocated, not yet touched: the advice covers the first touch
-        const auto at = reinterpret_cast<uintptr_t>(out.data());
-        const uintptr_t begin = (at + kHugePageBytes - 1) & ~(kHugePageBytes - 1);
-        const uintptr_t end = (at + count * sizeof(T)) & ~(kHugePageBytes - 1);
-        if (end > begin) ::madvise(reinterpret_cast<void*>(begin), end - begin, MADV_HUGEPAGE);
-    }
-    out.resize(count);
 }
 
 template <typename T>

@@ -21,10 +21,9 @@
 #include <limits>
 #include <stdexcept>
 
-#include <sys/mman.h>
-
 #include "model/math/cpu_level.hpp"
 #include "model/math/half_float.hpp"
+#include "model/posterior/huge_pages.hpp"
 #include "model/predict/screening_kernels.hpp"
 
 namespace credence {
@@ -230,17 +229,9 @@ HalfItemBlocks half_item_blocks(const Posterior& p) {
         for (size_t j = 0; j < per_sample; ++j)
             if (!(std::abs(block[j]) <= kLargestHalf)) return out;  // also NaN
     }
-    // Huge pages where the system grants them (only advice), as for the
-    // posterior's own arrays: a pass reads a few KiB from each sample's block.
-    out.values.reserve(per_sample * S);
-    {
-        constexpr uintptr_t kHugePageBytes = uintptr_t(2) << 20;
-        const auto at = reinterpret_cast<uintptr_t>(out.values.data());
-        const uintptr_t begin = (at + kHugePageBytes - 1) & ~(kHugePageBytes - 1);
-        const uintptr_t end = (at + per_sample * S * sizeof(uint16_t)) & ~(kHugePageBytes - 1);
-        if (end > begin) ::madvise(reinterpret_cast<void*>(begin), end - begin, MADV_HUGEPAGE);
-    }
-    out.values.resize(per_sample * S);
+    // Huge pages where the system grants them, as for the posterior's own
+    // arrays: a pass reads a few KiB from each sample's block.
+    size_for_reading(out.values, per_sample * S);
     out.residual_norm.assign(S, 0.0);
     for (uint32_t s = 0; s < S; ++s) {
         const float* block = p.item_block(s);

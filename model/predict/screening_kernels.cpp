@@ -85,7 +85,8 @@ CREDENCE_INLINE float lane_sum(Vec v) {
 // within 5% of each other there.
 constexpr size_t kPrefetchBytes = 1024;
 
-CREDENCE_INLINE void prefetch_ahead(const float* p) {
+template <typename T>  // float, or uint16_t for IEEE halves
+CREDENCE_INLINE void prefetch_ahead(const T* p) {
     __builtin_prefetch(reinterpret_cast<const char*>(p) + kPrefetchBytes, 0, 3);
 }
 
@@ -177,8 +178,7 @@ CREDENCE_INLINE void rank_block(const GroupedTile& t, const T* const* rows, cons
     for (uint32_t g = 0; g < G; ++g) {
         const T* x = rows[g] + size_t(j0) * K;
         if (prefetch)
-            for (uint32_t line = 0; line < count * K; line += kPerLine)  // one per 64 bytes
-                __builtin_prefetch(reinterpret_cast<const char*>(x + line) + kPrefetchBytes, 0, 3);
+            for (uint32_t line = 0; line < count * K; line += kPerLine) prefetch_ahead(x + line);  // one per 64 bytes
         for (uint32_t c = 0; c * kLanes < K; ++c) {
             const Vec w = load(u[g] + c * kLanes);
             // Unrolled, so the kLanes accumulators are independent chains in
