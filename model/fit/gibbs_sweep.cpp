@@ -122,7 +122,7 @@ void draw_side(const SidePass& s, const Eigen::MatrixXd& prior_precision, const 
 #pragma omp for schedule(dynamic, 32)
         for (int64_t row = 0; row < rows; ++row) {
             Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, s.block, static_cast<uint64_t>(row));
-            for (double& z : normals) z = rng.normal();
+            rng.normals(normals.data(), normals.size());
             double smallest_diagonal = 0.0;
             const bool ok = kernels.draw_row(side, static_cast<uint64_t>(row), normals.data(), scratch.data,
                                              s.factors + static_cast<size_t>(row) * rank,

@@ -7,6 +7,7 @@
 // seeded through splitmix64 (Steele, Lea & Flood 2014) from a mix of the key.
 #pragma once
 #include <cmath>
+#include <cstddef>
 #include <cstdint>
 
 namespace credence {
@@ -36,8 +37,12 @@ public:
     uint64_t next_u64();
     // Uniform on the open interval (0, 1): never returns 0 or 1, so logs are safe.
     double uniform();
-    // Standard normal (Marsaglia polar method; caches the second variate).
+    // Standard normal (the ziggurat of Marsaglia & Tsang 2000, 256 layers;
+    // about 1.01 draws of next_u64 per variate, a log only in the tail).
     double normal();
+    // out[0 .. n) = n standard normals, the same as n calls of normal() (and
+    // faster). Borrows out.
+    void normals(double* out, size_t n);
     // Gamma(shape, rate=1) for shape > 0 (Marsaglia & Tsang 2000; shape < 1
     // via the boost U^(1/shape)). Caller scales by 1/rate. Throws
     // std::invalid_argument for a shape that is not positive and finite.
@@ -48,8 +53,10 @@ public:
 
 private:
     uint64_t s_[4];
-    double cached_normal_ = 0.0;
-    bool has_cached_normal_ = false;
 };
+
+// For the tests: the top layer's area of the normal ziggurat divided by the
+// area every layer should have (1 when the tables close).
+double ziggurat_top_layer_area();
 
 }  // namespace credence
