@@ -64,6 +64,45 @@ CREDENCE_INLINE Vec add_exact_product(Vec a, Vec b, Vec c) {
 #endif
 }
 
+// c - a b and c + a b in the Cholesky factorization, the solves and the
+// residuals: fused (rounded once) at the v3 and v4 levels, which therefore
+// give the same bits; at the baseline, whose CPUs may lack FMA, a multiply
+// then an add (the C library's exact fma() in software was ~180x slower).
+// The baseline's draws differ from the others' by rounding alone
+// (model/fit/row_kernels.hpp states the bound).
+CREDENCE_INLINE Vec sub_product(Vec c, Vec a, Vec b) {
+#if CREDENCE_KERNEL_LEVEL == 2
+    return reinterpret_cast<Vec>(_mm512_fnmadd_pd(reinterpret_cast<__m512d>(a), reinterpret_cast<__m512d>(b),
+                                                  reinterpret_cast<__m512d>(c)));
+#elif CREDENCE_KERNEL_LEVEL == 1
+    return reinterpret_cast<Vec>(_mm256_fnmadd_pd(reinterpret_cast<__m256d>(a), reinterpret_cast<__m256d>(b),
+                                                  reinterpret_cast<__m256d>(c)));
+#else
+    return c - a * b;
+#endif
+}
+CREDENCE_INLINE double sub_product(double c, double a, double b) {
+#if CREDENCE_KERNEL_LEVEL > 0
+    return __builtin_fma(-a, b, c);
+#else
+    return c - a * b;
+#endif
+}
+CREDENCE_INLINE Vec add_product(Vec c, Vec a, Vec b) {
+#if CREDENCE_KERNEL_LEVEL > 0
+    return add_exact_product(a, b, c);  // the same instruction; here the product need not be exact
+#else
+    return c + a * b;
+#endif
+}
+CREDENCE_INLINE double add_product(double c, double a, double b) {
+#if CREDENCE_KERNEL_LEVEL > 0
+    return __builtin_fma(a, b, c);
+#else
+    return c + a * b;
+#endif
+}
+
 constexpr size_t pad8(size_t n) { return (n + 7) / 8 * 8; }
 
 // The scratch layout (scratch_doubles in the header counts the same).
@@ -315,7 +354,7 @@ CREDENCE_INLINE bool eliminate_group(double* __restrict a, double* __restrict r)
         for (uint32_t v = 0; v < NV; ++v) {
             const Vec e = load(ej + (V0 + v) * kLanes);
 #pragma GCC unroll 4
-            for (uint32_t g = 0; g < G; ++g) acc[g][v] = acc[g][v] - f[g] * e;
+            for (uint32_t g = 0; g < G; ++g) acc[g][v] = sub_product(acc[g][v], f[g], e);
         }
     }
     bool ok = true;
@@ -331,7 +370,7 @@ CREDENCE_INLINE bool eliminate_group(double* __restrict a, double* __restrict r)
             const uint32_t col = I0 + h;
             const Vec f = splat(acc[g][col / kLanes - V0][col % kLanes] * rg);
 #pragma GCC unroll 8
-            for (uint32_t v = 0; v < NV; ++v) acc[h][v] = acc[h][v] - f * acc[g][v];
+            for (uint32_t v = 0; v < NV; ++v) acc[h][v] = sub_product(acc[h][v], f, acc[g][v]);
         }
 #pragma GCC unroll 8
         for (uint32_t v = 0; v < NV; ++v) store(a + i * LD + (V0 + v) * kLanes, acc[g][v]);
@@ -370,7 +409,7 @@ bool cholesky(double* __restrict a, double* __restrict inv, uint32_t d_runtime, 
             for (uint32_t i = j + 1; i < d; ++i) {
                 const Vec f = splat(uj[i] * r);
                 double* ai = a + i * ld;
-                for (size_t k = i / kLanes * kLanes; k < ld; k += kLanes) store(ai + k, load(ai + k) - f * load(uj + k));
+                for (size_t k = i / kLanes * kLanes; k < ld; k += kLanes) store(ai + k, sub_product(load(ai + k), f, load(uj + k)));
             }
         }
     }
@@ -406,7 +445,7 @@ CREDENCE_INLINE void solve_upper(const double* __restrict u, size_t ld, const do
     for (uint32_t i = d; i-- > 0;) {
         const double xi = c[i] * inv[i];
         out[i] = xi;
-        for (uint32_t k = 0; k < i; ++k) c[k] = c[k] - u[k * ld + i] * xi;
+        for (uint32_t k = 0; k < i; ++k) c[k] = sub_product(c[k], u[k * ld + i], xi);
     }
 }
 
@@ -445,7 +484,7 @@ CREDENCE_INLINE void solve_fixed(const SideData& side, const Scratch& s, const d
         out[j] = cj;
         const Vec b = splat(cj);
 #pragma GCC unroll 8
-        for (uint32_t v = (j + 1) / kLanes; v < NV; ++v) cv[v] = cv[v] - load(u + j * LD + v * kLanes) * b;
+        for (uint32_t v = (j + 1) / kLanes; v < NV; ++v) cv[v] = sub_product(cv[v], load(u + j * LD + v * kLanes), b);
     }
     add_noise(side, out, z, current, D, c);
     solve_upper(u, LD, inv, D, c, out);
@@ -469,7 +508,7 @@ void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, 
             out[j] = cj;
             const Vec cv = splat(cj);
             const double* uj = u + j * ld;
-            for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, load(c + k) - load(uj + k) * cv);
+            for (size_t k = (j + 1) / kLanes * kLanes; k < ld; k += kLanes) store(c + k, sub_product(load(c + k), load(uj + k), cv));
         }
         add_noise(side, out, z, current, d, c);
         solve_upper(u, ld, inv, d, c, out);
@@ -532,10 +571,7 @@ double residuals(const SideData& side, const Scratch& s, uint32_t n) {
             for (int i = 0; i < kLanes; ++i) rows[i] = load(x + size_t(i) * s.p + k0);
             transpose(rows, columns);
             const uint32_t m = K - k0 < uint32_t(kLanes) ? K - k0 : uint32_t(kLanes);
-            for (uint32_t k = 0; k < m; ++k) {
-                const Vec term = columns[k] * splat(s.w[k0 + k]);
-                prediction = prediction + term;
-            }
+            for (uint32_t k = 0; k < m; ++k) prediction = add_product(prediction, columns[k], splat(s.w[k0 + k]));
         }
         const Vec e = load(s.y + r) - prediction;
         const Vec squares = e * e;
@@ -545,7 +581,7 @@ double residuals(const SideData& side, const Scratch& s, uint32_t n) {
     for (; r < n; ++r) {
         const double* x = s.x + size_t(r) * s.p;
         double prediction = BIASES ? s.w[K] : 0.0;
-        for (uint32_t k = 0; k < K; ++k) prediction = prediction + x[k] * s.w[k];
+        for (uint32_t k = 0; k < K; ++k) prediction = add_product(prediction, x[k], s.w[k]);
         const double e = s.y[r] - prediction;
         sse = sse + e * e;
     }

@@ -18,18 +18,26 @@
 // Optionally the squared residuals of the row's ratings with the new row as
 // stored (rounded to float32), for the noise precision's conditional.
 //
-// Same bits at every level. Every product summed into F and s is of two
-// float32 values widened to double (or of one and 1.0), so it is exact in
-// double, and a fused multiply-add rounds it exactly as a multiply then add
-// does; each entry is summed over the ratings in rating order at every
-// level (vector lanes run across entries, never across ratings). The terms
-// of t (y is a double) use a separate multiply and add. The Cholesky
-// factorization and the solves vectorize across independent entries only;
-// the residuals across ratings (each prediction summed in column order, the
-// squares added in rating order); the map and the side sums across outputs
-// (each summed in row or column order as at the baseline); and the kernels
-// are compiled with -ffp-contract=off. So the levels differ in speed alone;
-// tests/model/fit/test_row_kernels.cpp checks it bit for bit.
+// The conditional is the same bits at every level: every product summed
+// into F and s is of two float32 values widened to double (or of one and
+// 1.0), so it is exact in double, and a fused multiply-add rounds it exactly
+// as a multiply then add does; each entry is summed over the ratings in
+// rating order at every level (vector lanes run across entries, never across
+// ratings). The terms of t (y is a double) use a separate multiply and add.
+// The draws and residuals are the same bits at x86-64-v3 and v4, which fuse
+// the Cholesky factorization's, the solves' and the predictions'
+// multiply-adds (vectorized across independent entries only, the residuals
+// across ratings: each prediction summed in column order, the squares added
+// in rating order); the baseline, for CPUs that may lack FMA, multiplies then
+// adds, so its draws differ from theirs by rounding alone: within the bound
+// the draw test states (the stored float32 row within 2^-24 relative of the
+// exact conditional mean plus L^-T z, the double solve adding at most
+// d kappa(P) 2^-53). The map and the side sums run across outputs (each
+// summed in row or column order as at the baseline), and the kernels are
+// compiled with
+// -ffp-contract=off, so the compiler fuses nothing the code does not.
+// Whatever the level, the thread count never changes a bit.
+// tests/model/fit/test_row_kernels.cpp checks all of it.
 #pragma once
 #include <cstddef>
 #include <cstdint>

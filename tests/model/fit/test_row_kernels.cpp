@@ -1,6 +1,8 @@
 // Tests for the sampler's row kernels (model/fit/row_kernels): every CPU
-// level this machine runs gives the same bits (the conditional, the draws,
-// the residuals, whole sweeps at any thread count), the conditional agrees
+// level this machine runs forms the same conditional bit for bit, the FMA
+// levels give the same bits as each other (draws, residuals, whole sweeps at
+// any thread count) and every level the same bits at any thread count, the
+// draws at every level agree with the exact conditional within rounding, the conditional agrees
 // with a long-double reference within its rounding bound, a draw is the
 // conditional mean plus L^-T z, and a precision that is not positive
 // definite is reported.
@@ -249,36 +251,41 @@ TEST_CASE("every CPU level forms the same conditional, bit for bit, within round
 }
 
 TEST_CASE("a row draw is the conditional mean plus L^-T z, up to the float32 rounding of the stored row") {
-    RowFixture f({.rank = 8, .init_scale = 0.7}, true);
-    const size_t d = f.d;
-    const std::vector<float> unread(d, 0.0f);  // a plain draw ignores the row's current value
-    for (CpuLevel level : supported_cpu_levels()) {
-        const auto& kernels = row_kernels::table_for(level);
-        for (uint32_t row = 0; row < 5; ++row) {
-            const auto [mean, cov] = solve_conditional(kernels, f, row);
-            // Draws with z = 0 (the mean) and z = scale e_k (the mean plus
-            // scale times column k of L^-T). Stored as float32: each entry
-            // within 2^-24 of its magnitude; the double solve adds at most
-            // d kappa(P) 2^-53 relative (Higham, Theorem 10.4 and section 7.1),
-            // far below that here (kappa < 100; 1e-11 allows for it).
-            const double scale = 1000.0;
-            Eigen::MatrixXd deviations(d, d);
-            std::vector<double> z(d, 0.0);
-            const Eigen::VectorXd at_zero = stored_draw(kernels, f, row, z, unread);
-            for (size_t k = 0; k < d; ++k)
-                CHECK(std::abs(at_zero[k] - mean[k]) <= 0x1.0p-24 * std::abs(mean[k]) + 1e-11 * (1.0 + mean.norm()));
-            for (size_t k = 0; k < d; ++k) {
-                std::fill(z.begin(), z.end(), 0.0);
-                z[k] = scale;
-                deviations.col(Eigen::Index(k)) = (stored_draw(kernels, f, row, z, unread) - mean) / scale;
+    // At every level, so this is also the bound within which the baseline
+    // (multiply then add) and the FMA levels (fused) agree. Rank 5 takes the
+    // run-time-sized kernels, 8, 16 and 32 the fixed-size ones.
+    for (const uint32_t rank : {5u, 8u, 16u, 32u}) {
+        RowFixture f({.rank = rank, .init_scale = 0.7}, true);
+        const size_t d = f.d;
+        const std::vector<float> unread(d, 0.0f);  // a plain draw ignores the row's current value
+        for (CpuLevel level : supported_cpu_levels()) {
+            const auto& kernels = row_kernels::table_for(level);
+            for (uint32_t row = 0; row < 5; ++row) {
+                const auto [mean, cov] = solve_conditional(kernels, f, row);
+                // Draws with z = 0 (the mean) and z = scale e_k (the mean plus
+                // scale times column k of L^-T). Stored as float32: each entry
+                // within 2^-24 of its magnitude; the double solve adds at most
+                // d kappa(P) 2^-53 relative (Higham, Theorem 10.4 and section 7.1),
+                // far below that here (kappa < 100; 1e-11 allows for it).
+                const double scale = 1000.0;
+                Eigen::MatrixXd deviations(d, d);
+                std::vector<double> z(d, 0.0);
+                const Eigen::VectorXd at_zero = stored_draw(kernels, f, row, z, unread);
+                for (size_t k = 0; k < d; ++k)
+                    CHECK(std::abs(at_zero[k] - mean[k]) <= 0x1.0p-24 * std::abs(mean[k]) + 1e-11 * (1.0 + mean.norm()));
+                for (size_t k = 0; k < d; ++k) {
+                    std::fill(z.begin(), z.end(), 0.0);
+                    z[k] = scale;
+                    deviations.col(Eigen::Index(k)) = (stored_draw(kernels, f, row, z, unread) - mean) / scale;
+                }
+                // Columns of L^-T: D D^T = L^-T L^-1 = P^-1. Each stored entry
+                // is off by at most 2^-24 |x| / scale + |mean error| / scale, so
+                // each product entry by at most 2 d max|D| max(err); 4x margin.
+                const double entry_error = (0x1.0p-24 * (mean.cwiseAbs().maxCoeff() + scale * deviations.cwiseAbs().maxCoeff()) +
+                                            1e-11 * (1.0 + mean.norm())) / scale;
+                const double tolerance = 4.0 * 2.0 * double(d) * deviations.cwiseAbs().maxCoeff() * entry_error;
+                CHECK((deviations * deviations.transpose() - cov).cwiseAbs().maxCoeff() <= tolerance);
             }
-            // Columns of L^-T: D D^T = L^-T L^-1 = P^-1. Each stored entry
-            // is off by at most 2^-24 |x| / scale + |mean error| / scale, so
-            // each product entry by at most 2 d max|D| max(err); 4x margin.
-            const double entry_error = (0x1.0p-24 * (mean.cwiseAbs().maxCoeff() + scale * deviations.cwiseAbs().maxCoeff()) +
-                                        1e-11 * (1.0 + mean.norm())) / scale;
-            const double tolerance = 4.0 * 2.0 * double(d) * deviations.cwiseAbs().maxCoeff() * entry_error;
-            CHECK((deviations * deviations.transpose() - cov).cwiseAbs().maxCoeff() <= tolerance);
         }
     }
 }
@@ -329,7 +336,11 @@ TEST_CASE("an overrelaxed row draw steps past the mean by a times the current of
     }
 }
 
-TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two, with and without biases") {
+TEST_CASE("the FMA levels give bit-identical sweeps, and every level the same bits at one thread and at two") {
+    // x86-64-v3 and v4 fuse the same multiply-adds, so they agree bit for
+    // bit with each other; the baseline does not fuse, so it is compared
+    // with itself across thread counts here, and with the exact conditional
+    // (within rounding) by the draw tests above.
     const LevelGuard guard;
     for (const bool long_rows : {false, true}) {
         const SimulatedRatings sim(long_rows);
@@ -346,8 +357,11 @@ TEST_CASE("every CPU level gives bit-identical sweeps, at one thread and at two,
                         gibbs_sweep(sim.data, o, SweepKey{21, 1, sweep}, st, threads);
                     return st;
                 };
-                const GibbsState reference = run(CpuLevel::baseline, 1);
+                const GibbsState baseline_reference = run(CpuLevel::baseline, 1);
+                const bool fma = detected_cpu_level() >= CpuLevel::v3;
+                const GibbsState fma_reference = fma ? run(CpuLevel::v3, 1) : baseline_reference;
                 for (CpuLevel level : supported_cpu_levels()) {
+                    const GibbsState& reference = level == CpuLevel::baseline ? baseline_reference : fma_reference;
                     for (int threads : {1, 2}) {
                         INFO("level " << cpu_level_name(level) << ", " << threads << " thread(s), rank " << rank
                                       << (biases ? ", biases" : ", no biases"));
