@@ -150,9 +150,10 @@ CREDENCE_INLINE uint32_t rank_of(const SideData& side) {
 }
 
 // Gathers ratings [first, first + n) into x (rows of p doubles; columns past
-// rank stay zero) and y; adds the targets to sum_y in rating order.
+// rank stay zero) and y; adds the targets to sum_y and their squares to
+// sum_y2, in rating order.
 template <uint32_t KK>
-void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, double& sum_y) {
+void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, double& sum_y, double& sum_y2) {
     // Everything in locals: through the references, every store to x or y
     // could change them, and the sum would make a round trip through memory
     // for every rating.
@@ -166,7 +167,7 @@ void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, 
     double* __restrict y = s.y;
     const size_t p = s.p;
     const uint64_t prefetch_end = side.nnz > kPrefetchAhead ? side.nnz - kPrefetchAhead : 0;
-    double sum = sum_y;
+    double sum = sum_y, sum2 = sum_y2;
     for (uint32_t r = 0; r < n; ++r) {
         if (first + r < prefetch_end) {
             const uint32_t ahead = index[r + kPrefetchAhead];
@@ -183,8 +184,11 @@ void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, 
         if (other_bias) target -= static_cast<double>(other_bias[other]);
         y[r] = target;
         sum += target;
+        const double square = target * target;
+        sum2 += square;
     }
     sum_y = sum;
+    sum_y2 = sum2;
 }
 
 // gram rows [k0, k0 + M) of the panel at col0 += sum over the n gathered rows
@@ -267,13 +271,21 @@ void accumulate(const SideData& side, const Scratch& s, uint32_t n, bool first) 
     }
 }
 
+// The row's sums beside F, s and t (which stay in the scratch).
+struct TargetSums {
+    double sum_y = 0.0;   // sum y
+    double sum_y2 = 0.0;  // sum y^2
+    double count = 0.0;   // n
+};
+
 // Sums the row's statistics and forms P's upper triangle in s.a (row-major,
-// ld) and rhs. Returns P's smallest diagonal entry.
+// ld) and rhs. Returns P's smallest diagonal entry; the target sums go to
+// `sums`.
 template <uint32_t KK, bool BIASES>
-double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
+double form_conditional(const SideData& side, uint64_t row, const Scratch& s, TargetSums& sums) {
     const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
     const size_t p = s.p, ld = s.ld;
-    double sum_y = 0.0;
+    double sum_y = 0.0, sum_y2 = 0.0;
     const uint64_t begin = side.offsets[row], end = side.offsets[row + 1];
     if (begin == end) {  // no ratings: the prior alone (F, s, t are zero)
         for (size_t i = 0; i < size_t(K) * p; ++i) s.gram[i] = 0.0;
@@ -281,10 +293,11 @@ double form_conditional(const SideData& side, uint64_t row, const Scratch& s) {
     }
     for (uint64_t at = begin; at < end; at += kGatherRows) {
         const uint32_t n = static_cast<uint32_t>(end - at < kGatherRows ? end - at : kGatherRows);
-        gather<KK>(side, at, n, s, sum_y);
+        gather<KK>(side, at, n, s, sum_y, sum_y2);
         accumulate<KK>(side, s, n, at == begin);
     }
     const double tau = side.tau, count = static_cast<double>(end - begin);
+    sums = TargetSums{sum_y, sum_y2, count};
     const Vec tau_v = splat(tau);
     double smallest = 0.0;
     for (uint32_t i = 0; i < d; ++i) {
@@ -516,82 +529,60 @@ void solve_and_draw(const SideData& side, const Scratch& s, uint32_t d_runtime, 
     }
 }
 
-#if CREDENCE_KERNEL_LEVEL > 0
-// t[k] = lane i of r[i] at k: the kLanes x kLanes block of gathered rows
-// r[0 .. kLanes) turned so that each vector holds one column (the shuffles
-// of the usual unpack-and-permute transposition).
-CREDENCE_INLINE void transpose(const Vec (&r)[kLanes], Vec (&t)[kLanes]) {
-#if CREDENCE_KERNEL_LEVEL == 2
-    Vec a[8], b[8];
-    for (int i = 0; i < 8; i += 2) {
-        a[i] = __builtin_shufflevector(r[i], r[i + 1], 0, 8, 2, 10, 4, 12, 6, 14);
-        a[i + 1] = __builtin_shufflevector(r[i], r[i + 1], 1, 9, 3, 11, 5, 13, 7, 15);
-    }
-    // b[0]: columns 0 and 4 of rows 0-3; b[1]: 2, 6; b[2]: 1, 5; b[3]: 3, 7; b[4..8): rows 4-7
-    for (int h = 0; h < 8; h += 4) {
-        b[h] = __builtin_shufflevector(a[h], a[h + 2], 0, 1, 4, 5, 8, 9, 12, 13);
-        b[h + 1] = __builtin_shufflevector(a[h], a[h + 2], 2, 3, 6, 7, 10, 11, 14, 15);
-        b[h + 2] = __builtin_shufflevector(a[h + 1], a[h + 3], 0, 1, 4, 5, 8, 9, 12, 13);
-        b[h + 3] = __builtin_shufflevector(a[h + 1], a[h + 3], 2, 3, 6, 7, 10, 11, 14, 15);
-    }
-    constexpr int column_of[4] = {0, 2, 1, 3};
-    for (int q = 0; q < 4; ++q) {
-        t[column_of[q]] = __builtin_shufflevector(b[q], b[q + 4], 0, 1, 4, 5, 8, 9, 12, 13);
-        t[column_of[q] + 4] = __builtin_shufflevector(b[q], b[q + 4], 2, 3, 6, 7, 10, 11, 14, 15);
-    }
-#else
-    const Vec a0 = __builtin_shufflevector(r[0], r[1], 0, 4, 2, 6);
-    const Vec a1 = __builtin_shufflevector(r[0], r[1], 1, 5, 3, 7);
-    const Vec a2 = __builtin_shufflevector(r[2], r[3], 0, 4, 2, 6);
-    const Vec a3 = __builtin_shufflevector(r[2], r[3], 1, 5, 3, 7);
-    t[0] = __builtin_shufflevector(a0, a2, 0, 1, 4, 5);
-    t[1] = __builtin_shufflevector(a1, a3, 0, 1, 4, 5);
-    t[2] = __builtin_shufflevector(a0, a2, 2, 3, 6, 7);
-    t[3] = __builtin_shufflevector(a1, a3, 2, 3, 6, 7);
-#endif
-}
-#endif
-
-// Squared residuals of n gathered ratings with the stored row w (bias in
-// w[K]): each prediction sums its terms in column order, each squared error
-// is added in rating order. Above the baseline, kLanes ratings at a time,
-// one per lane (their rows turned into columns), which performs the same
-// operations on each rating.
+// The row's sum of squared residuals with the stored row w (bias b = w[K]),
+// from its sums rather than a second pass over its ratings:
+//     sum (y - x.w - b)^2 = sum y^2 - 2 (w.t + b sum y) + w^T F w + 2 b (w.s) + n b^2.
+// F is held as its upper triangle by panels with the diagonal blocks whole,
+// so w^T F w = sum_i w_i (F[i][own panel] . w[own panel])
+//            + sum_i 2 w_i (F[i][later panels] . w[later panels]).
+// The sums run in vectors whose lanes are the 8 positions of a panel (two
+// vectors of 4 at v3, one of 8 at v4, so both add the same terms in the same
+// order), and the lanes are added in order at the end. Padding columns of
+// F, s and t are zero, so the bias in w's padding adds nothing. Rounding:
+// within gamma_{n + K + 20} of the sum of the terms' magnitudes
+// (tests/model/fit/test_row_kernels.cpp); it can be a rounding-level
+// negative number when a row fits its ratings almost exactly.
 template <uint32_t KK, bool BIASES>
-double residuals(const SideData& side, const Scratch& s, uint32_t n) {
+double residuals_from_sums(const SideData& side, const Scratch& s, const TargetSums& sums) {
     const uint32_t K = rank_of<KK>(side);
-    double sse = 0.0;
-    uint32_t r = 0;
-#if CREDENCE_KERNEL_LEVEL > 0
-    for (; r + kLanes <= n; r += kLanes) {
-        const double* x = s.x + size_t(r) * s.p;
-        Vec prediction = BIASES ? splat(s.w[K]) : Vec{};
-        for (uint32_t k0 = 0; k0 < K; k0 += kLanes) {
-            Vec rows[kLanes], columns[kLanes];
-            for (int i = 0; i < kLanes; ++i) rows[i] = load(x + size_t(i) * s.p + k0);
-            transpose(rows, columns);
-            const uint32_t m = K - k0 < uint32_t(kLanes) ? K - k0 : uint32_t(kLanes);
-            for (uint32_t k = 0; k < m; ++k) prediction = add_product(prediction, columns[k], splat(s.w[k0 + k]));
+    const size_t p = s.p;
+    Vec quadratic[kPerPanel], along_t[kPerPanel], along_s[kPerPanel];
+    for (int q = 0; q < kPerPanel; ++q) quadratic[q] = along_t[q] = along_s[q] = Vec{};
+    for (uint32_t i = 0; i < K; ++i) {
+        const uint32_t own = i / kPanel * kPanel;
+        const Vec once = splat(s.w[i]), twice = splat(2.0 * s.w[i]);
+        for (uint32_t col0 = own; col0 < K; col0 += kPanel) {
+            const Vec c = col0 == own ? once : twice;
+            for (int q = 0; q < kPerPanel; ++q) {
+                const Vec fw = load(s.gram + i * p + col0 + q * kLanes) * load(s.w + col0 + q * kLanes);
+                quadratic[q] = add_product(quadratic[q], c, fw);
+            }
         }
-        const Vec e = load(s.y + r) - prediction;
-        const Vec squares = e * e;
-        for (int i = 0; i < kLanes; ++i) sse = sse + squares[i];
     }
-#endif
-    for (; r < n; ++r) {
-        const double* x = s.x + size_t(r) * s.p;
-        double prediction = BIASES ? s.w[K] : 0.0;
-        for (uint32_t k = 0; k < K; ++k) prediction = add_product(prediction, x[k], s.w[k]);
-        const double e = s.y[r] - prediction;
-        sse = sse + e * e;
-    }
-    return sse;
+    for (uint32_t col0 = 0; col0 < K; col0 += kPanel)
+        for (int q = 0; q < kPerPanel; ++q) {
+            const Vec w = load(s.w + col0 + q * kLanes);
+            along_t[q] = add_product(along_t[q], w, load(s.t + col0 + q * kLanes));
+            along_s[q] = add_product(along_s[q], w, load(s.s + col0 + q * kLanes));
+        }
+    double wfw = 0.0, wt = 0.0, ws = 0.0;
+    for (int q = 0; q < kPerPanel; ++q)
+        for (int l = 0; l < kLanes; ++l) {
+            wfw = wfw + quadratic[q][l];
+            wt = wt + along_t[q][l];
+            ws = ws + along_s[q][l];
+        }
+    const double b = BIASES ? s.w[K] : 0.0;
+    const double linear = wt + b * sums.sum_y;
+    const double with_bias = 2.0 * b * ws + sums.count * b * b;
+    return ((sums.sum_y2 - 2.0 * linear) + wfw) + with_bias;
 }
 
 template <uint32_t KK, bool BIASES>
 void conditional_for(const SideData& side, uint64_t row, double* scratch, double* precision, double* rhs) {
     const Scratch s = layout(scratch, side.rank);
-    form_conditional<KK, BIASES>(side, row, s);
+    TargetSums sums;
+    form_conditional<KK, BIASES>(side, row, s, sums);
     const uint32_t d = side.rank + (BIASES ? 1 : 0);
     for (uint32_t i = 0; i < d; ++i) {
         rhs[i] = s.rhs[i];
@@ -606,7 +597,8 @@ bool draw_row_for(const SideData& side, uint64_t row, const double* normals, dou
     constexpr size_t LD = pad8(KK + 1);  // s.ld when KK > 0
     const uint32_t K = rank_of<KK>(side), d = K + (BIASES ? 1 : 0);
     const Scratch s = layout(scratch, K);
-    const double smallest = form_conditional<KK, BIASES>(side, row, s);
+    TargetSums sums;
+    const double smallest = form_conditional<KK, BIASES>(side, row, s, sums);
     double* out = s.spare;
     double* inv = s.u;
     bool ok = cholesky<DD, LD>(s.a, inv, d, s.ld);
@@ -634,23 +626,7 @@ bool draw_row_for(const SideData& side, uint64_t row, const double* normals, dou
         *bias = static_cast<float>(out[K]);
         s.w[K] = static_cast<double>(*bias);
     }
-    if (sse) {
-        // Residuals with the values as stored, as predictions will see them.
-        // A row that fitted in one gather still has its block in s.x.
-        const uint64_t begin = side.offsets[row], end = side.offsets[row + 1];
-        double total = 0.0;
-        if (end - begin <= kGatherRows) {
-            total = residuals<KK, BIASES>(side, s, static_cast<uint32_t>(end - begin));
-        } else {
-            double unused = 0.0;
-            for (uint64_t at = begin; at < end; at += kGatherRows) {
-                const uint32_t n = static_cast<uint32_t>(end - at < kGatherRows ? end - at : kGatherRows);
-                gather<KK>(side, at, n, s, unused);
-                total = total + residuals<KK, BIASES>(side, s, n);
-            }
-        }
-        *sse = total;
-    }
+    if (sse) *sse = residuals_from_sums<KK, BIASES>(side, s, sums);  // with the values as stored
     return true;
 }
 

@@ -16,7 +16,9 @@
 // transition leaves the conditional N(mean, P^-1) invariant and is
 // reversible with respect to it; a = 0 is the plain draw.
 // Optionally the squared residuals of the row's ratings with the new row as
-// stored (rounded to float32), for the noise precision's conditional.
+// stored (rounded to float32), for the noise precision's conditional,
+// computed from the row's sums (sum y^2 - 2 w.[t; sum y] + w^T [[F, s],
+// [s^T, n]] w with w the stored row) instead of a second pass.
 //
 // The conditional is the same bits at every level: every product summed
 // into F and s is of two float32 values widened to double (or of one and
@@ -25,10 +27,10 @@
 // rating order at every level (vector lanes run across entries, never across
 // ratings). The terms of t (y is a double) use a separate multiply and add.
 // The draws and residuals are the same bits at x86-64-v3 and v4, which fuse
-// the Cholesky factorization's, the solves' and the predictions'
-// multiply-adds (vectorized across independent entries only, the residuals
-// across ratings: each prediction summed in column order, the squares added
-// in rating order); the baseline, for CPUs that may lack FMA, multiplies then
+// the multiply-adds of the Cholesky factorization, the solves and the
+// residuals' quadratic form (vectorized across independent entries only; the
+// form's lanes are the 8 positions of a panel at both levels, added in lane
+// order); the baseline, for CPUs that may lack FMA, multiplies then
 // adds, so its draws differ from theirs by rounding alone: within the bound
 // the draw test states (the stored float32 row within 2^-24 relative of the
 // exact conditional mean plus L^-T z, the double solve adding at most
@@ -67,8 +69,7 @@ struct SideData {
     double overrelax_noise = 1.0;             // sqrt(1 - a^2), computed once by the caller
 };
 
-// Ratings gathered at once; a longer row is gathered in parts (and, for the
-// residuals, gathered again).
+// Ratings gathered at once; a longer row is gathered in parts.
 inline constexpr uint32_t kGatherRows = 2048;
 
 // Doubles in a row's gathered factor block: rank rounded up to 8 (one
@@ -93,7 +94,9 @@ struct Table {
     // Draws row `row` with normals[d] standard normals: writes factor[rank]
     // and, with biases, *bias, rounded to float32 (with side.overrelax != 0
     // their values on entry are the row's current value x); when sse is not null,
-    // *sse = the row's sum of squared residuals with those stored values.
+    // *sse = the row's sum of squared residuals with those stored values
+    // (from the row's sums: within rounding, which can make it a tiny
+    // negative number for a row that fits its ratings almost exactly).
     // Returns false, writing nothing but *smallest_diagonal (P's smallest
     // diagonal entry), when P is not positive definite or the draw is not
     // finite.
