@@ -64,8 +64,8 @@ CREDENCE_INLINE Vec add_exact_product(Vec a, Vec b, Vec c) {
 #endif
 }
 
-// c - a b and c + a b in the Cholesky factorization, the solves and the
-// residuals: fused (rounded once) at the v3 and v4 levels, which therefore
+// c - a b and c + a b in t's sums, the Cholesky factorization, the solves
+// and the residuals: fused (rounded once) at the v3 and v4 levels, which therefore
 // give the same bits; at the baseline, whose CPUs may lack FMA, a multiply
 // then an add (the C library's exact fma() in software was ~180x slower).
 // The baseline's draws differ from the others' by rounding alone
@@ -194,7 +194,8 @@ void gather(const SideData& side, uint64_t first, uint32_t n, const Scratch& s, 
 // gram rows [k0, k0 + M) of the panel at col0 += sum over the n gathered rows
 // of x[k] x[col0 .. col0 + 8), each entry summed in rating order (from zero
 // when `first`). The first tile of a panel (EXTRAS) also sums s += x and
-// t += y x for the panel's columns, t with a separate multiply and add.
+// t += y x for the panel's columns (t's multiply-adds fused above the
+// baseline, as add_product says).
 template <int M, bool EXTRAS>
 void tile(const Scratch& s, const double* x, const double* y, uint32_t n, uint32_t k0, uint32_t col0, bool first) {
     const size_t p = s.p;
@@ -220,8 +221,7 @@ void tile(const Scratch& s, const double* x, const double* y, uint32_t n, uint32
             const Vec target = splat(y[r]);
             for (int q = 0; q < kPerPanel; ++q) {
                 sums[q] = sums[q] + v[q];
-                const Vec product = target * v[q];
-                cross[q] = cross[q] + product;
+                cross[q] = add_product(cross[q], target, v[q]);
             }
         }
     }

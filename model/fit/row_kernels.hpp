@@ -20,25 +20,24 @@
 // computed from the row's sums (sum y^2 - 2 w.[t; sum y] + w^T [[F, s],
 // [s^T, n]] w with w the stored row) instead of a second pass.
 //
-// The conditional is the same bits at every level: every product summed
-// into F and s is of two float32 values widened to double (or of one and
-// 1.0), so it is exact in double, and a fused multiply-add rounds it exactly
-// as a multiply then add does; each entry is summed over the ratings in
-// rating order at every level (vector lanes run across entries, never across
-// ratings). The terms of t (y is a double) use a separate multiply and add.
-// The draws and residuals are the same bits at x86-64-v3 and v4, which fuse
-// the multiply-adds of the Cholesky factorization, the solves and the
-// residuals' quadratic form (vectorized across independent entries only; the
-// form's lanes are the 8 positions of a panel at both levels, added in lane
-// order); the baseline, for CPUs that may lack FMA, multiplies then
-// adds, so its draws differ from theirs by rounding alone: within the bound
-// the draw test states (the stored float32 row within 2^-24 relative of the
-// exact conditional mean plus L^-T z, the double solve adding at most
-// d kappa(P) 2^-53). The map and the side sums run across outputs (each
-// summed in row or column order as at the baseline), and the kernels are
-// compiled with
-// -ffp-contract=off, so the compiler fuses nothing the code does not.
-// Whatever the level, the thread count never changes a bit.
+// The precision P is the same bits at every level: every product summed into F
+// and s is of two float32 values widened to double (or of one and 1.0), so it
+// is exact in double, and a fused multiply-add rounds it exactly as a multiply
+// then add does; each entry is summed over the ratings in rating order at
+// every level (vector lanes run across entries, never across ratings). The
+// right-hand side, the draws and the residuals are the same bits at x86-64-v3
+// and v4, which fuse the multiply-adds of t (y is a double, so they round),
+// the Cholesky factorization, the solves and the residuals' quadratic form
+// (vectorized across independent entries only; the form's lanes are the 8
+// positions of a panel at both levels, added in lane order); the baseline, for
+// CPUs that may lack FMA, multiplies then adds, so its right-hand side and
+// draws differ from theirs by rounding alone: within the bounds the
+// conditional and draw tests state (the stored float32 row within 2^-24
+// relative of the exact conditional mean plus L^-T z, the double solve adding
+// at most d kappa(P) 2^-53). The map and the side sums run across outputs
+// (each summed in row or column order as at the baseline), and the kernels are
+// compiled with -ffp-contract=off, so the compiler fuses nothing the code does
+// not. Whatever the level, the thread count never changes a bit.
 // tests/model/fit/test_row_kernels.cpp checks all of it.
 #pragma once
 #include <cstddef>
