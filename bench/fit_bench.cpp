@@ -170,7 +170,7 @@ double process_cpu_s() {
 
 struct SweepTiming {
     std::vector<double> wall_s, cpu_s;
-    std::vector<float> final_user_factors;
+    credence::FactorRows final_user_factors;
     double median_s() const { return median(wall_s); }
     double min_s() const { return *std::min_element(wall_s.begin(), wall_s.end()); }
     double cpu_median_s() const { return median(cpu_s); }

@@ -151,7 +151,7 @@ NormalWishart factor_prior(const FitOptions& o) {
     return nw;
 }
 
-void draw_hyper(const std::vector<float>& factors, uint32_t rows, const FitOptions& o, const SweepKey& key,
+void draw_hyper(const FactorRows& factors, uint32_t rows, const FitOptions& o, const SweepKey& key,
                 StreamBlock block, int threads, Eigen::VectorXd& mu, Eigen::MatrixXd& lambda) {
     const FactorStatistics st = factor_statistics(factors.data(), rows, o.rank, threads);
     Rng rng = Rng::keyed(key.seed, key.chain, key.sweep, block, 0);

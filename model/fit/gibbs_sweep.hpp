@@ -9,6 +9,7 @@
 
 #include <Eigen/Dense>
 
+#include "model/fit/factor_rows.hpp"
 #include "model/math/random.hpp"
 #include "model/fit/sampler.hpp"
 #include "model/fit/sparse.hpp"
@@ -27,7 +28,7 @@ struct GibbsData {
 struct GibbsState {
     uint32_t rank = 0;
     bool biases = false;
-    std::vector<float> user_factors, item_factors;  // [U][K], [I][K]
+    FactorRows user_factors, item_factors;          // [U][K], [I][K], 64-byte aligned
     std::vector<float> user_bias, item_bias;        // [U], [I]; empty without biases
     Eigen::VectorXd user_mu, item_mu;               // hyperparameters used by the latest row draws
     Eigen::MatrixXd user_lambda, item_lambda;

@@ -67,7 +67,7 @@ void weighted_gram(const float* w, const float* c, size_t rows, uint32_t K, int 
 // with precision beta0 Lambda + lambda sum_j W_j W_j^T (W = the other side's
 // factors) and precision-mean -beta0 Lambda mu + lambda sum_j c_j W_j.
 ShiftConditional shift_conditional(const Eigen::VectorXd& mu, const Eigen::MatrixXd& lambda,
-                                   const std::vector<float>& other_factors, const std::vector<float>& compensated,
+                                   const FactorRows& other_factors, const std::vector<float>& compensated,
                                    double bias_precision, double beta0, uint32_t rank, int threads) {
     std::vector<double> lower, cw;
     weighted_gram(other_factors.data(), compensated.data(), compensated.size(), rank, threads, lower, cw);
@@ -85,7 +85,7 @@ ShiftConditional shift_conditional(const Eigen::VectorXd& mu, const Eigen::Matri
 }
 
 // moved[r] += d (every row), mu += d, compensated[j] -= d . other_factors[j].
-void shift_side(std::vector<float>& moved, Eigen::VectorXd& mu, const std::vector<float>& other_factors,
+void shift_side(FactorRows& moved, Eigen::VectorXd& mu, const FactorRows& other_factors,
                 std::vector<float>& compensated, uint32_t rank, const Eigen::VectorXd& d, int threads) {
     const auto rows = static_cast<int64_t>(moved.size() / rank);
     const auto others = static_cast<int64_t>(compensated.size());

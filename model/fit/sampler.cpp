@@ -115,7 +115,7 @@ double state_prediction(const GibbsState& st, double g, uint32_t u, uint32_t i) 
 // Appends the state to the posterior as its next kept sample.
 void append_sample(const GibbsState& st, uint32_t chain, Posterior& post) {
     const size_t K = post.rank;
-    auto append = [](std::vector<float>& to, const std::vector<float>& from) { to.insert(to.end(), from.begin(), from.end()); };
+    auto append = [](std::vector<float>& to, const auto& from) { to.insert(to.end(), from.begin(), from.end()); };
     post.sample_chain.push_back(chain);
     append(post.user_factors, st.user_factors);
     append(post.item_factors, st.item_factors);

@@ -124,7 +124,7 @@ Eigen::MatrixXd lambda_of(const std::vector<float>& lambda, uint32_t s, uint32_t
 void fill_side(const std::vector<int64_t>& old_index, uint32_t old_rows, const std::vector<float>& old_factors,
                const std::vector<float>& old_bias, const Eigen::VectorXd& mu, const Eigen::MatrixXd& lambda,
                double bias_precision, uint32_t s, uint32_t k, bool biases, float bias_shift, uint64_t row_offset,
-               uint64_t seed, uint32_t chain, std::vector<float>& factors, std::vector<float>& bias) {
+               uint64_t seed, uint32_t chain, FactorRows& factors, std::vector<float>& bias) {
     factors.assign(old_index.size() * k, 0.0f);
     if (biases) bias.assign(old_index.size(), 0.0f);
     for (size_t r = 0; r < old_index.size(); ++r) {

@@ -99,7 +99,7 @@ GibbsState forward_state(Rng& rng, const FitOptions& o, uint32_t users = geweke_
     nw.beta = o.prior.beta0;
     nw.w = o.prior.w0_scale * Eigen::MatrixXd::Identity(o.rank, o.rank);
     nw.nu = o.rank + o.prior.nu0_minus_rank;
-    auto side = [&](uint32_t rows, Eigen::VectorXd& mu, Eigen::MatrixXd& lambda, std::vector<float>& f,
+    auto side = [&](uint32_t rows, Eigen::VectorXd& mu, Eigen::MatrixXd& lambda, FactorRows& f,
                     std::vector<float>& b, double& bias_precision) {
         MeanPrecision mp = draw_normal_wishart(rng, nw);
         mu = mp.mu;
@@ -119,7 +119,7 @@ GibbsState forward_state(Rng& rng, const FitOptions& o, uint32_t users = geweke_
     return st;
 }
 
-double dot_rows(const std::vector<float>& a, uint32_t i, const std::vector<float>& b, uint32_t j, uint32_t K) {
+double dot_rows(const FactorRows& a, uint32_t i, const FactorRows& b, uint32_t j, uint32_t K) {
     double d = 0.0;
     for (uint32_t k = 0; k < K; ++k) d += double(a[i * K + k]) * b[j * K + k];
     return d;
