@@ -74,6 +74,12 @@ std::string Metrics::render(const LoadedModel* model) const {
            "# TYPE credence_http_requests_in_flight gauge\n"
            "credence_http_requests_in_flight "
         << in_flight_.load() << "\n";
+    if (open_connections_)
+        out << "# HELP credence_http_connections_open Connections queued or being served now (this scrape's "
+               "included).\n"
+               "# TYPE credence_http_connections_open gauge\n"
+               "credence_http_connections_open "
+            << open_connections_() << "\n";
     out << "# HELP credence_http_connections_refused_total Connections refused with 503 at the connection limit.\n"
            "# TYPE credence_http_connections_refused_total counter\n"
            "credence_http_connections_refused_total "

@@ -234,6 +234,7 @@ int run_server(const ServeOptions& options) {
                                                               ctx.metrics.request_finished("gate", why.status, 0.0);
                                                           },
                                                   });
+    ctx.metrics.watch_open_connections([&server] { return server.open_connections(); });
     // Small JSON answers must not wait for the peer's delayed ACK (~40 ms).
     server.set_tcp_nodelay(true);
     install_all_routes(server, ctx);

@@ -31,7 +31,8 @@ std::string read_text(const fs::path& path) {
     return s.str();
 }
 
-// The exposition of a Metrics that answered a few requests with a model loaded.
+// The exposition of a Metrics that answered a few requests with a model
+// loaded, refused one connection and watches a listener with 3 open.
 std::string exposition() {
     const fs::path dir = testing::scratch_dir("server_metrics");
     const fs::path path = dir / "shop.posterior";
@@ -44,6 +45,8 @@ std::string exposition() {
         metrics.request_finished("/v1/predictions", status, 0.003);
     }
     metrics.reload_finished(true);
+    metrics.connection_refused();
+    metrics.watch_open_connections([] { return 3u; });
     return metrics.render(model.get());
 }
 
@@ -77,6 +80,8 @@ TEST_CASE("every sample line belongs to a metric announced with HELP and TYPE") 
     const auto names = exported_names(text);
     CHECK(names.count("credence_http_requests_total") == 1);
     CHECK(names.count("credence_model_loaded") == 1);
+    CHECK(text.find("\ncredence_http_connections_open 3\n") != std::string::npos);
+    CHECK(text.find("\ncredence_http_connections_refused_total 1\n") != std::string::npos);
     std::istringstream in(text);
     size_t samples = 0;
     std::set<std::string> typed;
