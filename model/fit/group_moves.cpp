@@ -39,7 +39,7 @@ void weighted_gram(const float* w, const float* c, size_t rows, uint32_t K, int 
     {
         // Each block's sums by the row kernels (every entry summed in row
         // order, the same bits at every level) in padded buffers, then copied.
-        std::vector<double> d(stride), padded(size_t(K) * stride), cross(stride);
+        std::vector<double> d(row_kernels::gram_scratch_doubles(K)), padded(size_t(K) * stride), cross(stride);
 #pragma omp for schedule(dynamic, 1)
         for (size_t b = 0; b < blocks; ++b) {
             double* g = partial.data() + b * (kk + K);

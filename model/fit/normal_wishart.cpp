@@ -34,7 +34,7 @@ FactorStatistics factor_statistics(const float* rows, uint64_t count, uint32_t d
     const row_kernels::Table& kernels = row_kernels::table_for(active_cpu_level());
 #pragma omp parallel num_threads(team)
     {
-        std::vector<double> d(stride), mean(dim, 0.0), padded(size_t(dim) * stride);
+        std::vector<double> d(row_kernels::gram_scratch_doubles(dim)), mean(dim, 0.0), padded(size_t(dim) * stride);
 #pragma omp for schedule(dynamic, 1)
         for (int64_t b = 0; b < static_cast<int64_t>(blocks); ++b) {
             double* sum = partial.data() + size_t(b) * (dim + cells);

@@ -687,28 +687,82 @@ void map_rows(float* rows, uint64_t count, uint32_t K, const double* map, size_t
     }
 }
 
-void gram_rows(const float* rows, uint64_t count, uint32_t K, const double* center, const float* weights,
-               size_t stride, double* lower, double* cross, double* d) {
-    for (size_t k = K; k < stride; ++k) d[k] = 0.0;
-    for (uint64_t r = 0; r < count; ++r) {
-        const float* row = rows + r * K;
-        if (center)
-            for (uint32_t k = 0; k < K; ++k) d[k] = static_cast<double>(row[k]) - center[k];
-        else
-            for (uint32_t k = 0; k < K; ++k) d[k] = static_cast<double>(row[k]);
-        for (uint32_t j = 0; j < K; ++j) {
-            const Vec dj = splat(d[j]);
-            double* out = lower + size_t(j) * stride;
-            for (size_t k = 0; k <= j; k += kLanes) {
-                const Vec product = dj * load_unaligned(d + k);
-                store_unaligned(out + k, load_unaligned(out + k) + product);
+// lower rows [j0, j0 + M) of the panel at col0 += sum over the n rows of x
+// (rows `stride` doubles apart) of x[j] x[col0 .. col0 + 8), and with CROSS
+// cross[col0 .. col0 + 8) += w x[col0 .. col0 + 8), each entry summed in row
+// order with a multiply then an add, as gram_rows always summed. lower and
+// cross are plain std::vector storage, so unaligned.
+template <int M, bool CROSS>
+void gram_tile(const double* x, size_t stride, const float* weights, uint32_t n, uint32_t j0, uint32_t col0,
+               double* lower, double* cross) {
+    Vec acc[M][kPerPanel], sums[kPerPanel];
+    for (int i = 0; i < M; ++i)
+        for (int q = 0; q < kPerPanel; ++q) acc[i][q] = load_unaligned(lower + (j0 + i) * stride + col0 + q * kLanes);
+    if constexpr (CROSS)
+        for (int q = 0; q < kPerPanel; ++q) sums[q] = load_unaligned(cross + col0 + q * kLanes);
+    for (uint32_t r = 0; r < n; ++r) {
+        const double* row = x + size_t(r) * stride;
+        Vec v[kPerPanel];
+        for (int q = 0; q < kPerPanel; ++q) v[q] = load_unaligned(row + col0 + q * kLanes);
+        for (int i = 0; i < M; ++i) {
+            const Vec b = splat(row[j0 + i]);
+            for (int q = 0; q < kPerPanel; ++q) {
+                const Vec product = b * v[q];
+                acc[i][q] = acc[i][q] + product;
             }
         }
-        if (cross) {
+        if constexpr (CROSS) {
             const Vec c = splat(static_cast<double>(weights[r]));
-            for (size_t k = 0; k < stride; k += kLanes) {
-                const Vec product = c * load_unaligned(d + k);
-                store_unaligned(cross + k, load_unaligned(cross + k) + product);
+            for (int q = 0; q < kPerPanel; ++q) {
+                const Vec product = c * v[q];
+                sums[q] = sums[q] + product;
+            }
+        }
+    }
+    for (int i = 0; i < M; ++i)
+        for (int q = 0; q < kPerPanel; ++q) store_unaligned(lower + (j0 + i) * stride + col0 + q * kLanes, acc[i][q]);
+    if constexpr (CROSS)
+        for (int q = 0; q < kPerPanel; ++q) store_unaligned(cross + col0 + q * kLanes, sums[q]);
+}
+
+template <int M, bool CROSS>
+void gram_tile_upto(int m, const double* x, size_t stride, const float* weights, uint32_t n, uint32_t j0,
+                    uint32_t col0, double* lower, double* cross) {
+    if constexpr (M > 0) {
+        if (m == M) return gram_tile<M, CROSS>(x, stride, weights, n, j0, col0, lower, cross);
+        return gram_tile_upto<M - 1, CROSS>(m, x, stride, weights, n, j0, col0, lower, cross);
+    }
+}
+
+// By chunks of kGramChunkRows rows: the chunk's rows widened (and centered)
+// into d, then each panel of 8 columns by tiles of lower rows whose sums stay
+// in registers over the chunk (through memory, every row's update of an
+// entry waited for the previous row's store).
+void gram_rows(const float* rows, uint64_t count, uint32_t K, const double* center, const float* weights,
+               size_t stride, double* lower, double* cross, double* d) {
+    for (uint64_t r0 = 0; r0 < count; r0 += kGramChunkRows) {
+        const uint32_t n = static_cast<uint32_t>(count - r0 < kGramChunkRows ? count - r0 : kGramChunkRows);
+        for (uint32_t r = 0; r < n; ++r) {
+            const float* row = rows + (r0 + r) * K;
+            double* out = d + size_t(r) * stride;
+            if (center)
+                for (uint32_t k = 0; k < K; ++k) out[k] = static_cast<double>(row[k]) - center[k];
+            else
+                for (uint32_t k = 0; k < K; ++k) out[k] = static_cast<double>(row[k]);
+            for (size_t k = K; k < stride; ++k) out[k] = 0.0;
+        }
+        const float* w = cross ? weights + r0 : nullptr;
+        for (uint32_t col0 = 0; col0 < K; col0 += kPanel) {
+            // Rows j >= col0 have entries in this panel (those right of j
+            // are written, never results).
+            const uint32_t first = K - col0 < uint32_t(kFirstTileRows) ? K - col0 : uint32_t(kFirstTileRows);
+            if (cross)
+                gram_tile_upto<kFirstTileRows, true>(int(first), d, stride, w, n, col0, col0, lower, cross);
+            else
+                gram_tile_upto<kFirstTileRows, false>(int(first), d, stride, w, n, col0, col0, lower, cross);
+            for (uint32_t j0 = col0 + first; j0 < K; j0 += kTileRows) {
+                const int m = static_cast<int>(K - j0 < uint32_t(kTileRows) ? K - j0 : uint32_t(kTileRows));
+                gram_tile_upto<kTileRows, false>(m, d, stride, w, n, j0, col0, lower, cross);
             }
         }
     }

@@ -76,6 +76,12 @@ inline constexpr uint32_t kGatherRows = 2048;
 // compiled once per level and must not share an out-of-line copy.
 [[gnu::always_inline]] inline constexpr size_t padded(size_t n) { return (n + 7) / 8 * 8; }
 
+// Rows gram_rows widens at once, and the scratch it needs for them.
+inline constexpr uint32_t kGramChunkRows = 128;
+[[gnu::always_inline]] inline constexpr size_t gram_scratch_doubles(uint32_t rank) {
+    return size_t(kGramChunkRows) * padded(rank);
+}
+
 // Doubles of scratch one thread needs (for any level): allocate them
 // 64-byte aligned and zero-filled once, then reuse for every row.
 [[gnu::always_inline]] inline constexpr size_t scratch_doubles(uint32_t rank) {
@@ -114,10 +120,12 @@ struct Table {
     // hyperparameters' statistics and the group moves' shift conditionals:
     // with d = row - center (center null: d = row), lower[j][k] += d[j] d[k]
     // for k <= j (rows of lower `stride` = padded(rank) doubles apart; the
-    // entries right of j up to the end of the vector holding column j are
-    // written too, finite, never a result), and when cross is not null,
-    // cross[k] += weights[r] d[k]. d is scratch of stride doubles. Borrows
-    // everything; the caller zeroes lower and cross first.
+    // entries right of j up to the end of the 8-column panel holding column
+    // j are written too, finite, never a result), and when cross is not
+    // null, cross[k] += weights[r] d[k] (cross has stride doubles). Each
+    // entry is a multiply then an add per row, so every level gives the same
+    // bits. d is scratch of gram_scratch_doubles(rank). Borrows everything;
+    // the caller zeroes lower and cross first.
     void (*gram_rows)(const float* rows, uint64_t count, uint32_t rank, const double* center, const float* weights,
                       size_t stride, double* lower, double* cross, double* d);
 };

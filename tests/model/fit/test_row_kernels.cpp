@@ -435,6 +435,58 @@ TEST_CASE("the residuals a draw returns are the squared errors of the row as sto
     }
 }
 
+TEST_CASE("the side sums are the same bits at every level and within rounding of a long-double reference") {
+    // 300 rows: two whole chunks of row_kernels::kGramChunkRows and a part.
+    // Each entry of lower and cross is a sum of 300 rounded products of
+    // rounded differences, so within gamma_{n + 2} of the sum of the terms'
+    // magnitudes (Higham, section 3.1).
+    const uint32_t n = 300;
+    for (const uint32_t rank : {5u, 16u, 17u, 32u}) {
+        Rng rng(40 + rank);
+        std::vector<float> rows(size_t(n) * rank), weights(n);
+        for (float& v : rows) v = static_cast<float>(rng.normal());
+        for (float& v : weights) v = static_cast<float>(rng.normal());
+        std::vector<double> center(rank);
+        for (double& v : center) v = 0.1 * rng.normal();
+        const size_t stride = row_kernels::padded(rank);
+        std::vector<double> lower0, cross0;
+        for (CpuLevel level : supported_cpu_levels()) {
+            INFO("level " << cpu_level_name(level) << " rank " << rank);
+            std::vector<double> lower(size_t(rank) * stride, 0.0), cross(stride, 0.0);
+            std::vector<double> scratch(row_kernels::gram_scratch_doubles(rank));
+            row_kernels::table_for(level).gram_rows(rows.data(), n, rank, center.data(), weights.data(), stride,
+                                                    lower.data(), cross.data(), scratch.data());
+            if (lower0.empty()) {
+                lower0 = lower;
+                cross0 = cross;
+            }
+            for (uint32_t j = 0; j < rank; ++j) {
+                for (uint32_t k = 0; k <= j; ++k) CHECK(lower[size_t(j) * stride + k] == lower0[size_t(j) * stride + k]);
+                CHECK(cross[j] == cross0[j]);
+            }
+        }
+        for (uint32_t j = 0; j < rank; ++j) {
+            long double cross_exact = 0.0L, cross_size = 0.0L;
+            for (uint32_t k = 0; k <= j; ++k) {
+                long double exact = 0.0L, size = 0.0L;
+                for (uint32_t r = 0; r < n; ++r) {
+                    const long double dj = static_cast<long double>(rows[size_t(r) * rank + j]) - center[j];
+                    const long double dk = static_cast<long double>(rows[size_t(r) * rank + k]) - center[k];
+                    exact += dj * dk;
+                    size += std::abs(dj * dk);
+                }
+                CHECK(double(std::abs(lower0[size_t(j) * stride + k] - exact)) <= gamma_n(n + 2) * double(size));
+            }
+            for (uint32_t r = 0; r < n; ++r) {
+                const long double dj = static_cast<long double>(rows[size_t(r) * rank + j]) - center[j];
+                cross_exact += weights[r] * dj;
+                cross_size += std::abs(weights[r] * dj);
+            }
+            CHECK(double(std::abs(cross0[j] - cross_exact)) <= gamma_n(n + 2) * double(cross_size));
+        }
+    }
+}
+
 TEST_CASE("a precision that is not positive definite is reported with its smallest diagonal at every level") {
     RowFixture fixture({.rank = 4}, true);
     const FitOptions& o = fixture.options;
