@@ -95,13 +95,6 @@ CREDENCE_INLINE Vec add_product(Vec c, Vec a, Vec b) {
     return c + a * b;
 #endif
 }
-CREDENCE_INLINE double add_product(double c, double a, double b) {
-#if CREDENCE_KERNEL_LEVEL > 0
-    return __builtin_fma(a, b, c);
-#else
-    return c + a * b;
-#endif
-}
 
 constexpr size_t pad8(size_t n) { return (n + 7) / 8 * 8; }
 
