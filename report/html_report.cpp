@@ -156,6 +156,7 @@ std::string provenance(const nlohmann::json& meta, const std::string& verdict_li
     fact("report written (UTC)", utc_now_iso8601());
     fact("Credence version", meta_text(meta, {"credence_version"}));
     fact("seed", meta_text(meta, {"seed"}));
+    fact("sampler kernels (CPU level)", meta_text(meta, {"kernels"}));
     fact("sweeps per chain", meta_text(meta, {"sweeps_per_chain"}));
     fact("burn-in (sweeps per chain)", meta_text(meta, {"run_length", "burn_in"}));
     fact(fixed ? "kept draws per chain, thin" : "kept draws per chain",

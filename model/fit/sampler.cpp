@@ -22,6 +22,7 @@
 #include "model/error.hpp"
 #include "model/fit/convergence_monitor.hpp"
 #include "model/fit/gibbs_sweep.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/fit/sparse.hpp"
 #include "model/fit/warm_start.hpp"
 
@@ -402,6 +403,9 @@ nlohmann::json fit_metadata(const FitOptions& options, const CsrMatrix& by_user,
     nlohmann::json meta;
     meta["options"] = options_json(options);
     meta["seed"] = options.seed;
+    // The row kernels' CPU level: x86-64-v3 and v4 draw the same bits, the
+    // baseline differs from them by rounding (model/fit/row_kernels.hpp).
+    meta["kernels"] = cpu_level_name(active_cpu_level());
     meta["data"] = {{"ratings", by_user.nnz()}, {"users", post.num_users}, {"items", post.num_items}, {"global_mean", g}};
     meta["sweeps_per_chain"] = run.sweeps;
     meta["kept_samples"] = post.num_samples;

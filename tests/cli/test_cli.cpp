@@ -984,5 +984,6 @@ TEST_CASE("report opens with provenance and a verdict and refuses a comparison m
     CHECK(provenance < text.find("id=\"held-out\""));
     CHECK(text.find(fingerprint, provenance) != std::string::npos);
     CHECK(text.find(CREDENCE_PROJECT_VERSION, provenance) != std::string::npos);
+    CHECK(text.find("<b>x86-64", provenance) != std::string::npos);  // the kernels' CPU level
     CHECK(text.find("id=\"fitness\"") != std::string::npos);
 }

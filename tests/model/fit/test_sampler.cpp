@@ -24,6 +24,7 @@
 #include <vector>
 
 #include "model/math/convergence_diagnostics.hpp"
+#include "model/math/cpu_level.hpp"
 #include "model/math/distributions.hpp"
 #include "model/error.hpp"
 #include "model/fit/convergence_summary.hpp"
@@ -1151,6 +1152,7 @@ TEST_CASE("fit fills every posterior field, the trace and the metadata") {
     const auto meta = nlohmann::json::parse(p.fit_metadata_json);
     CHECK(meta["options"]["rank"] == 3);
     CHECK(meta["seed"] == o.seed);
+    CHECK(meta["kernels"] == cpu_level_name(active_cpu_level()));
     CHECK(meta["trace"]["train_rmse"].size() == 2 * sweeps);
     CHECK(meta["trace"]["noise_precision"].size() == 2 * sweeps);
     CHECK(meta["timings"]["total_s"].get<double>() > 0.0);
