@@ -3,7 +3,7 @@
 //   mixing_bench --ratings FILE [--scale 1:5] [--holdout 0.1] [--rank K]
 //                [--chains 2] [--burn-in 200] [--samples 400] [--thin 1]
 //                [--seed 1] [--threads 0] [--moves off,on] [--all-predictions]
-//                [--overrelaxation A]
+//                [--overrelaxation A] [--prior-nu0-minus-rank N] [--prior-w0-scale W]
 //                [--trace FILE [--trace-pair CUSTOMER,PRODUCT]] [--converged]
 //
 // Variants: "off" is the plain Gibbs sweep (no group moves, plain row
@@ -191,6 +191,9 @@ int main(int argc, char** argv) {
     app.add_option("--overrelaxation", o.overrelaxation,
                    "coefficient of the overrelaxed row draws in the variant \"on\" (FitOptions::overrelaxation)");
     app.add_option("--fixed-noise-precision", fixed_noise);
+    app.add_option("--prior-nu0-minus-rank", o.prior.nu0_minus_rank,
+                   "Wishart degrees of freedom of the factor prior, nu0 = K + this (HyperpriorOptions)");
+    app.add_option("--prior-w0-scale", o.prior.w0_scale, "Wishart scale of the factor prior, W0 = this x I");
     std::string trace_path;
     bool all_predictions = false, converged = false;
     uint64_t split_seed = 0;
