@@ -22,9 +22,9 @@
 #include "model/error.hpp"
 #include "model/fit/convergence_monitor.hpp"
 #include "model/fit/gibbs_sweep.hpp"
-#include "model/math/cpu_level.hpp"
 #include "model/fit/sparse.hpp"
 #include "model/fit/warm_start.hpp"
+#include "model/math/cpu_level.hpp"
 
 namespace credence {
 

@@ -15,6 +15,24 @@ uint64_t splitmix64(uint64_t& x) {
 __extension__ typedef unsigned __int128 u128;  // GCC/Clang extension, for Lemire's method
 uint64_t rotl(uint64_t x, int k) { return (x << k) | (x >> (64 - k)); }
 
+// One xoshiro256++ step on the state s (Blackman & Vigna 2018): the one
+// definition Rng::next_u64 and the register copy in Rng::normals share.
+inline uint64_t xoshiro_next(uint64_t& s0, uint64_t& s1, uint64_t& s2, uint64_t& s3) {
+    const uint64_t result = rotl(s0 + s3, 23) + s0;
+    const uint64_t t = s1 << 17;
+    s2 ^= s0;
+    s3 ^= s1;
+    s1 ^= s2;
+    s0 ^= s3;
+    s2 ^= t;
+    s3 = rotl(s3, 45);
+    return result;
+}
+
+// Uniform on (0, 1) from 64 random bits: the top 53, shifted by half an
+// ulp so 0 is impossible.
+inline double open_unit(uint64_t bits) { return (static_cast<double>(bits >> 11) + 0.5) * 0x1.0p-53; }
+
 // The ziggurat for the standard normal (Marsaglia & Tsang 2000, "The
 // Ziggurat Method for Generating Random Variables", J. Stat. Softw. 5(8)):
 // under f(x) = exp(-x^2 / 2), x >= 0, 256 layers of equal area v stacked
@@ -77,41 +95,17 @@ Rng Rng::keyed(uint64_t seed, uint32_t chain, uint32_t sweep, StreamBlock block,
     return Rng(h);
 }
 
-uint64_t Rng::next_u64() {
-    const uint64_t result = rotl(s_[0] + s_[3], 23) + s_[0];
-    const uint64_t t = s_[1] << 17;
-    s_[2] ^= s_[0];
-    s_[3] ^= s_[1];
-    s_[1] ^= s_[2];
-    s_[0] ^= s_[3];
-    s_[2] ^= t;
-    s_[3] = rotl(s_[3], 45);
-    return result;
-}
+uint64_t Rng::next_u64() { return xoshiro_next(s_[0], s_[1], s_[2], s_[3]); }
 
-double Rng::uniform() {
-    // 53 random bits, shifted by half an ulp so 0 is impossible.
-    return (static_cast<double>(next_u64() >> 11) + 0.5) * 0x1.0p-53;
-}
+double Rng::uniform() { return open_unit(next_u64()); }
 
 namespace {
 // xoshiro256++ on a copy of the state held in registers, for loops of draws
 // (through `this`, every draw stored and reloaded the state).
 struct LocalState {
     uint64_t s0, s1, s2, s3;
-    uint64_t next() {
-        const uint64_t result = rotl(s0 + s3, 23) + s0;
-        const uint64_t t = s1 << 17;
-        s2 ^= s0;
-        s3 ^= s1;
-        s1 ^= s2;
-        s0 ^= s3;
-        s2 ^= t;
-        s3 = rotl(s3, 45);
-        return result;
-    }
-    // As Rng::uniform.
-    double uniform() { return (static_cast<double>(next() >> 11) + 0.5) * 0x1.0p-53; }
+    uint64_t next() { return xoshiro_next(s0, s1, s2, s3); }
+    double uniform() { return open_unit(next()); }
 };
 
 // One standard normal. One 64-bit draw gives the layer (bits 0-7), the sign
