@@ -237,13 +237,12 @@ int main(int argc, char** argv) {
     std::vector<std::pair<std::string, Headline>> headlines;
     for (std::string variant; std::getline(list, variant, ',');) {
         FitOptions v = o;
-        if (variant != "off" && variant != "moves" && variant != "on" && variant != "columns") {
+        if (variant != "off" && variant != "moves" && variant != "on") {
             std::fprintf(stderr, "mixing_bench: --moves: unknown variant '%s' (off, moves, on)\n", variant.c_str());
             return 2;
         }
         v.group_moves = variant != "off";
-        if (variant != "on" && variant != "columns") v.overrelaxation = 0.0;
-        v.column_moves = variant == "columns";
+        if (variant != "on") v.overrelaxation = 0.0;
         const FitResult fit = fit_bpmf(train, v);
         headlines.emplace_back(variant, print_variant(variant, v, fit, fit.convergence, all_predictions));
         if (!test.empty()) {

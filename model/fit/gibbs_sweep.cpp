@@ -14,7 +14,6 @@
 #include "model/math/cpu_level.hpp"
 #include "model/math/distributions.hpp"
 #include "model/error.hpp"
-#include "model/fit/column_moves.hpp"
 #include "model/fit/group_moves.hpp"
 #include "model/fit/normal_wishart.hpp"
 #include "model/fit/row_kernels.hpp"
@@ -262,7 +261,6 @@ void gibbs_sweep(const GibbsData& data, const FitOptions& o, const RowDrawRule& 
     st.sse = 0.0;
     for (double v : sse_rows) st.sse += v;
 
-    if (o.column_moves) apply_column_moves(data, o, key, st);
     if (o.biases) {
         st.user_bias_precision = draw_bias_precision(st.user_bias, o, key, StreamBlock::user_hyper);
         st.item_bias_precision = draw_bias_precision(st.item_bias, o, key, StreamBlock::item_hyper);

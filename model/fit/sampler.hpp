@@ -101,7 +101,6 @@ struct FitOptions {
     // Joint moves after each sweep (model/fit/group_moves.hpp); each leaves
     // the posterior exactly invariant. Off only to measure what they buy.
     bool group_moves = true;
-    bool column_moves = false;
     // Overrelaxed row draws (model/fit/row_kernels.hpp): each row moves to
     // mean + a (current - mean) + sqrt(1 - a^2) x noise, which leaves its
     // Gaussian conditional exactly invariant for any a in (-1, 1); a < 0

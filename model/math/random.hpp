@@ -26,7 +26,6 @@ enum class StreamBlock : uint32_t {
     serve = 9,     // per-request draws in the server
     foldin = 10,
     group_moves = 11,  // joint moves along directions the likelihood leaves flat
-    column_moves = 12,  // collapsed column moves (model/fit/column_moves.hpp)
 };
 
 class Rng {
