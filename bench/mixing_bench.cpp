@@ -107,7 +107,9 @@ std::pair<uint32_t, uint32_t> pair_index(const Posterior& p, const std::string& 
 }
 
 // Per kept sample: chain, tau, bias precisions, traces of the factor
-// covariances, mu_U . mu_V, mean biases, mean squared factor norms.
+// covariances, mu_U . mu_V, mean biases, mean squared factor norms, the
+// singular values of the factor product U V^T (sv*) and the eigenvalues of
+// Lambda_U and Lambda_V in ascending order (lu*, lv*).
 // With a pair (user, item index): that prediction and its parts (biases,
 // factor dot product, factor norms) too.
 void write_trace(const Posterior& p, const std::string& path, std::optional<std::pair<uint32_t, uint32_t>> pair) {
@@ -115,6 +117,8 @@ void write_trace(const Posterior& p, const std::string& path, std::optional<std:
     std::fprintf(f, "chain\ttau\tlambda_b\tlambda_c\ttr_cov_u\ttr_cov_v\tmu_dot\tmean_b\tmean_c\tnorm_u\tnorm_v\tmu_u_norm\tmu_v_norm");
     if (pair) std::fprintf(f, "\tpred\tb_u\tc_i\tdot_ui\tnorm_uu\tnorm_vi");
     for (uint32_t k = 0; k < p.rank; ++k) std::fprintf(f, "\tsv%u", k);
+    for (uint32_t k = 0; k < p.rank; ++k) std::fprintf(f, "\tlu%u", k);
+    for (uint32_t k = 0; k < p.rank; ++k) std::fprintf(f, "\tlv%u", k);
     std::fprintf(f, "\n");
     const uint32_t K = p.rank;
     for (uint32_t s = 0; s < p.num_samples; ++s) {
@@ -162,6 +166,9 @@ void write_trace(const Posterior& p, const std::string& path, std::optional<std:
         const Eigen::MatrixXd rv = qv.matrixQR().topRows(K).triangularView<Eigen::Upper>();
         Eigen::JacobiSVD<Eigen::MatrixXd> svd(ru * rv.transpose());
         for (uint32_t k = 0; k < K; ++k) std::fprintf(f, "\t%g", svd.singularValues()[k]);
+        Eigen::SelfAdjointEigenSolver<Eigen::MatrixXd> eu(mat(p.user_lambda)), ev(mat(p.item_lambda));
+        for (uint32_t k = 0; k < K; ++k) std::fprintf(f, "\t%g", eu.eigenvalues()[k]);
+        for (uint32_t k = 0; k < K; ++k) std::fprintf(f, "\t%g", ev.eigenvalues()[k]);
         std::fprintf(f, "\n");
     }
     std::fclose(f);
