@@ -174,6 +174,63 @@ void write_trace(const Posterior& p, const std::string& path, std::optional<std:
     std::fclose(f);
 }
 
+// The ratings (scale "MIN:MAX" declared when given) and, with holdout > 0,
+// a seeded split into training set and held-out ratings.
+std::pair<RatingSet, std::vector<Rating>> load_split(const std::string& ratings, const std::string& scale,
+                                                     double holdout, uint64_t split_seed) {
+    IngestOptions in;
+    in.path = ratings;
+    in.rejects_path = "";  // the default place, written only when a row is rejected
+    if (!scale.empty()) {
+        const auto colon = scale.find(':');
+        in.scale = RatingScale{std::stof(scale.substr(0, colon)), std::stof(scale.substr(colon + 1)), true};
+    }
+    auto data = ingest_ratings(in);
+    if (holdout <= 0.0) return {std::move(data.ratings), {}};
+    HoldoutSplit split = split_holdout(std::move(data.ratings), holdout, split_seed);
+    return {std::move(split.train), std::move(split.test)};
+}
+
+// Held-out RMSE of the posterior mean (clipped to the scale), 90% coverage
+// and mean log density of the posterior predictive mixture.
+void print_held_out(const FitResult& fit, const std::vector<Rating>& test) {
+    const Posterior& p = fit.posterior;
+    double se = 0.0, inside = 0.0, lpd = 0.0;
+    std::vector<double> m(p.num_samples);
+    for (const Rating& r : test) {
+        double mean = 0.0;
+        for (uint32_t smp = 0; smp < p.num_samples; ++smp) {
+            m[smp] = p.sample_prediction(smp, r.user, r.item);
+            mean += m[smp];
+        }
+        mean = std::clamp(mean / p.num_samples, double(p.scale.min), double(p.scale.max));
+        se += (r.value - mean) * (r.value - mean);
+        inside += r.value >= mixture_quantile(m, p.noise_precision, 0.05) &&
+                  r.value <= mixture_quantile(m, p.noise_precision, 0.95);
+        lpd += mixture_log_density(m, p.noise_precision, r.value);
+    }
+    std::printf("held-out RMSE %.4f, 90%% coverage %.3f, mean log density %.4f on %zu ratings; %u sweeps per chain (%s)\n",
+                std::sqrt(se / double(test.size())), inside / double(test.size()), lpd / double(test.size()),
+                test.size(), fit.sweeps_per_chain, stop_reason_name(fit.stop_reason));
+}
+
+// Each later variant against the first: the slowest hyperparameter
+// quantity's and the predictions' ESS per second.
+void print_ratios(const std::vector<std::pair<std::string, Headline>>& headlines) {
+    for (size_t later = 1; later < headlines.size(); ++later) {
+        const Headline &before = headlines[0].second, &after = headlines[later].second;
+        std::printf("\nslowest hyperparameter quantity, ESS/s: %s %.2f (%s) -> %s %.2f (%s): %.1fx\n",
+                    headlines[0].first.c_str(), before.slowest_hyper_ess_per_s, before.slowest_hyper.c_str(),
+                    headlines[later].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
+                    after.slowest_hyper_ess_per_s / before.slowest_hyper_ess_per_s);
+        std::printf("predictions, ESS/s: slowest %.2f -> %.2f (%.1fx), median %.2f -> %.2f (%.1fx)\n",
+                    before.slowest_prediction_ess_per_s, after.slowest_prediction_ess_per_s,
+                    after.slowest_prediction_ess_per_s / before.slowest_prediction_ess_per_s,
+                    before.median_prediction_ess_per_s, after.median_prediction_ess_per_s,
+                    after.median_prediction_ess_per_s / before.median_prediction_ess_per_s);
+    }
+}
+
 }  // namespace
 
 int main(int argc, char** argv) {
@@ -222,21 +279,7 @@ int main(int argc, char** argv) {
         o.sample_noise = false;
         o.fixed_noise_precision = fixed_noise;
     }
-    IngestOptions in;
-    in.path = ratings;
-    in.rejects_path = "";  // the default place, written only when a row is rejected
-    if (!scale.empty()) {
-        const auto colon = scale.find(':');
-        in.scale = RatingScale{std::stof(scale.substr(0, colon)), std::stof(scale.substr(colon + 1)), true};
-    }
-    auto data = ingest_ratings(in);
-    RatingSet train = std::move(data.ratings);
-    std::vector<Rating> test;
-    if (holdout > 0.0) {
-        HoldoutSplit split = split_holdout(std::move(train), holdout, split_seed ? split_seed : o.seed);
-        train = std::move(split.train);
-        test = std::move(split.test);
-    }
+    auto [train, test] = load_split(ratings, scale, holdout, split_seed ? split_seed : o.seed);
     std::printf("data: %zu ratings, %zu users, %zu items; rank %u\n", train.ratings.size(), train.users.size(),
                 train.items.size(), o.rank);
 
@@ -252,45 +295,13 @@ int main(int argc, char** argv) {
         if (variant != "on") v.overrelaxation = 0.0;
         const FitResult fit = fit_bpmf(train, v);
         headlines.emplace_back(variant, print_variant(variant, v, fit, fit.convergence, all_predictions));
-        if (!test.empty()) {
-            // Held-out RMSE of the posterior mean, clipped to the scale.
-            const Posterior& p = fit.posterior;
-            double se = 0.0;
-            for (const Rating& r : test) {
-                double m = 0.0;
-                for (uint32_t smp = 0; smp < p.num_samples; ++smp) m += p.sample_prediction(smp, r.user, r.item);
-                m = std::clamp(m / p.num_samples, double(p.scale.min), double(p.scale.max));
-                se += (r.value - m) * (r.value - m);
-            }
-            double inside = 0.0, lpd = 0.0;
-            std::vector<double> m(p.num_samples);
-            for (const Rating& r : test) {
-                for (uint32_t smp = 0; smp < p.num_samples; ++smp) m[smp] = p.sample_prediction(smp, r.user, r.item);
-                inside += r.value >= mixture_quantile(m, p.noise_precision, 0.05) &&
-                          r.value <= mixture_quantile(m, p.noise_precision, 0.95);
-                lpd += mixture_log_density(m, p.noise_precision, r.value);
-            }
-            std::printf("held-out RMSE %.4f, 90%% coverage %.3f, mean log density %.4f on %zu ratings; %u sweeps per chain (%s)\n",
-                        std::sqrt(se / double(test.size())), inside / double(test.size()), lpd / double(test.size()),
-                        test.size(), fit.sweeps_per_chain, stop_reason_name(fit.stop_reason));
-        }
+        if (!test.empty()) print_held_out(fit, test);
         if (!trace_path.empty())
             write_trace(fit.posterior, trace_path,
                         trace_pair.size() == 2 ? std::optional(pair_index(fit.posterior, trace_pair[0], trace_pair[1]))
                                                : std::nullopt);
         std::fflush(stdout);
     }
-    for (size_t later = 1; later < headlines.size(); ++later) {
-        const Headline &before = headlines[0].second, &after = headlines[later].second;
-        std::printf("\nslowest hyperparameter quantity, ESS/s: %s %.2f (%s) -> %s %.2f (%s): %.1fx\n",
-                    headlines[0].first.c_str(), before.slowest_hyper_ess_per_s, before.slowest_hyper.c_str(),
-                    headlines[later].first.c_str(), after.slowest_hyper_ess_per_s, after.slowest_hyper.c_str(),
-                    after.slowest_hyper_ess_per_s / before.slowest_hyper_ess_per_s);
-        std::printf("predictions, ESS/s: slowest %.2f -> %.2f (%.1fx), median %.2f -> %.2f (%.1fx)\n",
-                    before.slowest_prediction_ess_per_s, after.slowest_prediction_ess_per_s,
-                    after.slowest_prediction_ess_per_s / before.slowest_prediction_ess_per_s,
-                    before.median_prediction_ess_per_s, after.median_prediction_ess_per_s,
-                    after.median_prediction_ess_per_s / before.median_prediction_ess_per_s);
-    }
+    print_ratios(headlines);
     return 0;
 }
