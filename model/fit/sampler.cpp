@@ -343,6 +343,33 @@ uint64_t sweeps_needed(const ConvergenceSummary& c, uint32_t n) {
     return static_cast<uint64_t>(std::ceil(1.2 * needed / 100.0) * 100.0);
 }
 
+// True when the noise precision is the quantity furthest from the ESS
+// target or the R-hat target (the one a smaller rank speeds up: MIXING.md).
+bool slowest_is_noise_precision(const ConvergenceSummary& c) {
+    const QuantityConvergence* least_ess = nullptr;
+    const QuantityConvergence* worst_rhat = nullptr;
+    auto ess = [&](const QuantityConvergence& q) { return std::min(q.stats.ess_bulk, q.stats.ess_tail); };
+    for (const auto& q : c.quantities) {
+        if (!least_ess || ess(q) < ess(*least_ess)) least_ess = &q;
+        if (!worst_rhat || q.stats.rhat > worst_rhat->stats.rhat) worst_rhat = &q;
+    }
+    const auto is_tau = [](const QuantityConvergence* q) { return q && q->label() == "noise_precision"; };
+    const bool ess_short = least_ess && ess(*least_ess) / std::max(1u, c.num_chains) < c.options.min_ess_per_chain;
+    const bool rhat_high = worst_rhat && worst_rhat->stats.rhat > c.options.max_rhat;
+    return (ess_short && is_tau(least_ess)) || (rhat_high && is_tau(worst_rhat));
+}
+
+// The ranks to compare against `rank`: a quarter and a half of it (when at
+// least 1) and itself, comma-separated ("4,8,16" for 16).
+std::string smaller_ranks(uint32_t rank) {
+    std::string out;
+    for (uint32_t r : {rank / 4, rank / 2}) {
+        if (r < 1 || (r == rank / 2 && r == rank / 4)) continue;
+        out += std::to_string(r) + ",";
+    }
+    return out + std::to_string(rank);
+}
+
 // What to do when a run ends without meeting the targets; every piece of
 // advice names the option and the direction that helps.
 std::vector<std::string> advice_for(const ConvergenceSummary& c, StopReason stop, const FitOptions& o, uint32_t n,
@@ -377,6 +404,13 @@ std::vector<std::string> advice_for(const ConvergenceSummary& c, StopReason stop
         advice.push_back(fmt::format("R-hat {:.3f} also says the chains have not forgotten their starts: raise "
                                      "--burn-in (now {})",
                                      c.max_rhat, o.burn_in));
+    if (o.rank >= 2 && slowest_is_noise_precision(c))
+        advice.push_back(fmt::format(
+            "the noise precision mixes slowest: when --rank (now {}) exceeds the taste dimensions the ratings "
+            "carry, the spare dimensions fit noise and slow it down; `credence compare "
+            "--ranks {}` shows which rank predicts best held out, and near the ratings' own rank the noise "
+            "precision mixes much faster",
+            o.rank, smaller_ranks(o.rank)));
     return advice;
 }
 
