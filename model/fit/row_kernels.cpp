@@ -135,8 +135,13 @@ Scratch layout(double* base, uint32_t rank) {
 // How far ahead the gather prefetches the other side's rows (ratings).
 constexpr uint64_t kPrefetchAhead = 16;
 
-// The row's rank, fixed at compile time for the common ranks (KK > 0) so
-// loops unroll and vectorize without remainders; KK == 0 reads it at run time.
+// The row's rank, fixed at compile time for the common ranks (KK > 0: 2, 4,
+// 8, 16 and 32, the ranks `credence compare` tries by default; draw_row
+// dispatches) so loops unroll and vectorize without remainders; KK == 0
+// reads it at run time. Both round alike (the kernels are built with
+// -ffp-contract=off and run the same loops), so a rank's samples do not
+// depend on which path drew them (checked when ranks 2 and 4 got their own
+// path: the demo shop's traces were byte for byte those of before).
 template <uint32_t KK>
 CREDENCE_INLINE uint32_t rank_of(const SideData& side) {
     return KK > 0 ? KK : side.rank;
@@ -633,6 +638,8 @@ bool draw_row_rank(const SideData& side, uint64_t row, const double* normals, do
 bool draw_row(const SideData& side, uint64_t row, const double* normals, double* scratch, float* factor, float* bias,
               double* sse, double* smallest_diagonal) {
     switch (side.rank) {
+        case 2: return draw_row_rank<2>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
+        case 4: return draw_row_rank<4>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
         case 8: return draw_row_rank<8>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
         case 16: return draw_row_rank<16>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
         case 32: return draw_row_rank<32>(side, row, normals, scratch, factor, bias, sse, smallest_diagonal);
