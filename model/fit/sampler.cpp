@@ -344,7 +344,8 @@ uint64_t sweeps_needed(const ConvergenceSummary& c, uint32_t n) {
 }
 
 // True when the noise precision is the quantity furthest from the ESS
-// target or the R-hat target (the one a smaller rank speeds up: MIXING.md).
+// target or the R-hat target (the one a rank nearer the data's own speeds
+// up: model/fit/MIXING.md).
 bool slowest_is_noise_precision(const ConvergenceSummary& c) {
     const QuantityConvergence* least_ess = nullptr;
     const QuantityConvergence* worst_rhat = nullptr;
@@ -359,14 +360,12 @@ bool slowest_is_noise_precision(const ConvergenceSummary& c) {
     return (ess_short && is_tau(least_ess)) || (rhat_high && is_tau(worst_rhat));
 }
 
-// The ranks to compare against `rank`: a quarter and a half of it (when at
-// least 1) and itself, comma-separated ("4,8,16" for 16).
+// The ranks to compare against `rank` (>= 2): a quarter of it (when at least
+// 1), a half and itself, comma-separated ("4,8,16" for 16, "1,2" for 2).
 std::string smaller_ranks(uint32_t rank) {
     std::string out;
-    for (uint32_t r : {rank / 4, rank / 2}) {
-        if (r < 1 || (r == rank / 2 && r == rank / 4)) continue;
-        out += std::to_string(r) + ",";
-    }
+    for (uint32_t r : {rank / 4, rank / 2})
+        if (r >= 1) out += std::to_string(r) + ",";
     return out + std::to_string(rank);
 }
 
