@@ -345,19 +345,12 @@ uint64_t sweeps_needed(const ConvergenceSummary& c, uint32_t n) {
 
 // True when the noise precision is the quantity furthest from the ESS
 // target or the R-hat target (the one a rank nearer the data's own speeds
-// up: model/fit/MIXING.md).
+// up: model/fit/MIXING.md), as the progress line names them.
 bool slowest_is_noise_precision(const ConvergenceSummary& c) {
-    const QuantityConvergence* least_ess = nullptr;
-    const QuantityConvergence* worst_rhat = nullptr;
-    auto ess = [&](const QuantityConvergence& q) { return std::min(q.stats.ess_bulk, q.stats.ess_tail); };
-    for (const auto& q : c.quantities) {
-        if (!least_ess || ess(q) < ess(*least_ess)) least_ess = &q;
-        if (!worst_rhat || q.stats.rhat > worst_rhat->stats.rhat) worst_rhat = &q;
-    }
-    const auto is_tau = [](const QuantityConvergence* q) { return q && q->label() == "noise_precision"; };
-    const bool ess_short = least_ess && ess(*least_ess) / std::max(1u, c.num_chains) < c.options.min_ess_per_chain;
-    const bool rhat_high = worst_rhat && worst_rhat->stats.rhat > c.options.max_rhat;
-    return (ess_short && is_tau(least_ess)) || (rhat_high && is_tau(worst_rhat));
+    FitProgress worst;
+    describe_worst(c, worst);
+    return (worst.min_ess_per_chain < c.options.min_ess_per_chain && worst.worst_ess == "noise_precision") ||
+           (worst.max_rhat > c.options.max_rhat && worst.worst_rhat == "noise_precision");
 }
 
 // The ranks to compare against `rank` (>= 2): a quarter of it (when at least
