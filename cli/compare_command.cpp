@@ -1,7 +1,6 @@
 // credence compare: fit several ranks (optionally with and without biases)
 // on held-out splits of one ratings export and recommend one (model/assess/compare.hpp).
 #include <iostream>
-#include <sstream>
 
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
@@ -17,17 +16,11 @@ namespace credence::cli {
 
 namespace {
 
-std::string join_ranks(const std::vector<uint32_t>& ranks) {
-    std::string text;
-    for (uint32_t r : ranks) text += (text.empty() ? "" : ",") + std::to_string(r);
-    return text;
-}
-
 // Starts from CompareOptions{}: its values are the defaults --help shows.
 struct CompareFlags {
     IngestFlags ingest;
     CompareOptions defaults;
-    std::string ranks = join_ranks(defaults.ranks);
+    std::string ranks = SamplerFlags::join_ranks(defaults.ranks);
     uint32_t folds = defaults.folds;
     double holdout = defaults.holdout_fraction;
     bool both_bias_settings = defaults.both_bias_settings;
@@ -36,27 +29,9 @@ struct CompareFlags {
     SamplerFlags sampler{defaults.fit};
 };
 
-std::vector<uint32_t> parse_ranks(const std::string& text) {
-    std::vector<uint32_t> ranks;
-    std::stringstream in(text);
-    for (std::string part; std::getline(in, part, ',');) {
-        size_t used = 0;
-        unsigned long r = 0;
-        try {
-            r = std::stoul(part, &used);
-        } catch (const std::exception&) {
-            used = 0;
-        }
-        if (used == 0 || used != part.size() || r == 0 || r > 512)
-            throw OptionError("--ranks: '" + part + "' is not a rank between 1 and 512 (give e.g. 2,4,8)");
-        ranks.push_back(static_cast<uint32_t>(r));
-    }
-    return ranks;
-}
-
 int run_compare(const CompareFlags& f) {
     CompareOptions o = f.defaults;
-    o.ranks = parse_ranks(f.ranks);
+    o.ranks = parse_rank_list(f.ranks, "--ranks");
     o.folds = f.folds;
     o.holdout_fraction = f.holdout;
     o.both_bias_settings = f.both_bias_settings;

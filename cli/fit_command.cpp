@@ -19,6 +19,7 @@
 #include "cli/sampler_flags.hpp"
 #include "generated/credence_version.hpp"
 #include "model/assess/evaluate.hpp"
+#include "model/assess/rank_choice.hpp"
 #include "model/assess/release_gate.hpp"
 #include "model/data/catalogue.hpp"
 #include "model/data/holdout.hpp"
@@ -173,6 +174,31 @@ RatingSet all_ratings(const TrainingData& d) {
     return all;
 }
 
+// ---- 2b. The rank: --rank K as given; under auto (the default) the
+// warm-start model's, else chosen from the training ratings by short fits on
+// a holdout of them (model/assess/rank_choice.hpp). Returns the record kept in
+// the fit metadata ("rank_choice"), null for a given rank.
+nlohmann::json settle_rank(const FitFlags& f, const RatingSet& train, const Posterior* old, FitOptions& options,
+                           const Log& log) {
+    RankChoiceOptions choice_options;
+    const std::optional<uint32_t> given = rank_request(f.sampler, choice_options.candidates);
+    if (given) return nullptr;  // to_fit_options already set it
+    if (old) {
+        options.rank = old->rank;
+        log(fmt::format("rank {}: the warm-start model's (--rank auto keeps it, so the chains can start from its "
+                        "draws)", options.rank));
+        return {{"rank", options.rank}, {"source", "warm_start"}};
+    }
+    log(fmt::format("choosing the rank among {} (--rank auto): short fits on {:.0f}% of the training ratings",
+                    SamplerFlags::join_ranks(choice_options.candidates), 100 * choice_options.holdout_fraction));
+    const RankChoice choice = choose_rank(train, options, choice_options, log);
+    options.rank = choice.rank;
+    log(describe(choice));
+    nlohmann::json record = to_json(choice);
+    record["source"] = "held_out";
+    return record;
+}
+
 // ---- 3. The Gibbs sampler, one progress line per sweep.
 FitResult sample_posterior(const RatingSet& train, const std::vector<Rating>& validation, const FitOptions& options,
                            const WarmStart* start, const std::string& what, ProgressLine& progress, const Log& log) {
@@ -200,11 +226,10 @@ FitResult sample_posterior(const RatingSet& train, const std::vector<Rating>& va
 }
 
 // The old model's draws as the chains' start, with what changed since.
-std::optional<WarmStart> warm_start(const FitFlags& f, const RatingSet& train, const FitOptions& options,
-                                    const Log& log) {
-    if (f.warm_start.empty()) return std::nullopt;
-    const Posterior old = read_posterior(f.warm_start);
-    WarmStart w = warm_start_from(old, f.warm_start, train, options);
+std::optional<WarmStart> warm_start(const FitFlags& f, const Posterior* old, const RatingSet& train,
+                                    const FitOptions& options, const Log& log) {
+    if (!old) return std::nullopt;
+    WarmStart w = warm_start_from(*old, f.warm_start, train, options);
     const auto& r = w.record;
     log(fmt::format("warm start from {}: {} customers and {} products kept, {} and {} new, {} and {} dropped; "
                     "burn-in {}",
@@ -314,7 +339,7 @@ void attach_catalogue(Posterior& posterior, const Catalogue& catalogue, const Lo
 
 int run_fit(FitFlags& f) {
     check_flags(f);
-    const FitOptions options = to_fit_options(f.sampler);
+    FitOptions options = to_fit_options(f.sampler);
     const Log log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
     ProgressLine progress(f.quiet);
     for (const auto& note : prepare_posterior_output(f.out)) log(note);  // before any sampling
@@ -328,7 +353,13 @@ int run_fit(FitFlags& f) {
     }
     IngestResult data = read_ratings(f, progress, log);
     const TrainingData d = split_for_validation(f, std::move(data.ratings), options.seed, log);
-    const std::optional<WarmStart> start = warm_start(f, d.train, options, log);
+    std::optional<Posterior> old;
+    if (!f.warm_start.empty()) old = read_posterior(f.warm_start);
+    nlohmann::json extra = nlohmann::json::object();
+    if (nlohmann::json rank = settle_rank(f, d.train, old ? &*old : nullptr, options, log); !rank.is_null())
+        extra["rank_choice"] = std::move(rank);
+    const std::optional<WarmStart> start = warm_start(f, old ? &*old : nullptr, d.train, options, log);
+    old.reset();
     FitResult result = sample_posterior(d.train, d.validation, options, start ? &*start : nullptr, "fitting",
                                         progress, log);
     std::cerr << describe_verdict(result);
@@ -338,7 +369,6 @@ int run_fit(FitFlags& f) {
         log(fmt::format("wrote the {} held-out ratings to {}", d.validation.size(), f.holdout_out));
     }
     std::vector<std::string> verdicts{result.convergence.verdict};
-    nlohmann::json extra = nlohmann::json::object();
 
     // The accuracy is the checked fit's: a refit has seen the held-out ratings.
     std::optional<PairedAccuracy> accuracy;
@@ -388,7 +418,7 @@ Runner add_fit_command(CLI::App& app) {
     CLI::App* cmd = app.add_subcommand("fit", "Fit the model to a ratings export or database query by Gibbs sampling and write a posterior file");
     add_ingest_flags(*cmd, f->ingest);
     cmd->add_option("--out,-o", f->out, "Posterior file to write (replaced atomically)")->required();
-    add_sampler_flags(*cmd, f->sampler, RankFlag::one);
+    add_sampler_flags(*cmd, f->sampler, RankFlag::one_or_auto);
     cmd->add_option("--holdout", f->holdout, "Hold out this share of ratings: scored while fitting and after, figures stored in the file")->check(CLI::Range(0.0, 1.0));
     cmd->add_option("--catalogue", f->catalogue_path,
                     "Product catalogue CSV (product id, name, optional category) stored in the posterior so answers show names");

@@ -3,6 +3,7 @@
 #include <charconv>
 #include <cmath>
 #include <map>
+#include <sstream>
 #include <string>
 
 #include "model/error.hpp"
@@ -46,8 +47,26 @@ void add_sampler_flags(CLI::App& cmd, SamplerFlags& f, RankFlag rank) {
     FitOptions& o = f.fit;
     HyperpriorOptions& p = f.fit.prior;
     const auto positive = finite_above(0.0, "POSITIVE");
-    if (rank == RankFlag::one)
-        cmd.add_option("--rank", o.rank, "Number of latent factors K")->check(CLI::Range(1u, 512u))->capture_default_str();
+    if (rank == RankFlag::one_or_auto) {
+        cmd.add_option("--rank", f.rank,
+                       "Number of latent factors K (1 to 512), or auto: the simplest of --auto-ranks whose held-out "
+                       "log density is within one SE of the best, from short fits on 10% of the ratings (a warm "
+                       "start keeps its model's rank)")
+            ->check(CLI::Validator(
+                [](std::string& text) -> std::string {
+                    if (text == "auto") return {};
+                    try {
+                        parse_rank_list(text, "--rank");
+                    } catch (const OptionError&) {
+                        return "'" + text + "' is neither auto nor a whole number from 1 to 512";
+                    }
+                    return text.find(',') == std::string::npos ? std::string() : "give one rank, or auto";
+                },
+                "K|auto"))
+            ->capture_default_str();
+        f.auto_ranks_flag = cmd.add_option("--auto-ranks", f.auto_ranks, "--rank auto: the ranks to choose among")
+                                ->capture_default_str();
+    }
 
     // Run length (model/fit/sampler.hpp). The ranges keep burn_in + samples x
     // thin below 2^32 sweeps.
@@ -128,8 +147,42 @@ std::optional<double> parse_duration_s(const std::string& text) {
     return value * scale;
 }
 
+std::string SamplerFlags::join_ranks(const std::vector<uint32_t>& ranks) {
+    std::string text;
+    for (uint32_t r : ranks) text += (text.empty() ? "" : ",") + std::to_string(r);
+    return text;
+}
+
+std::vector<uint32_t> parse_rank_list(const std::string& text, const std::string& flag) {
+    std::vector<uint32_t> ranks;
+    std::stringstream in(text);
+    for (std::string part; std::getline(in, part, ',');) {
+        uint32_t r = 0;
+        const auto [end, ec] = std::from_chars(part.data(), part.data() + part.size(), r);
+        if (part.empty() || ec != std::errc() || end != part.data() + part.size() || r == 0 || r > 512)
+            throw OptionError(flag + ": '" + part + "' is not a rank between 1 and 512 (give e.g. 2,4,8)");
+        ranks.push_back(r);
+    }
+    if (ranks.empty()) throw OptionError(flag + ": give at least one rank (e.g. 2,4,8)");
+    return ranks;
+}
+
+std::optional<uint32_t> rank_request(const SamplerFlags& f, std::vector<uint32_t>& candidates) {
+    if (f.rank != "auto") {
+        if (f.auto_ranks_flag && f.auto_ranks_flag->count() > 0)
+            throw OptionError("--auto-ranks applies to --rank auto (the default); drop it or drop --rank " + f.rank);
+        return parse_rank_list(f.rank, "--rank").front();
+    }
+    candidates = parse_rank_list(f.auto_ranks, "--auto-ranks");
+    return std::nullopt;
+}
+
 FitOptions to_fit_options(const SamplerFlags& f) {
     FitOptions options = f.fit;
+    std::vector<uint32_t> unused;
+    if (f.auto_ranks_flag) {  // fit: --rank K sets the rank; auto leaves the default until chosen
+        if (const auto k = rank_request(f, unused)) options.rank = *k;
+    }
     if (options.run_length == RunLength::converged) {
         for (const CLI::Option* flag : {f.burn_in_flag, f.thin_flag})
             if (flag && flag->count() > 0)

@@ -145,6 +145,19 @@ std::string meta_text(const nlohmann::json& meta, std::initializer_list<const ch
     return escape_xml(at->dump());
 }
 
+// How the fit settled its rank (fit --rank auto): "fixed" (given on the command
+// line or by default before the choice existed), "kept from the warm start", or
+// "auto of 2, 4, 8, 16".
+std::string rank_choice_text(const nlohmann::json& meta) {
+    if (!meta.contains("rank_choice") || !meta["rank_choice"].is_object()) return "fixed";
+    const nlohmann::json& c = meta["rank_choice"];
+    if (c.value("source", std::string()) == "warm_start") return "kept from the warm start";
+    std::string ranks;
+    if (c.contains("candidates") && c["candidates"].is_array())
+        for (const auto& r : c["candidates"]) ranks += (ranks.empty() ? "" : ", ") + escape_xml(r.dump());
+    return "auto of " + ranks;
+}
+
 std::string provenance(const nlohmann::json& meta, const std::string& verdict_line) {
     const bool fixed = meta_text(meta, {"run_length", "mode"}) == "fixed";
     std::string o = "<section id=\"provenance\"><h2>Provenance</h2>";
@@ -164,6 +177,7 @@ std::string provenance(const nlohmann::json& meta, const std::string& verdict_li
                : meta_text(meta, {"options", "samples"}));
     fact("run length", meta_text(meta, {"run_length", "mode"}) + " (" + meta_text(meta, {"run_length", "stop_reason"}) + ")");
     fact("start", meta_text(meta, {"start", "kind"}));
+    fact("rank chosen", rank_choice_text(meta));
     fact("data fingerprint", "<code>" + meta_text(meta, {"data_fingerprint"}) + "</code>");
     o += "</div></section>\n";
     return o;

@@ -75,6 +75,17 @@ json warm_start_summary(const json& fit) {
     return start;
 }
 
+// How the rank was settled: null for a rank given on the command line, else
+// its source ("held_out" or "warm_start") with the candidates and the rule.
+json rank_choice_summary(const json& fit) {
+    const json c = at_path(fit, {"rank_choice"});
+    if (!c.is_object()) return nullptr;
+    json out = {{"source", at_path(c, {"source"})}};
+    if (c.contains("candidates")) out["candidates"] = c["candidates"];
+    if (c.contains("rule")) out["rule"] = c["rule"];
+    return out;
+}
+
 }  // namespace
 
 json public_diagnostics(const Posterior& p) {
@@ -147,7 +158,8 @@ json model_summary(const Posterior& p) {
           {"sweeps_per_chain", at_path(fit, {"sweeps_per_chain"})},
           {"seed", at_path(fit, {"seed"})},
           {"data_fingerprint", at_path(fit, {"data_fingerprint"})},
-          {"start", warm_start_summary(fit)}}},
+          {"start", warm_start_summary(fit)},
+          {"rank_choice", rank_choice_summary(fit)}}},
         {"convergence",
          {{"verdict", at_path(diagnostics, {"verdict"})},
           {"max_r_hat", at_path(diagnostics, {"max_rhat"})},

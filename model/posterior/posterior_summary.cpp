@@ -70,11 +70,28 @@ std::string number_text(const json& j, const char* key, int digits) {
     return j.is_object() && j.contains(key) && j[key].is_number() ? fixed(j[key].get<double>(), digits) : "-";
 }
 
-// The held-out check, start, refit and gate lines; empty when the fit recorded none.
+// How the rank was settled (fit --rank auto, model/assess/rank_choice.hpp);
+// empty for a rank given on the command line.
+std::string rank_choice_line(const json& meta) {
+    if (!meta.contains("rank_choice") || !meta["rank_choice"].is_object()) return {};
+    const json& c = meta["rank_choice"];
+    if (c.value("source", std::string()) == "warm_start") return "rank choice:    kept the warm-start model's rank\n";
+    std::string candidates;
+    if (c.contains("candidates") && c["candidates"].is_array())
+        for (const auto& r : c["candidates"]) candidates += (candidates.empty() ? "" : ", ") + r.dump();
+    return "rank choice:    " + (c.contains("rank") ? c["rank"].dump() : std::string("?")) + " of " + candidates +
+           ": the simplest within one SE of the best held-out log density (short fits; " +
+           (c.contains("held_out_ratings") ? c["held_out_ratings"].dump() : std::string("?")) +
+           " training ratings held out for the choice)\n";
+}
+
+// The rank choice, held-out check, start, refit and gate lines; empty when
+// the fit recorded none.
 std::string retraining_lines(const std::string& fit_metadata) {
     const json meta = json::parse(fit_metadata, nullptr, false);
     if (meta.is_discarded() || !meta.is_object()) return {};
     std::string out;
+    out += rank_choice_line(meta);
     if (meta.contains("validation") && meta["validation"].is_object() && meta["validation"].contains("figures")) {
         const json& f = meta["validation"]["figures"];
         const json base = f.contains("baseline") ? f["baseline"] : json::object();

@@ -27,6 +27,7 @@
 #include <nlohmann/json.hpp>
 
 #include "model/assess/compare.hpp"
+#include "model/assess/rank_choice.hpp"
 #include "model/math/cpu_level.hpp"
 #include "model/fit/sampler.hpp"
 #include "model/posterior/posterior_file.hpp"
@@ -381,12 +382,18 @@ TEST_CASE("fit and compare declare the same sampler flags with the same help and
         CHECK(a.default_text == fit_default);
         CHECK(b.default_text == compare_default);
     }
-    // The rank: one for fit (default from FitOptions), several for compare.
+    // The rank: one for fit (auto by default, choosing among
+    // RankChoiceOptions{}'s candidates), several for compare.
     const auto fit_options = help_section(fit.out, "Options");
     REQUIRE(fit_options.count("--rank") == 1);
-    CHECK(fit_options.at("--rank").default_text == shown(f.rank));
+    CHECK(fit_options.at("--rank").default_text == "auto");
+    REQUIRE(fit_options.count("--auto-ranks") == 1);
+    std::string candidates;
+    for (uint32_t r : credence::RankChoiceOptions{}.candidates) candidates += (candidates.empty() ? "" : ",") + shown(r);
+    CHECK(fit_options.at("--auto-ranks").default_text == candidates);
     const auto compare_options = help_section(compare.out, "Options");
     CHECK(compare_options.count("--rank") == 0);
+    CHECK(compare_options.count("--auto-ranks") == 0);
     REQUIRE(compare_options.count("--ranks") == 1);
 }
 
@@ -985,5 +992,6 @@ TEST_CASE("report opens with provenance and a verdict and refuses a comparison m
     CHECK(text.find(fingerprint, provenance) != std::string::npos);
     CHECK(text.find(CREDENCE_PROJECT_VERSION, provenance) != std::string::npos);
     CHECK(text.find("<b>x86-64", provenance) != std::string::npos);  // the kernels' CPU level
+    CHECK(text.find("<b>fixed</b>rank chosen", provenance) != std::string::npos);  // fit --rank 4
     CHECK(text.find("id=\"fitness\"") != std::string::npos);
 }

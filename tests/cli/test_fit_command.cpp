@@ -233,3 +233,96 @@ TEST_CASE("fit refuses a password on the command line, and --query for a file, a
     CHECK(q.err.find("--query applies to a database") != std::string::npos);
     CHECK_FALSE(fs::exists(dir / "m.posterior"));
 }
+
+TEST_CASE("fit without --rank chooses the rank exactly as compare recommends it, says so, and records the choice") {
+    const auto dir = scratch_dir("fit_rank_auto");
+    const fs::path model = dir / "auto.posterior";
+    // The real fit's run length does not reach the choice, which always runs
+    // compare's short default fits; so compare with its defaults on the same
+    // ratings and seed makes the same splits and the same fits.
+    const auto fit = run_credence("fit --ratings " + quoted(demo_ratings()) +
+                                  " --scale 1:5 --run-length fixed --burn-in 20 --samples 10 --thin 1 --seed 3 --out " +
+                                  quoted(model));
+    REQUIRE(fit.exit_code == 0);
+    const auto compare = run_credence("compare --ratings " + quoted(demo_ratings()) +
+                                      " --scale 1:5 --ranks 2,4,8,16 --seed 3 --json -q");
+    REQUIRE(compare.exit_code == 0);
+    const json c = json::parse(compare.out);
+    const uint32_t recommended = c["configs"][c["recommended"].get<size_t>()]["rank"];
+
+    const credence::Posterior p = credence::read_posterior(model.string());
+    CHECK(p.rank == recommended);
+    const json meta = json::parse(p.fit_metadata_json);
+    const json& choice = meta["rank_choice"];
+    CHECK(choice["source"] == "held_out");
+    CHECK(choice["rank"] == recommended);
+    CHECK(choice["candidates"] == json({2, 4, 8, 16}));
+    REQUIRE(choice["scores"].size() == 4);
+    for (size_t k = 0; k < 4; ++k) {
+        INFO("rank " << c["configs"][k]["rank"]);
+        CHECK(choice["scores"][k]["rank"] == c["configs"][k]["rank"]);
+        CHECK(choice["scores"][k]["mean_log_predictive_density"].get<double>() ==
+              c["configs"][k]["mean_log_predictive_density"].get<double>());
+    }
+    CHECK(fit.err.find("choosing the rank among 2,4,8,16 (--rank auto)") != std::string::npos);
+    CHECK(fit.err.find("rank " + std::to_string(recommended) + ", chosen from 2, 4, 8, 16 on ") != std::string::npos);
+
+    const auto inspect = run_credence("inspect " + quoted(model));
+    CHECK(inspect.out.find("rank choice:    " + std::to_string(recommended) + " of 2, 4, 8, 16: the simplest") !=
+          std::string::npos);
+    const auto summary = run_credence("inspect --json " + quoted(model));
+    REQUIRE(summary.exit_code == 0);
+    const json s = json::parse(summary.out);
+    CHECK(s["fit"]["rank_choice"]["source"] == "held_out");
+    CHECK(s["fit"]["rank_choice"]["candidates"] == json({2, 4, 8, 16}));
+    const fs::path html = dir / "auto.html";
+    REQUIRE(run_credence("report " + quoted(model) + " --out " + quoted(html)).exit_code == 0);
+    CHECK(slurp(html).find("<b>auto of 2, 4, 8, 16</b>rank chosen") != std::string::npos);
+
+    // --auto-ranks narrows the candidates; a given rank records no choice.
+    const auto narrow = run_credence("fit --ratings " + quoted(demo_ratings()) +
+                                     " --scale 1:5 --run-length fixed --burn-in 20 --samples 10 --thin 1 --seed 3 "
+                                     "--auto-ranks 2,3 -q --out " + quoted(dir / "narrow.posterior"));
+    REQUIRE(narrow.exit_code == 0);
+    const credence::Posterior n = credence::read_posterior((dir / "narrow.posterior").string());
+    CHECK((n.rank == 2 || n.rank == 3));
+    CHECK(json::parse(n.fit_metadata_json)["rank_choice"]["candidates"] == json({2, 3}));
+    const auto given = run_credence("fit --ratings " + quoted(demo_ratings()) +
+                                    " --scale 1:5 --run-length fixed --burn-in 20 --samples 10 --thin 1 --rank 5 -q "
+                                    "--out " + quoted(dir / "given.posterior"));
+    REQUIRE(given.exit_code == 0);
+    const credence::Posterior g = credence::read_posterior((dir / "given.posterior").string());
+    CHECK(g.rank == 5);
+    CHECK_FALSE(json::parse(g.fit_metadata_json).contains("rank_choice"));
+}
+
+TEST_CASE("fit --rank auto keeps a warm start's rank, and rank flags that contradict each other are usage errors") {
+    const auto dir = scratch_dir("fit_rank_auto_warm");
+    const std::string run = " --scale 1:5 --run-length fixed --burn-in 20 --samples 10 --thin 1 --seed 3 -q";
+    const fs::path old = dir / "old.posterior";
+    REQUIRE(run_credence("fit --ratings " + quoted(demo_ratings()) + run + " --rank 3 --out " + quoted(old)).exit_code ==
+            0);
+    const auto warm = run_credence("fit --ratings " + quoted(demo_ratings()) +
+                                   " --scale 1:5 --run-length fixed --burn-in 20 --samples 10 --thin 1 --seed 4 "
+                                   "--warm-start " + quoted(old) + " --out " + quoted(dir / "warm.posterior"));
+    REQUIRE(warm.exit_code == 0);
+    CHECK(warm.err.find("rank 3: the warm-start model's") != std::string::npos);
+    CHECK(warm.err.find("choosing the rank") == std::string::npos);  // no short fits were run
+    const credence::Posterior w = credence::read_posterior((dir / "warm.posterior").string());
+    CHECK(w.rank == 3);
+    const json meta = json::parse(w.fit_metadata_json);
+    CHECK(meta["rank_choice"]["source"] == "warm_start");
+    CHECK(meta["start"]["kind"] == "warm");
+
+    const std::string out = " --out " + quoted(dir / "never.posterior");
+    const auto both = run_credence("fit --ratings " + quoted(demo_ratings()) + run + " --rank 3 --auto-ranks 2,4" + out);
+    CHECK(both.exit_code == 2);
+    CHECK(both.err.find("--auto-ranks applies to --rank auto") != std::string::npos);
+    const auto word = run_credence("fit --ratings " + quoted(demo_ratings()) + run + " --rank many" + out);
+    CHECK(word.exit_code == 2);
+    CHECK(word.err.find("'many' is neither auto nor a whole number from 1 to 512") != std::string::npos);
+    const auto list = run_credence("fit --ratings " + quoted(demo_ratings()) + run + " --auto-ranks 2,x" + out);
+    CHECK(list.exit_code == 2);
+    CHECK(list.err.find("--auto-ranks: 'x' is not a rank between 1 and 512") != std::string::npos);
+    CHECK_FALSE(fs::exists(dir / "never.posterior"));
+}

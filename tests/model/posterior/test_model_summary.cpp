@@ -57,12 +57,23 @@ TEST_CASE("the summary reports the posterior's size and the fit's figures") {
     CHECK(s["fit"]["created_at"] == "2027-03-01T09:30:00Z");
     CHECK(s["fit"]["seconds"] == 12.5);
     CHECK(s["fit"]["sweeps_per_chain"].is_null());  // not recorded: null, not invented
+    CHECK(s["fit"]["rank_choice"].is_null());       // a given rank: no choice recorded
     CHECK(s["validation"]["rmse"] == 0.81);
     CHECK(s["convergence"]["verdict"] == "not_converged");
     CHECK(s["convergence"]["warnings"] == 1);
     // Short: the traces and per-quantity figures are elsewhere.
     CHECK(s.dump().find("train_rmse") == std::string::npos);
     CHECK(fit_trace(p)["train_rmse"].size() == 3);
+}
+
+TEST_CASE("the summary says how the rank was chosen, without the held-out figures") {
+    Posterior p = with_documents(true);
+    json meta = json::parse(p.fit_metadata_json);
+    meta["rank_choice"] = {{"source", "held_out"}, {"rank", 2}, {"candidates", {2, 4}}, {"rule", "the simplest"},
+                           {"scores", {{{"rank", 2}, {"mean_log_predictive_density", -1.2}}}}};
+    p.fit_metadata_json = meta.dump();
+    const json c = model_summary(p)["fit"]["rank_choice"];
+    CHECK(c == json{{"source", "held_out"}, {"candidates", {2, 4}}, {"rule", "the simplest"}});
 }
 
 TEST_CASE("the worst quantities come highest R-hat first, then lowest ESS, with probes numbered") {
