@@ -32,8 +32,8 @@ echo; echo "== 1. The shop's ratings export"
 credence demo-data --out-dir demo-data
 head -4 demo-data/ratings.csv
 
-echo; echo "== 2. Fit at rank 4, the rank \`credence compare --ranks 4,8,16\` recommends for this shop (Gibbs sampling; rejected rows go to a rejects file, nothing is dropped silently)"
-credence fit --ratings demo-data/ratings.csv --catalogue demo-data/catalogue.csv --scale 1:5 --out demo-data/shop.posterior --rank 4 --holdout 0.1 --seed 7
+echo; echo "== 2. Fit: choose the rank from the ratings, then sample until converged (Gibbs sampling; rejected rows go to a rejects file, nothing is dropped silently)"
+credence fit --ratings demo-data/ratings.csv --catalogue demo-data/catalogue.csv --scale 1:5 --out demo-data/shop.posterior --holdout 0.1 --seed 7
 
 echo; echo "== 3. What the file holds"
 credence inspect demo-data/shop.posterior

@@ -1,8 +1,8 @@
 // Choosing a fit's rank from its own ratings: what `credence fit` does unless
 // given --rank K (cli/fit_command.cpp). It is compare_models (compare.hpp) on
 // a seeded holdout of the training ratings with short fixed-length fits, and
-// compare's one-standard-error recommendation; the measurements behind it are
-// in model/fit/MIXING.md ("The rank").
+// compare's one-standard-error recommendation. README.md ("The rank") gives
+// the reasons and the measurements.
 #pragma once
 #include <cstdint>
 #include <functional>
