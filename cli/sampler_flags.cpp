@@ -50,8 +50,9 @@ void add_sampler_flags(CLI::App& cmd, SamplerFlags& f, RankFlag rank) {
     if (rank == RankFlag::one_or_auto) {
         cmd.add_option("--rank", f.rank,
                        "Number of latent factors K (1 to 512), or auto: the simplest of --auto-ranks whose held-out "
-                       "log density is within one SE of the best, from short fits on 10% of the ratings (a warm "
-                       "start keeps its model's rank)")
+                       "log density is within one SE of the best, from short fits with " +
+                           CLI::detail::to_string(100 * RankChoiceOptions{}.holdout_fraction) +
+                           "% of the training ratings held out (a warm start keeps its model's rank)")
             ->check(CLI::Validator(
                 [](std::string& text) -> std::string {
                     if (text == "auto") return {};
