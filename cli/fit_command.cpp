@@ -189,7 +189,8 @@ nlohmann::json settle_rank(const FitFlags& f, const RatingSet& train, const Post
                         "draws)", options.rank));
         return {{"rank", options.rank}, {"source", "warm_start"}};
     }
-    log(fmt::format("choosing the rank among {} (--rank auto): short fits on {:.0f}% of the training ratings",
+    log(fmt::format("choosing the rank among {} (--rank auto): short fits, scored on {:.0f}% of the training "
+                    "ratings held out",
                     SamplerFlags::join_ranks(choice_options.candidates), 100 * choice_options.holdout_fraction));
     const RankChoice choice = choose_rank(train, options, choice_options, log);
     options.rank = choice.rank;

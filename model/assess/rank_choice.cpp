@@ -1,6 +1,7 @@
 #include "model/assess/rank_choice.hpp"
 
 #include <cmath>
+#include <set>
 
 #include <fmt/format.h>
 
@@ -34,8 +35,16 @@ RankChoice choose_rank(const RatingSet& train, const FitOptions& fit, const Rank
     c.fit.samples = short_run.samples;
     c.fit.thin = short_run.thin;
 
-    // compare_models checks the candidates and the fraction; the size check
-    // is this function's own (compare's split rounds the same way).
+    // compare_models checks the fraction; the candidates are checked here so
+    // the message names fit's flag, and so is the size (compare's split
+    // rounds the same way).
+    std::set<uint32_t> seen;
+    for (uint32_t r : options.candidates)
+        if (r == 0 || !seen.insert(r).second)
+            throw OptionError(fmt::format("choosing the rank: rank {} is {} in --auto-ranks; list each rank of at "
+                                          "least 1 once",
+                                          r, r == 0 ? "not a rank" : "listed twice"));
+    if (options.candidates.empty()) throw OptionError("choosing the rank: --auto-ranks lists no rank");
     if (options.holdout_fraction > 0.0 && options.holdout_fraction < 1.0) {
         const auto held_out =
             static_cast<uint64_t>(std::llround(options.holdout_fraction * static_cast<double>(train.size())));

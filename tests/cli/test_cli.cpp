@@ -389,7 +389,10 @@ TEST_CASE("fit and compare declare the same sampler flags with the same help and
     CHECK(fit_options.at("--rank").default_text == "auto");
     REQUIRE(fit_options.count("--auto-ranks") == 1);
     std::string candidates;
-    for (uint32_t r : credence::RankChoiceOptions{}.candidates) candidates += (candidates.empty() ? "" : ",") + shown(r);
+    for (uint32_t r : credence::RankChoiceOptions{}.candidates) {
+        if (!candidates.empty()) candidates += ',';
+        candidates += shown(r);
+    }
     CHECK(fit_options.at("--auto-ranks").default_text == candidates);
     const auto compare_options = help_section(compare.out, "Options");
     CHECK(compare_options.count("--rank") == 0);

@@ -86,6 +86,8 @@ TEST_CASE("the choice refuses data too small to tell ranks apart and says to giv
         CHECK(what.find("fewer than the 50 needed") != std::string::npos);
         CHECK(what.find("--rank K") != std::string::npos);
     }
-    CHECK_THROWS_AS(choose_rank(data.ratings, fit, RankChoiceOptions{.candidates = {2, 2}, .min_held_out_ratings = 1}),
+    CHECK_THROWS_WITH(choose_rank(data.ratings, fit, RankChoiceOptions{.candidates = {2, 2}, .min_held_out_ratings = 1}),
+                      Catch::Contains("rank 2 is listed twice in --auto-ranks"));
+    CHECK_THROWS_AS(choose_rank(data.ratings, fit, RankChoiceOptions{.candidates = {}, .min_held_out_ratings = 1}),
                     OptionError);
 }
