@@ -221,6 +221,31 @@ std::string stored_held_out(const nlohmann::json& meta) {
     return o;
 }
 
+// The rank choice the fit made (fit --rank auto): each candidate's held-out
+// log density and its difference to the best, the chosen one marked; empty
+// when the rank was given or kept from a warm start.
+std::string stored_rank_choice(const nlohmann::json& meta) {
+    if (!meta.contains("rank_choice") || !meta["rank_choice"].is_object()) return {};
+    const nlohmann::json& c = meta["rank_choice"];
+    if (c.value("source", std::string()) != "held_out" || !c.contains("scores") || !c["scores"].is_array()) return {};
+    auto num = [](const nlohmann::json& j, const char* key) {
+        return j.is_object() && j.contains(key) && j[key].is_number() ? j[key].get<double>() : NAN;
+    };
+    std::string o = "<section id=\"rank-choice\"><h2>Rank choice</h2>";
+    o += fmt::format("<p class=\"note\">Before sampling, the fit held out {} of its training ratings, fitted each "
+                     "candidate rank briefly on the rest and took {}.</p>",
+                     meta_text(c, {"held_out_ratings"}), escape_xml(c.value("rule", std::string("the recommended one"))));
+    o += "<table class=\"rank-choice\"><thead><tr><th>rank</th><th>held-out mean log density (nats)</th>"
+         "<th>difference to the best (paired SE)</th><th></th></tr></thead><tbody>";
+    const double chosen = num(c, "rank");
+    for (const auto& row : c["scores"])
+        o += fmt::format("<tr><td>{}</td><td>{}</td><td>{} ({})</td><td>{}</td></tr>", meta_text(row, {"rank"}),
+                         fixed(num(row, "mean_log_predictive_density"), 4), fixed(num(row, "difference_to_best"), 4),
+                         fixed(num(row, "difference_se"), 4), num(row, "rank") == chosen ? "chosen" : "");
+    o += "</tbody></table></section>\n";
+    return o;
+}
+
 // ---- traces of every sweep from the fit metadata
 std::string sweep_traces(const nlohmann::json& meta) {
     std::string o = "<section id=\"traces\"><h2>Sampler traces</h2>";
@@ -619,6 +644,7 @@ std::string render_html_report(const ReportInputs& in) {
     html += provenance(meta, fitness_verdict(in));
     html += overview(in, conv, meta);
     html += stored_held_out(meta);
+    html += stored_rank_choice(meta);
     html += convergence_table(conv);
     html += sweep_traces(meta);
     html += probe_traces(in, conv);

@@ -277,7 +277,17 @@ TEST_CASE("fit without --rank chooses the rank exactly as compare recommends it,
     CHECK(s["fit"]["rank_choice"]["candidates"] == json({2, 4, 8, 16}));
     const fs::path html = dir / "auto.html";
     REQUIRE(run_credence("report " + quoted(model) + " --out " + quoted(html)).exit_code == 0);
-    CHECK(slurp(html).find("<b>auto of 2, 4, 8, 16</b>rank chosen") != std::string::npos);
+    const std::string page = slurp(html);
+    CHECK(page.find("<b>auto of 2, 4, 8, 16</b>rank chosen") != std::string::npos);
+    // The choice's table: one row per candidate, the chosen one marked.
+    const auto table = page.find("id=\"rank-choice\"");
+    REQUIRE(table != std::string::npos);
+    const auto chosen = page.find("</td><td>chosen</td></tr>", table);
+    REQUIRE(chosen != std::string::npos);
+    const auto row = page.rfind("<tr><td>", chosen);
+    CHECK(page.compare(row, 8 + std::to_string(recommended).size() + 5,
+                       "<tr><td>" + std::to_string(recommended) + "</td>") == 0);
+    CHECK(page.find("</td><td>chosen</td></tr>", chosen + 1) == std::string::npos);  // only one
 
     // --auto-ranks narrows the candidates; a given rank records no choice.
     const auto narrow = run_credence("fit --ratings " + quoted(demo_ratings()) +
