@@ -259,20 +259,23 @@ int HttpListener::bind(const std::string& host, uint16_t port) {
 bool HttpListener::process_and_close_socket(socket_t sock) {
     if (t_refuse_connection) {
         // Over the limit: drop what already arrived, answer 503, close.
+        // The first chunk is kept to name the request in the log and the answer.
         char sink[kReceiveChunkBytes];
-        while (::recv(sock, sink, sizeof sink, MSG_DONTWAIT) > 0) {
-        }
+        std::string arrived;
+        for (ssize_t got = 0; (got = ::recv(sock, sink, sizeof sink, MSG_DONTWAIT)) > 0;)
+            if (arrived.empty()) arrived.assign(sink, static_cast<size_t>(got));
+        const RequestLine request = peek_request_line(arrived, limits_.gate);
         const std::string body =
             problem_json(503, "too-many-connections", "Service Unavailable",
                          "the server has " + std::to_string(limits_.connection_limit) +
                              " connections open, its limit; retry shortly",
-                         "")
+                         request.target)
                 .dump();
         const std::string text = response_text(503, body);
         ::send(sock, text.data(), text.size(), MSG_NOSIGNAL | MSG_DONTWAIT);
         ::shutdown(sock, SHUT_WR);
         ::close(sock);
-        if (hooks_.connection_refused) hooks_.connection_refused();
+        if (hooks_.connection_refused) hooks_.connection_refused(request);
         return false;
     }
     std::string pending;  // bytes received beyond the previous request (pipelining)
@@ -289,9 +292,9 @@ bool HttpListener::process_and_close_socket(socket_t sock) {
     return true;
 }
 
-HttpListener::Next HttpListener::reject(socket_t sock, const GateRejection& why, const std::string& target) {
-    send_all(sock, problem_text(why, target), limits_.write_timeout_ms);
-    if (hooks_.request_rejected) hooks_.request_rejected(why);
+HttpListener::Next HttpListener::reject(socket_t sock, const GateRejection& why, const RequestLine& request) {
+    send_all(sock, problem_text(why, request.target), limits_.write_timeout_ms);
+    if (hooks_.request_rejected) hooks_.request_rejected(why, request);
     return Next::linger;
 }
 
@@ -314,15 +317,17 @@ HttpListener::Next HttpListener::serve_one(socket_t sock, std::string& pending, 
     HeadScan scan;
     for (;;) {
         scan = scan_head(pending, gate);
-        if (scan.rejection) return reject(sock, *scan.rejection, "");
+        if (scan.rejection) return reject(sock, *scan.rejection, peek_request_line(pending, gate));
         if (scan.complete) break;
         const Received r = receive_more(sock, pending, deadline, limits_.read_timeout_ms, kReceiveChunkBytes);
-        if (r == Received::timeout) return reject(sock, too_slow, "");
+        if (r == Received::timeout) return reject(sock, too_slow, peek_request_line(pending, gate));
         if (r == Received::closed) return Next::close;
     }
     auto parsed = parse_head(std::string_view(pending).substr(0, scan.head_bytes), gate);
-    if (auto* refused = std::get_if<GateRejection>(&parsed)) return reject(sock, *refused, "");
+    if (auto* refused = std::get_if<GateRejection>(&parsed))
+        return reject(sock, *refused, peek_request_line(pending, gate));
     ParsedHead& head = std::get<ParsedHead>(parsed);
+    const RequestLine request{head.method, head.target};
     std::string rest = pending.substr(scan.head_bytes);
     pending.clear();
     if (head.expects_continue && head.framing.kind != BodyFraming::Kind::none)
@@ -335,7 +340,7 @@ HttpListener::Next HttpListener::serve_one(socket_t sock, std::string& pending, 
         while (rest.size() < length) {
             const size_t want = static_cast<size_t>(std::min<uint64_t>(kReceiveChunkBytes * 4, length - rest.size()));
             const Received r = receive_more(sock, rest, deadline, limits_.read_timeout_ms, want);
-            if (r == Received::timeout) return reject(sock, too_slow, head.target);
+            if (r == Received::timeout) return reject(sock, too_slow, request);
             if (r == Received::closed) return Next::close;
         }
         pending = rest.substr(length);
@@ -347,13 +352,13 @@ HttpListener::Next HttpListener::serve_one(socket_t sock, std::string& pending, 
         while (!decoder.done() && !decoder.rejection()) {
             rest.clear();
             const Received r = receive_more(sock, rest, deadline, limits_.read_timeout_ms, kReceiveChunkBytes * 4);
-            if (r == Received::timeout) return reject(sock, too_slow, head.target);
+            if (r == Received::timeout) return reject(sock, too_slow, request);
             if (r == Received::closed) return Next::close;
             used = decoder.feed(rest, body);
         }
-        if (decoder.rejection()) return reject(sock, *decoder.rejection(), head.target);
+        if (decoder.rejection()) return reject(sock, *decoder.rejection(), request);
         if (head.form_encoded && body.size() > gate.form_body_limit_bytes)
-            return reject(sock, form_body_too_large(gate), head.target);
+            return reject(sock, form_body_too_large(gate), request);
         pending = rest.substr(used);
     } else {
         pending = std::move(rest);

@@ -45,8 +45,11 @@ struct ListenerLimits {
 // What the listener reports as it goes (may be empty). Called from worker
 // threads and the accept thread; the callee guards its own state.
 struct ListenerHooks {
-    std::function<void()> connection_refused;                       // over connection_limit: 503 sent
-    std::function<void(const GateRejection&)> request_rejected;     // refused by the gate (status sent)
+    // Over connection_limit: 503 sent. The request line when its first bytes
+    // had already arrived whole, else empty fields.
+    std::function<void(const RequestLine&)> connection_refused;
+    // Refused by the gate (status sent); the request line as for connection_refused.
+    std::function<void(const GateRejection&, const RequestLine&)> request_rejected;
 };
 
 class HttpListener : public httplib::Server {
@@ -73,7 +76,7 @@ private:
     // bytes already received for it and keeps what arrived beyond it.
     Next serve_one(socket_t sock, std::string& pending, uint32_t served);
     // Answers a refused request with its problem document.
-    Next reject(socket_t sock, const GateRejection& why, const std::string& target);
+    Next reject(socket_t sock, const GateRejection& why, const RequestLine& request);
 
     ListenerLimits limits_;
     ListenerHooks hooks_;

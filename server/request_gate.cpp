@@ -235,6 +235,21 @@ HeadScan scan_head(std::string_view buffered, const GateLimits& limits) {
     return scan;
 }
 
+RequestLine peek_request_line(std::string_view buffered, const GateLimits& limits) {
+    size_t pos = 0;
+    std::string_view line;
+    do {
+        if (buffered.find('\n', pos) == std::string_view::npos) return {};
+        size_t next = 0;
+        line = line_at(buffered, pos, next);
+        pos = next;
+    } while (line.empty());
+    if (line.size() > limits.header_line_limit_bytes) return {};
+    ParsedHead parsed;
+    if (parse_request_line(line, parsed)) return {};
+    return {std::move(parsed.method), std::move(parsed.target)};
+}
+
 std::variant<ParsedHead, GateRejection> parse_head(std::string_view head, const GateLimits& limits) {
     ParsedHead parsed;
     size_t pos = 0;

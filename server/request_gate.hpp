@@ -75,6 +75,19 @@ struct ParsedHead {
     bool form_encoded = false;                                 // Content-Type application/x-www-form-urlencoded
 };
 
+// The method and target of a request, for the log line and the problem
+// document of a request refused before parse_head accepted it.
+struct RequestLine {
+    std::string method;  // empty when unknown
+    std::string target;  // empty when unknown
+};
+
+// Reads the request line at the start of `buffered` (after any empty lines)
+// when it has arrived whole, is within header_line_limit_bytes and is well
+// formed as parse_head requires; otherwise both fields are empty. Never
+// throws except std::bad_alloc; costs O(line length).
+RequestLine peek_request_line(std::string_view buffered, const GateLimits& limits);
+
 // Parses a complete head (scan_head's head_bytes of it). Refuses, with the
 // status RFC 9112 gives: a malformed request line or field (400), a version
 // other than HTTP/1.0 or 1.1 (505), obsolete line folding (400), two

@@ -58,6 +58,7 @@ std::string allowed_path(const AppContext& ctx, const std::string& requested) {
 
 void reload_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
     check_token(ctx, req, res);
+    check_query_names(req, {});
     std::string path;
     if (!req.body.empty()) {
         const auto body = parse_json_body(req);
@@ -70,6 +71,8 @@ void reload_handler(AppContext& ctx, const httplib::Request& req, httplib::Respo
     try {
         next = ctx.reload(path);
     } catch (const Error& e) {
+        // The file path is the operator's, never a customer's: safe to log.
+        server_log().error("reload of {} over HTTP failed, still serving the previous model: {}", path, e.what());
         throw HttpProblem(422, "reload-failed", "Reload failed",
                           std::string(e.what()) + "; still serving the previous model");
     }
@@ -83,6 +86,7 @@ void reload_handler(AppContext& ctx, const httplib::Request& req, httplib::Respo
 // without their ratings (credence forget, then credence fit).
 void forget_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
     check_token(ctx, req, res);
+    check_query_names(req, {});
     const auto body = parse_json_body(req);
     check_body_keys(body, {"customer"}, "the body");
     const auto it = body.find("customer");

@@ -12,11 +12,13 @@
 namespace credence::server {
 
 void install_health_routes(httplib::Server& server, AppContext& ctx) {
-    server.Get("/v1/health", wrap_route(ctx, "/v1/health", [](const httplib::Request&, httplib::Response& res) {
+    server.Get("/v1/health", wrap_route(ctx, "/v1/health", [](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
                    write_json(res, {{"status", "alive"}});
                }));
 
-    server.Get("/v1/ready", wrap_route(ctx, "/v1/ready", [&ctx](const httplib::Request&, httplib::Response& res) {
+    server.Get("/v1/ready", wrap_route(ctx, "/v1/ready", [&ctx](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
                    const auto model = ctx.model();  // 503 problem when none
                    write_json(res, {{"status", "ready"}, {"model", model->fingerprint}}, model.get());
                }));

@@ -23,6 +23,7 @@ nlohmann::json pair_error(const std::string& what, const std::string& id) {
 }
 
 void predict_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    check_query_names(req, {});  // everything is in the body
     const nlohmann::json body = parse_json_body(req);
     check_body_keys(body, {"pairs", "level", "fallback"}, "the body");
     const double level = json_level(body, 0.9);

@@ -181,6 +181,7 @@ uint64_t json_seed(const nlohmann::json& value) {
 }
 
 void visitor_handler(AppContext& ctx, const httplib::Request& req, httplib::Response& res) {
+    check_query_names(req, {});  // everything is in the body
     const nlohmann::json body = parse_json_body(req);
     check_body_keys(body, {"ratings", "n", "rank_by", "level", "exclude_rated", "seed", "items", "category"},
                     "the body");

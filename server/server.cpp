@@ -53,6 +53,26 @@ std::string allowed_methods(const std::string& path) {
     return {};
 }
 
+// Whether `method` is one of an Allow value's ("GET, HEAD").
+bool allows(std::string_view allow, std::string_view method) {
+    for (size_t start = 0; start < allow.size();) {
+        const size_t comma = std::min(allow.find(", ", start), allow.size());
+        if (allow.substr(start, comma - start) == method) return true;
+        start = comma + 2;
+    }
+    return false;
+}
+
+// Counts and logs a request no route handler saw (handlers do both themselves).
+void count_unrouted(AppContext& ctx, std::string_view method, std::string_view route, int status,
+                    std::string_view target) {
+    ctx.metrics.request_started();
+    ctx.metrics.request_finished(std::string(route), status, 0.0);
+    if (ctx.options.access_log)
+        log_access(method.empty() ? "-" : method, route, status, 0.0,
+                   ctx.options.log_ids ? target : std::string_view());
+}
+
 }  // namespace
 
 void install_all_routes(httplib::Server& server, AppContext& ctx) {
@@ -63,14 +83,16 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
     install_admin_routes(server, ctx);
     install_console_routes(server, ctx);
 
-    server.Get("/metrics", wrap_route(ctx, "/metrics", [&ctx](const httplib::Request&, httplib::Response& res) {
+    server.Get("/metrics", wrap_route(ctx, "/metrics", [&ctx](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
                    const auto model = ctx.slot.get();
                    res.set_content(ctx.metrics.render(model.get()), "text/plain; version=0.0.4; charset=utf-8");
                }));
 
     // Compiled in (generated/openapi_json.hpp): the document is part of the
     // build, not of the model, and an installed binary has no source tree.
-    server.Get("/v1/openapi.json", wrap_route(ctx, "/v1/openapi.json", [](const httplib::Request&, httplib::Response& res) {
+    server.Get("/v1/openapi.json", wrap_route(ctx, "/v1/openapi.json", [](const httplib::Request& req, httplib::Response& res) {
+                   check_query_names(req, {});
                    const std::string_view document = embedded::openapi_json();
                    res.set_content(document.data(), document.size(), "application/json");
                }));
@@ -82,13 +104,15 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
         const int status = res.status;
         std::string detail;
         std::string slug = "http-" + std::to_string(status);
-        if (const std::string allow = allowed_methods(req.path); !allow.empty() && (status == 404 || status == 400)) {
+        if (const std::string allow = allowed_methods(req.path);
+            !allow.empty() && !allows(allow, req.method) && (status == 404 || status == 400)) {
             // The path exists but not for this method (RFC 9110 section 15.5.6).
+            // (A path the document's pattern matches but no route does, such
+            // as /console/a/b, stays a 404.)
             res.set_header("Allow", allow);
             write_problem(res, 405, "method-not-allowed", status_title(405),
                           req.method + " is not allowed on " + req.path + "; allowed: " + allow, req.target);
-            ctx.metrics.request_started();
-            ctx.metrics.request_finished("unmatched", 405, 0.0);
+            count_unrouted(ctx, req.method, "unmatched", 405, req.target);
             return httplib::Server::HandlerResponse::Handled;
         }
         if (status == 404) {
@@ -104,9 +128,7 @@ void install_all_routes(httplib::Server& server, AppContext& ctx) {
             detail = "the request could not be processed (" + std::string(status_title(status)) + ")";
         }
         write_problem(res, status, slug, status_title(status), detail, req.target);
-        // Handlers count themselves; these never reached one.
-        ctx.metrics.request_started();
-        ctx.metrics.request_finished("unmatched", status, 0.0);
+        count_unrouted(ctx, req.method, "unmatched", status, req.target);
         return httplib::Server::HandlerResponse::Handled;
     }));
     server.set_exception_handler([](const httplib::Request& req, httplib::Response& res, std::exception_ptr) {
@@ -227,11 +249,18 @@ int run_server(const ServeOptions& options) {
     pthread_sigmask(SIG_BLOCK, &handled, &previous);
 
     HttpListener server(listener_limits(options), ListenerHooks{
-                                                      .connection_refused = [&ctx] { ctx.metrics.connection_refused(); },
+                                                      .connection_refused =
+                                                          [&ctx](const RequestLine& request) {
+                                                              ctx.metrics.connection_refused();
+                                                              if (ctx.options.access_log)
+                                                                  log_access(request.method.empty() ? "-" : request.method,
+                                                                             "connection_limit", 503, 0.0,
+                                                                             ctx.options.log_ids ? request.target : "");
+                                                          },
                                                       .request_rejected =
-                                                          [&ctx](const GateRejection& why) {
-                                                              ctx.metrics.request_started();
-                                                              ctx.metrics.request_finished("gate", why.status, 0.0);
+                                                          [&ctx](const GateRejection& why, const RequestLine& request) {
+                                                              count_unrouted(ctx, request.method, "gate", why.status,
+                                                                             request.target);
                                                           },
                                                   });
     ctx.metrics.watch_open_connections([&server] { return server.open_connections(); });

@@ -15,6 +15,7 @@
 #include "model/posterior/posterior_file.hpp"
 #include "server/logging.hpp"
 #include "tests/support/paths.hpp"
+#include "tests/support/raw_http.hpp"
 #include "tests/support/server_process.hpp"
 #include "tests/support/simulate.hpp"
 
@@ -102,11 +103,24 @@ TEST_CASE("with log_json the server writes only JSON lines, and ids only with lo
         REQUIRE(c->Get("/v1/ready")->status == 200);
         REQUIRE(c->Get("/v1/users/cust-00003/recommendations?n=2")->status == 200);
         REQUIRE(c->Get("/v1/users/cust-99999/recommendations")->status == 404);
+        // Requests no route saw are logged too: an unknown path, and one the
+        // request gate refuses (two Content-Length values), whose problem
+        // document still names its target.
+        REQUIRE(c->Get("/v1/nowhere/cust-00007")->status == 404);
+        std::string refused;
+        {
+            RawConnection raw(server.port());
+            raw.send("POST /v1/recommendations?for=cust-00008 HTTP/1.1\r\nHost: x\r\nContent-Length: 8\r\n"
+                     "Content-Length: 9\r\n\r\n{\"n\": 3}");
+            refused = raw.receive(3000, "}");
+        }
+        CHECK(status_of(refused) == 400);
+        CHECK(refused.find(R"("instance":"/v1/recommendations?for=cust-00008")") != std::string::npos);
         REQUIRE(server.stop() == 0);
 
         const auto lines = json_lines(server.log());
         size_t access = 0, events = 0;
-        bool loaded = false;
+        bool loaded = false, unmatched = false, gate = false;
         for (const auto& j : lines) {
             INFO(j.dump());
             CHECK(j.contains("time"));
@@ -114,11 +128,22 @@ TEST_CASE("with log_json the server writes only JSON lines, and ids only with lo
             const std::string logger = j.value("logger", "");
             if (logger == "credence.access") {
                 ++access;
-                CHECK(j.at("method") == "GET");
                 CHECK(j.at("status").is_number_integer());
                 CHECK(j.at("latency_ms").is_number());
-                CHECK(j.at("route").get<std::string>().rfind("/v1/", 0) == 0);
                 CHECK(j.contains("target") == log_ids);
+                const std::string route = j.at("route");
+                if (route == "unmatched") {
+                    unmatched = true;
+                    CHECK(j.at("method") == "GET");
+                    CHECK(j.at("status") == 404);
+                } else if (route == "gate") {
+                    gate = true;
+                    CHECK(j.at("method") == "POST");
+                    CHECK(j.at("status") == 400);
+                } else {
+                    CHECK(j.at("method") == "GET");
+                    CHECK(route.rfind("/v1/", 0) == 0);
+                }
             } else {
                 CHECK(logger == "credence.serve");
                 ++events;
@@ -129,8 +154,12 @@ TEST_CASE("with log_json the server writes only JSON lines, and ids only with lo
         CHECK(access >= 3);
         CHECK(events >= 2);
         CHECK(loaded);
+        CHECK(unmatched);
+        CHECK(gate);
         // Ratings are personal data: customer ids appear only with log_ids.
-        CHECK((server.log().find("cust-00003") != std::string::npos) == log_ids);
-        CHECK((server.log().find("cust-99999") != std::string::npos) == log_ids);
+        for (const char* id : {"cust-00003", "cust-99999", "cust-00007", "cust-00008"}) {
+            INFO(id);
+            CHECK((server.log().find(id) != std::string::npos) == log_ids);
+        }
     }
 }

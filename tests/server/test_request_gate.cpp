@@ -178,6 +178,21 @@ TEST_CASE("a chunked body over the limit is refused at the chunk size, before it
     CHECK(long_line.rejection()->status == 431);
 }
 
+TEST_CASE("the request line is read for a refused request only when it arrived whole and well formed") {
+    const GateLimits limits{.header_line_limit_bytes = 64};
+    const RequestLine whole = peek_request_line("\r\nPOST /v1/predictions?x=1 HTTP/1.1\r\nContent-Le", limits);
+    CHECK(whole.method == "POST");
+    CHECK(whole.target == "/v1/predictions?x=1");
+    for (const std::string& partial : {std::string("GET /v1/ite"), std::string("GET /a  HTTP/1.1\r\n"),
+                                      std::string("GET /a HTTP/2.0\r\n"), std::string(""),
+                                      "GET /" + std::string(100, 'a') + " HTTP/1.1\r\n"}) {
+        INFO(partial);
+        const RequestLine none = peek_request_line(partial, limits);
+        CHECK(none.method.empty());
+        CHECK(none.target.empty());
+    }
+}
+
 TEST_CASE("loopback hosts are recognised") {
     CHECK(is_loopback_host("127.0.0.1"));
     CHECK(is_loopback_host("127.1.2.3"));

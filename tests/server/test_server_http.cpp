@@ -396,6 +396,27 @@ TEST_CASE("unknown query parameters and body keys answer 400 listing the known o
     CHECK(get(*c, kUserRoute, base + "?level=0.5&n=2").status == 200);
 }
 
+TEST_CASE("routes that take no query parameters refuse one, naming none as accepted") {
+    auto& f = fixture();
+    auto c = f.server->client();
+    for (const char* path : {"/v1/health?verbose=1", "/v1/ready?x=1", "/v1/model?full=1", "/metrics?x=1",
+                             "/v1/openapi.json?format=yaml"}) {
+        INFO(path);
+        const std::string route = std::string(path).substr(0, std::string(path).find('?'));
+        auto answer = get(*c, route, path);
+        require_problem(answer, 400);
+        CHECK(answer.body["detail"].get<std::string>().find("accepts: none") != std::string::npos);
+    }
+    require_problem(post(*c, "/v1/predictions", "/v1/predictions?level=0.8",
+                         R"({"pairs":[{"user":"cust-00001","item":"sku-00001"}]})"),
+                    400);
+    require_problem(post(*c, "/v1/recommendations", "/v1/recommendations?n=3", R"({"n": 3})"), 400);
+    // The console's pages ignore query strings (a browser adds them freely).
+    auto page = c->Get("/?from=bookmark");
+    REQUIRE(page);
+    CHECK(page->status == 200);
+}
+
 TEST_CASE("a category narrows the top-N to its products, as the offline engine does, and names come beside ids") {
     auto& f = fixture();
     auto c = f.server->client();
@@ -625,6 +646,15 @@ TEST_CASE("admin reload needs the token, stays inside the model directory and su
                        json{{"path", f.corrupt_path.filename().string()}}.dump(), bearer);
     require_problem(broken, 422);
     CHECK(get(*c, "/v1/model", "/v1/model").body["model"] == before);
+    // The operator reads why in the event log too, not only in the answer.
+    const std::string log = f.server->log();
+    const size_t failed = log.find("broken.posterior over HTTP failed, still serving the previous model");
+    CHECK(failed != std::string::npos);
+    if (failed != std::string::npos) {
+        const size_t line_start = log.rfind('\n', failed) + 1;  // npos + 1 == 0 for the first line
+        CHECK(log.substr(line_start, failed - line_start).find("credence.serve") != std::string::npos);
+    }
+    require_problem(post(*c, "/v1/admin/reload", "/v1/admin/reload?force=1", "", bearer), 400);
 
     auto swap = post(*c, "/v1/admin/reload", "/v1/admin/reload", json{{"path", f.other_path.string()}}.dump(), bearer);
     INFO(swap.text);

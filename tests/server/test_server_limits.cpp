@@ -150,8 +150,13 @@ TEST_CASE("a wrong method gets 405 with Allow") {
     REQUIRE(delete_user);
     CHECK(delete_user->status == 405);
     CHECK(delete_user->get_header_value("Allow") == "GET, HEAD");
-    // An unknown path stays 404.
+    // An unknown path stays 404, and so does a GET on a path the document's
+    // pattern matches (/console/{asset}) but no route serves.
     CHECK(c->Post("/v1/nowhere", "", "application/json")->status == 404);
+    auto nested = c->Get("/console/a/b");
+    REQUIRE(nested);
+    CHECK(nested->status == 404);
+    CHECK(!nested->has_header("Allow"));
 }
 
 TEST_CASE("a chunked body over the body limit gets 413 and is not buffered") {
