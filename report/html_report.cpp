@@ -38,9 +38,11 @@ std::string probe_name(const ConvergenceSummary& conv, const QuantityConvergence
 std::string without_ids(const ConvergenceSummary& conv, std::string text) {
     for (const QuantityConvergence& q : conv.quantities) {
         if (q.quantity != "prediction") continue;
-        const std::string from = q.label(), to = probe_name(conv, q);
-        for (size_t at = text.find(from); at != std::string::npos; at = text.find(from, at + to.size()))
-            text.replace(at, from.size(), to);
+        // Files written before labels dropped the ids quote the pair; newer ones its number.
+        const std::string to = probe_name(conv, q);
+        for (const std::string& from : {q.id_label(), q.label()})
+            for (size_t at = text.find(from); at != std::string::npos; at = text.find(from, at + to.size()))
+                text.replace(at, from.size(), to);
     }
     return text;
 }

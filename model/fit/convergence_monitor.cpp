@@ -18,6 +18,7 @@ ConvergenceMonitor::ConvergenceMonitor(const CsrMatrix& by_user, const IdMap& us
         q.quantity = "prediction";
         q.user_id = users_.name(p.user);
         q.item_id = items_.name(p.item);
+        q.probe = static_cast<uint32_t>(labels_.size() - 2);  // after the 3 hyperparameter quantities: 1, 2, ...
         labels_.push_back(q);
     }
 }

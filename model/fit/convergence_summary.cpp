@@ -66,9 +66,14 @@ std::string describe(double x) { return std::isnan(x) ? "undefined" : fmt::forma
 }  // namespace
 
 std::string QuantityConvergence::label() const {
-    if (quantity == "prediction") return "prediction(" + user_id + ", " + item_id + ")";
+    if (quantity == "prediction") return "prediction(probe " + std::to_string(probe) + ")";
     if (component >= 0) return quantity + "[" + std::to_string(component) + "]";
     return quantity;
+}
+
+std::string QuantityConvergence::id_label() const {
+    if (quantity == "prediction") return "prediction(" + user_id + ", " + item_id + ")";
+    return label();
 }
 
 namespace {
@@ -106,9 +111,12 @@ std::vector<MonitoredQuantity> posterior_quantities(const Posterior& posterior, 
     gather(named("factor_cov_product"), [&](uint32_t s) {
         return factor_cov_product(lambda(posterior.user_lambda, s), lambda(posterior.item_lambda, s));
     });
-    for (const ProbePair& pair : probe_pairs(posterior.rated_offsets, posterior.rated_items, options))
-        gather(named("prediction", -1, posterior.user_ids[pair.user], posterior.item_ids[pair.item]),
-               [&](uint32_t s) { return double(posterior.sample_prediction(s, pair.user, pair.item)); });
+    uint32_t probe = 0;
+    for (const ProbePair& pair : probe_pairs(posterior.rated_offsets, posterior.rated_items, options)) {
+        QuantityConvergence q = named("prediction", -1, posterior.user_ids[pair.user], posterior.item_ids[pair.item]);
+        q.probe = ++probe;
+        gather(std::move(q), [&](uint32_t s) { return double(posterior.sample_prediction(s, pair.user, pair.item)); });
+    }
     return quantities;
 }
 
@@ -308,6 +316,7 @@ std::optional<ConvergenceSummary> convergence_from_json(const nlohmann::json& j)
         if (j.contains(key) && j[key].is_array())
             for (const auto& w : j[key])
                 if (w.is_string()) (std::string(key) == "warnings" ? c.warnings : c.advice).push_back(w.get<std::string>());
+    uint32_t probes = 0;
     if (j.contains("quantities") && j["quantities"].is_array())
         for (const auto& q : j["quantities"]) {
             if (!q.is_object()) continue;
@@ -316,6 +325,7 @@ std::optional<ConvergenceSummary> convergence_from_json(const nlohmann::json& j)
             qc.component = q.value("component", -1);
             qc.user_id = q.value("user_id", std::string());
             qc.item_id = q.value("item_id", std::string());
+            if (qc.quantity == "prediction") qc.probe = ++probes;
             qc.stats = {number_or_nan(q, "rhat"), number_or_nan(q, "ess_bulk"), number_or_nan(q, "ess_tail")};
             c.quantities.push_back(std::move(qc));
         }

@@ -48,8 +48,15 @@ struct QuantityConvergence {
     int32_t component = -1; // reserved for per-component quantities; -1 for all current ones
     std::string user_id;    // for prediction, else empty
     std::string item_id;    // for prediction, else empty
+    uint32_t probe = 0;     // for prediction: its number among the probe pairs, from 1; else 0
     ConvergenceStats stats;
-    std::string label() const;  // e.g. "item_mu[2]", "prediction(cust-7, item-19)"
+    // For progress lines, warnings and logs: names no customer or product
+    // ("noise_precision", "prediction(probe 3)"); ratings are personal data.
+    std::string label() const;
+    // With the pair's ids ("prediction(cust-7, item-19)"): only to find and
+    // replace that text in warnings stored by files written before labels
+    // dropped the ids.
+    std::string id_label() const;
 };
 
 struct ConvergenceSummary {

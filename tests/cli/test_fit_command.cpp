@@ -336,3 +336,26 @@ TEST_CASE("fit --rank auto keeps a warm start's rank, and rank flags that contra
     CHECK(list.err.find("--auto-ranks: 'x' is not a rank between 1 and 512") != std::string::npos);
     CHECK_FALSE(fs::exists(dir / "never.posterior"));
 }
+
+TEST_CASE("fit's progress lines, warnings and advice name no customer: probe pairs go by number") {
+    // Ratings are personal data and fit's stderr ends up in logs (a cron
+    // mail, the journal of a systemd unit), even with --quiet for warnings.
+    const auto dir = scratch_dir("fit_command_no_ids");
+    const auto model = dir / "short.posterior";
+    const auto r = run_credence("fit --ratings " + quoted(demo_ratings()) +
+                                " --scale 1:5 --rank 3 --samples 20 --max-sweeps 120 --seed 3 --out " + quoted(model));
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    CHECK(r.err.find("prediction(probe ") != std::string::npos);
+    std::set<std::string> customers;
+    for (const auto& [pair, rating] : read_pairs(demo_ratings())) customers.insert(pair.first);
+    REQUIRE(customers.size() > 100);
+    const credence::Posterior p = credence::read_posterior(model.string());
+    const std::string stored = p.diagnostics_json;
+    const json warnings = json::parse(stored).at("warnings");
+    for (const std::string& id : customers) {
+        INFO(id);
+        CHECK(r.err.find(id) == std::string::npos);
+        CHECK(warnings.dump().find(id) == std::string::npos);
+    }
+}

@@ -104,6 +104,27 @@ TEST_CASE("probe pairs are distinct rated pairs chosen by the seed") {
     CHECK(summarize_convergence(p, all).quantities.size() == 3 + 30);
 }
 
+TEST_CASE("a probe pair's label is its number, never its ids, here and when read back from JSON") {
+    const Posterior p = mixed_posterior(2, 50, 2);
+    const ConvergenceSummary s = summarize_convergence(p);
+    const std::optional<ConvergenceSummary> read = convergence_from_json(to_json(s));
+    REQUIRE(read.has_value());
+    const ConvergenceSummary& back = *read;
+    for (const ConvergenceSummary* summary : {&s, &back}) {
+        uint32_t k = 0;
+        for (const auto& q : summary->quantities) {
+            if (q.quantity != "prediction") {
+                CHECK(q.label() == q.quantity);
+                continue;
+            }
+            ++k;
+            CHECK(q.label() == "prediction(probe " + std::to_string(k) + ")");
+            CHECK(q.id_label() == "prediction(" + q.user_id + ", " + q.item_id + ")");
+        }
+        CHECK(k == 20);
+    }
+}
+
 TEST_CASE("a chain stuck elsewhere or a slowly mixing quantity is flagged") {
     Posterior shifted = mixed_posterior(4, 1000, 3);
     // Chain 3's user_mu[1] and item_mu[1] both sit 3 sd away from the others,
