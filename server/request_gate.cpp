@@ -244,7 +244,8 @@ RequestLine peek_request_line(std::string_view buffered, const GateLimits& limit
         line = line_at(buffered, pos, next);
         pos = next;
     } while (line.empty());
-    if (line.size() > limits.header_line_limit_bytes) return {};
+    // scan_head's count: the line end excluded, one byte of slack for a CR.
+    if (line.size() > limits.header_line_limit_bytes + 1) return {};
     ParsedHead parsed;
     if (parse_request_line(line, parsed)) return {};
     return {std::move(parsed.method), std::move(parsed.target)};

@@ -83,8 +83,9 @@ struct RequestLine {
 };
 
 // Reads the request line at the start of `buffered` (after any empty lines)
-// when it has arrived whole, is within header_line_limit_bytes and is well
-// formed as parse_head requires; otherwise both fields are empty. Never
+// when it has arrived whole, is within the line limit as scan_head counts it
+// and is well formed as parse_head requires (so for a head parse_head
+// accepts, the same method and target); otherwise both fields are empty. Never
 // throws except std::bad_alloc; costs O(line length).
 RequestLine peek_request_line(std::string_view buffered, const GateLimits& limits);
 

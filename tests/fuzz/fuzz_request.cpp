@@ -100,11 +100,16 @@ World& world() {
 
 // The request the gate would hand on, or empty when it refuses the bytes.
 std::string through_gate(std::string_view bytes, const GateLimits& limits) {
+    // What a refusal would name: never longer than the line limit, and the
+    // same method and target parse_head reads when it accepts the head.
+    const RequestLine peeked = peek_request_line(bytes, limits);
+    if (peeked.target.size() > limits.header_line_limit_bytes + 1) std::abort();
     const HeadScan scan = scan_head(bytes, limits);
     if (scan.rejection || !scan.complete) return {};
     auto parsed = parse_head(bytes.substr(0, scan.head_bytes), limits);
     if (std::holds_alternative<GateRejection>(parsed)) return {};
     const ParsedHead& head = std::get<ParsedHead>(parsed);
+    if (peeked.method != head.method || peeked.target != head.target) std::abort();
     const std::string_view rest = bytes.substr(scan.head_bytes);
     std::string body;
     if (head.framing.kind == BodyFraming::Kind::length) {
