@@ -26,15 +26,6 @@ struct EvaluateFlags {
     bool no_ranking = false;
 };
 
-// Nothing scored: every pair had a customer or a product the model does not know.
-void require_scored(const EvaluationReport& report, const std::string& model, const std::string& ratings) {
-    if (report.rated > 0) return;
-    throw DataError(fmt::format("{}: none of the {} ratings could be scored ({} with a customer and {} with a product "
-                                "that {} does not know); check that the file belongs to this model",
-                                ratings, report.unknown_users + report.unknown_items, report.unknown_users,
-                                report.unknown_items, model));
-}
-
 void print_table(const EvaluationReport& report) {
     const BaselineFigures& b = report.baseline;
     auto base = [&](double v) { return b.available ? fmt::format("{:>10.4f}", v) : fmt::format("{:>10}", "-"); };
@@ -73,6 +64,8 @@ int run_evaluate(const EvaluateFlags& f) {
     auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
     IngestOptions options = to_ingest_options(f.ingest);
     IngestResult test = ingest_ratings(options);
+    // On stderr in both forms, so rejected rows are seen even when the JSON is piped on.
+    std::cerr << describe(test.summary) << "\n";
     PredictionEngine engine(posterior);
     EvaluationOptions eo;
     eo.ranking = !f.no_ranking;
@@ -86,7 +79,6 @@ int run_evaluate(const EvaluateFlags& f) {
         std::cout << to_json(report).dump(2) << "\n";
         return 0;
     }
-    std::cerr << describe(test.summary) << "\n";
     print_table(report);
     return 0;
 }

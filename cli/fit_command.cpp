@@ -15,6 +15,7 @@
 
 #include "cli/commands.hpp"
 #include "cli/ingest_flags.hpp"
+#include "cli/output_paths.hpp"
 #include "cli/progress.hpp"
 #include "cli/sampler_flags.hpp"
 #include "generated/credence_version.hpp"
@@ -97,6 +98,19 @@ void check_flags(const FitFlags& f) {
                           "(for example) or --validation FILE");
     if (!f.warm_start.empty() && !std::filesystem::exists(f.warm_start))
         throw FileError(fmt::format("--warm-start {}: no such file; give the live model's posterior file", f.warm_start));
+    // No output may replace an input (--warm-start may be --out: the nightly
+    // loop starts from the live model and replaces it).
+    const std::vector<NamedPath> inputs{{"--ratings", f.ingest.path},
+                                        {"--catalogue", f.catalogue_path},
+                                        {"--validation", f.validation_path}};
+    refuse_overwriting_inputs({"--out", f.out}, inputs);
+    if (!f.holdout_out.empty()) {
+        std::vector<NamedPath> taken = inputs;
+        taken.push_back({"--out", f.out});
+        taken.push_back({"--warm-start", f.warm_start});
+        refuse_overwriting_inputs({"--holdout-out", f.holdout_out}, taken);
+        check_output_folder({"--holdout-out", f.holdout_out});
+    }
 }
 
 // ---- 1. The ratings, read with a progress line.
@@ -344,6 +358,9 @@ int run_fit(FitFlags& f) {
     const Log log = [&](const std::string& s) { if (!f.quiet) std::cerr << s << "\n"; };
     ProgressLine progress(f.quiet);
     for (const auto& note : prepare_posterior_output(f.out)) log(note);  // before any sampling
+    // The gate compares with the live model after sampling: read it now, so a
+    // damaged live file stops the run before the work, not after.
+    if (f.gate && std::filesystem::exists(f.out)) (void)read_posterior(f.out);
 
     std::optional<Catalogue> catalogue;
     if (!f.catalogue_path.empty()) {
@@ -429,7 +446,7 @@ Runner add_fit_command(CLI::App& app) {
     cmd->add_option("--warm-start", f->warm_start, "Start the chains from this earlier posterior file of the same model (e.g. the live one)");
     cmd->add_flag("--gate", f->gate, "Replace --out only if the new model converged and is not worse than the model now in --out "
                                      "on held-out ratings (by more than 2 paired SE); otherwise write <out>.candidate and exit 3");
-    cmd->add_flag("--quiet,-q", f->quiet, "No progress or summary on stderr");
+    cmd->add_flag("--quiet,-q", f->quiet, "No progress lines or notes on stderr; the verdict, warnings and advice still print");
     return [f] { return run_fit(*f); };
 }
 

@@ -9,6 +9,7 @@
 #include <nlohmann/json.hpp>
 
 #include "cli/commands.hpp"
+#include "cli/output_paths.hpp"
 #include "model/assess/compare.hpp"
 #include "model/error.hpp"
 #include "model/assess/evaluate.hpp"
@@ -26,6 +27,7 @@ struct ReportFlags {
     std::string validation;
     std::string comparison;
     std::string out;
+    double max_reject_fraction = 0.01;  // of the --validation file's rows
     double relevance_threshold = 4.0;
     uint32_t k = 10;
 };
@@ -50,6 +52,9 @@ void require_same_data(const ComparisonResult& c, const Posterior& p, const std:
 }
 
 int run_report(const ReportFlags& f) {
+    refuse_overwriting_inputs({"--out", f.out},
+                              {{"the model", f.model}, {"--validation", f.validation}, {"--comparison", f.comparison}});
+    check_output_folder({"--out", f.out});
     auto posterior = std::make_shared<const Posterior>(read_posterior(f.model));
     report::ReportInputs in;
     in.posterior = posterior.get();
@@ -58,12 +63,14 @@ int run_report(const ReportFlags& f) {
     if (!f.validation.empty()) {
         IngestOptions io;
         io.path = f.validation;
+        io.max_reject_fraction = f.max_reject_fraction;
         const IngestResult v = ingest_ratings(io);
         std::cerr << describe(v.summary) << "\n";
         EvaluationOptions eo;
         eo.ranking_k = f.k;
         eo.relevance_threshold = f.relevance_threshold;
         in.validation = evaluate(PredictionEngine(posterior), v.ratings, eo);
+        require_scored(*in.validation, f.model, f.validation);
         in.validation_name = f.validation;
     }
     if (!f.comparison.empty()) {
@@ -95,6 +102,10 @@ Runner add_report_command(CLI::App& app) {
     cmd->add_option("model", f->model, "Posterior file")->required();
     cmd->add_option("--validation", f->validation, "Held-out ratings file (CSV/TSV, detected) for the calibration section");
     cmd->add_option("--comparison", f->comparison, "JSON written by credence compare --json");
+    cmd->add_option("--max-reject-fraction", f->max_reject_fraction,
+                    "Stop if more than this share of the --validation file's rows is rejected")
+        ->check(CLI::Range(0.0, 1.0))
+        ->capture_default_str();
     cmd->add_option("--out,-o", f->out, "HTML file to write")->required();
     cmd->add_option("--k", f->k, "List length for the top-k metrics of the validation set")
         ->check(CLI::Range(1u, 10000u))->capture_default_str();

@@ -268,6 +268,14 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
     return report;
 }
 
+void require_scored(const EvaluationReport& report, const std::string& model_name, const std::string& ratings_name) {
+    if (report.rated > 0) return;
+    throw DataError(fmt::format("{}: none of the {} ratings could be scored ({} with a customer and {} with a product "
+                                "that {} does not know); check that the file belongs to this model",
+                                ratings_name, report.unknown_users + report.unknown_items, report.unknown_users,
+                                report.unknown_items, model_name));
+}
+
 nlohmann::json to_json(const EvaluationReport& report) {
     auto number = [](double v) { return std::isfinite(v) ? nlohmann::json(v) : nlohmann::json(nullptr); };
     nlohmann::json coverage = nlohmann::json::object();

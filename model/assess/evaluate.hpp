@@ -102,6 +102,13 @@ struct EvaluationReport {
 // threshold or a ranking level outside (0, 1), before any work.
 EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options);
 
+// Refuses a report that scored nothing (every pair had a customer or product
+// the model does not know): throws DataError naming `ratings_name`,
+// `model_name` and the two counts, and saying to check the file belongs to
+// the model. Returns normally when at least one pair was scored. Used by
+// every command that scores a file (evaluate, report --validation).
+void require_scored(const EvaluationReport& report, const std::string& model_name, const std::string& ratings_name);
+
 // Keys: rmse, mae, mean_log_predictive_density, coverage {"0.5": ...},
 // rated, unknown_users, unknown_items, in_training, warnings, baseline
 // {available, rmse, mae, mean_log_predictive_density, coverage} (NaN metrics become null);

@@ -110,6 +110,19 @@ TEST_CASE("evaluate warns when most rows have unknown ids, and exits 1 when noth
     CHECK(n.out.find("nan") == std::string::npos);
 }
 
+TEST_CASE("evaluate --json still says on stderr how many rows it read and rejected") {
+    const auto dir = scratch_dir("evaluate_command_json_rejects");
+    const auto file = dir / "held-out-with-a-bad-row.csv";
+    fs::copy_file(shop().held_out, file, fs::copy_options::overwrite_existing);
+    std::ofstream(file, std::ios::app) << "c-00001,kitchen-0001,lots\n";
+    const auto r = run_credence("evaluate --model " + quoted(shop().model) + " --ratings " + quoted(file) +
+                                " --no-ranking --json");
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    CHECK(r.err.find("rejected 1") != std::string::npos);
+    CHECK(json::parse(r.out).at("rated").get<uint64_t>() > 0);
+}
+
 TEST_CASE("evaluate reads held-out ratings from a SQLite database like the same rows in a file") {
     const auto dir = scratch_dir("evaluate_command_sqlite");
     const auto db = dir / "held-out.db";

@@ -359,3 +359,43 @@ TEST_CASE("fit's progress lines, warnings and advice name no customer: probe pai
         CHECK(warnings.dump().find(id) == std::string::npos);
     }
 }
+
+TEST_CASE("fit refuses an output that would replace one of its inputs, before reading anything") {
+    const auto dir = scratch_dir("fit_command_overwrite");
+    const auto ratings = dir / "ratings.csv";
+    fs::copy_file(demo_ratings(), ratings, fs::copy_options::overwrite_existing);
+    const std::string before = slurp(ratings);
+    fs::create_symlink(ratings, dir / "same-ratings.csv");  // another name for the same file
+    for (const std::string& flags :
+         {" --out " + quoted(ratings), " --out " + quoted(dir / "same-ratings.csv"),
+          " --out " + quoted(dir / "m.posterior") + " --holdout-out " + quoted(ratings),
+          " --out " + quoted(dir / "m.posterior") + " --holdout-out " + quoted(dir / "m.posterior")}) {
+        INFO(flags);
+        const auto r = run_credence("fit --ratings " + quoted(ratings) + kShortRun + flags);
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("writing there would replace an input") != std::string::npos);
+        CHECK(r.err.find("read ") == std::string::npos);  // refused before the ratings were read
+        CHECK(slurp(ratings) == before);
+    }
+    // The nightly loop's --warm-start live --out live stays allowed (checked in the gate tests).
+}
+
+TEST_CASE("fit checks --holdout-out's folder and the gate's live model before it samples") {
+    const auto dir = scratch_dir("fit_command_late_checks");
+    const auto missing = run_credence("fit --ratings " + quoted(demo_ratings()) + kShortRun + " --out " +
+                                      quoted(dir / "m.posterior") + " --holdout-out " +
+                                      quoted(dir / "no-such-folder" / "held-out.csv"));
+    CHECK(missing.exit_code == 1);
+    CHECK(missing.err.find("no-such-folder does not exist") != std::string::npos);
+    CHECK(missing.err.find("fitting") == std::string::npos);
+
+    const auto live = dir / "live.posterior";
+    std::ofstream(live) << "a file that is not a posterior";
+    const auto damaged = run_credence("fit --ratings " + quoted(demo_ratings()) + kShortRun + " --gate --out " +
+                                      quoted(live));
+    CHECK(damaged.exit_code == 1);
+    CHECK(damaged.err.find("not a Credence posterior file") != std::string::npos);
+    CHECK(damaged.err.find("fitting") == std::string::npos);
+    CHECK(slurp(live) == "a file that is not a posterior");
+    CHECK(!fs::exists(dir / "live.posterior.candidate"));
+}
