@@ -60,7 +60,7 @@ Runner add_compare_command(CLI::App& app) {
     cmd->add_option("--ranks", f->ranks, "Comma-separated ranks to fit")->capture_default_str();
     cmd->add_option("--folds", f->folds, "K-fold cross-validation with K folds; below 2: one holdout split")
         ->check(CLI::Range(0u, 100u))->capture_default_str();
-    cmd->add_option("--holdout", f->holdout, "Share of ratings held out when --folds is below 2")
+    CLI::Option* holdout = cmd->add_option("--holdout", f->holdout, "Share of ratings held out when --folds is below 2")
         ->check(CLI::Range(0.0, 1.0))->capture_default_str();
     cmd->add_flag("--with-without-biases", f->both_bias_settings, "Fit every rank both with and without bias terms");
     cmd->add_flag("--json", f->json, "Print one JSON object (readable by credence report --comparison) instead of a table");
@@ -69,9 +69,15 @@ Runner add_compare_command(CLI::App& app) {
     // Fitting both bias settings and leaving biases out contradict each other.
     // Checked here rather than with Option::excludes, which would also mark
     // --no-biases in the Sampler help section that fit and compare share.
-    cmd->parse_complete_callback([f] {
+    cmd->parse_complete_callback([f, holdout] {
         if (f->both_bias_settings && f->sampler.no_biases)
             throw CLI::ExcludesError("--with-without-biases", "--no-biases");
+        // K folds hold out 1/K each; a --holdout share would be ignored.
+        if (f->folds >= 2 && holdout->count() > 0)
+            throw CLI::ParseError("--holdout sets the share of one split; with --folds " + std::to_string(f->folds) +
+                                      " each fold holds out 1/" + std::to_string(f->folds) + " of the ratings. Give "
+                                      "one of the two",
+                                  2);
     });
     return [f] { return run_compare(*f); };
 }

@@ -3,12 +3,14 @@
 // stored in the file, a warm start from the live model, a refit on every
 // rating after the check, and a gate that refuses to replace the live model
 // when the new one is worse or did not converge (exit code 3, cli/main.cpp).
+#include <algorithm>
 #include <cmath>
 #include <filesystem>
 #include <functional>
 #include <iostream>
 #include <memory>
 #include <optional>
+#include <unordered_set>
 
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
@@ -142,6 +144,7 @@ void read_validation_file(const FitFlags& f, TrainingData& d, const Log& log) {
     vflags.query.clear();
     vflags.rejects_path.clear();
     IngestResult v = ingest_ratings(to_ingest_options(vflags));
+    log("validation " + f.validation_path + ": " + describe(v.summary));
     MappedRatings mapped = map_onto(v.ratings, d.train.users, d.train.items);
     d.validation = std::move(mapped.ratings);
     d.validation_meta = {{"kind", "file"}, {"ratings", d.validation.size()},
@@ -150,6 +153,18 @@ void read_validation_file(const FitFlags& f, TrainingData& d, const Log& log) {
                          {"fingerprint", v.summary.fingerprint}};
     log(fmt::format("validation: {} ratings with known ids ({} with unknown user, {} with unknown item skipped)",
                     d.validation.size(), mapped.unknown_user_pairs, mapped.unknown_item_pairs));
+    // Pairs the fit trains on make the check look better than it is.
+    std::unordered_set<uint64_t> trained;
+    trained.reserve(d.train.size());
+    for (const Rating& r : d.train.ratings) trained.insert(uint64_t(r.user) << 32 | r.item);
+    const size_t in_training = static_cast<size_t>(std::count_if(
+        d.validation.begin(), d.validation.end(),
+        [&](const Rating& r) { return trained.count(uint64_t(r.user) << 32 | r.item) > 0; }));
+    if (in_training > 0)
+        std::cerr << fmt::format("warning: {} of the {} validation ratings are (customer, product) pairs of the "
+                                 "training ratings, so the check flatters the model; give a file of ratings that are "
+                                 "not in --ratings, or use --holdout\n",
+                                 in_training, d.validation.size());
 }
 
 TrainingData split_for_validation(const FitFlags& f, RatingSet&& ratings, uint64_t seed, const Log& log) {

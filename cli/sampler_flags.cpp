@@ -80,9 +80,9 @@ void add_sampler_flags(CLI::App& cmd, SamplerFlags& f, RankFlag rank) {
         ->default_str(o.run_length == RunLength::converged ? "converged" : "fixed")->group(kGroup);
     cmd.add_option("--samples", o.samples, "Draws kept per chain, evenly spaced after burn-in (the file grows with it)")
         ->check(CLI::Range(1u, 100000u))->capture_default_str()->group(kGroup);
-    cmd.add_option("--max-sweeps", o.max_sweeps, "Converged runs: at most this many sweeps per chain")
+    f.max_sweeps_flag = cmd.add_option("--max-sweeps", o.max_sweeps, "Converged runs: at most this many sweeps per chain")
         ->check(CLI::Range(2u, 100000000u))->capture_default_str()->group(kGroup);
-    cmd.add_option("--time-limit", f.time_limit,
+    f.time_limit_flag = cmd.add_option("--time-limit", f.time_limit,
                    "Converged runs: stop at the last check that fits in this wall-clock time (e.g. 90, 90s, 15m, 2h; "
                    "0: none)")
         ->check(CLI::Validator([](std::string& text) -> std::string {
@@ -188,8 +188,14 @@ FitOptions to_fit_options(const SamplerFlags& f) {
         for (const CLI::Option* flag : {f.burn_in_flag, f.thin_flag})
             if (flag && flag->count() > 0)
                 throw OptionError(flag->get_name() +
-                                  " applies to --run-length fixed; a converged run (the default) burns in the first "
-                                  "half of each chain and keeps --samples draws evenly spaced after it");
+                                  " applies to --run-length fixed; a converged run discards the first quarter of each "
+                                  "chain as burn-in and keeps --samples draws evenly spaced after it");
+    } else {
+        for (const CLI::Option* flag : {f.max_sweeps_flag, f.time_limit_flag})
+            if (flag && flag->count() > 0)
+                throw OptionError(flag->get_name() +
+                                  " applies to --run-length converged; a fixed run does exactly --burn-in + "
+                                  "--samples x --thin sweeps per chain");
     }
     if (!f.time_limit.empty()) options.max_seconds = *parse_duration_s(f.time_limit);
     options.biases = !f.no_biases;

@@ -26,6 +26,8 @@ struct SamplerFlags {
     std::string time_limit;                        // --time-limit as given; empty: fit.max_seconds
     CLI::Option* burn_in_flag = nullptr;           // set by add_sampler_flags, to tell whether they were given
     CLI::Option* thin_flag = nullptr;
+    CLI::Option* max_sweeps_flag = nullptr;
+    CLI::Option* time_limit_flag = nullptr;
     // fit only (RankFlag::one_or_auto): --rank as given, "auto" or K, and
     // the candidates for auto; see rank_request.
     std::string rank = "auto";

@@ -948,6 +948,26 @@ TEST_CASE("a converged run refuses --burn-in and --thin, which belong to fixed-l
     CHECK_FALSE(fs::exists(dir / "m.posterior"));
 }
 
+TEST_CASE("a fixed-length run refuses the converged run's budgets, and compare's folds refuse --holdout") {
+    const auto& d = demo_fit();
+    const auto dir = scratch_dir("cli-run-length-fixed");
+    for (const std::string& flags : {std::string(" --max-sweeps 3"), std::string(" --time-limit 1s")}) {
+        INFO(flags);
+        const auto r = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --run-length fixed --out " +
+                                    quoted(dir / "m.posterior") + flags);
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("applies to --run-length converged") != std::string::npos);
+        // compare's fits are fixed-length by default.
+        const auto c = run_credence("compare --ratings " + quoted(d.ratings) + " --scale 1:5" + flags);
+        CHECK(c.exit_code == 2);
+        CHECK(c.err.find("applies to --run-length converged") != std::string::npos);
+    }
+    CHECK_FALSE(fs::exists(dir / "m.posterior"));
+    const auto folds = run_credence("compare --ratings " + quoted(d.ratings) + " --scale 1:5 --folds 2 --holdout 0.5");
+    CHECK(folds.exit_code == 2);
+    CHECK(folds.err.find("each fold holds out 1/2") != std::string::npos);
+}
+
 TEST_CASE("report opens with provenance and a verdict and refuses a comparison made on other data") {
     const auto& d = demo_fit();
     REQUIRE(d.fit.exit_code == 0);

@@ -399,3 +399,18 @@ TEST_CASE("fit checks --holdout-out's folder and the gate's live model before it
     CHECK(slurp(live) == "a file that is not a posterior");
     CHECK(!fs::exists(dir / "live.posterior.candidate"));
 }
+
+TEST_CASE("fit --validation says how many of the file's rows it rejected and warns when they were training pairs") {
+    const auto dir = scratch_dir("fit_command_validation_file");
+    const auto r = run_credence("fit --ratings " + quoted(demo_ratings()) +
+                                " --scale 1:5 --rank 3 --run-length fixed --burn-in 20 --samples 10 --thin 1 "
+                                "--chains 2 --seed 3 --validation " + quoted(demo_ratings()) + " --out " +
+                                quoted(dir / "m.posterior"));
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    // The demo export has three bad rows; scoring the training file itself is flagged.
+    CHECK(r.err.find("validation " + demo_ratings().string() + ": read ") != std::string::npos);
+    CHECK(r.err.find("rejected 3") != std::string::npos);
+    CHECK(r.err.find("validation ratings are (customer, product) pairs of the training ratings") !=
+          std::string::npos);
+}
