@@ -216,7 +216,13 @@ bool is_known(std::initializer_list<std::string_view> known, std::string_view na
 }  // namespace
 
 void check_query_names(const httplib::Request& req, std::initializer_list<std::string_view> known) {
-    for (const auto& [name, value] : req.params) {
+    // The target's query string only: cpp-httplib also merges a form-encoded
+    // body into req.params, and a JSON body sent without a Content-Type
+    // (curl -d's default) would otherwise read as one unknown parameter.
+    const size_t mark = req.target.find('?');
+    httplib::Params query;
+    if (mark != std::string::npos) httplib::detail::parse_query_text(req.target.substr(mark + 1), query);
+    for (const auto& [name, value] : query) {
         if (is_known(known, name)) continue;
         if (name == "interval" && is_known(known, "level"))
             throw bad_request("the interval level is now the query parameter level (e.g. level=0.9), as in bodies "

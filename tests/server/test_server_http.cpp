@@ -411,6 +411,11 @@ TEST_CASE("routes that take no query parameters refuse one, naming none as accep
                          R"({"pairs":[{"user":"cust-00001","item":"sku-00001"}]})"),
                     400);
     require_problem(post(*c, "/v1/recommendations", "/v1/recommendations?n=3", R"({"n": 3})"), 400);
+    // A JSON body sent as a form (curl -d without a Content-Type) is still a
+    // body, not a query parameter.
+    auto form = c->Post("/v1/recommendations", R"({"n": 2})", "application/x-www-form-urlencoded");
+    REQUIRE(form);
+    CHECK(form->status == 200);
     // The console's pages ignore query strings (a browser adds them freely).
     auto page = c->Get("/?from=bookmark");
     REQUIRE(page);
