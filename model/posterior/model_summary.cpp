@@ -106,8 +106,10 @@ json public_diagnostics(const Posterior& p) {
                                "prediction(probe " + std::to_string(named.size() + 1) + ")");
         }
     }
-    // Warnings quote the worst quantity, which may be a probe pair.
-    if (auto it = doc.find("warnings"); it != doc.end() && it->is_array()) {
+    // Warnings and advice quote the worst quantity, which may be a probe pair.
+    for (const char* key : {"warnings", "advice"}) {
+        const auto it = doc.find(key);
+        if (it == doc.end() || !it->is_array()) continue;
         for (auto& w : *it) {
             if (!w.is_string()) continue;
             std::string text = w.get<std::string>();
@@ -143,6 +145,7 @@ json model_summary(const Posterior& p) {
     }
     if (validation.is_object() && fit.contains("refit_on_all")) validation["refit_on_all"] = true;
     const json warnings = at_path(diagnostics, {"warnings"});
+    const json advice = at_path(public_diagnostics(p), {"advice"});  // probe pairs numbered
     return {
         {"data", std::move(data)},
         {"rank", p.rank},
@@ -166,7 +169,8 @@ json model_summary(const Posterior& p) {
           {"min_ess_bulk_per_chain", at_path(diagnostics, {"min_ess_bulk_per_chain"})},
           {"min_ess_tail_per_chain", at_path(diagnostics, {"min_ess_tail_per_chain"})},
           {"warnings", warnings.is_array() ? warnings.size() : 0},
-          {"worst", worst_quantities(diagnostics, 3)}}},
+          {"worst", worst_quantities(diagnostics, 3)},
+          {"advice", advice.is_array() ? advice : json::array()}}},
         {"validation", validation.is_object() && !validation.empty() ? validation : json(nullptr)},
         {"noise", noise_summary(p, fit)},
     };

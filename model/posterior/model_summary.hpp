@@ -14,8 +14,9 @@ namespace credence {
 // named by the catalogue), rank, biases, scale, chains and kept samples,
 // the fit (date, version, seconds, sweeps per chain, seed, data fingerprint),
 // the convergence verdict with the 3 worst quantities (highest R-hat first,
-// then lowest bulk ESS; probe predictions numbered, never named), the
-// validation figures the fit stored (null when it had none) and the noise
+// then lowest bulk ESS; probe predictions numbered, never named) and the
+// advice on what to change when the run stopped short (an empty list when
+// none), the validation figures the fit stored (null when it had none) and the noise
 // ({"sampled": true, "sd_posterior_mean": mean over samples of 1/sqrt(tau)}
 // or {"sampled": false, "precision": tau, "sd": 1/sqrt(tau)}). Fields the
 // file does not record are null. Never throws for a validated posterior
@@ -24,7 +25,7 @@ nlohmann::json model_summary(const Posterior& posterior);
 
 // The convergence document as stored, with every probe pair (a customer and
 // a product they rated) numbered instead of named, in the quantities and in
-// the warnings that quote them. An empty object when the file has none.
+// the warnings and advice that quote them. An empty object when the file has none.
 nlohmann::json public_diagnostics(const Posterior& posterior);
 
 // The fit's per-sweep traces as stored ({"sweep": [...], "chain": [...],

@@ -19,6 +19,7 @@
 
 #include <nlohmann/json.hpp>
 
+#include "model/posterior/model_summary.hpp"
 #include "model/posterior/posterior_file.hpp"
 
 
@@ -130,6 +131,35 @@ std::string file_format_version(const std::string& path) {
 
 }  // namespace
 
+namespace {
+
+// The worst quantities, every warning and the advice, one per line; probe
+// pairs by number (public_diagnostics scrubs files written with ids).
+std::string convergence_detail_lines(const Posterior& p) {
+    std::ostringstream out;
+    const json convergence = model_summary(p)["convergence"];
+    std::string worst;
+    for (const json& q : convergence.value("worst", json::array())) {
+        if (!q.is_object()) continue;
+        worst += (worst.empty() ? "" : "; ") + q.value("quantity", std::string("?")) + " (R-hat " +
+                 scalar_text(q.value("r_hat", json(nullptr))) + ", bulk ESS " +
+                 scalar_text(q.value("ess_bulk", json(nullptr))) + ")";
+    }
+    if (!worst.empty()) out << "worst:          " << worst << "\n";
+    const json diagnostics = public_diagnostics(p);
+    for (const char* key : {"warnings", "advice"}) {
+        const auto it = diagnostics.find(key);
+        if (it == diagnostics.end() || !it->is_array()) continue;
+        for (const json& line : *it)
+            if (line.is_string())
+                out << (std::string(key) == "warnings" ? "warning:        " : "advice:         ") << line.get<std::string>()
+                    << "\n";
+    }
+    return out.str();
+}
+
+}  // namespace
+
 std::string describe_posterior(const Posterior& p, const std::string& path) {
     std::ostringstream out;
     std::error_code ec;
@@ -184,6 +214,7 @@ std::string describe_posterior(const Posterior& p, const std::string& path) {
     if (const json* w = diag_doc.is_discarded() ? nullptr : find_key(diag_doc, "warnings"); w && w->is_array())
         diag += (diag.empty() ? "" : ", ") + std::to_string(w->size()) + (w->size() == 1 ? " warning" : " warnings");
     out << "diagnostics:    " << (diag.empty() ? "(none recorded)" : diag) << "\n";
+    out << convergence_detail_lines(p);
     out << retraining_lines(p.fit_metadata_json);
     return out.str();
 }

@@ -353,10 +353,22 @@ TEST_CASE("fit's progress lines, warnings and advice name no customer: probe pai
     const credence::Posterior p = credence::read_posterior(model.string());
     const std::string stored = p.diagnostics_json;
     const json warnings = json::parse(stored).at("warnings");
+    // inspect shows the worst quantities, each warning and the advice fit gave.
+    const auto shown = run_credence("inspect " + quoted(model));
+    REQUIRE(shown.exit_code == 0);
+    CHECK(shown.out.find("\nworst:          ") != std::string::npos);
+    CHECK(shown.out.find("\nwarning:        ESS below 100 per chain") != std::string::npos);
+    CHECK(shown.out.find("\nadvice:         the budget of 120 sweeps per chain ran out") != std::string::npos);
+    const auto as_json = run_credence("inspect --json " + quoted(model));
+    REQUIRE(as_json.exit_code == 0);
+    const json advice = json::parse(as_json.out).at("convergence").at("advice");
+    REQUIRE(!advice.empty());
+    CHECK(advice[0].get<std::string>().find("--max-sweeps") != std::string::npos);
     for (const std::string& id : customers) {
         INFO(id);
         CHECK(r.err.find(id) == std::string::npos);
         CHECK(warnings.dump().find(id) == std::string::npos);
+        CHECK(shown.out.find(id) == std::string::npos);
     }
 }
 
