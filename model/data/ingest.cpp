@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <array>
 #include <cctype>
+#include <cerrno>
 #include <charconv>
 #include <chrono>
 #include <cmath>
@@ -32,6 +33,10 @@ namespace {
 // Past this many rejects, with more than half of all rows rejected, the file
 // is read wrongly (delimiter, columns) and reading on would only fill the rejects file.
 constexpr uint64_t kEarlyAbortRejects = 1000;
+
+// What to do when the rejects path names a file that is not a rejects file.
+constexpr const char* kRejectsRemedy =
+    "pass another --rejects-path (or move that file away to use this one)";
 
 std::string_view trim(std::string_view s) {
     while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
@@ -275,14 +280,7 @@ public:
     const std::string& path() const { return path_; }
     void write(uint64_t line, std::string_view reason, std::string_view raw) {
         if (path_.empty()) return;
-        if (!file_) {
-            file_ = std::fopen(path_.c_str(), "wb");
-            if (!file_)
-                throw FileError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path",
-                                            path_, std::strerror(errno)));
-            std::fputs(unit_, file_);
-            std::fputs("\treason\trecord\n", file_);
-        }
+        if (!file_) open();
         line_.clear();
         line_ += std::to_string(line);
         line_ += '\t';
@@ -301,6 +299,24 @@ public:
     }
 
 private:
+    // Opens the file on the first reject. An existing file is overwritten
+    // only when it is a rejects file (checked again here: the file may have
+    // appeared since the run began); a new one is created exclusively, so a
+    // file that appears meanwhile is never truncated. The header goes out at
+    // once, so even an interrupted run leaves a file recognisable as rejects.
+    void open() {
+        std::error_code ec;
+        const bool existed = std::filesystem::exists(path_, ec);
+        check_rejects_target(path_, kRejectsRemedy);
+        errno = 0;
+        file_ = std::fopen(path_.c_str(), existed ? "wb" : "wbx");
+        if (!file_)
+            throw FileError(fmt::format("cannot write the rejects file {}: {}; pass a writable --rejects-path", path_,
+                                        errno == EEXIST ? "a file appeared there meanwhile" : std::strerror(errno)));
+        std::fputs(unit_, file_);
+        std::fputs("\treason\trecord\n", file_);
+        std::fflush(file_);
+    }
     void append_escaped(std::string_view s) {
         for (char c : s) {
             switch (c) {
@@ -454,6 +470,8 @@ void Ingest::check_options() const {
             throw OptionError(fmt::format("the declared scale {} to {} is empty or not finite; pass --scale MIN:MAX with MIN < MAX",
                                           s.min, s.max));
     }
+    // Before any row is read: a rejects path that would destroy another file.
+    if (!rejects_.path().empty()) check_rejects_target(rejects_.path(), kRejectsRemedy);
 }
 
 std::optional<size_t> Ingest::resolve(const std::string& spec, const ColumnRole& role,
@@ -693,9 +711,11 @@ std::unique_ptr<RowSource> Ingest::open_source() const {
 }
 
 // A rejects file at the rejects path was written by an earlier run when this
-// run rejected nothing: remove it, or say why it stays. Only a regular file
-// is ever removed: a rejects path naming a device (/dev/null), a pipe or a
-// folder is the caller's to keep.
+// run rejected nothing: remove it, or say why it stays. Only a rejects file
+// (is_rejects_file) is ever removed: a rejects path naming a device
+// (/dev/null), a pipe, a folder or any other file is the caller's to keep.
+// check_options refused any other regular file; one that appeared since is
+// left and reported.
 void Ingest::clear_stale_rejects() {
     const std::string& path = rejects_.path();
     std::error_code ec;
@@ -706,6 +726,10 @@ void Ingest::clear_stale_rejects() {
         return;
     }
     if (!std::filesystem::is_regular_file(status)) return;
+    if (!is_rejects_file(path)) {
+        summary_.stale_rejects = fmt::format("left {} (not a rejects file)", path);
+        return;
+    }
     if (std::filesystem::remove(path, ec)) summary_.stale_rejects = "removed " + path;
     else summary_.stale_rejects = fmt::format("left {} ({})", path, ec ? ec.message() : "not removed");
 }
@@ -815,6 +839,24 @@ IngestResult Ingest::run() {
 }  // namespace
 
 IngestResult ingest_ratings(const IngestOptions& options) { return Ingest(options).run(); }
+
+bool is_rejects_file(const std::string& path) {
+    std::unique_ptr<std::FILE, int (*)(std::FILE*)> file(std::fopen(path.c_str(), "rb"), &std::fclose);
+    if (!file) return false;
+    char start[32] = {};
+    const size_t got = std::fread(start, 1, sizeof start, file.get());
+    const std::string_view head(start, got);
+    return head.starts_with("line\treason\trecord\n") || head.starts_with("row\treason\trecord\n");
+}
+
+void check_rejects_target(const std::string& path, const std::string& remedy) {
+    std::error_code ec;
+    if (!std::filesystem::is_regular_file(path, ec) || is_rejects_file(path)) return;
+    throw FileError(fmt::format("the rejects path {} names an existing file that is not a rejects file (its first "
+                                "line is not 'line<TAB>reason<TAB>record'); rejects are only ever written over an "
+                                "earlier rejects file, so that file is left as it is; {}",
+                                path, remedy));
+}
 
 std::string describe(const IngestSummary& s) {
     std::string out = fmt::format("read {} rows: kept {}, rejected {}, merged {} duplicates", s.rows_read, s.kept,

@@ -23,7 +23,10 @@
 // CR, LF, NUL or backslash inside reason or record is written as \t, \r, \n,
 // \0 or \\ (so one reject is one line and the file holds no NUL byte). A run
 // that rejects nothing removes a rejects file left at that path by an
-// earlier run.
+// earlier run. Only a rejects file (one that starts with that header line)
+// is ever overwritten or removed: a rejects path naming any other existing
+// file (the ratings, a model, a note) is refused before the first row is read,
+// and a device or a pipe there is written to, never removed.
 //
 // Lines: a quoted field may hold line breaks, but a record spanning more than
 // 8 lines is taken for a stray quote: its first line is rejected and reading
@@ -122,8 +125,10 @@ struct IngestResult {
 //                query or a file with one, a PostgreSQL URI that holds a
 //                password (it belongs in PGPASSWORD or a password file);
 //   FileError    when the file is a directory or cannot be opened or read,
-//                the database cannot be opened or reached, or the rejects
-//                file cannot be written;
+//                the database cannot be opened or reached, the rejects path
+//                names an existing file that is not a rejects file (see
+//                check_rejects_target; checked before the first row is
+//                read), or the rejects file cannot be written;
 //   DataError    when the columns cannot be found in the file (a named column
 //                is absent, an index is out of range, no default matches),
 //                nothing is kept, more than 2^32 - 1 ratings or ids, or the
@@ -140,5 +145,21 @@ IngestResult ingest_ratings(const IngestOptions& options);
 // blank, 1000 in rows (5 in rejected rows)" when rows span several lines or
 // lines were skipped, and what became of a stale rejects file.
 std::string describe(const IngestSummary& summary);
+
+// Whether `path` names a file that begins with a rejects file's header line
+// ("line<TAB>reason<TAB>record" or "row<TAB>reason<TAB>record", then LF), the
+// only kind of file Credence overwrites or removes at a rejects path. False
+// when the path is absent, unreadable, or holds anything else (an empty
+// file too).
+bool is_rejects_file(const std::string& path);
+
+// Refuses a rejects path where writing rejects would destroy another file:
+// throws FileError, naming `path` and ending with `remedy` (what to do
+// instead, e.g. "pass another --rejects-path"), when `path` names an existing
+// regular file (through any symbolic link) that is_rejects_file does not
+// recognise. A missing path, a rejects file, a device or a pipe pass; so does
+// a folder (writing there fails with its own FileError). Ingest calls it
+// before the first row and again before it writes rejects.
+void check_rejects_target(const std::string& path, const std::string& remedy);
 
 }  // namespace credence

@@ -1,6 +1,7 @@
 // Tests for model/ingest: format detection, column choice, every reject
 // reason with its line number, duplicate policies, the reject limit, the
-// accounting invariant on messy input, the fingerprint, and the open dataset.
+// accounting invariant on messy input, the fingerprint, the open dataset,
+// and rejects written or removed only over a rejects file.
 #include <catch2/catch.hpp>
 #include <sys/stat.h>
 
@@ -726,4 +727,71 @@ TEST_CASE("a run that rejects nothing removes the rejects file of an earlier run
     const auto fourth = ingest_ratings(o);
     CHECK(fourth.summary.stale_rejects.empty());
     CHECK(fs::is_fifo(o.rejects_path));
+}
+
+TEST_CASE("a rejects path naming a file that is not a rejects file is refused before reading, and the file stays") {
+    const auto dir = testing::scratch_dir("ingest_rejects_foreign");
+    std::string good = "user,item,rating\n";
+    for (int k = 0; k < 200; ++k) good.append("u").append(std::to_string(k)).append(",i,4\n");
+    const auto clean = write_file(dir, "clean.csv", good);
+    const auto messy = write_file(dir, "messy.csv", good + "u-x,i,none\n");
+    const std::string notes = "customer notes, not rejects\nline two\n";
+    const auto other = write_file(dir, "notes.txt", notes);
+    // Nearly a rejects file: the header line must be whole, and an empty file holds no header.
+    const auto near = write_file(dir, "near.tsv", "line\treason\n");
+    const auto empty = write_file(dir, "empty.tsv", "");
+    for (const auto& target : {other, clean, near, empty}) {
+        const std::string before = target == clean ? good : target == other ? notes : target == near ? "line\treason\n" : "";
+        for (const auto& input : {clean, messy}) {
+            INFO(target.filename().string() << " as the rejects path of " << input.filename().string());
+            auto o = options_for(input);
+            o.max_reject_fraction = 1.0;
+            o.rejects_path = target.string();
+            try {
+                ingest_ratings(o);
+                FAIL("expected a FileError");
+            } catch (const FileError& e) {
+                CHECK_THAT(e.what(), Catch::Contains(target.string()) && Catch::Contains("not a rejects file") &&
+                                         Catch::Contains("pass another --rejects-path"));
+            }
+            std::ifstream in(target, std::ios::binary);
+            const std::string after((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+            CHECK(after == before);
+        }
+    }
+    // The default path is guarded the same way.
+    write_file(dir, "messy.csv.rejects.tsv", notes);
+    auto o = options_for(messy);
+    o.max_reject_fraction = 1.0;
+    CHECK_THROWS_AS(ingest_ratings(o), FileError);
+    CHECK(read_lines(dir / "messy.csv.rejects.tsv") == std::vector<std::string>{"customer notes, not rejects", "line two"});
+}
+
+TEST_CASE("a rejects file from an earlier run is overwritten by new rejects and removed by a clean run") {
+    const auto dir = testing::scratch_dir("ingest_rejects_own");
+    std::string good = "user,item,rating\n";
+    for (int k = 0; k < 200; ++k) good.append("u").append(std::to_string(k)).append(",i,4\n");
+    const auto clean = write_file(dir, "clean.csv", good);
+    const auto messy = write_file(dir, "messy.csv", good + "u-x,i,none\n");
+    for (const std::string unit : {"line", "row"}) {
+        INFO(unit);
+        const auto rejects = write_file(dir, "rejects.tsv", unit + "\treason\trecord\n7\told reason\told,row\n");
+        REQUIRE(is_rejects_file(rejects.string()));
+        auto o = options_for(messy);
+        o.max_reject_fraction = 1.0;
+        o.rejects_path = rejects.string();
+        const auto first = ingest_ratings(o);
+        CHECK(first.summary.rejected == 1);
+        const auto lines = read_lines(rejects);
+        REQUIRE(lines.size() == 2);
+        CHECK(lines[0] == "line\treason\trecord");
+        CHECK(lines[1].rfind("202\t", 0) == 0);
+
+        o.path = clean.string();
+        const auto second = ingest_ratings(o);
+        CHECK(second.summary.stale_rejects == "removed " + rejects.string());
+        CHECK_FALSE(fs::exists(rejects));
+    }
+    CHECK_FALSE(is_rejects_file((dir / "absent.tsv").string()));
+    CHECK_FALSE(is_rejects_file(clean.string()));
 }
