@@ -18,6 +18,8 @@
 namespace credence {
 namespace {
 
+constexpr const char* kRejectsRemedy = "move that file away, then fit again";
+
 std::string trimmed(std::string_view s) {
     while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
     while (!s.empty() && (s.back() == ' ' || s.back() == '\t')) s.remove_suffix(1);
@@ -84,6 +86,8 @@ Catalogue read_catalogue(const CatalogueOptions& o) {
     IngestSummary& s = out.summary;
     s.delimiter = reader.delimiter();
     const std::string rejects_path = o.rejects_path.empty() ? o.path + ".rejects.tsv" : o.rejects_path;
+    // Before any row is read: rejects never go over a file that is not a rejects file.
+    check_rejects_target(rejects_path, kRejectsRemedy);
     std::ofstream rejects;
     std::string first_reject;
     const auto reject = [&](const CsvRecord& r, const std::string& reason) {
@@ -91,6 +95,7 @@ Catalogue read_catalogue(const CatalogueOptions& o) {
         s.rejected_lines += r.end_line - r.line + 1;
         if (first_reject.empty()) first_reject = fmt::format("line {}: {}", r.line, reason);
         if (!rejects.is_open()) {
+            check_rejects_target(rejects_path, kRejectsRemedy);
             rejects.open(rejects_path, std::ios::trunc);
             if (!rejects) throw FileError("cannot write the catalogue rejects file " + rejects_path);
             rejects << "line\treason\trecord\n";

@@ -37,7 +37,9 @@ struct CatalogueOptions {
 // "line<TAB>reason<TAB>record") when it is malformed CSV, has fewer than 2
 // fields, an empty id or name, or repeats an id with other values.
 // Throws OptionError for max_reject_fraction outside [0, 1]; FileError when
-// the file or the rejects file cannot be opened, read or written; DataError
+// the file or the rejects file cannot be opened, read or written, or when the
+// rejects path names an existing file that is not a rejects file (see
+// check_rejects_target: checked before the first row is read); DataError
 // when nothing is kept or the reject fraction exceeds the limit.
 Catalogue read_catalogue(const CatalogueOptions& options);
 

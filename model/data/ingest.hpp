@@ -158,8 +158,9 @@ bool is_rejects_file(const std::string& path);
 // instead, e.g. "pass another --rejects-path"), when `path` names an existing
 // regular file (through any symbolic link) that is_rejects_file does not
 // recognise. A missing path, a rejects file, a device or a pipe pass; so does
-// a folder (writing there fails with its own FileError). Ingest calls it
-// before the first row and again before it writes rejects.
+// a folder (writing there fails with its own FileError). Ingest and the
+// catalogue reader call it before the first row and again before they write
+// rejects.
 void check_rejects_target(const std::string& path, const std::string& remedy);
 
 }  // namespace credence

@@ -1,7 +1,8 @@
 // Tests for model/data/catalogue: every reject reason lands in the rejects
 // file with its line, the counts add up as for ratings (rows_read == kept +
 // rejected + merged_duplicates; lines_read == header + blank + row lines),
-// the columns are found by header name, and the reject limit holds.
+// the columns are found by header name, the reject limit holds, and rejects
+// are never written over a file that is not a rejects file.
 #include <catch2/catch.hpp>
 
 #include <filesystem>
@@ -91,4 +92,28 @@ TEST_CASE("a catalogue past the reject limit, or with nothing kept, is a data er
     CHECK_THROWS_AS(read_catalogue({.path = (dir / "missing.csv").string(), .max_reject_fraction = 1.0, .rejects_path = ""}),
                     FileError);
     CHECK_THROWS_AS(read_catalogue({.path = path.string(), .max_reject_fraction = 1.5, .rejects_path = ""}), OptionError);
+}
+
+TEST_CASE("catalogue rejects are never written over a file that is not a rejects file") {
+    const fs::path dir = scratch_dir("catalogue_rejects_foreign");
+    const fs::path path = write_file(dir, "catalogue.csv", "sku,name\nkitchen-0001,Walnut Spoon Set\nkitchen-0002,\n");
+    const fs::path notes = write_file(dir, "catalogue.csv.rejects.tsv", "my notes\n");
+    for (const fs::path& target : {notes, path}) {
+        INFO(target);
+        const std::string before = read_lines(target).front();
+        try {
+            read_catalogue({.path = path.string(), .max_reject_fraction = 1.0, .rejects_path = target == notes ? "" : target.string()});
+            FAIL("expected a FileError");
+        } catch (const FileError& e) {
+            CHECK(std::string(e.what()).find("not a rejects file") != std::string::npos);
+        }
+        CHECK(read_lines(target).front() == before);
+    }
+    // An earlier rejects file there is replaced.
+    write_file(dir, "catalogue.csv.rejects.tsv", "line\treason\trecord\n9\told\tx\n");
+    const Catalogue c = read_catalogue({.path = path.string(), .max_reject_fraction = 1.0, .rejects_path = ""});
+    CHECK(c.summary.rejected == 1);
+    const auto lines = read_lines(notes);
+    REQUIRE(lines.size() == 2);
+    CHECK(lines[1].rfind("3\t", 0) == 0);
 }
