@@ -1,8 +1,12 @@
 #include "cli/ingest_flags.hpp"
 
 #include <charconv>
+#include <filesystem>
 #include <stdexcept>
+#include <system_error>
 
+#include "model/data/postgresql_source.hpp"
+#include "model/data/sqlite_source.hpp"
 #include "model/error.hpp"
 
 namespace credence::cli {
@@ -48,6 +52,18 @@ void add_ingest_flags(CLI::App& cmd, IngestFlags& f, const std::string& ratings_
 }
 
 namespace {
+// A --rejects-path that names the ratings file itself (by any spelling,
+// symbolic or hard link) is a usage error: rejects would be written over
+// the ratings. Only an existing file can be the same as the ratings file.
+void refuse_rejects_over_ratings(const IngestFlags& f) {
+    if (f.rejects_path.empty() || f.path == "-" || is_sqlite_source(f.path) || is_postgresql_source(f.path)) return;
+    std::error_code ec;
+    if (!std::filesystem::equivalent(f.path, f.rejects_path, ec) || ec) return;
+    throw OptionError("--rejects-path " + f.rejects_path + " is the ratings file " + f.path +
+                      " itself; rejected rows would be written over the ratings. Pass another --rejects-path, or "
+                      "leave it out to use " + f.path + ".rejects.tsv");
+}
+
 float parse_float(const std::string& s, const std::string& what) {
     float v = 0;
     const auto [p, ec] = std::from_chars(s.data(), s.data() + s.size(), v);
@@ -85,6 +101,7 @@ IngestOptions to_ingest_options(const IngestFlags& f) {
     }
     o.duplicates = f.duplicates == "mean" ? DuplicatePolicy::mean : DuplicatePolicy::latest;
     o.max_reject_fraction = f.max_reject_fraction;
+    refuse_rejects_over_ratings(f);
     o.rejects_path = f.rejects_path;
     return o;
 }

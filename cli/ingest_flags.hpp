@@ -30,7 +30,9 @@ struct IngestFlags {
 void add_ingest_flags(CLI::App& cmd, IngestFlags& flags, const std::string& ratings_flag = "--ratings");
 
 // Turns parsed flags into options; throws OptionError on a bad
-// --scale or --delimiter with a message saying what is accepted.
+// --scale or --delimiter with a message saying what is accepted, and when
+// --rejects-path names the --ratings file itself (the same existing file,
+// by std::filesystem::equivalent), so rejects can never be written over it.
 IngestOptions to_ingest_options(const IngestFlags& flags);
 
 }  // namespace credence::cli
