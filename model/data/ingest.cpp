@@ -28,6 +28,12 @@
 
 namespace credence {
 
+std::string_view trim_field(std::string_view s) {
+    while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
+    while (!s.empty() && (s.back() == ' ' || s.back() == '\t')) s.remove_suffix(1);
+    return s;
+}
+
 namespace {
 
 // Past this many rejects, with more than half of all rows rejected, the file
@@ -37,12 +43,6 @@ constexpr uint64_t kEarlyAbortRejects = 1000;
 // What to do when the rejects path names a file that is not a rejects file.
 constexpr const char* kRejectsRemedy =
     "pass another --rejects-path (or move that file away to use this one)";
-
-std::string_view trim(std::string_view s) {
-    while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
-    while (!s.empty() && (s.back() == ' ' || s.back() == '\t')) s.remove_suffix(1);
-    return s;
-}
 
 // A field as shown in a reason: quoted, cut to a readable length.
 std::string shown(std::string_view s) {
@@ -66,7 +66,7 @@ size_t column_index(std::string_view digits) {
 // A decimal number, whole field (surrounding blanks allowed). NaN and
 // infinity parse (the caller rejects them with their own reason).
 std::optional<double> parse_number(std::string_view s) {
-    s = trim(s);
+    s = trim_field(s);
     if (s.size() > 1 && s.front() == '+' && s[1] != '-') s.remove_prefix(1);
     if (s.empty()) return std::nullopt;
     double value = 0.0;
@@ -138,7 +138,7 @@ std::optional<double> parse_iso8601(std::string_view s) {
 
 // Epoch seconds (any finite number) or an ISO-8601 date / date-time.
 std::optional<double> parse_timestamp(std::string_view s) {
-    s = trim(s);
+    s = trim_field(s);
     if (auto n = parse_number(s)) {
         if (!std::isfinite(*n)) return std::nullopt;
         return n;
@@ -373,6 +373,12 @@ std::string header_list(const std::vector<std::string>& header) {
     return out;
 }
 
+// " (a, b, c)" for a header; nothing for a first row of data, whose fields
+// may hold a customer id and so stay out of messages.
+std::string header_names(const std::vector<std::string>& first, bool has_header) {
+    return has_header ? " (" + header_list(first) + ")" : std::string();
+}
+
 // Finds a default column by name; skips columns already taken by another role.
 std::optional<size_t> match_default(const ColumnRole& role, const std::vector<std::string>& header,
                                     const std::vector<size_t>& taken) {
@@ -390,10 +396,115 @@ std::optional<size_t> match_default(const ColumnRole& role, const std::vector<st
     return std::nullopt;
 }
 
+// Whether the first row is a header: as declared; yes when a column is
+// named; otherwise yes when its rating field is not a number.
+bool detect_header(const IngestOptions& options, const std::vector<std::string>& first) {
+    if (options.has_header) return *options.has_header;
+    const auto named = [](const std::string& s) { return !s.empty() && !all_digits(s); };
+    if (named(options.user_column) || named(options.item_column) || named(options.rating_column) ||
+        named(options.timestamp_column))
+        return true;
+    const size_t rating_index = options.rating_column.empty() ? 2 : column_index(options.rating_column);
+    return rating_index < first.size() && !parse_number(first[rating_index]).has_value();
+}
+
+// One role's column: by index (digits), by name (exact, else normalized),
+// by default name with a header, else `fallback_index`; none for an absent
+// optional timestamp. Records the choice in `taken`.
+std::optional<size_t> resolve(const std::string& spec, const ColumnRole& role, const std::vector<std::string>& first,
+                              bool has_header, size_t fallback_index, std::vector<size_t>& taken,
+                              const std::string& where) {
+    std::optional<size_t> index;
+    if (all_digits(spec)) {
+        index = column_index(spec);
+        if (*index >= first.size())
+            throw DataError(fmt::format("{}: {} column index {} is out of range: the {} has {} fields{}; "
+                                        "pass {} with a 0-based index below {}",
+                                        where, role.what, *index, has_header ? "header" : "first row",
+                                        first.size(), header_names(first, has_header), role.option, first.size()));
+    } else if (!spec.empty()) {
+        if (!has_header)
+            throw DataError(fmt::format("{}: {} column '{}' is a name but the file has no header; "
+                                        "pass {} as a 0-based index, or declare the header",
+                                        where, role.what, spec, role.option));
+        for (size_t i = 0; i < first.size() && !index; ++i)
+            if (first[i] == spec) index = i;
+        for (size_t i = 0; i < first.size() && !index; ++i)
+            if (normalized(first[i]) == normalized(spec)) index = i;
+        if (!index)
+            throw DataError(fmt::format("{}: column '{}' not found; header has: {}; pass {}", where, spec,
+                                        header_list(first), role.option));
+    } else if (has_header) {
+        index = match_default(role, first, taken);
+        if (!index && &role != &kTimestampRole)
+            throw DataError(fmt::format("{}: no {} column recognised; header has: {}; pass {} with a header name "
+                                        "or 0-based index",
+                                        where, role.what, header_list(first), role.option));
+    } else if (&role != &kTimestampRole) {
+        index = fallback_index;
+        if (*index >= first.size())
+            throw DataError(fmt::format("{}: the first row has {} field(s) but the {} column defaults to index {}; "
+                                        "check the delimiter (--delimiter) or pass {}",
+                                        where, first.size(), role.what, *index, role.option));
+    }
+    if (index) {
+        if (std::find(taken.begin(), taken.end(), *index) != taken.end())
+            throw DataError(fmt::format("{}: column {}{} is chosen for two roles; pass distinct columns with "
+                                        "--customer-column, --product-column, --rating-column, --timestamp-column",
+                                        where, *index, has_header ? " ('" + first[*index] + "')" : std::string()));
+        taken.push_back(*index);
+    }
+    return index;
+}
+
 struct Columns {
     size_t user = 0, item = 1, rating = 2;
     std::optional<size_t> timestamp;
 };
+
+// Each role's column (rating, user, item, timestamp), explicit choices first
+// so that a default never takes a column named elsewhere. With
+// `customer_only`, a role other than the user that cannot be resolved is
+// left out (nullopt) instead of failing; it then takes no column.
+std::array<std::optional<size_t>, 4> resolve_roles(const IngestOptions& options, const std::vector<std::string>& first,
+                                                   bool has_header, const std::string& where, bool customer_only) {
+    std::vector<size_t> taken;
+    struct Slot {
+        const std::string& spec;
+        const ColumnRole& role;
+        size_t fallback;
+        std::optional<size_t> result;
+    };
+    std::array<Slot, 4> slots{Slot{options.rating_column, kRatingRole, 2, {}},
+                              Slot{options.user_column, kUserRole, 0, {}},
+                              Slot{options.item_column, kItemRole, 1, {}},
+                              Slot{options.timestamp_column, kTimestampRole, 0, {}}};
+    for (int pass = 0; pass < 2; ++pass)
+        for (auto& s : slots) {
+            if (s.spec.empty() != (pass == 1)) continue;
+            if (!customer_only || &s.role == &kUserRole) {
+                s.result = resolve(s.spec, s.role, first, has_header, s.fallback, taken, where);
+                continue;
+            }
+            try {
+                s.result = resolve(s.spec, s.role, first, has_header, s.fallback, taken, where);
+            } catch (const DataError&) {
+                // Not the customer column's problem: ingest reports it when it reads the file.
+            }
+        }
+    return {slots[0].result, slots[1].result, slots[2].result, slots[3].result};
+}
+
+Columns resolve_columns(const IngestOptions& options, const std::vector<std::string>& first, bool has_header,
+                        const std::string& where) {
+    const auto roles = resolve_roles(options, first, has_header, where, false);
+    Columns c;
+    c.rating = *roles[0];
+    c.user = *roles[1];
+    c.item = *roles[2];
+    c.timestamp = roles[3];
+    return c;
+}
 
 // ---- the ingest pass
 
@@ -422,14 +533,9 @@ private:
 
     void check_options() const;
     std::unique_ptr<RowSource> open_source() const;
-    bool detect_header(const std::vector<std::string>& first) const;
     void read_rows(RowSource& source);
     void check_outcome() const;
     IngestResult finish();
-    Columns resolve_columns(const std::vector<std::string>& first, bool has_header, uint64_t line) const;
-    std::optional<size_t> resolve(const std::string& spec, const ColumnRole& role, const std::vector<std::string>& first,
-                                  bool has_header, size_t fallback_index, std::vector<size_t>& taken,
-                                  uint64_t line) const;
     void take_row(const SourceRow& row);
     void clear_stale_rejects();
     void reject(uint64_t line, const std::string& reason, std::string_view raw);
@@ -474,77 +580,6 @@ void Ingest::check_options() const {
     if (!rejects_.path().empty()) check_rejects_target(rejects_.path(), kRejectsRemedy);
 }
 
-std::optional<size_t> Ingest::resolve(const std::string& spec, const ColumnRole& role,
-                                      const std::vector<std::string>& first, bool has_header, size_t fallback_index,
-                                      std::vector<size_t>& taken, uint64_t line) const {
-    std::optional<size_t> index;
-    if (all_digits(spec)) {
-        index = column_index(spec);
-        if (*index >= first.size())
-            throw DataError(fmt::format("{}: {} column index {} is out of range: the {} has {} fields ({}); "
-                                        "pass {} with a 0-based index below {}",
-                                        where(line), role.what, *index, has_header ? "header" : "first row",
-                                        first.size(), header_list(first), role.option, first.size()));
-    } else if (!spec.empty()) {
-        if (!has_header)
-            throw DataError(fmt::format("{}: {} column '{}' is a name but the file has no header; "
-                                        "pass {} as a 0-based index, or declare the header",
-                                        where(line), role.what, spec, role.option));
-        for (size_t i = 0; i < first.size() && !index; ++i)
-            if (first[i] == spec) index = i;
-        for (size_t i = 0; i < first.size() && !index; ++i)
-            if (normalized(first[i]) == normalized(spec)) index = i;
-        if (!index)
-            throw DataError(fmt::format("{}: column '{}' not found; header has: {}; pass {}", where(line), spec,
-                                        header_list(first), role.option));
-    } else if (has_header) {
-        index = match_default(role, first, taken);
-        if (!index && &role != &kTimestampRole)
-            throw DataError(fmt::format("{}: no {} column recognised; header has: {}; pass {} with a header name "
-                                        "or 0-based index",
-                                        where(line), role.what, header_list(first), role.option));
-    } else if (&role != &kTimestampRole) {
-        index = fallback_index;
-        if (*index >= first.size())
-            throw DataError(fmt::format("{}: the first row has {} field(s) but the {} column defaults to index {}; "
-                                        "check the delimiter (--delimiter) or pass {}",
-                                        where(line), first.size(), role.what, *index, role.option));
-    }
-    if (index) {
-        if (std::find(taken.begin(), taken.end(), *index) != taken.end())
-            throw DataError(fmt::format("{}: column {} ('{}') is chosen for two roles; pass distinct columns with "
-                                        "--customer-column, --product-column, --rating-column, --timestamp-column",
-                                        where(line), *index, first[*index]));
-        taken.push_back(*index);
-    }
-    return index;
-}
-
-Columns Ingest::resolve_columns(const std::vector<std::string>& first, bool has_header, uint64_t line) const {
-    // Explicit choices first, so a default never takes a column named elsewhere.
-    std::vector<size_t> taken;
-    Columns c;
-    struct Slot {
-        const std::string& spec;
-        const ColumnRole& role;
-        size_t fallback;
-        std::optional<size_t> result;
-    };
-    std::array<Slot, 4> slots{Slot{options_.rating_column, kRatingRole, 2, {}},
-                              Slot{options_.user_column, kUserRole, 0, {}},
-                              Slot{options_.item_column, kItemRole, 1, {}},
-                              Slot{options_.timestamp_column, kTimestampRole, 0, {}}};
-    for (int pass = 0; pass < 2; ++pass)
-        for (auto& s : slots)
-            if (s.spec.empty() == (pass == 1))
-                s.result = resolve(s.spec, s.role, first, has_header, s.fallback, taken, line);
-    c.rating = *slots[0].result;
-    c.user = *slots[1].result;
-    c.item = *slots[2].result;
-    c.timestamp = slots[3].result;
-    return c;
-}
-
 void Ingest::reject(uint64_t line, const std::string& reason, std::string_view raw) {
     ++summary_.rejected;
     if (first_reject_.empty()) first_reject_ = fmt::format("line {}: {}", line, reason);
@@ -583,10 +618,10 @@ void Ingest::take_row(const SourceRow& row) {
         return reject_row(fmt::format("expected {} fields, found {}", expected_fields_, fields.size()));
     auto null = [&](size_t column) { return !row.is_null.empty() && row.is_null[column]; };
     if (null(columns_.user)) return reject_row("NULL user id");
-    const auto user = trim(fields[columns_.user]);
+    const auto user = trim_field(fields[columns_.user]);
     if (user.empty()) return reject_row("empty user id");
     if (null(columns_.item)) return reject_row("NULL item id");
-    const auto item = trim(fields[columns_.item]);
+    const auto item = trim_field(fields[columns_.item]);
     if (item.empty()) return reject_row("empty item id");
     // An id never holds a line break or a quote: in a file such a field is a
     // stray quote swallowing the lines after it. The rule holds for every
@@ -599,7 +634,7 @@ void Ingest::take_row(const SourceRow& row) {
         if (id.find('\0') != std::string_view::npos) return reject_row(fmt::format("{} id holds a NUL byte", what));
     }
     if (null(columns_.rating)) return reject_row("NULL rating");
-    const auto rating_text = trim(fields[columns_.rating]);
+    const auto rating_text = trim_field(fields[columns_.rating]);
     if (rating_text.empty()) return reject_row("empty rating");
     const auto rating = parse_number(rating_text);
     if (!rating) {
@@ -618,7 +653,7 @@ void Ingest::take_row(const SourceRow& row) {
     double timestamp = 0.0;
     if (columns_.timestamp) {
         if (null(*columns_.timestamp)) return reject_row("NULL timestamp");
-        const auto text = trim(fields[*columns_.timestamp]);
+        const auto text = trim_field(fields[*columns_.timestamp]);
         if (text.empty()) return reject_row("empty timestamp");
         const auto parsed = parse_timestamp(text);
         if (!parsed)
@@ -734,18 +769,6 @@ void Ingest::clear_stale_rejects() {
     else summary_.stale_rejects = fmt::format("left {} ({})", path, ec ? ec.message() : "not removed");
 }
 
-// Whether the first row is a header: as declared; yes when a column is
-// named; otherwise yes when its rating field is not a number.
-bool Ingest::detect_header(const std::vector<std::string>& first) const {
-    if (options_.has_header) return *options_.has_header;
-    const auto named = [](const std::string& s) { return !s.empty() && !all_digits(s); };
-    if (named(options_.user_column) || named(options_.item_column) || named(options_.rating_column) ||
-        named(options_.timestamp_column))
-        return true;
-    const size_t rating_index = options_.rating_column.empty() ? 2 : column_index(options_.rating_column);
-    return rating_index < first.size() && !parse_number(first[rating_index]).has_value();
-}
-
 // The columns come from the names a query declares, or from a file's first
 // non-blank row (data unless it is a header); every later row is kept,
 // rejected or merged.
@@ -764,12 +787,12 @@ void Ingest::read_rows(RowSource& source) {
         if (!row.problem.empty())
             throw DataError(fmt::format("{}: {}; the first row must be readable to find the columns; fix that line",
                                         where(row.position), row.problem));
-        for (auto f : row.fields) first.emplace_back(trim(f));
-        has_header = detect_header(first);
+        for (auto f : row.fields) first.emplace_back(trim_field(f));
+        has_header = detect_header(options_, first);
         first_position = row.position;
     }
     summary_.had_header = has_header;
-    columns_ = resolve_columns(first, has_header, first_position);
+    columns_ = resolve_columns(options_, first, has_header, where(first_position));
     expected_fields_ = first.size();
     keep_timestamps_ = columns_.timestamp.has_value() && options_.duplicates == DuplicatePolicy::latest;
 
@@ -839,6 +862,12 @@ IngestResult Ingest::run() {
 }  // namespace
 
 IngestResult ingest_ratings(const IngestOptions& options) { return Ingest(options).run(); }
+
+CustomerColumn choose_customer_column(const IngestOptions& options, const std::vector<std::string>& first,
+                                      const std::string& where) {
+    const bool has_header = detect_header(options, first);
+    return CustomerColumn{has_header, *resolve_roles(options, first, has_header, where, true)[1]};
+}
 
 bool is_rejects_file(const std::string& path) {
     std::unique_ptr<std::FILE, int (*)(std::FILE*)> file(std::fopen(path.c_str(), "rb"), &std::fclose);

@@ -46,6 +46,8 @@
 #include <functional>
 #include <optional>
 #include <string>
+#include <string_view>
+#include <vector>
 
 #include "model/data/ratings.hpp"
 
@@ -146,6 +148,11 @@ IngestResult ingest_ratings(const IngestOptions& options);
 // lines were skipped, and what became of a stale rejects file.
 std::string describe(const IngestSummary& summary);
 
+// A field as ingest reads it (an id, a rating, a timestamp, a header name):
+// without the spaces and tabs around it; nothing else is removed. Returns a
+// view into `field`.
+std::string_view trim_field(std::string_view field);
+
 // Whether `path` names a file that begins with a rejects file's header line
 // ("line<TAB>reason<TAB>record" or "row<TAB>reason<TAB>record", then LF), the
 // only kind of file Credence overwrites or removes at a rejects path. False
@@ -162,5 +169,28 @@ bool is_rejects_file(const std::string& path);
 // catalogue reader call it before the first row and again before they write
 // rejects.
 void check_rejects_target(const std::string& path, const std::string& remedy);
+
+// Where a file's customer ids are, as ingest_ratings finds them.
+struct CustomerColumn {
+    bool has_header = false;  // the first non-blank record is a header, not a row
+    size_t index = 0;         // 0-based column of the customer (user) id
+};
+
+// The customer column of a file whose first non-blank record has the fields
+// `first` (each trimmed with trim_field), for tools that need no other
+// column (credence forget). Whenever ingest_ratings would accept the same
+// options and record, the answer is the one it uses: the header detected or
+// taken from options.has_header by the same rule, the column chosen by the
+// same rules with the other roles' choices taken first where ingest takes
+// them first. A problem with another role's column (none recognised, an
+// index out of range) is no error here. Reads only has_header and the four
+// column specs of `options`. `where` names the record in messages
+// ("export.csv, line 1"). Throws DataError as ingest_ratings does when the
+// customer column itself cannot be chosen (a named column absent, a name
+// without a header, an index out of range, no default match, a column
+// already chosen for another role); messages quote a header's names, never
+// the fields of a data row (they may hold a customer id).
+CustomerColumn choose_customer_column(const IngestOptions& options, const std::vector<std::string>& first,
+                                      const std::string& where);
 
 }  // namespace credence

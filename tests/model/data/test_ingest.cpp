@@ -1,7 +1,8 @@
 // Tests for model/ingest: format detection, column choice, every reject
 // reason with its line number, duplicate policies, the reject limit, the
 // accounting invariant on messy input, the fingerprint, the open dataset,
-// and rejects written or removed only over a rejects file.
+// rejects written or removed only over a rejects file, and the customer
+// column and id trimming that forget shares.
 #include <catch2/catch.hpp>
 #include <sys/stat.h>
 
@@ -794,4 +795,52 @@ TEST_CASE("a rejects file from an earlier run is overwritten by new rejects and 
     }
     CHECK_FALSE(is_rejects_file((dir / "absent.tsv").string()));
     CHECK_FALSE(is_rejects_file(clean.string()));
+}
+
+TEST_CASE("the customer column is chosen as ingest chooses it, and another role's problem is no error there") {
+    IngestOptions o;
+    // Header detected from the rating field; defaults by name.
+    auto c = choose_customer_column(o, {"sku", "customer", "stars"}, "x.csv, line 1");
+    CHECK(c.has_header);
+    CHECK(c.index == 1);
+    // A rating column that contains "user" is taken first, as ingest takes it.
+    c = choose_customer_column(o, {"user_score", "customer_ref", "item"}, "x.csv, line 1");
+    CHECK(c.index == 1);
+    // No header: index 0, or the one given, even when the product default would collide with it.
+    c = choose_customer_column(o, {"c-1", "p-1", "4"}, "x.csv, line 1");
+    CHECK_FALSE(c.has_header);
+    CHECK(c.index == 0);
+    o.user_column = "1";
+    c = choose_customer_column(o, {"p-1", "c-1", "4"}, "x.csv, line 1");
+    CHECK_FALSE(c.has_header);
+    CHECK(c.index == 1);
+    // The rating column given decides the header as it does for ingest.
+    IngestOptions r;
+    r.rating_column = "3";
+    CHECK_FALSE(choose_customer_column(r, {"c-1", "p-1", "2024-01-02", "4"}, "x.csv, line 1").has_header);
+    // Without it the date in field 2 makes that row look like a header, whose names match no role.
+    CHECK_THROWS_AS(choose_customer_column(IngestOptions{}, {"c-1", "p-1", "2024-01-02", "4"}, "x.csv, line 1"),
+                    DataError);
+    // An index out of range is a DataError naming the option, without quoting a data row.
+    o.user_column = "5";
+    try {
+        choose_customer_column(o, {"c-00001", "p-1", "4", "2024-01-02"}, "x.csv, line 1");
+        FAIL("expected a DataError");
+    } catch (const DataError& e) {
+        CHECK_THAT(e.what(), Catch::Contains("index 5 is out of range") && Catch::Contains("--customer-column") &&
+                                 Catch::Contains("x.csv, line 1"));
+        CHECK_THAT(e.what(), !Catch::Contains("c-00001"));
+    }
+    // The same row through the whole ingest: the same message, no id in it.
+    const auto dir = testing::scratch_dir("ingest_customer_column");
+    auto full = options_for(write_file(dir, "bare.csv", "c-00001,p-1,4,2024-01-02\n"));
+    full.user_column = "5";
+    CHECK_THROWS_WITH(ingest_ratings(full), Catch::Contains("index 5 is out of range") && !Catch::Contains("c-00001"));
+}
+
+TEST_CASE("a field is trimmed of spaces and tabs only") {
+    CHECK(trim_field(" \tc-00001 \t") == "c-00001");
+    CHECK(trim_field("c 00001") == "c 00001");
+    CHECK(trim_field("\xC2\xA0" "c") == "\xC2\xA0" "c");  // a no-break space is part of the id
+    CHECK(trim_field("  ").empty());
 }
