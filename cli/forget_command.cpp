@@ -9,15 +9,24 @@
 // --header/--no-header as fit), and a customer field is compared after
 // ingest's trimming of the spaces and tabs around it (trim_field).
 //
-// The file is rewritten through a temporary file in the same directory and
-// renamed over the original, so a failure leaves it as it was. CSV exports
-// only: a database source (sqlite:PATH, postgresql://) is read-only to
-// Credence, so forget refuses it and says to delete the rows in the
-// database. Erasure is complete only after a refit (README, "Security and
-// privacy").
+// The file is rewritten through a temporary file in the real file's own
+// directory (symbolic links are followed, so a link keeps pointing at the
+// cleaned export) and renamed over it, so a failure leaves it as it was. The
+// temporary file is created readable by its owner only and given the
+// original's owner, group and permission bits before any row is written: the
+// export never becomes readable by more people than before. A file with
+// several names (hard links) is refused, since the other names would keep
+// the rows. CSV exports only: a database source (sqlite:PATH,
+// postgresql://) is read-only to Credence, so forget refuses it and says to
+// delete the rows in the database. Erasure is complete only after a refit
+// (README, "Security and privacy").
+#include <fcntl.h>
+#include <sys/stat.h>
 #include <unistd.h>
 
+#include <cerrno>
 #include <cstdio>
+#include <cstring>
 #include <filesystem>
 #include <iostream>
 #include <memory>
@@ -138,37 +147,96 @@ void check_flags(const ForgetFlags& f) {
     }
 }
 
+// Gives the open temporary file `fd` the owner, group and permission bits of
+// the export (`original`), so the rewritten export is readable by exactly
+// whom the original was. Throws FileError when that cannot be done.
+void copy_access(int fd, const struct stat& original, const std::string& path) {
+    struct stat now {};
+    if (::fstat(fd, &now) != 0) throw FileError(path + ": cannot check the rewritten copy: " + std::strerror(errno));
+    if ((now.st_uid != original.st_uid || now.st_gid != original.st_gid) &&
+        ::fchown(fd, original.st_uid, original.st_gid) != 0)
+        throw FileError(path + ": cannot give the rewritten export the file's owner and group (" +
+                        std::strerror(errno) +
+                        "); nothing was changed. Run forget as the file's owner (or as root), so the export "
+                        "keeps who may read it");
+    if (::fchmod(fd, original.st_mode & 07777) != 0)
+        throw FileError(path + ": cannot give the rewritten export the file's permissions (" + std::strerror(errno) +
+                        "); nothing was changed");
+}
+
 int run_forget(const ForgetFlags& f) {
     check_flags(f);
-    File in(std::fopen(f.path.c_str(), "rb"), &std::fclose);
-    if (!in) throw FileError(f.path + ": cannot open for reading");
-    const std::filesystem::path target(f.path);
-    const std::filesystem::path temp =
+    namespace fs = std::filesystem;
+    // The export itself, through any symbolic links: it is rewritten in its
+    // own directory, and the links keep pointing at it.
+    std::error_code ec;
+    const fs::path target = fs::canonical(f.path, ec);
+    if (ec) throw FileError(f.path + ": cannot open for reading (" + ec.message() + "); check the path");
+    struct stat original {};
+    if (::stat(target.c_str(), &original) != 0)
+        throw FileError(f.path + ": cannot open for reading (" + std::strerror(errno) + "); check the path");
+    if (!S_ISREG(original.st_mode))
+        throw FileError(f.path + " is not a regular file; forget rewrites a ratings export file, pass its path");
+    if (original.st_nlink > 1)
+        throw FileError(f.path + " has " + std::to_string(original.st_nlink) +
+                        " names (hard links), and rewriting it would leave the customer's rows under the other "
+                        "names; nothing was changed. Remove the other names (find them with find -samefile), "
+                        "then run forget again");
+    File in(std::fopen(target.c_str(), "rb"), &std::fclose);
+    if (!in) throw FileError(f.path + ": cannot open for reading (" + std::strerror(errno) + ")");
+    const fs::path temp =
         target.parent_path() / ("." + target.filename().string() + ".forget-" + std::to_string(::getpid()));
-    File out(std::fopen(temp.c_str(), "wb"), &std::fclose);
-    if (!out) throw FileError(temp.string() + ": cannot create the rewritten export next to " + f.path);
+    const int fd = ::open(temp.c_str(), O_WRONLY | O_CREAT | O_EXCL | O_CLOEXEC, 0600);
+    if (fd < 0 && errno == EEXIST)
+        throw FileError(temp.string() + " exists: an interrupted forget left it; delete it (it holds ratings) and "
+                        "run forget again");
+    if (fd < 0)
+        throw FileError(temp.string() + ": cannot create the rewritten export next to " + target.string() + " (" +
+                        std::strerror(errno) + "); the folder must be writable");
+    File out(::fdopen(fd, "wb"), &std::fclose);
+    if (!out) {
+        ::close(fd);
+        fs::remove(temp, ec);
+        throw FileError(temp.string() + ": cannot write the rewritten export");
+    }
     Outcome o;
     try {
+        copy_access(fd, original, f.path);
         o = copy_without(f, in.get(), out.get());
-        if (std::fflush(out.get()) != 0 || ::fsync(::fileno(out.get())) != 0)
-            throw FileError(temp.string() + ": write failed (disk full?)");
+        if (std::fflush(out.get()) != 0 || ::fsync(fd) != 0)
+            throw FileError(temp.string() + ": write failed (disk full?); " + f.path + " is unchanged");
     } catch (...) {
         out.reset();
-        std::filesystem::remove(temp);
+        fs::remove(temp, ec);
         throw;
     }
-    out.reset();
+    if (std::fclose(out.release()) != 0) {
+        fs::remove(temp, ec);
+        throw FileError(temp.string() + ": write failed (disk full?); " + f.path + " is unchanged");
+    }
     if (o.rows_removed == 0) {
-        std::filesystem::remove(temp);
+        fs::remove(temp, ec);
         std::cout << f.path << ": the customer has no rows here; nothing removed (" << o.rows_kept
                   << " rows checked)\n";
         return 0;
     }
-    std::filesystem::rename(temp, target);
+    if (::rename(temp.c_str(), target.c_str()) != 0) {
+        const std::string why = std::strerror(errno);
+        fs::remove(temp, ec);
+        throw FileError(target.string() + ": cannot replace it with the rewritten export (" + why + "); " + f.path +
+                        " is unchanged");
+    }
+    // Makes the rename itself durable; the data is already synced, so a
+    // failure here only risks the old file reappearing after a crash.
+    if (const int dir = ::open(target.parent_path().c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC); dir >= 0) {
+        ::fsync(dir);
+        ::close(dir);
+    }
     // The customer id is not printed: this output may end up in logs.
     std::cout << f.path << ": removed " << o.rows_removed << " rows (" << o.lines_removed
-              << " lines) of the customer; " << o.rows_kept
-              << " rows kept. Lines end in LF now. Refit and reload the model to finish the erasure.\n";
+              << " lines) of the customer; " << o.rows_kept << " rows kept";
+    if (fs::is_symlink(f.path, ec)) std::cout << " (rewritten at " << target.string() << ", where the link points)";
+    std::cout << ". Lines end in LF now. Refit and reload the model to finish the erasure.\n";
     return 0;
 }
 

@@ -3,7 +3,8 @@
 // without naming the customer, and leaves the file alone when it has nothing.
 // It matches rows as ingest reads them (ids trimmed, the header and customer
 // column found by ingest's rules, so files fit --holdout-out writes work),
-// and refuses an out-of-range column.
+// keeps the file's permissions, rewrites the real file behind a symbolic
+// link, and refuses an out-of-range column or a file with other names.
 #include <catch2/catch.hpp>
 
 #include <filesystem>
@@ -29,6 +30,8 @@ std::string slurp(const std::filesystem::path& path) {
     s << in.rdbuf();
     return s.str();
 }
+
+fs::perms access_bits(const fs::path& path) { return fs::status(path).permissions() & fs::perms::all; }
 
 // Whether a refit would still see `customer` in `path`: ingest it as fit does.
 bool ingest_sees(const fs::path& path, const std::string& customer) {
@@ -93,6 +96,60 @@ TEST_CASE("forget refuses a database source and says to delete the rows in the d
         CHECK(r.err.find("tf-0007") == std::string::npos);
     }
     CHECK_FALSE(std::filesystem::exists(dir / "shop.db"));
+}
+
+TEST_CASE("forget keeps the export's permissions: a file only its owner may read stays so") {
+    const auto dir = scratch_dir("forget_command_mode");
+    for (const auto mode : {fs::perms::owner_read | fs::perms::owner_write,
+                            fs::perms::owner_read | fs::perms::owner_write | fs::perms::group_read}) {
+        const auto path = dir / "ratings.csv";
+        std::ofstream(path, std::ios::binary) << "customer_id,product_sku,stars\nc-00001,tea-0001,4\nc-00002,tea-0001,5\n";
+        fs::permissions(path, mode);
+        const auto r = run_credence("forget --ratings " + quoted(path) + " --customer c-00001");
+        INFO(r.err);
+        REQUIRE(r.exit_code == 0);
+        CHECK(r.out.find("removed 1 rows") != std::string::npos);
+        CHECK(slurp(path) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\n");
+        CHECK(access_bits(path) == mode);
+        CHECK(fs::directory_iterator(dir)->path() == path);  // no temporary file left beside it
+    }
+}
+
+TEST_CASE("forget through a symbolic link cleans the real export and the link keeps pointing at it") {
+    const auto dir = scratch_dir("forget_command_link");
+    fs::create_directories(dir / "exports");
+    const auto real = dir / "exports" / "ratings.csv";
+    std::ofstream(real, std::ios::binary) << "customer_id,product_sku,stars\nc-00001,tea-0001,4\nc-00002,tea-0001,5\n"
+                                             "c-00001,tea-0002,3\n";
+    fs::permissions(real, fs::perms::owner_read | fs::perms::owner_write);
+    const auto link = dir / "latest.csv";
+    fs::create_symlink(fs::path("exports") / "ratings.csv", link);
+    const auto r = run_credence("forget --ratings " + quoted(link) + " --customer c-00001");
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    CHECK(r.out.find("removed 2 rows") != std::string::npos);
+    CHECK(r.out.find("rewritten at " + fs::canonical(real).string()) != std::string::npos);
+    REQUIRE(fs::is_symlink(link));
+    CHECK(fs::read_symlink(link) == fs::path("exports") / "ratings.csv");
+    CHECK(slurp(real) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\n");
+    CHECK(access_bits(real) == (fs::perms::owner_read | fs::perms::owner_write));
+    CHECK_FALSE(ingest_sees(real, "c-00001"));
+    // Nothing was left in either folder but the export and the link.
+    CHECK(std::distance(fs::directory_iterator(dir / "exports"), fs::directory_iterator()) == 1);
+}
+
+TEST_CASE("forget refuses an export with several names, since the other names would keep the rows") {
+    const auto dir = scratch_dir("forget_command_hard_link");
+    const auto path = dir / "ratings.csv";
+    const std::string text = "customer_id,product_sku,stars\nc-00001,tea-0001,4\nc-00002,tea-0001,5\n";
+    std::ofstream(path, std::ios::binary) << text;
+    fs::create_hard_link(path, dir / "backup.csv");
+    const auto r = run_credence("forget --ratings " + quoted(path) + " --customer c-00001");
+    CHECK(r.exit_code == 1);
+    CHECK(r.err.find("hard links") != std::string::npos);
+    CHECK(r.err.find("c-00001") == std::string::npos);
+    CHECK(slurp(path) == text);
+    CHECK(fs::equivalent(path, dir / "backup.csv"));
 }
 
 TEST_CASE("forget matches ids as ingest reads them: spaces and tabs around an id do not hide its rows") {
