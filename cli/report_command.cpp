@@ -71,7 +71,7 @@ int run_report(const ReportFlags& f) {
         eo.relevance_threshold = f.relevance_threshold;
         in.validation = evaluate(PredictionEngine(posterior), v.ratings, eo);
         require_scored(*in.validation, f.model, f.validation);
-        in.validation_name = f.validation;
+        in.validation_name = std::filesystem::path(f.validation).filename().string();  // as the model's: no path
     }
     if (!f.comparison.empty()) {
         std::ifstream file(f.comparison);

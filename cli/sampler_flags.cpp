@@ -93,7 +93,8 @@ void add_sampler_flags(CLI::App& cmd, SamplerFlags& f, RankFlag rank) {
         ->check(CLI::Range(0u, 1000000u))->capture_default_str()->group(kGroup);
     f.thin_flag = cmd.add_option("--thin", o.thin, "Fixed runs: sweeps between kept draws")
         ->check(CLI::Range(1u, 10000u))->capture_default_str()->group(kGroup);
-    cmd.add_option("--chains", o.chains, "Independent chains per fit (at least 2 for the convergence checks)")
+    cmd.add_option("--chains", o.chains, "Independent chains per fit (R-hat compares chains; with 1 it compares the halves of the one chain, which "
+                   "misses a chain stuck in one mode)")
         ->check(CLI::Range(1u, 64u))->capture_default_str()->group(kGroup);
     cmd.add_option("--seed", o.seed,
                    "Random seed for the chains and any held-out split; the same seed gives the same samples on any "
@@ -203,6 +204,7 @@ FitOptions to_fit_options(const SamplerFlags& f) {
         options.sample_noise = false;
         options.fixed_noise_precision = *f.fixed_noise_precision;
     }
+    check_fit_options(options);  // before any data is read
     return options;
 }
 

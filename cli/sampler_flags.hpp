@@ -67,7 +67,9 @@ void add_sampler_flags(CLI::App& cmd, SamplerFlags& flags, RankFlag rank);
 // the noise precision fixed under --fixed-noise-precision and the time limit
 // in seconds. The rank is FitOptions{}.rank's unless --rank gives one (see
 // rank_request). Throws OptionError when --burn-in or --thin is given for a
-// converged run (they apply to fixed runs only).
+// converged run, --max-sweeps or --time-limit for a fixed one, or when
+// check_fit_options (model/fit/sampler.hpp) refuses the result, so every
+// such mistake stops the command before it reads any data.
 FitOptions to_fit_options(const SamplerFlags& flags);
 
 }  // namespace credence::cli

@@ -26,7 +26,7 @@ struct ReportInputs {
     const Posterior* posterior = nullptr;      // required; must pass Posterior::validate()
     std::string model_name;                    // shown in the header (the file's name; never a path)
     std::optional<EvaluationReport> validation;
-    std::string validation_name;               // shown with the calibration section
+    std::string validation_name;               // shown with the calibration section; a file name, never a path
     std::optional<ComparisonResult> comparison;
     uint32_t max_probe_plots = 6;              // probe prediction traces drawn (of up to 20 probes)
 };

@@ -211,6 +211,14 @@ std::vector<double> EvaluationOptions::default_curve_levels() {
 EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options) {
     check_options(options);
     const Posterior& p = engine.posterior();
+    // A threshold outside the scale makes every rating relevant, or none:
+    // the ranking figures would be 1 or NaN and mean nothing.
+    if (options.ranking && !(options.relevance_threshold > p.scale.min && options.relevance_threshold <= p.scale.max))
+        throw OptionError(fmt::format("--relevance-threshold {:g} is outside the model's rating scale ({:g}, {:g}], so "
+                                      "{} rating could count as relevant; give a rating value that means liked, such "
+                                      "as 4 on a 1 to 5 scale",
+                                      options.relevance_threshold, p.scale.min, p.scale.max,
+                                      options.relevance_threshold > p.scale.max ? "no" : "every"));
     const auto user_of = translate(test.users, IdMap::from_names(p.user_ids));
     const auto item_of = translate(test.items, IdMap::from_names(p.item_ids));
     const PairScores scores = score_pairs(engine, test, options, user_of, item_of);

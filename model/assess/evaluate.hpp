@@ -98,8 +98,9 @@ struct EvaluationReport {
 // Needs: test ids are external strings, mapped by name to the posterior's
 // users and items. Parallel over pairs (OpenMP); the result does not depend
 // on the thread count. Throws OptionError for a coverage or curve level
-// outside (0, 1), pit_bins or ranking_k of 0, a non-finite relevance
-// threshold or a ranking level outside (0, 1), before any work.
+// outside (0, 1), pit_bins or ranking_k of 0, a relevance threshold that is
+// not finite or (with ranking) not within the model's scale (min, max], or a
+// ranking level outside (0, 1), before any work.
 EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test, const EvaluationOptions& options);
 
 // Refuses a report that scored nothing (every pair had a customer or product

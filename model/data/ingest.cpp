@@ -338,17 +338,17 @@ private:
 // ---- columns
 
 struct ColumnRole {
-    const char* what;    // "user", "item", ...
+    const char* what;    // "customer", "product", ... (the shop's words, as the flags)
     const char* option;  // the command-line option that sets it
     std::vector<std::string_view> exact;     // normalized names that match outright
     std::vector<std::string_view> contains;  // normalized fragments that match otherwise
 };
 
-const ColumnRole kUserRole{"user", "--customer-column",
+const ColumnRole kUserRole{"customer", "--customer-column",
                            {"user", "userid", "customer", "customerid", "client", "clientid", "buyer", "buyerid",
                             "shopper", "shopperid", "member", "memberid", "account", "accountid", "uid"},
                            {"user", "customer"}};
-const ColumnRole kItemRole{"item", "--product-column",
+const ColumnRole kItemRole{"product", "--product-column",
                            {"item", "itemid", "product", "productid", "sku", "article", "articleid", "movie",
                             "movieid", "book", "bookid", "iid"},
                            {"item", "product", "sku"}};
@@ -420,7 +420,7 @@ std::optional<size_t> resolve(const std::string& spec, const ColumnRole& role, c
         if (*index >= first.size())
             throw DataError(fmt::format("{}: {} column index {} is out of range: the {} has {} fields{}; "
                                         "pass {} with a 0-based index below {}",
-                                        where, role.what, *index, has_header ? "header" : "first row",
+                                        where, role.what, spec, has_header ? "header" : "first row",
                                         first.size(), header_names(first, has_header), role.option, first.size()));
     } else if (!spec.empty()) {
         if (!has_header)

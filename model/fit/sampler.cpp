@@ -30,9 +30,10 @@ namespace credence {
 
 namespace {
 
-// An option value the sampler cannot work with: the user's to fix.
+// An option value the sampler cannot work with: the user's to fix. The
+// message names the flag; the command in front of it adds its own name.
 void require_option(bool ok, const std::string& message) {
-    if (!ok) throw OptionError("fit: " + message);
+    if (!ok) throw OptionError(message);
 }
 
 // A broken promise of the caller (see fit_bpmf in model/fit/sampler.hpp).
@@ -42,9 +43,11 @@ void require_input(bool ok, const std::string& message) {
 
 bool positive_finite(double v) { return v > 0.0 && std::isfinite(v); }
 
+}  // namespace
+
 // Options come from the command line (fit, compare); the flag is named
 // where there is one.
-void validate_options(const FitOptions& o) {
+void check_fit_options(const FitOptions& o) {
     require_option(o.rank > 0, "--rank must be at least 1");
     require_option(o.samples > 0, "--samples must be at least 1");
     require_option(o.thin > 0, "--thin must be at least 1");
@@ -75,6 +78,8 @@ void validate_options(const FitOptions& o) {
     require_option(positive_finite(p.bias_shape) && positive_finite(p.bias_rate),
                    "the bias prior's shape and rate must be positive and finite");
 }
+
+namespace {
 
 nlohmann::json options_json(const FitOptions& o) {
     return {{"rank", o.rank},
@@ -590,7 +595,7 @@ FitResult fit_bpmf(const RatingSet& train, const FitOptions& requested, const st
                    const std::function<void(const FitProgress&)>& on_progress, const WarmStart* warm) {
     using clock = std::chrono::steady_clock;
     const auto start = clock::now();
-    validate_options(requested);
+    check_fit_options(requested);
     const FitOptions options = resolve_init_scale(requested, train);
     require_input(!train.ratings.empty(), "the training set is empty");
     const auto by_user = csr_by_user(train);

@@ -174,6 +174,11 @@ struct FitResult {
 //                         training set's shape (bugs in the caller);
 //   std::logic_error      the posterior it built fails Posterior::validate()
 //                         (a bug in the sampler).
+// Throws OptionError, naming the flag, for options fit_bpmf cannot run with
+// (the first case of fit_bpmf's OptionError below); returns normally
+// otherwise. The command line calls it before reading any data.
+void check_fit_options(const FitOptions& options);
+
 FitResult fit_bpmf(const RatingSet& train, const FitOptions& options,
                    const std::vector<Rating>* validation = nullptr,
                    const std::function<void(const FitProgress&)>& on_progress = {},

@@ -963,6 +963,11 @@ TEST_CASE("a fixed-length run refuses the converged run's budgets, and compare's
         CHECK(c.err.find("applies to --run-length converged") != std::string::npos);
     }
     CHECK_FALSE(fs::exists(dir / "m.posterior"));
+    // Options the sampler cannot run with stop the command before it reads the ratings.
+    const auto budget = run_credence("fit --ratings " + quoted(d.ratings) + " --scale 1:5 --samples 50 --max-sweeps 60 "
+                                     "--out " + quoted(dir / "m.posterior"));
+    CHECK(budget.exit_code == 2);
+    CHECK(budget.err.rfind("credence fit: --max-sweeps must be at least 2 x --samples", 0) == 0);
     const auto folds = run_credence("compare --ratings " + quoted(d.ratings) + " --scale 1:5 --folds 2 --holdout 0.5");
     CHECK(folds.exit_code == 2);
     CHECK(folds.err.find("each fold holds out 1/2") != std::string::npos);

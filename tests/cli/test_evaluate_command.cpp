@@ -160,3 +160,14 @@ TEST_CASE("evaluate reads held-out ratings from a SQLite database like the same 
     CHECK(no_query.exit_code == 2);
     CHECK(no_query.err.find("--query") != std::string::npos);
 }
+
+TEST_CASE("evaluate refuses a relevance threshold outside the model's scale instead of printing empty ranking figures") {
+    for (const char* threshold : {"99", "1", "0.5"}) {
+        INFO(threshold);
+        const auto r = run_credence("evaluate --model " + quoted(shop().model) + " --ratings " +
+                                    quoted(shop().held_out) + " --relevance-threshold " + threshold);
+        CHECK(r.exit_code == 2);
+        CHECK(r.err.find("outside the model's rating scale (1, 5]") != std::string::npos);
+        CHECK(r.out.find("nan") == std::string::npos);
+    }
+}
