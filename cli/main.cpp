@@ -56,7 +56,16 @@ bool report_unknown_subcommand(const CLI::App& app, int argc, char** argv) {
         return true;
     }
     const std::string_view first = argv[1];
-    if (first.empty() || first.front() == '-') return false;
+    if (first.empty()) return false;
+    if (first.front() == '-') {
+        // --help and --version are the program's own; anything else before
+        // the subcommand is a flag of none.
+        const std::string name(first.substr(0, first.find('=')));
+        if (app.get_option_no_throw(name) != nullptr) return false;
+        std::cerr << "credence: " << name << " is not an option of credence itself; give a subcommand first, one of: "
+                  << subcommand_list(app) << "\nRun credence --help for what each does.\n";
+        return true;
+    }
     for (const CLI::App* sub : app.get_subcommands({}))
         if (sub->check_name(std::string(first))) return false;
     std::cerr << "credence: '" << first << "' is not a subcommand; use one of: " << subcommand_list(app)

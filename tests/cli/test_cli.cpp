@@ -744,6 +744,10 @@ TEST_CASE("exit codes follow the error taxonomy: 0 ok, 1 data or file, 2 usage")
         const auto none = run_credence("");
         CHECK(none.exit_code == 2);
         CHECK(none.err.find("give a subcommand") != std::string::npos);
+        const auto flag_first = run_credence("--ratings x.csv fit");
+        CHECK(flag_first.exit_code == 2);
+        CHECK(flag_first.err.find("--ratings is not an option of credence itself; give a subcommand first") !=
+              std::string::npos);
     }
     SECTION("an impossible option value is a usage error naming the option") {
         const auto r = run_credence("fit --ratings " + ratings + " --out " + quoted(dir / "never.posterior") + " --rank 0");
