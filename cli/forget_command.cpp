@@ -35,6 +35,7 @@
 #include <vector>
 
 #include "cli/commands.hpp"
+#include "cli/ingest_flags.hpp"
 #include "model/data/csv_reader.hpp"
 #include "model/data/ingest.hpp"
 #include "model/data/postgresql_source.hpp"
@@ -45,38 +46,26 @@ namespace credence::cli {
 namespace {
 
 struct ForgetFlags {
-    std::string path;
     std::string customer;
-    // As for fit: header names or 0-based indices; "" = found as ingest finds them.
-    std::string customer_column, product_column, rating_column, timestamp_column;
-    std::string delimiter;                // "" = detected
-    bool no_header = false;
-    bool header = false;
+    // The file and how to read it, as for fit: path, delimiter, header and
+    // column flags (header names or 0-based indices; "" = found as ingest
+    // finds them). The other ingest flags stay at their defaults.
+    IngestFlags file;
 };
 
 using File = std::unique_ptr<std::FILE, int (*)(std::FILE*)>;
 
-char delimiter_of(const ForgetFlags& f, CsvReader& reader) {
-    if (f.delimiter == "tab") return '\t';
-    if (f.delimiter == "," || f.delimiter == ";" || f.delimiter == "|") return f.delimiter[0];
-    if (!f.delimiter.empty()) throw OptionError("--delimiter must be ',', ';', '|' or 'tab', not '" + f.delimiter + "'");
+char delimiter_of(const ForgetFlags& f, const IngestOptions& options, CsvReader& reader) {
+    if (options.delimiter) return *options.delimiter;
     const auto found = detect_delimiter(reader.peek());
-    if (!found) throw DataError(f.path + ": no field delimiter found; give --delimiter");
+    if (!found) throw DataError(f.file.path + ": no field delimiter found; give --delimiter");
     return *found;
 }
 
-// The options ingest would read the columns with (only the header and the
-// column choices matter here).
-IngestOptions column_options(const ForgetFlags& f) {
-    IngestOptions o;
-    if (f.no_header) o.has_header = false;
-    if (f.header) o.has_header = true;
-    o.user_column = f.customer_column;
-    o.item_column = f.product_column;
-    o.rating_column = f.rating_column;
-    o.timestamp_column = f.timestamp_column;
-    return o;
-}
+// The options ingest would read the file with (only the delimiter, the
+// header and the column choices matter here). Throws OptionError for a bad
+// --delimiter.
+IngestOptions column_options(const ForgetFlags& f) { return to_ingest_options(f.file); }
 
 bool blank(const CsvRecord& record) {
     return record.problem == CsvProblem::none && record.raw.find_first_not_of(" \t") == std::string_view::npos;
@@ -90,18 +79,18 @@ struct Outcome {
 // ingest trims it, is `customer`. The header and blank lines are kept;
 // malformed records are kept as they are (the ingest reports them).
 Outcome copy_without(const ForgetFlags& f, std::FILE* in, std::FILE* out) {
+    const IngestOptions options = column_options(f);
     CsvReader reader(in);
-    reader.set_delimiter(delimiter_of(f, reader));
+    reader.set_delimiter(delimiter_of(f, options, reader));
     reader.peek();  // reads past any byte-order mark, so had_bom() knows
     if (reader.had_bom()) std::fputs("\xEF\xBB\xBF", out);
-    const IngestOptions options = column_options(f);
     Outcome o;
     CsvRecord record;
     std::optional<CustomerColumn> column;  // known from the first non-blank record on
     while (reader.next(record)) {
         bool is_header = false;
         if (!column && !blank(record)) {
-            const std::string where = f.path + ", line " + std::to_string(record.line);
+            const std::string where = f.file.path + ", line " + std::to_string(record.line);
             if (record.problem != CsvProblem::none)
                 throw DataError(where + ": " + describe(record.problem) +
                                 "; the first row must be readable to find the columns; fix that line");
@@ -131,15 +120,15 @@ void check_flags(const ForgetFlags& f) {
     if (trim_field(f.customer).size() != f.customer.size())
         throw OptionError("--customer has spaces or tabs around the id; ingest drops those from every id, so no "
                           "customer has such an id: pass the id without them");
-    if (is_sqlite_source(f.path) || is_postgresql_source(f.path))
+    if (is_sqlite_source(f.file.path) || is_postgresql_source(f.file.path))
         throw OptionError("--ratings names a database; Credence only reads databases (read-only, through --query), "
                           "so delete the customer's rows there (DELETE ... WHERE <customer column> = the id), then "
                           "refit and reload; POST /v1/admin/forget drops the customer from the served model at once");
-    if (!f.no_header) return;
-    for (const auto& [flag, value] : {std::pair{"--customer-column", &f.customer_column},
-                                      std::pair{"--product-column", &f.product_column},
-                                      std::pair{"--rating-column", &f.rating_column},
-                                      std::pair{"--timestamp-column", &f.timestamp_column}}) {
+    if (!f.file.no_header) return;
+    for (const auto& [flag, value] : {std::pair{"--customer-column", &f.file.customer_column},
+                                      std::pair{"--product-column", &f.file.product_column},
+                                      std::pair{"--rating-column", &f.file.rating_column},
+                                      std::pair{"--timestamp-column", &f.file.timestamp_column}}) {
         const bool name = !value->empty() && value->find_first_not_of("0123456789") != std::string::npos;
         if (name)
             throw OptionError(std::string(flag) + " '" + *value +
@@ -170,20 +159,20 @@ int run_forget(const ForgetFlags& f) {
     // The export itself, through any symbolic links: it is rewritten in its
     // own directory, and the links keep pointing at it.
     std::error_code ec;
-    const fs::path target = fs::canonical(f.path, ec);
-    if (ec) throw FileError(f.path + ": cannot open for reading (" + ec.message() + "); check the path");
+    const fs::path target = fs::canonical(f.file.path, ec);
+    if (ec) throw FileError(f.file.path + ": cannot open for reading (" + ec.message() + "); check the path");
     struct stat original {};
     if (::stat(target.c_str(), &original) != 0)
-        throw FileError(f.path + ": cannot open for reading (" + std::strerror(errno) + "); check the path");
+        throw FileError(f.file.path + ": cannot open for reading (" + std::strerror(errno) + "); check the path");
     if (!S_ISREG(original.st_mode))
-        throw FileError(f.path + " is not a regular file; forget rewrites a ratings export file, pass its path");
+        throw FileError(f.file.path + " is not a regular file; forget rewrites a ratings export file, pass its path");
     if (original.st_nlink > 1)
-        throw FileError(f.path + " has " + std::to_string(original.st_nlink) +
+        throw FileError(f.file.path + " has " + std::to_string(original.st_nlink) +
                         " names (hard links), and rewriting it would leave the customer's rows under the other "
                         "names; nothing was changed. Remove the other names (find them with find -samefile), "
                         "then run forget again");
     File in(std::fopen(target.c_str(), "rb"), &std::fclose);
-    if (!in) throw FileError(f.path + ": cannot open for reading (" + std::strerror(errno) + ")");
+    if (!in) throw FileError(f.file.path + ": cannot open for reading (" + std::strerror(errno) + ")");
     const fs::path temp =
         target.parent_path() / ("." + target.filename().string() + ".forget-" + std::to_string(::getpid()));
     const int fd = ::open(temp.c_str(), O_WRONLY | O_CREAT | O_EXCL | O_CLOEXEC, 0600);
@@ -201,10 +190,10 @@ int run_forget(const ForgetFlags& f) {
     }
     Outcome o;
     try {
-        copy_access(fd, original, f.path);
+        copy_access(fd, original, f.file.path);
         o = copy_without(f, in.get(), out.get());
         if (std::fflush(out.get()) != 0 || ::fsync(fd) != 0)
-            throw FileError(temp.string() + ": write failed (disk full?); " + f.path + " is unchanged");
+            throw FileError(temp.string() + ": write failed (disk full?); " + f.file.path + " is unchanged");
     } catch (...) {
         out.reset();
         fs::remove(temp, ec);
@@ -212,18 +201,18 @@ int run_forget(const ForgetFlags& f) {
     }
     if (std::fclose(out.release()) != 0) {
         fs::remove(temp, ec);
-        throw FileError(temp.string() + ": write failed (disk full?); " + f.path + " is unchanged");
+        throw FileError(temp.string() + ": write failed (disk full?); " + f.file.path + " is unchanged");
     }
     if (o.rows_removed == 0) {
         fs::remove(temp, ec);
-        std::cout << f.path << ": the customer has no rows here; nothing removed (" << o.rows_kept
+        std::cout << f.file.path << ": the customer has no rows here; nothing removed (" << o.rows_kept
                   << " rows checked)\n";
         return 0;
     }
     if (::rename(temp.c_str(), target.c_str()) != 0) {
         const std::string why = std::strerror(errno);
         fs::remove(temp, ec);
-        throw FileError(target.string() + ": cannot replace it with the rewritten export (" + why + "); " + f.path +
+        throw FileError(target.string() + ": cannot replace it with the rewritten export (" + why + "); " + f.file.path +
                         " is unchanged");
     }
     // Makes the rename itself durable; the data is already synced, so a
@@ -233,9 +222,9 @@ int run_forget(const ForgetFlags& f) {
         ::close(dir);
     }
     // The customer id is not printed: this output may end up in logs.
-    std::cout << f.path << ": removed " << o.rows_removed << " rows (" << o.lines_removed
+    std::cout << f.file.path << ": removed " << o.rows_removed << " rows (" << o.lines_removed
               << " lines) of the customer; " << o.rows_kept << " rows kept";
-    if (fs::is_symlink(f.path, ec)) std::cout << " (rewritten at " << target.string() << ", where the link points)";
+    if (fs::is_symlink(f.file.path, ec)) std::cout << " (rewritten at " << target.string() << ", where the link points)";
     std::cout << ". Lines end in LF now. Refit and reload the model to finish the erasure.\n";
     return 0;
 }
@@ -245,16 +234,16 @@ int run_forget(const ForgetFlags& f) {
 Runner add_forget_command(CLI::App& app) {
     auto flags = std::make_shared<ForgetFlags>();
     auto* cmd = app.add_subcommand("forget", "Remove one customer's rows from a ratings export (erasure on request)");
-    cmd->add_option("--ratings", flags->path, "Ratings export (CSV or TSV), rewritten in place")->required();
+    cmd->add_option("--ratings", flags->file.path, "Ratings export (CSV or TSV), rewritten in place")->required();
     cmd->add_option("--customer", flags->customer, "The customer id whose rows go")->required();
-    cmd->add_option("--customer-column", flags->customer_column,
+    cmd->add_option("--customer-column", flags->file.customer_column,
                     "Customer id column, by header name or 0-based index (default: found as fit finds it)");
-    cmd->add_option("--product-column", flags->product_column, "As given to fit, if it was (helps find the customer column)");
-    cmd->add_option("--rating-column", flags->rating_column, "As given to fit, if it was (helps detect the header)");
-    cmd->add_option("--timestamp-column", flags->timestamp_column, "As given to fit, if it was");
-    cmd->add_option("--delimiter", flags->delimiter, "Field delimiter: ',', ';', '|' or 'tab' (default: detected)");
-    auto* nh = cmd->add_flag("--no-header", flags->no_header, "The first row is data, not column names");
-    cmd->add_flag("--header", flags->header, "The first row is column names (default: detected as fit detects it)")
+    cmd->add_option("--product-column", flags->file.product_column, "As given to fit, if it was (helps find the customer column)");
+    cmd->add_option("--rating-column", flags->file.rating_column, "As given to fit, if it was (helps detect the header)");
+    cmd->add_option("--timestamp-column", flags->file.timestamp_column, "As given to fit, if it was");
+    cmd->add_option("--delimiter", flags->file.delimiter, "Field delimiter: ',', ';', '|' or 'tab' (default: detected)");
+    auto* nh = cmd->add_flag("--no-header", flags->file.no_header, "The first row is data, not column names");
+    cmd->add_flag("--header", flags->file.header, "The first row is column names (default: detected as fit detects it)")
         ->excludes(nh);
     return [flags] { return run_forget(*flags); };
 }
