@@ -15,6 +15,7 @@
 
 #include <nlohmann/json.hpp>
 
+#include "tests/support/demo_fit.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/run_command.hpp"
 
@@ -24,27 +25,9 @@ using nlohmann::json;
 
 namespace {
 
-struct Shop {
-    fs::path dir, ratings, model, held_out;
-};
-
 // The demo export, and a short fit holding 10% out (written by --holdout-out).
-const Shop& shop() {
-    static const Shop s = [] {
-        Shop x;
-        x.dir = scratch_dir("evaluate_command");
-        REQUIRE(run_credence("demo-data --out-dir " + quoted(x.dir) + " --customers 300 --products 80 --seed 11")
-                    .exit_code == 0);
-        x.ratings = x.dir / "ratings.csv";
-        x.model = x.dir / "shop.posterior";
-        x.held_out = x.dir / "held-out.csv";
-        const auto fit = run_credence("fit --ratings " + quoted(x.ratings) + " --scale 1:5 --rank 3 --run-length fixed "
-                                      "--burn-in 20 --samples 10 --thin 1 --chains 2 --seed 3 --holdout 0.1 "
-                                      "--holdout-out " + quoted(x.held_out) + " -q --out " + quoted(x.model));
-        INFO(fit.err);
-        REQUIRE(fit.exit_code == 0);
-        return x;
-    }();
+const ShortDemoFit& shop() {
+    static const ShortDemoFit s = short_demo_fit({.scratch = "evaluate_command"});
     return s;
 }
 

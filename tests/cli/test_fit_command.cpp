@@ -19,6 +19,7 @@
 #include <nlohmann/json.hpp>
 
 #include "model/posterior/posterior_file.hpp"
+#include "tests/support/demo_fit.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/run_command.hpp"
 
@@ -68,13 +69,6 @@ std::set<Pair> trained_pairs(const credence::Posterior& p) {
     for (uint32_t u = 0; u < p.num_users; ++u)
         for (const uint32_t i : p.rated_by(u)) out.insert({p.user_ids[u], p.item_ids[i]});
     return out;
-}
-
-std::string slurp(const fs::path& path) {
-    std::ifstream in(path, std::ios::binary);
-    std::stringstream s;
-    s << in.rdbuf();
-    return s.str();
 }
 
 const std::string kShortRun = " --scale 1:5 --rank 3 --run-length fixed --burn-in 20 --samples 10 --thin 1 --chains 2 "
@@ -170,7 +164,7 @@ TEST_CASE("fit --gate exits 3 and leaves the live model alone when the new model
     const auto first = run_credence("fit --ratings " + quoted(demo_ratings()) +
                                     " --scale 1:5 --rank 2 --holdout 0.1 --seed 3 --samples 50 -q --out " + quoted(live));
     REQUIRE(first.exit_code == 0);
-    const std::string live_bytes = slurp(live);
+    const std::string live_bytes = file_bytes(live);
 
     // A far weaker model (one factor, no biases) cut off after 300 sweeps:
     // it neither converges nor predicts as well, and both are reported.
@@ -182,7 +176,7 @@ TEST_CASE("fit --gate exits 3 and leaves the live model alone when the new model
     CHECK(r.err.find("gate: refused to replace") != std::string::npos);
     CHECK(r.err.find("did not converge") != std::string::npos);
     CHECK(r.err.find("more than 2 standard errors of the paired difference") != std::string::npos);
-    CHECK(slurp(live) == live_bytes);
+    CHECK(file_bytes(live) == live_bytes);
     REQUIRE(fs::exists(dir / "live.posterior.candidate"));
     const json gate = json::parse(credence::read_posterior((dir / "live.posterior.candidate").string()).fit_metadata_json)["gate"];
     CHECK(gate["passed"] == false);
@@ -199,14 +193,14 @@ TEST_CASE("fit --gate exits 0 and replaces the live model when the new one conve
     INFO(first.err);
     REQUIRE(first.exit_code == 0);
     CHECK(first.err.find("no live model to compare with") != std::string::npos);
-    const std::string first_bytes = slurp(live);
+    const std::string first_bytes = file_bytes(live);
 
     // Tonight's fit, warm-started from the live model, on the same export.
     const auto again = run_credence(common + " --gate --warm-start " + quoted(live));
     INFO(again.err);
     CHECK(again.exit_code == 0);
     CHECK(again.err.find("gate: passed") != std::string::npos);
-    CHECK(slurp(live) != first_bytes);
+    CHECK(file_bytes(live) != first_bytes);
     CHECK_FALSE(fs::exists(dir / "live.posterior.candidate"));
     const json gate = json::parse(credence::read_posterior(live.string()).fit_metadata_json)["gate"];
     CHECK(gate["passed"] == true);
@@ -277,7 +271,7 @@ TEST_CASE("fit without --rank chooses the rank exactly as compare recommends it,
     CHECK(s["fit"]["rank_choice"]["candidates"] == json({2, 4, 8, 16}));
     const fs::path html = dir / "auto.html";
     REQUIRE(run_credence("report " + quoted(model) + " --out " + quoted(html)).exit_code == 0);
-    const std::string page = slurp(html);
+    const std::string page = file_bytes(html);
     CHECK(page.find("<b>auto of 2, 4, 8, 16</b>rank chosen") != std::string::npos);
     // The choice's table: one row per candidate, the chosen one marked.
     const auto table = page.find("id=\"rank-choice\"");
@@ -376,7 +370,7 @@ TEST_CASE("fit refuses an output that would replace one of its inputs, before re
     const auto dir = scratch_dir("fit_command_overwrite");
     const auto ratings = dir / "ratings.csv";
     fs::copy_file(demo_ratings(), ratings, fs::copy_options::overwrite_existing);
-    const std::string before = slurp(ratings);
+    const std::string before = file_bytes(ratings);
     fs::create_symlink(ratings, dir / "same-ratings.csv");  // another name for the same file
     for (const std::string& flags :
          {" --out " + quoted(ratings), " --out " + quoted(dir / "same-ratings.csv"),
@@ -387,7 +381,7 @@ TEST_CASE("fit refuses an output that would replace one of its inputs, before re
         CHECK(r.exit_code == 2);
         CHECK(r.err.find("writing there would replace an input") != std::string::npos);
         CHECK(r.err.find("read ") == std::string::npos);  // refused before the ratings were read
-        CHECK(slurp(ratings) == before);
+        CHECK(file_bytes(ratings) == before);
     }
     // The nightly loop's --warm-start live --out live stays allowed (checked in the gate tests).
 }
@@ -408,7 +402,7 @@ TEST_CASE("fit checks --holdout-out's folder and the gate's live model before it
     CHECK(damaged.exit_code == 1);
     CHECK(damaged.err.find("not a Credence posterior file") != std::string::npos);
     CHECK(damaged.err.find("fitting") == std::string::npos);
-    CHECK(slurp(live) == "a file that is not a posterior");
+    CHECK(file_bytes(live) == "a file that is not a posterior");
     CHECK(!fs::exists(dir / "live.posterior.candidate"));
 }
 

@@ -15,6 +15,7 @@
 #include "model/data/holdout.hpp"
 #include "model/data/ingest.hpp"
 #include "model/error.hpp"
+#include "tests/support/demo_fit.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/run_command.hpp"
 
@@ -23,13 +24,6 @@ using namespace credence::testing;
 namespace fs = std::filesystem;
 
 namespace {
-
-std::string slurp(const std::filesystem::path& path) {
-    std::ifstream in(path, std::ios::binary);
-    std::stringstream s;
-    s << in.rdbuf();
-    return s.str();
-}
 
 fs::perms access_bits(const fs::path& path) { return fs::status(path).permissions() & fs::perms::all; }
 
@@ -60,7 +54,7 @@ TEST_CASE("forget removes every row of one customer, quoted or multi-line, and k
     CHECK(result.out.find("removed 3 rows (4 lines)") != std::string::npos);
     CHECK(result.out.find("3 rows kept") != std::string::npos);
     CHECK(result.out.find("tf-0007") == std::string::npos);  // the id stays out of the output
-    CHECK(slurp(path) == "customer_id,product_sku,stars\n"
+    CHECK(file_bytes(path) == "customer_id,product_sku,stars\n"
                          "tf-0008,mug-0001,5\n"
                          "tf-0009,\"note\nbook\",2\n"
                          "tf-00070,mug-0002,5\n");
@@ -74,12 +68,12 @@ TEST_CASE("forget by column index on a headerless TSV, and a customer with no ro
     const auto none = run_credence("forget --ratings " + path.string() + " --customer tf-0404 --customer-column 1 --no-header");
     REQUIRE(none.exit_code == 0);
     CHECK(none.out.find("nothing removed") != std::string::npos);
-    CHECK(slurp(path) == text);
+    CHECK(file_bytes(path) == text);
     const auto one = run_credence("forget --ratings " + path.string() + " --customer tf-0002 --customer-column 1 --no-header");
     INFO(one.err);
     REQUIRE(one.exit_code == 0);
     CHECK(one.out.find("removed 1 rows (1 lines)") != std::string::npos);
-    CHECK(slurp(path) == "mug-0001\ttf-0001\t4\n");
+    CHECK(file_bytes(path) == "mug-0001\ttf-0001\t4\n");
     const auto missing_column = run_credence("forget --ratings " + path.string() + " --customer x --customer-column shopper --no-header");
     CHECK(missing_column.exit_code == 2);
     const auto missing_file = run_credence("forget --ratings " + (dir / "absent.csv").string() + " --customer x");
@@ -109,7 +103,7 @@ TEST_CASE("forget keeps the export's permissions: a file only its owner may read
         INFO(r.err);
         REQUIRE(r.exit_code == 0);
         CHECK(r.out.find("removed 1 rows") != std::string::npos);
-        CHECK(slurp(path) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\n");
+        CHECK(file_bytes(path) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\n");
         CHECK(access_bits(path) == mode);
         CHECK(fs::directory_iterator(dir)->path() == path);  // no temporary file left beside it
     }
@@ -131,7 +125,7 @@ TEST_CASE("forget through a symbolic link cleans the real export and the link ke
     CHECK(r.out.find("rewritten at " + fs::canonical(real).string()) != std::string::npos);
     REQUIRE(fs::is_symlink(link));
     CHECK(fs::read_symlink(link) == fs::path("exports") / "ratings.csv");
-    CHECK(slurp(real) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\n");
+    CHECK(file_bytes(real) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\n");
     CHECK(access_bits(real) == (fs::perms::owner_read | fs::perms::owner_write));
     CHECK_FALSE(ingest_sees(real, "c-00001"));
     // Nothing was left in either folder but the export and the link.
@@ -148,7 +142,7 @@ TEST_CASE("forget refuses an export with several names, since the other names wo
     CHECK(r.exit_code == 1);
     CHECK(r.err.find("hard links") != std::string::npos);
     CHECK(r.err.find("c-00001") == std::string::npos);
-    CHECK(slurp(path) == text);
+    CHECK(file_bytes(path) == text);
     CHECK(fs::equivalent(path, dir / "backup.csv"));
 }
 
@@ -168,14 +162,14 @@ TEST_CASE("forget matches ids as ingest reads them: spaces and tabs around an id
     INFO(r.err);
     REQUIRE(r.exit_code == 0);
     CHECK(r.out.find("removed 4 rows (4 lines)") != std::string::npos);
-    CHECK(slurp(path) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\nc-00001x,tea-0001,1\nc 00001,tea-0001,1\n");
+    CHECK(file_bytes(path) == "customer_id,product_sku,stars\nc-00002,tea-0001,5\nc-00001x,tea-0001,1\nc 00001,tea-0001,1\n");
     CHECK_FALSE(ingest_sees(path, "c-00001"));
     // An id given with blanks around it is no id ingest keeps: a usage error, nothing touched.
-    const std::string before = slurp(path);
+    const std::string before = file_bytes(path);
     const auto padded = run_credence("forget --ratings " + quoted(path) + " --customer ' c-00002'");
     CHECK(padded.exit_code == 2);
     CHECK(padded.err.find("spaces or tabs") != std::string::npos);
-    CHECK(slurp(path) == before);
+    CHECK(file_bytes(path) == before);
 }
 
 TEST_CASE("forget with a customer column beyond the row is an error, as in ingest, and changes nothing") {
@@ -190,13 +184,13 @@ TEST_CASE("forget with a customer column beyond the row is an error, as in inges
         CHECK(r.err.find("index 5 is out of range") != std::string::npos);
         CHECK(r.err.find("--customer-column") != std::string::npos);
         CHECK(r.err.find("c-00001") == std::string::npos);
-        CHECK(slurp(path) == text);
+        CHECK(file_bytes(path) == text);
     }
     // The same file with the right index: the first row is data, and it goes too.
     const auto ok = run_credence("forget --ratings " + quoted(path) + " --customer c-00001 --customer-column 0");
     INFO(ok.err);
     REQUIRE(ok.exit_code == 0);
-    CHECK(slurp(path) == "c-00002,tea-0001,5,2024-05-02\n");
+    CHECK(file_bytes(path) == "c-00002,tea-0001,5,2024-05-02\n");
 }
 
 TEST_CASE("forget finds the customer column of the files Credence writes and of headerless exports, as fit does") {
@@ -207,7 +201,7 @@ TEST_CASE("forget finds the customer column of the files Credence writes and of 
     const uint32_t t1 = items.intern("tea-0001"), t2 = items.intern("tea-0002");
     const auto held = dir / "held-out.csv";
     write_ratings_csv({{c1, t1, 4.0f}, {c2, t1, 5.0f}, {c1, t2, 2.5f}}, users, items, held.string());
-    REQUIRE(slurp(held).rfind("customer,product,rating\n", 0) == 0);
+    REQUIRE(file_bytes(held).rfind("customer,product,rating\n", 0) == 0);
     auto r = run_credence("forget --ratings " + quoted(held) + " --customer c-00001");
     INFO(r.err);
     REQUIRE(r.exit_code == 0);
@@ -222,7 +216,7 @@ TEST_CASE("forget finds the customer column of the files Credence writes and of 
     INFO(r.err);
     REQUIRE(r.exit_code == 0);
     CHECK(r.out.find("removed 2 rows") != std::string::npos);
-    CHECK(slurp(bare) == "c-00002,tea-0001,5\n");
+    CHECK(file_bytes(bare) == "c-00002,tea-0001,5\n");
 
     // Another header name ingest recognises, after a blank line, in another column.
     const auto shop = dir / "shop.tsv";
@@ -230,7 +224,7 @@ TEST_CASE("forget finds the customer column of the files Credence writes and of 
     r = run_credence("forget --ratings " + quoted(shop) + " --customer c-00001");
     INFO(r.err);
     REQUIRE(r.exit_code == 0);
-    CHECK(slurp(shop) == "\nsku\tBuyer ID\tscore\ntea-0001\tc-00002\t5\n");
+    CHECK(file_bytes(shop) == "\nsku\tBuyer ID\tscore\ntea-0001\tc-00002\t5\n");
 
     // A header whose customer column ingest cannot recognise: an error naming the option, nothing touched.
     const auto odd = dir / "odd.csv";
@@ -238,9 +232,9 @@ TEST_CASE("forget finds the customer column of the files Credence writes and of 
     r = run_credence("forget --ratings " + quoted(odd) + " --customer c-00001");
     CHECK(r.exit_code == 1);
     CHECK(r.err.find("--customer-column") != std::string::npos);
-    CHECK(slurp(odd) == "who,what,stars\nc-00001,tea-0001,4\n");
+    CHECK(file_bytes(odd) == "who,what,stars\nc-00001,tea-0001,4\n");
     r = run_credence("forget --ratings " + quoted(odd) + " --customer c-00001 --customer-column who");
     INFO(r.err);
     REQUIRE(r.exit_code == 0);
-    CHECK(slurp(odd) == "who,what,stars\n");
+    CHECK(file_bytes(odd) == "who,what,stars\n");
 }

@@ -11,6 +11,7 @@
 #include <sstream>
 #include <string>
 
+#include "tests/support/demo_fit.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/run_command.hpp"
 
@@ -19,35 +20,12 @@ namespace fs = std::filesystem;
 
 namespace {
 
-std::string slurp(const fs::path& path) {
-    std::ifstream in(path, std::ios::binary);
-    std::stringstream s;
-    s << in.rdbuf();
-    return s.str();
-}
-
-struct Shop {
-    fs::path dir, ratings, model, held_out;
-};
-
 // A small demo export (three faulty rows in it on purpose), a short fit and
 // its held-out rows (a clean file).
-const Shop& shop() {
-    static const Shop s = [] {
-        Shop x;
-        x.dir = scratch_dir("rejects_path");
-        REQUIRE(run_credence("demo-data --out-dir " + quoted(x.dir) + " --customers 120 --products 40 --seed 5")
-                    .exit_code == 0);
-        x.ratings = x.dir / "ratings.csv";
-        x.model = x.dir / "shop.posterior";
-        x.held_out = x.dir / "clean.csv";
-        const auto fit = run_credence("fit --ratings " + quoted(x.ratings) + " --scale 1:5 --rank 2 --run-length fixed "
-                                      "--burn-in 10 --samples 5 --thin 1 --chains 2 --seed 3 --holdout 0.1 "
-                                      "--holdout-out " + quoted(x.held_out) + " -q --out " + quoted(x.model));
-        INFO(fit.err);
-        REQUIRE(fit.exit_code == 0);
-        return x;
-    }();
+const ShortDemoFit& shop() {
+    static const ShortDemoFit s = short_demo_fit({.scratch = "rejects_path", .customers = 120, .products = 40,
+                                                  .data_seed = 5, .rank = 2, .burn_in = 10, .samples = 5,
+                                                  .held_out_name = "clean.csv"});
     return s;
 }
 
@@ -60,7 +38,7 @@ std::string evaluate(const fs::path& ratings, const fs::path& rejects) {
 
 TEST_CASE("--rejects-path naming the ratings file is a usage error, by any name, and the ratings stay") {
     const auto& s = shop();
-    const std::string clean = slurp(s.held_out);
+    const std::string clean = file_bytes(s.held_out);
     REQUIRE(!clean.empty());
     const auto link = s.dir / "clean-link.csv";
     fs::remove(link);
@@ -72,20 +50,20 @@ TEST_CASE("--rejects-path naming the ratings file is a usage error, by any name,
         CHECK(r.err.find("--rejects-path") != std::string::npos);
         CHECK(r.err.find("is the ratings file") != std::string::npos);
         CHECK(r.err.find("removed") == std::string::npos);
-        CHECK(slurp(s.held_out) == clean);
+        CHECK(file_bytes(s.held_out) == clean);
     }
     // With rows rejected (the demo export has three) it is refused the same way.
-    const std::string ratings = slurp(s.ratings);
+    const std::string ratings = file_bytes(s.ratings);
     const auto fit = run_credence("fit --ratings " + quoted(s.ratings) + " --rejects-path " + quoted(s.ratings) +
                                   " --out " + quoted(s.dir / "never.posterior"));
     CHECK(fit.exit_code == 2);
-    CHECK(slurp(s.ratings) == ratings);
+    CHECK(file_bytes(s.ratings) == ratings);
     CHECK_FALSE(fs::exists(s.dir / "never.posterior"));
 }
 
 TEST_CASE("--rejects-path naming a model or any file that is not a rejects file is refused, and the file stays") {
     const auto& s = shop();
-    const std::string model = slurp(s.model);
+    const std::string model = file_bytes(s.model);
     const auto notes = s.dir / "notes.txt";
     std::ofstream(notes, std::ios::binary) << "line one\nline two\n";
     for (const fs::path& input : {s.held_out, s.ratings}) {  // nothing rejected, then three rows rejected
@@ -96,8 +74,8 @@ TEST_CASE("--rejects-path naming a model or any file that is not a rejects file 
             CHECK(r.err.find("not a rejects file") != std::string::npos);
             CHECK(r.err.find("pass another --rejects-path") != std::string::npos);
         }
-        CHECK(slurp(s.model) == model);
-        CHECK(slurp(notes) == "line one\nline two\n");
+        CHECK(file_bytes(s.model) == model);
+        CHECK(file_bytes(notes) == "line one\nline two\n");
     }
     // The model still loads.
     CHECK(run_credence("inspect " + quoted(s.model)).exit_code == 0);
@@ -110,7 +88,7 @@ TEST_CASE("--rejects-path naming a rejects file of an earlier run replaces it, o
     const auto messy = run_credence(evaluate(s.ratings, rejects));
     INFO(messy.err);
     REQUIRE(messy.exit_code == 0);
-    const std::string written = slurp(rejects);
+    const std::string written = file_bytes(rejects);
     CHECK(written.rfind("line\treason\trecord\n", 0) == 0);
     CHECK(written.find("an old reason") == std::string::npos);
     CHECK(std::count(written.begin(), written.end(), '\n') == 4);  // header and the demo's three faulty rows

@@ -9,6 +9,7 @@
 #include <sstream>
 #include <string>
 
+#include "tests/support/demo_fit.hpp"
 #include "tests/support/paths.hpp"
 #include "tests/support/run_command.hpp"
 
@@ -17,35 +18,10 @@ namespace fs = std::filesystem;
 
 namespace {
 
-struct Shop {
-    fs::path dir, model, held_out;
-};
-
 // A short fit of a small demo export, holding 10% out (written by --holdout-out).
-const Shop& shop() {
-    static const Shop s = [] {
-        Shop x;
-        x.dir = scratch_dir("report_command");
-        REQUIRE(run_credence("demo-data --out-dir " + quoted(x.dir) + " --customers 300 --products 80 --seed 11")
-                    .exit_code == 0);
-        x.model = x.dir / "shop.posterior";
-        x.held_out = x.dir / "held-out.csv";
-        const auto fit = run_credence("fit --ratings " + quoted(x.dir / "ratings.csv") +
-                                      " --scale 1:5 --rank 3 --run-length fixed --burn-in 20 --samples 10 --thin 1 "
-                                      "--chains 2 --seed 3 --holdout 0.1 --holdout-out " + quoted(x.held_out) +
-                                      " -q --out " + quoted(x.model));
-        INFO(fit.err);
-        REQUIRE(fit.exit_code == 0);
-        return x;
-    }();
+const ShortDemoFit& shop() {
+    static const ShortDemoFit s = short_demo_fit({.scratch = "report_command"});
     return s;
-}
-
-std::string slurp(const fs::path& path) {
-    std::ifstream in(path, std::ios::binary);
-    std::stringstream s;
-    s << in.rdbuf();
-    return s.str();
 }
 
 }  // namespace
@@ -55,7 +31,7 @@ TEST_CASE("report refuses to write over the model or the validation file it read
     const auto model = dir / "shop.posterior", held = dir / "held-out.csv";
     fs::copy_file(shop().model, model, fs::copy_options::overwrite_existing);
     fs::copy_file(shop().held_out, held, fs::copy_options::overwrite_existing);
-    const std::string model_bytes = slurp(model), held_bytes = slurp(held);
+    const std::string model_bytes = file_bytes(model), held_bytes = file_bytes(held);
     for (const std::string& args : {quoted(model) + " -o " + quoted(model),
                                     quoted(model) + " --validation " + quoted(held) + " -o " + quoted(held)}) {
         INFO(args);
@@ -63,8 +39,8 @@ TEST_CASE("report refuses to write over the model or the validation file it read
         CHECK(r.exit_code == 2);
         CHECK(r.err.find("writing there would replace an input") != std::string::npos);
     }
-    CHECK(slurp(model) == model_bytes);
-    CHECK(slurp(held) == held_bytes);
+    CHECK(file_bytes(model) == model_bytes);
+    CHECK(file_bytes(held) == held_bytes);
     const auto no_folder = run_credence("report " + quoted(model) + " -o " + quoted(dir / "absent" / "r.html"));
     CHECK(no_folder.exit_code == 1);
     CHECK(no_folder.err.find("does not exist") != std::string::npos);
