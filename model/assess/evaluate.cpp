@@ -229,6 +229,7 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
     EvaluationReport report;
     std::map<uint32_t, HeldOutRatings> held_out_by_user;  // posterior user -> held-out ratings
     double sq = 0.0, abs = 0.0, lpd = 0.0;
+    uint64_t off_scale = 0;  // rated pairs whose rating lies outside the model's scale
     std::vector<uint64_t> covered(L, 0);
     for (size_t k = 0; k < N; ++k) {
         if (status[k] == unknown_user) {
@@ -241,6 +242,7 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
         }
         ++report.rated;
         report.in_training += trained_on(p, *user_of[test.ratings[k].user], *item_of[test.ratings[k].item]);
+        off_scale += test.ratings[k].value < p.scale.min || test.ratings[k].value > p.scale.max;
         sq += abs_error[k] * abs_error[k];
         abs += abs_error[k];
         lpd += log_density[k];
@@ -259,6 +261,12 @@ EvaluationReport evaluate(const PredictionEngine& engine, const RatingSet& test,
     for (size_t l = 0; l < L; ++l)
         report.coverage[level_key(options.coverage_levels[l])] = report.rated ? covered[l] / n : nan;
     report.warnings = honesty_warnings(report, N);
+    if (off_scale > 0)
+        report.warnings.push_back(fmt::format(
+            "{} of the {} scored ratings lie outside the model's rating scale [{:g}, {:g}], where its predictions and "
+            "intervals are clipped, so they count as errors the model could not avoid; give evaluate the --scale the "
+            "fit was given, or check the file is on the same scale",
+            off_scale, report.rated, p.scale.min, p.scale.max));
     report.baseline = score_baseline(p, test, options, user_of, item_of);
     report.pit_histogram = pit_histogram(report.pit, options.pit_bins);
     report.coverage_curve = coverage_from_pit(report.pit, options.curve_levels);

@@ -13,8 +13,9 @@
 // that means the same on other scales). Gains are graded (the rating).
 //
 // Honesty: the report counts scored pairs the model was trained on (the
-// posterior's rated-items lists) and warns about them and about a file most
-// of whose ratings cannot be scored; and it scores the product-mean baseline
+// posterior's rated-items lists) and warns about them, about a file most
+// of whose ratings cannot be scored and about ratings outside the model's
+// scale; and it scores the product-mean baseline
 // (model/data/product_means.hpp, stored by the fit) on the same pairs.
 #pragma once
 #include <cstdint>
@@ -79,7 +80,7 @@ struct EvaluationReport {
     uint64_t unknown_users = 0;
     uint64_t unknown_items = 0;
     uint64_t in_training = 0;          // rated pairs that are among the model's training pairs
-    std::vector<std::string> warnings; // pairs in training; most ratings not scorable
+    std::vector<std::string> warnings; // pairs in training; most ratings not scorable; ratings off the scale
     BaselineFigures baseline;
     // Probability integral transform F(r) of each rated pair under its
     // unclipped predictive mixture, in test-set order; uniform on (0, 1) when

@@ -154,3 +154,33 @@ TEST_CASE("evaluate refuses a relevance threshold outside the model's scale inst
         CHECK(r.out.find("nan") == std::string::npos);
     }
 }
+
+TEST_CASE("evaluate warns when ratings lie outside the model's scale") {
+    const auto dir = scratch_dir("evaluate_command_off_scale");
+    const auto doubled = dir / "doubled.csv";
+    {
+        // The held-out rows on a 0-10 scale: every rating twice its value.
+        std::ifstream in(shop().held_out);
+        std::ofstream out(doubled);
+        std::string line;
+        std::getline(in, line);
+        out << line << "\n";
+        while (std::getline(in, line)) {
+            std::stringstream fields(line);
+            std::string customer, product, rating, rest;
+            std::getline(fields, customer, ',');
+            std::getline(fields, product, ',');
+            std::getline(fields, rating, ',');
+            std::getline(fields, rest);
+            out << customer << "," << product << "," << 2 * std::stod(rating) << (rest.empty() ? "" : "," + rest) << "\n";
+        }
+    }
+    const auto r = run_credence("evaluate --model " + quoted(shop().model) + " --ratings " + quoted(doubled) +
+                                " --scale 0:10 --no-ranking");
+    INFO(r.err);
+    REQUIRE(r.exit_code == 0);
+    CHECK(r.err.find("lie outside the model's rating scale [1, 5]") != std::string::npos);
+    const auto plain = run_credence("evaluate --model " + quoted(shop().model) + " --ratings " +
+                                    quoted(shop().held_out) + " --no-ranking");
+    CHECK(plain.err.find("outside the model's rating scale") == std::string::npos);
+}
