@@ -125,6 +125,10 @@ IngestResult read_ratings(const FitFlags& f, ProgressLine& progress, const Log& 
     IngestResult data = ingest_ratings(ingest_options);
     progress.finish();
     log(describe(data.summary));
+    // Rows dropped with nowhere to keep them are said even under --quiet.
+    if (data.summary.rejected > 0 && data.summary.rejects_path.empty())
+        std::cerr << fmt::format("warning: {} rejected rows of {} were not saved; give --rejects-path to keep them\n",
+                                 data.summary.rejected, f.ingest.path == "-" ? "standard input" : f.ingest.path);
     return data;
 }
 

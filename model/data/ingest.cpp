@@ -891,7 +891,8 @@ std::string describe(const IngestSummary& s) {
     std::string out = fmt::format("read {} rows: kept {}, rejected {}, merged {} duplicates", s.rows_read, s.kept,
                                   s.rejected, s.merged_duplicates);
     if (s.rejected > 0)
-        out += s.rejects_path.empty() ? " (rejects not saved)" : fmt::format(" (rejects in {})", s.rejects_path);
+        out += s.rejects_path.empty() ? " (rejects not saved: give --rejects-path to keep them)"
+                                      : fmt::format(" (rejects in {})", s.rejects_path);
     if (s.blank_lines > 0) out += fmt::format("; skipped {} blank lines", s.blank_lines);
     if (s.row_lines != s.rows_read)
         out += fmt::format("; {} lines: {} header, {} blank, {} in rows ({} in rejected rows)", s.lines_read,

@@ -420,3 +420,19 @@ TEST_CASE("fit --validation says how many of the file's rows it rejected and war
     CHECK(r.err.find("validation ratings are (customer, product) pairs of the training ratings") !=
           std::string::npos);
 }
+
+TEST_CASE("fit says, even with --quiet, how many rows of standard input it rejected when it could not keep them") {
+    const auto dir = scratch_dir("fit_command_stdin_rejects");
+    // run_credence gives the program /dev/null as its input; this needs the export there.
+    const auto err = dir / "stderr.txt";
+    const std::string command = quoted(credence_binary()) +
+                                " fit --ratings - --scale 1:5 --rank 3 --run-length fixed --burn-in 5 --samples 5 "
+                                "--thin 1 -q --out " + quoted(dir / "m.posterior") + " < " + quoted(demo_ratings()) +
+                                " 2> " + quoted(err);
+    REQUIRE(std::system(command.c_str()) == 0);
+    const std::string said = file_bytes(err);
+    INFO(said);
+    // The demo export has three bad rows.
+    CHECK(said.find("warning: 3 rejected rows of standard input were not saved; give --rejects-path") !=
+          std::string::npos);
+}
