@@ -6,6 +6,8 @@
 #include <fmt/format.h>
 #include <unistd.h>
 
+#include "model/data/postgresql_source.hpp"
+#include "model/data/sqlite_source.hpp"
 #include "model/error.hpp"
 
 namespace credence::cli {
@@ -15,8 +17,7 @@ namespace fs = std::filesystem;
 namespace {
 
 bool is_file_source(const std::string& path) {
-    return !path.empty() && path != "-" && path.rfind("sqlite:", 0) != 0 && path.rfind("postgresql://", 0) != 0 &&
-           path.rfind("postgres://", 0) != 0;
+    return !path.empty() && path != "-" && !is_sqlite_source(path) && !is_postgresql_source(path);
 }
 
 bool same_file(const std::string& a, const std::string& b) {
